@@ -1,0 +1,131 @@
+"""The command line: parse arguments, call the library, print. No logic lives here."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import warnings
+from pathlib import Path
+
+from .errors import TowersError
+
+
+def _parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="towers", description="Train two-tower embedding models on a CPU.")
+    sub = p.add_subparsers(dest="command", required=True)
+
+    t = sub.add_parser("train", help="train towers and baselines from a YAML config, evaluate, export")
+    t.add_argument("config", help="YAML config file")
+    t.add_argument("--out", required=True, help="run folder to write")
+    t.add_argument("--overwrite", action="store_true", help="replace an existing run folder")
+
+    e = sub.add_parser("evaluate", help="re-score a run on its held-out pairs or on a new interaction file")
+    e.add_argument("run_dir")
+    e.add_argument("--interactions", help="new held-out interactions (same columns as the config)")
+    e.add_argument("--json", action="store_true", help="print metrics as JSON instead of a table")
+
+    m = sub.add_parser("embed", help="embed entities from their feature rows alone")
+    m.add_argument("run_dir")
+    side = m.add_mutually_exclusive_group(required=True)
+    side.add_argument("--items", help="item feature table (CSV or parquet)")
+    side.add_argument("--users", help="user feature table (CSV or parquet)")
+    m.add_argument("--out", required=True, help="parquet file to write")
+
+    r = sub.add_parser("recommend", help="top items for users (their training positives excluded)")
+    r.add_argument("run_dir")
+    r.add_argument("--users", nargs="+", required=True, help="user ids")
+    r.add_argument("--top", type=int, default=10, help="how many items per user (default 10)")
+    r.add_argument("--out", help="write CSV or parquet instead of printing")
+
+    s = sub.add_parser("similar", help="most similar items for items")
+    s.add_argument("run_dir")
+    s.add_argument("--items", nargs="+", required=True, help="item ids")
+    s.add_argument("--top", type=int, default=10, help="how many items per item (default 10)")
+    s.add_argument("--out", help="write CSV or parquet instead of printing")
+
+    d = sub.add_parser("demo-data", help="generate the fictional hardware-and-garden store data")
+    d.add_argument("--out", required=True, help="folder to write the demo tables into")
+    d.add_argument("--seed", type=int, default=7, help="generator seed (default 7)")
+    return p
+
+
+def _write_frame(df, out: str) -> None:
+    from .atomic import write_atomic
+
+    path = Path(out)
+    if path.suffix.lower() == ".csv":
+        write_atomic(path, lambda p: df.to_csv(p, index=False))
+    elif path.suffix.lower() in (".parquet", ".pq"):
+        write_atomic(path, lambda p: df.to_parquet(p, index=False))
+    else:
+        raise TowersError(f"{path}: unsupported output format; use .csv or .parquet")
+    print(f"wrote {len(df)} rows to {path}")
+
+
+def run(args: argparse.Namespace) -> int:
+    if args.command == "train":
+        from .runner import train_run
+
+        result = train_run(args.config, args.out, overwrite=args.overwrite)
+        print(result["table"], end="")
+        print(f"run folder: {result['out']}")
+        return 0
+    if args.command == "demo-data":
+        from .demo_store import generate_store
+
+        files = generate_store(args.out, seed=args.seed)
+        for name, path in files.items():
+            print(f"{name}: {path}")
+        return 0
+
+    from .api import load
+
+    run_ = load(args.run_dir)
+    if args.command == "evaluate":
+        from .runner import format_table
+
+        result = run_.evaluate(args.interactions)
+        for note in result["notes"]:
+            print(note, file=sys.stderr)
+        print(json.dumps(result["metrics"], indent=2) if args.json else format_table(result["metrics"]), end="\n" if args.json else "")
+        return 0
+    if args.command == "embed":
+        from .export import write_embeddings
+        from .tables import read_table
+
+        source = args.items or args.users
+        df = read_table(source)
+        out = run_.embed_items(df, source) if args.items else run_.embed_users(df, source)
+        _, _, _, meta = run_.embeddings("item")
+        meta = dict(meta, side="item" if args.items else "user", source=str(source))
+        write_embeddings(args.out, out["id"].to_numpy(), out.attrs["vectors"], out.attrs["bias"], meta)
+        print(f"embedded {len(out)} {'items' if args.items else 'users'} into {args.out}")
+        return 0
+    if args.command in ("recommend", "similar"):
+        frame = run_.recommend(args.users, args.top) if args.command == "recommend" else run_.similar(args.items, args.top)
+        if args.out:
+            _write_frame(frame, args.out)
+        else:
+            print(frame.to_string(index=False))
+        return 0
+    raise AssertionError(args.command)
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = _parser().parse_args(argv)
+    with warnings.catch_warnings():
+        warnings.simplefilter("always")
+        warnings.formatwarning = lambda msg, *a, **k: f"warning: {msg}\n"
+        try:
+            return run(args)
+        except TowersError as exc:
+            print(f"error: {exc}", file=sys.stderr)
+            return TowersError.exit_code
+        except KeyboardInterrupt:
+            print("error: interrupted", file=sys.stderr)
+            return 130
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

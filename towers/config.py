@@ -1,0 +1,297 @@
+"""Run configuration: a declared schema, one validation routine, YAML in and out.
+
+Every key is declared once with its type, default, allowed range and meaning; the README's
+config table is written from the same declarations, and every error has one form:
+`config key 'section.key': got VALUE; expected ...`.
+"""
+
+from __future__ import annotations
+
+import copy
+import difflib
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import yaml
+
+from .errors import TowersError
+
+
+@dataclass(frozen=True)
+class Key:
+    """One config key: its type, default, constraint and meaning."""
+
+    kind: str  # "int", "float", "bool", "str", "choice", "path", "int_list", "str_or_int_list", "features", "any"
+    default: Any
+    meaning: str
+    low: float | None = None  # inclusive lower bound, unless low_open
+    high: float | None = None
+    low_open: bool = False
+    choices: tuple = ()
+    nullable: bool = False
+
+
+FEATURE_KINDS = ("numeric", "categorical", "tokens", "vector")
+
+FEATURE_KEYS = {
+    "name": Key("str", None, "column in the feature table"),
+    "kind": Key("choice", None, "numeric, categorical, tokens or vector", choices=FEATURE_KINDS),
+    "min_count": Key("int", 1, "categorical/tokens: values seen fewer times in training go to the unknown bucket", low=1),
+    "hash_buckets": Key("int", 0, "categorical/tokens: >0 hashes values into this many buckets instead of a vocabulary", low=0),
+    "separator": Key("str", "|", "tokens: delimiter when the column is a string rather than a list"),
+    "max_tokens": Key("int", 32, "tokens: longer lists are truncated to this many tokens", low=1),
+    "length": Key("int", None, "vector: the fixed vector length", low=1, nullable=True),
+    "dim": Key("int", None, "categorical/tokens: embedding size (default model.feature_dim)", low=1, nullable=True),
+}
+
+SIDE_KEYS = {
+    "path": Key("path", None, "feature table, CSV or parquet (relative to the config file)", nullable=True),
+    "id_column": Key("str", None, "column holding the entity id", nullable=True),
+    "features": Key("features", [], "list of features, each {name, kind, ...}"),
+    "missing_rows": Key(
+        "choice", "error",
+        "ids in the interactions with no feature row: error, drop (their interactions, with a count) or default (all-missing features)",
+        choices=("error", "drop", "default"),
+    ),
+}
+
+SCHEMA: dict[str, dict[str, Key]] = {
+    "run": {
+        "mode": Key("choice", "user_item", "user_item (users -> items) or item_item (items -> items, one item table)",
+                    choices=("user_item", "item_item")),
+        "seed": Key("int", 0, "random seed: the same seed and data give the same run", low=0),
+        "threads": Key("int", 0, "torch CPU threads; 0 keeps torch's default", low=0),
+    },
+    "interactions": {
+        "path": Key("path", None, "interaction log, CSV or parquet, one row per observed pair"),
+        "query_column": Key("str", None, "query-side id (a user, or the first item of a pair)"),
+        "candidate_column": Key("str", None, "candidate-side id (the item)"),
+        "target_column": Key("str", None, "rating, 0/1 label or count; absent means every row is a positive event", nullable=True),
+        "weight_column": Key("str", None, "non-negative weight of each row in the loss", nullable=True),
+        "time_column": Key("str", None, "event time; enables the time split", nullable=True),
+    },
+    "users": SIDE_KEYS,
+    "items": SIDE_KEYS,
+    "model": {
+        "dim": Key("int", 32, "k, the embedding size", low=1),
+        "hidden": Key("int_list", [128], "hidden layer sizes of each tower's MLP; [] means a linear map"),
+        "activation": Key("choice", "relu", "hidden-layer activation", choices=("relu", "gelu", "tanh", "silu")),
+        "dropout": Key("float", 0.0, "dropout after each hidden layer", low=0.0, high=0.95),
+        "feature_dim": Key("int", 16, "embedding size of categorical and token features", low=1),
+        "use_ids": Key("bool", True, "learn a per-id embedding for entities seen in training"),
+        "id_dim": Key("int", None, "size of the id embedding feeding the MLP (default: dim)", low=1, nullable=True),
+        "id_dropout": Key("float", 0.1, "share of training rows whose id is replaced by the unknown row, so features learn to carry new entities (ignored for id-only towers)",
+                          low=0.0, high=1.0),
+        "normalize": Key("bool", False, "L2-normalise each tower's output"),
+        "temperature": Key("float", 1.0, "scores are divided by this (useful with normalize)", low=0.0, low_open=True),
+        "non_negative": Key("bool", False, "softplus on the output so every embedding entry is >= 0"),
+        "biases": Key("bool", True, "per-id biases on both sides plus a global bias"),
+        "shared_tower": Key("bool", False, "item_item mode: one tower embeds both sides"),
+    },
+    "training": {
+        "loss": Key("choice", "logistic", "squared (ratings) or logistic (events with sampled negatives, or 0/1 targets)",
+                    choices=("squared", "logistic")),
+        "negatives": Key("int", 4, "logistic: sampled negatives per positive", low=0),
+        "negative_sampling": Key("choice", "popularity", "uniform over training items, or popularity^alpha",
+                                 choices=("uniform", "popularity")),
+        "popularity_exponent": Key("float", 0.75, "alpha in popularity^alpha", low=0.0, high=2.0),
+        "epochs": Key("int", 20, "maximum passes over the training pairs", low=1),
+        "batch_size": Key("int", 2048, "positive pairs per step", low=1),
+        "learning_rate": Key("float", 0.003, "Adam step size for network weights", low=0.0, low_open=True),
+        "id_learning_rate": Key("float", 0.01, "step size for id-embedding and bias tables", low=0.0, low_open=True),
+        "id_optimizer": Key("choice", "adam", "sparse optimiser for id tables: adam (SparseAdam), adagrad or sgd",
+                            choices=("adam", "adagrad", "sgd")),
+        "weight_decay": Key("float", 1e-5, "L2 penalty (wd/2)*||theta||^2 on network weights, per-pair objective", low=0.0),
+        "id_l2": Key("float", 0.1, "lambda: penalty (lambda/2)*(sum of squared id rows and biases), in the summed objective", low=0.0),
+        "patience": Key("int", 3, "stop after this many epochs without validation improvement", low=1),
+        "stop_metric": Key("str", None, "validation metric for early stopping (default rmse for squared, recall@K otherwise)", nullable=True),
+        "validate_queries": Key("int", 2000, "at most this many validation queries are ranked each epoch", low=1),
+        "progress": Key("choice", "auto", "progress bar: auto (only on a terminal), bar, or plain log lines",
+                        choices=("auto", "bar", "plain")),
+    },
+    "evaluation": {
+        "split": Key("choice", "random", "held-out split: random or time (needs interactions.time_column)",
+                     choices=("random", "time")),
+        "test_fraction": Key("float", 0.1, "share of pairs held out for the test slice", low=0.0, high=0.9),
+        "validation_fraction": Key("float", 0.1, "share of the remaining pairs held out for early stopping", low=0.0, high=0.9),
+        "cold_item_fraction": Key("float", 0.0, "share of items (with features) held out whole for the cold slice", low=0.0, high=0.9),
+        "top_k": Key("int_list", [20], "K values for recall@K and ndcg@K"),
+        "baseline": Key("bool", True, "also train the linear factor model (ids only, no hidden layer)"),
+        "oracle_users": Key("path", None, "parquet of true query vectors (id, embedding, bias), for an oracle row", nullable=True),
+        "oracle_items": Key("path", None, "parquet of true item vectors (id, embedding, bias), for an oracle row", nullable=True),
+    },
+}
+
+
+def _suggest(name: str, options) -> str:
+    close = difflib.get_close_matches(name, list(options), n=1)
+    return f"; did you mean '{close[0]}'?" if close else f"; known keys: {', '.join(sorted(options))}"
+
+
+def _check_value(label: str, key: Key, value: Any, base_dir: Path) -> Any:
+    def bad(expected: str) -> TowersError:
+        return TowersError(f"config key '{label}': got {value!r}; expected {expected}")
+
+    if value is None:
+        if key.nullable or key.default is None and key.kind in ("str", "path"):
+            return None
+        raise bad(f"a {key.kind} value (this key may not be empty)")
+    if key.kind == "bool":
+        if not isinstance(value, bool):
+            raise bad("true or false")
+        return value
+    if key.kind in ("int", "float"):
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            raise bad(f"a number ({key.kind})")
+        if key.kind == "int":
+            if isinstance(value, float) and not value.is_integer():
+                raise bad("a whole number")
+            value = int(value)
+        else:
+            value = float(value)
+        if key.low is not None and (value <= key.low if key.low_open else value < key.low):
+            raise bad(f"a number {'>' if key.low_open else '>='} {key.low}")
+        if key.high is not None and value > key.high:
+            raise bad(f"a number <= {key.high}")
+        return value
+    if key.kind == "str":
+        if not isinstance(value, (str, int)) or isinstance(value, bool):
+            raise bad("a string")
+        return str(value)
+    if key.kind == "choice":
+        if value not in key.choices:
+            raise bad("one of " + ", ".join(map(str, key.choices)))
+        return value
+    if key.kind == "path":
+        if not isinstance(value, str):
+            raise bad("a file path")
+        p = Path(value).expanduser()
+        return str(p if p.is_absolute() else (base_dir / p).resolve())
+    if key.kind == "int_list":
+        if not isinstance(value, list) or not all(isinstance(v, int) and not isinstance(v, bool) and v > 0 for v in value):
+            raise bad("a list of positive whole numbers, e.g. [128, 64]")
+        return list(value)
+    if key.kind == "features":
+        if not isinstance(value, list):
+            raise bad("a list of {name, kind} entries")
+        return [_check_feature(label, i, f, base_dir) for i, f in enumerate(value)]
+    raise AssertionError(key.kind)
+
+
+def _check_feature(label: str, index: int, spec: Any, base_dir: Path) -> dict:
+    here = f"{label}[{index}]"
+    if not isinstance(spec, dict):
+        raise TowersError(f"config key '{here}': got {spec!r}; expected a mapping like {{name: price, kind: numeric}}")
+    for k in spec:
+        if k not in FEATURE_KEYS:
+            raise TowersError(f"config key '{here}.{k}' is unknown{_suggest(str(k), FEATURE_KEYS)}")
+    for required in ("name", "kind"):
+        if spec.get(required) is None:
+            raise TowersError(f"config key '{here}.{required}' is missing; every feature needs a name and a kind ({', '.join(FEATURE_KINDS)})")
+    out = {k: _check_value(f"{here}.{k}", key, spec.get(k, key.default), base_dir) for k, key in FEATURE_KEYS.items()}
+    if out["kind"] == "vector" and out["length"] is None:
+        raise TowersError(f"config key '{here}.length' is missing; a vector feature needs its fixed length")
+    return out
+
+
+def resolve(raw: dict, base_dir: Path) -> dict:
+    """Check a raw config mapping against SCHEMA and fill defaults; paths resolve against base_dir."""
+    if not isinstance(raw, dict):
+        raise TowersError("config: the top level must be a mapping of sections (run, interactions, users, items, model, training, evaluation)")
+    for section in raw:
+        if section not in SCHEMA:
+            raise TowersError(f"config section '{section}' is unknown{_suggest(str(section), SCHEMA)}")
+    out: dict[str, dict] = {}
+    for section, keys in SCHEMA.items():
+        given = raw.get(section) or {}
+        if not isinstance(given, dict):
+            raise TowersError(f"config section '{section}': expected a mapping of keys, got {given!r}")
+        for k in given:
+            if k not in keys:
+                raise TowersError(f"config key '{section}.{k}' is unknown{_suggest(str(k), keys)}")
+        out[section] = {k: _check_value(f"{section}.{k}", key, copy.deepcopy(given.get(k, key.default)), base_dir)
+                        for k, key in keys.items()}
+    _check_consistency(out)
+    return out
+
+
+def _check_consistency(cfg: dict) -> None:
+    for name in ("query_column", "candidate_column"):
+        if not cfg["interactions"][name]:
+            raise TowersError(f"config key 'interactions.{name}' is missing; name the id column of the interaction log")
+    if not cfg["interactions"]["path"]:
+        raise TowersError("config key 'interactions.path' is missing; give the interaction log (CSV or parquet)")
+    for side in ("users", "items"):
+        s = cfg[side]
+        if s["path"] and not s["id_column"]:
+            raise TowersError(f"config key '{side}.id_column' is missing; name the id column of {s['path']}")
+        if s["features"] and not s["path"]:
+            raise TowersError(f"config key '{side}.path' is missing; features were listed but no feature table given")
+    if cfg["run"]["mode"] == "item_item" and cfg["users"]["path"]:
+        raise TowersError("config: item_item mode draws both sides from 'items'; remove the 'users' section or use mode user_item")
+    if cfg["model"]["shared_tower"] and cfg["run"]["mode"] != "item_item":
+        raise TowersError("config key 'model.shared_tower': only item_item mode can share one tower; set it false")
+    ev = cfg["evaluation"]
+    if ev["cold_item_fraction"] > 0 and not cfg["items"]["features"]:
+        raise TowersError("config key 'evaluation.cold_item_fraction': a cold-start split needs item features "
+                          "(items.features); set it to 0 or add features")
+    if ev["split"] == "time" and not cfg["interactions"]["time_column"]:
+        raise TowersError("config key 'evaluation.split': 'time' needs interactions.time_column; set it or use split: random")
+    if ev["test_fraction"] + ev["validation_fraction"] >= 0.95:
+        raise TowersError("config keys 'evaluation.test_fraction' + 'validation_fraction' leave almost no training data; lower them")
+    if not ev["top_k"]:
+        raise TowersError("config key 'evaluation.top_k': give at least one K, e.g. [20]")
+    if (ev["oracle_users"] is None) != (ev["oracle_items"] is None) and cfg["run"]["mode"] == "user_item":
+        raise TowersError("config keys 'evaluation.oracle_users' and 'oracle_items' go together; give both or neither")
+    stop = cfg["training"]["stop_metric"]
+    if stop is not None:
+        allowed = {"rmse", "mae"} if cfg["training"]["loss"] == "squared" else {"mrr", "auc"} | {
+            f"{m}@{k}" for m in ("recall", "ndcg") for k in ev["top_k"]}
+        if stop not in allowed:
+            raise TowersError(f"config key 'training.stop_metric': got {stop!r}; expected one of {', '.join(sorted(allowed))}")
+
+
+def default_stop_metric(cfg: dict) -> str:
+    """The validation metric used for early stopping when none is configured."""
+    if cfg["training"]["stop_metric"]:
+        return cfg["training"]["stop_metric"]
+    return "rmse" if cfg["training"]["loss"] == "squared" else f"recall@{cfg['evaluation']['top_k'][0]}"
+
+
+def lower_is_better(metric: str) -> bool:
+    return metric in ("rmse", "mae")
+
+
+def load(path: str | Path, overrides: dict | None = None) -> dict:
+    """Read a YAML config with yaml.safe_load, resolve it, and return the full mapping."""
+    path = Path(path)
+    if not path.is_file():
+        raise TowersError(f"{path}: config file not found; give the path to a YAML config (see configs/)")
+    try:
+        raw = yaml.safe_load(path.read_text(encoding="utf-8-sig"))
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        line = f", line {mark.line + 1}" if mark is not None else ""
+        raise TowersError(f"{path}{line}: not valid YAML ({getattr(exc, 'problem', exc)}); fix the syntax") from None
+    raw = raw or {}
+    if overrides:
+        raw = copy.deepcopy(raw)
+        for section, keys in overrides.items():
+            raw.setdefault(section, {}).update(keys)
+    return resolve(raw, path.resolve().parent)
+
+
+def dump(cfg: dict) -> str:
+    """The resolved config as YAML text (absolute paths, every default filled in)."""
+    return yaml.safe_dump(cfg, sort_keys=False)
+
+
+def linear_factor_preset(cfg: dict) -> dict:
+    """The linear factor model (matrix factorisation with biases) as a preset of the same towers."""
+    base = copy.deepcopy(cfg)
+    base["model"].update(hidden=[], use_ids=True, id_dropout=0.0, normalize=False, temperature=1.0,
+                         non_negative=False, dropout=0.0, shared_tower=False, id_dim=None)
+    base["users"]["features"] = []
+    base["items"]["features"] = []
+    return base

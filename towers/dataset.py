@@ -1,0 +1,188 @@
+"""From config to tensors: read the log and feature tables, split, fit encoders, encode.
+
+Everything here runs before any training starts, so a bad input costs seconds, not an hour.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+import torch
+
+from .errors import TowersError, where
+from .features import FeatureBlock, SideEncoders, SideTable
+from .splits import Split, make_split
+from .tables import align_id_types, normalise_ids, numeric_column, read_table, time_column
+
+
+@dataclass
+class Pairs:
+    """Interaction pairs as catalog-row index tensors, with optional target, weight and time."""
+
+    query: torch.Tensor  # int64 rows into the query catalog
+    candidate: torch.Tensor  # int64 rows into the candidate catalog
+    target: torch.Tensor | None = None  # float32
+    weight: torch.Tensor | None = None  # float32
+    time: torch.Tensor | None = None  # int64
+
+    def __len__(self) -> int:
+        return len(self.query)
+
+    def subset(self, idx) -> "Pairs":
+        idx = torch.as_tensor(idx, dtype=torch.int64)
+        pick = lambda t: None if t is None else t.index_select(0, idx)  # noqa: E731
+        return Pairs(pick(self.query), pick(self.candidate), pick(self.target), pick(self.weight), pick(self.time))
+
+    def positives(self) -> "Pairs":
+        """Rows that count as positive events (target > 0, or every row when there is no target)."""
+        if self.target is None:
+            return self
+        return self.subset(torch.nonzero(self.target > 0).flatten())
+
+
+@dataclass
+class Side:
+    """One side's catalog: ids, encoders and the encoded feature block of every entity."""
+
+    ids: np.ndarray
+    encoders: SideEncoders
+    block: FeatureBlock
+    has_features: bool
+    unknown_counts: dict = field(default_factory=dict)
+
+
+@dataclass
+class Prepared:
+    """All tensors a run needs: both sides, the split pairs and the cold items."""
+
+    queries: Side
+    candidates: Side
+    train: Pairs
+    valid: Pairs
+    test: Pairs
+    cold_test: Pairs
+    cold_items: torch.Tensor  # bool (n_candidates,)
+    warm_items: torch.Tensor  # bool (n_candidates,): candidates with training pairs
+    item_item: bool
+    notes: list[str]
+
+
+def read_interactions(cfg: dict):
+    """The log's id arrays and optional target / weight / time arrays, validated."""
+    ic = cfg["interactions"]
+    path = ic["path"]
+    cols = [ic["query_column"], ic["candidate_column"]] + [ic[k] for k in ("target_column", "weight_column", "time_column") if ic[k]]
+    df = read_table(path, columns=list(dict.fromkeys(cols)))
+    q = normalise_ids(df[ic["query_column"]], path, ic["query_column"])
+    c = normalise_ids(df[ic["candidate_column"]], path, ic["candidate_column"])
+    target = weight = when = None
+    if ic["target_column"]:
+        target = numeric_column(df[ic["target_column"]], path, ic["target_column"], allow_missing=False)
+        if cfg["training"]["loss"] == "logistic":
+            out = (target < 0) | (target > 1)
+            if out.any():
+                row = int(np.flatnonzero(out)[0])
+                raise TowersError(f"{where(path, ic['target_column'], row + 1)}: logistic targets must lie in [0, 1], got "
+                                  f"{target[row]!r}; use loss: squared for ratings, or move counts to weight_column")
+    if ic["weight_column"]:
+        weight = numeric_column(df[ic["weight_column"]], path, ic["weight_column"], allow_missing=False)
+        neg = weight < 0
+        if neg.any():
+            row = int(np.flatnonzero(neg)[0])
+            raise TowersError(f"{where(path, ic['weight_column'], row + 1)}: negative weight {weight[row]!r}; weights must be >= 0")
+    if ic["time_column"]:
+        when = time_column(df[ic["time_column"]], path, ic["time_column"])
+    return q, c, target, weight, when
+
+
+def _as_pairs(qr, cr, target, weight, when) -> Pairs:
+    f32 = lambda a: None if a is None else torch.from_numpy(np.asarray(a, dtype=np.float32))  # noqa: E731
+    return Pairs(torch.from_numpy(qr.astype(np.int64)), torch.from_numpy(cr.astype(np.int64)), f32(target), f32(weight),
+                 None if when is None else torch.from_numpy(when.astype(np.int64)))
+
+
+def _train_entities(ids: np.ndarray, rows: np.ndarray) -> np.ndarray:
+    return ids[np.unique(rows)]
+
+
+def prepare(cfg: dict) -> Prepared:
+    """Read, validate, split and encode everything the config names."""
+    ic = cfg["interactions"]
+    item_item = cfg["run"]["mode"] == "item_item"
+    q_raw, c_raw, target, weight, when = read_interactions(cfg)
+    notes: list[str] = []
+
+    item_side = SideTable(cfg["items"]["path"], cfg["items"]["id_column"], cfg["items"]["features"], cfg["items"]["missing_rows"])
+    if item_item:
+        both = np.concatenate([q_raw, c_raw]) if q_raw.dtype == c_raw.dtype else np.concatenate([q_raw.astype(str), c_raw.astype(str)]).astype(object)
+        c_ids, c_table, keep_both = item_side.catalog(both, ic["path"], ic["query_column"])
+        n = len(q_raw)
+        keep = keep_both[:n] & keep_both[n:]
+        q_ids, q_table = c_ids, c_table
+        q_aligned = align_id_types(both[:n], c_ids)
+        c_aligned = align_id_types(both[n:], c_ids)
+    else:
+        user_side = SideTable(cfg["users"]["path"], cfg["users"]["id_column"], cfg["users"]["features"], cfg["users"]["missing_rows"])
+        q_ids, q_table, keep_q = user_side.catalog(q_raw, ic["path"], ic["query_column"])
+        c_ids, c_table, keep_c = item_side.catalog(c_raw, ic["path"], ic["candidate_column"])
+        keep = keep_q & keep_c
+        q_aligned, c_aligned = align_id_types(q_raw, q_ids), align_id_types(c_raw, c_ids)
+    dropped = int((~keep).sum())
+    if dropped:
+        notes.append(f"dropped {dropped} interaction rows whose ids have no feature row (missing_rows: drop)")
+    q_rows = pd.Index(q_ids).get_indexer(q_aligned[keep])
+    c_rows = pd.Index(c_ids).get_indexer(c_aligned[keep])
+    sel = lambda a: None if a is None else a[keep]  # noqa: E731
+    pairs = _as_pairs(q_rows, c_rows, sel(target), sel(weight), sel(when))
+    if len(pairs) == 0:
+        raise TowersError(f"{ic['path']}: no interaction rows are left after matching ids to the feature tables; check the id columns")
+
+    has_item_features = bool(cfg["items"]["features"])
+    item_has_row = np.ones(len(c_ids), bool)
+    if item_side.has_table:
+        item_has_row = pd.Index(item_side.ids).get_indexer(c_ids) >= 0
+    split: Split = make_split(pairs, len(c_ids), cfg["evaluation"], cfg["run"]["seed"],
+                              cold_eligible=torch.from_numpy(item_has_row) if has_item_features else None,
+                              item_item=item_item)
+    train = pairs.subset(split.train)
+    if len(train) == 0:
+        raise TowersError(f"{ic['path']}: the split leaves no training pairs; lower evaluation fractions or add data")
+
+    tq, tc = train.query.numpy(), train.candidate.numpy()
+    if item_item:
+        c_train_ids = _train_entities(c_ids, np.concatenate([tq, tc]))
+        c_enc = SideEncoders.fit(c_table, cfg["items"]["path"], cfg["items"]["id_column"], cfg["items"]["features"], c_train_ids)
+        q_enc = c_enc
+    else:
+        q_enc = SideEncoders.fit(q_table, cfg["users"]["path"], cfg["users"]["id_column"], cfg["users"]["features"],
+                                 _train_entities(q_ids, tq))
+        c_enc = SideEncoders.fit(c_table, cfg["items"]["path"], cfg["items"]["id_column"], cfg["items"]["features"],
+                                 _train_entities(c_ids, tc))
+    c_block = c_enc.encode(c_ids, c_table, cfg["items"]["path"])
+    c_side = Side(c_ids, c_enc, c_block, has_item_features)
+    if item_item:
+        q_side = c_side
+    else:
+        q_block = q_enc.encode(q_ids, q_table, cfg["users"]["path"])
+        q_side = Side(q_ids, q_enc, q_block, bool(cfg["users"]["features"]))
+
+    warm = torch.zeros(len(c_ids), dtype=torch.bool)
+    warm[train.candidate] = True
+    if item_item:
+        warm[train.query] = True
+    _warn_small_data(cfg, train, len(q_ids), len(c_ids), notes)
+    return Prepared(q_side, c_side, train, pairs.subset(split.valid), pairs.subset(split.test),
+                    pairs.subset(split.cold_test), split.cold_items, warm, item_item, notes)
+
+
+def _warn_small_data(cfg: dict, train: Pairs, n_queries: int, n_items: int, notes: list[str]) -> None:
+    """k beyond what the data can identify: more factors than the smaller side has entities."""
+    k = cfg["model"]["dim"]
+    limit = min(n_queries, n_items, max(1, len(train) // max(1, n_queries + n_items)))
+    if k > min(n_queries, n_items):
+        notes.append(f"warning: model.dim = {k} exceeds min(#queries, #items) = {min(n_queries, n_items)}; "
+                     "extra dimensions cannot be identified from this data")
+    elif k > 4 * limit and limit < 8:
+        notes.append(f"warning: model.dim = {k} is large for about {limit} training pairs per entity; consider a smaller k")

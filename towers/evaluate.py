@@ -1,0 +1,164 @@
+"""Evaluation protocol: score held-out pairs against the full catalog, for every model, per slice.
+
+Metrics themselves are pure functions in metrics.py; this module decides what is ranked against
+what: warm pairs against every item with training history (the query's known positives excluded),
+cold pairs against the held-out items only.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import torch
+
+from . import metrics as M
+from .dataset import Pairs
+
+SCORE_BUDGET = 1 << 23  # score-matrix entries per block: bounds evaluation memory (~50 MB)
+
+
+@dataclass
+class Scorer:
+    """Any model as vectors: score(q, c) = scale * q_vec . c_vec + q_bias + c_bias + global_bias."""
+
+    query_vectors: torch.Tensor
+    item_vectors: torch.Tensor
+    query_bias: torch.Tensor | None = None
+    item_bias: torch.Tensor | None = None
+    global_bias: float = 0.0
+    scale: float = 1.0
+
+    def block(self, q_rows: torch.Tensor, item_rows: torch.Tensor | None = None) -> torch.Tensor:
+        """Scores (len(q_rows), n) of queries against the given item rows (default: all)."""
+        items = self.item_vectors if item_rows is None else self.item_vectors.index_select(0, item_rows)
+        s = self.query_vectors.index_select(0, q_rows) @ items.T
+        if self.scale != 1.0:
+            s = s * self.scale
+        if self.item_bias is not None:
+            s = s + (self.item_bias if item_rows is None else self.item_bias.index_select(0, item_rows))
+        if self.query_bias is not None:
+            s = s + self.query_bias.index_select(0, q_rows).unsqueeze(1)
+        return s + self.global_bias if self.global_bias else s
+
+    def pairs(self, q: torch.Tensor, c: torch.Tensor) -> torch.Tensor:
+        s = (self.query_vectors.index_select(0, q) * self.item_vectors.index_select(0, c)).sum(1) * self.scale
+        if self.item_bias is not None:
+            s = s + self.item_bias.index_select(0, c)
+        if self.query_bias is not None:
+            s = s + self.query_bias.index_select(0, q)
+        return s + self.global_bias
+
+
+def popularity_scorer(train: Pairs, n_queries: int, n_items: int, explicit: bool, item_item: bool = False) -> Scorer:
+    """Popularity: training counts for ranking; for ratings, each item's mean target damped toward the global mean."""
+    ones = torch.ones(n_queries, 1)
+    if not explicit:
+        counts = torch.bincount(train.candidate, minlength=n_items).float()
+        if item_item:
+            counts += torch.bincount(train.query, minlength=n_items).float()
+        return Scorer(ones, counts.unsqueeze(1))
+    damping = 5.0  # prior strength in pseudo-ratings: common practice (no source)
+    y = train.target.double()
+    mean = float(y.mean())
+    sums = torch.zeros(n_items, dtype=torch.float64).index_add_(0, train.candidate, y)
+    counts = torch.bincount(train.candidate, minlength=n_items).double()
+    damped = ((sums + damping * mean) / (counts + damping)).float()
+    return Scorer(torch.zeros(n_queries, 1), torch.zeros(n_items, 1), item_bias=damped)
+
+
+def rating_metrics(scorer: Scorer, test: Pairs) -> dict[str, float]:
+    """RMSE and MAE of predicted targets on held-out pairs."""
+    if len(test) == 0:
+        return {}
+    pred = scorer.pairs(test.query, test.candidate)
+    return {"rmse": M.rmse(pred, test.target, test.weight), "mae": M.mae(pred, test.target, test.weight)}
+
+
+def _pair_keys(q: torch.Tensor, c: torch.Tensor, n_items: int) -> np.ndarray:
+    return q.numpy().astype(np.int64) * n_items + c.numpy().astype(np.int64)
+
+
+def ranking_metrics(scorer: Scorer, test: Pairs, known: Pairs, candidate_mask: torch.Tensor, ks,
+                    tie_seed: int = 0, max_queries: int | None = None, exclude_self: bool = False) -> dict[str, float]:
+    """Full-catalog ranking metrics of held-out positives, averaged over queries.
+
+    candidate_mask: bool (n_items,) items that compete in the ranking. known: the pairs whose items
+    are excluded from each query's ranking (its training positives). Test pairs that are also known,
+    or whose item is not a candidate, are dropped.
+    """
+    n_items = len(candidate_mask)
+    test = test.positives()
+    keep = candidate_mask[test.candidate].numpy()
+    tq, tc = test.query[keep], test.candidate[keep]
+    if exclude_self:
+        ok = (tq != tc).numpy()
+        tq, tc = tq[ok], tc[ok]
+    keys = np.unique(_pair_keys(tq, tc, n_items))
+    known_keys = np.unique(_pair_keys(known.query, known.candidate, n_items))
+    keys = keys[~np.isin(keys, known_keys, assume_unique=True)]
+    if len(keys) == 0:
+        return {}
+    pq = torch.from_numpy(keys // n_items)
+    pc = torch.from_numpy(keys % n_items)
+    queries, q_index = torch.unique(pq, return_inverse=True)
+    if max_queries is not None and len(queries) > max_queries:
+        g = torch.Generator().manual_seed(tie_seed + 7)
+        chosen = torch.zeros(len(queries), dtype=torch.bool)
+        chosen[torch.randperm(len(queries), generator=g)[:max_queries]] = True
+        sel = chosen[q_index]
+        pq, pc = pq[sel], pc[sel]
+        queries, q_index = torch.unique(pq, return_inverse=True)
+    cand_rows = torch.nonzero(candidate_mask).flatten()
+    col_of = torch.full((n_items,), -1, dtype=torch.int64)
+    col_of[cand_rows] = torch.arange(len(cand_rows))
+    n_cols = len(cand_rows)
+    tie_break = torch.rand(n_cols, generator=torch.Generator().manual_seed(tie_seed))
+
+    # known pairs of the test queries, sorted by query, for per-block exclusion
+    kq = torch.from_numpy(known_keys // n_items)
+    kc = torch.from_numpy(known_keys % n_items)
+    kcol = col_of[kc]
+    relevant = (kcol >= 0) & torch.isin(kq, queries)
+    kq, kcol = kq[relevant], kcol[relevant]  # sorted by query, since keys are sorted
+
+    pos_per_query = torch.bincount(q_index, minlength=len(queries))
+    pair_start = torch.cat([torch.zeros(1, dtype=torch.int64), pos_per_query.cumsum(0)])
+    # blocks of consecutive queries so that rows * columns and pairs * columns stay within budget
+    per_block = max(1, SCORE_BUDGET // max(1, n_cols))
+    bounds = _blocks(pos_per_query, per_block)
+    results: dict[str, list] = {}
+    for lo, hi in bounds:
+        qs = queries[lo:hi]
+        scores = scorer.block(qs, cand_rows).float()
+        k_lo, k_hi = torch.searchsorted(kq, qs[0]), torch.searchsorted(kq, qs[-1], right=True)
+        if k_hi > k_lo:
+            local = torch.searchsorted(qs, kq[k_lo:k_hi])
+            scores[local, kcol[k_lo:k_hi]] = float("-inf")
+        if exclude_self:
+            own = col_of[qs]
+            has = own >= 0
+            scores[torch.nonzero(has).flatten(), own[has]] = float("-inf")
+        p_lo, p_hi = pair_start[lo], pair_start[hi]
+        rows = q_index[p_lo:p_hi] - lo
+        ranks = M.ranks_of_positives(scores, rows, col_of[pc[p_lo:p_hi]], tie_break)
+        per_q = M.per_query_ranking(ranks, rows, hi - lo, M.candidates_per_row(scores), ks)
+        for name, v in per_q.items():
+            results.setdefault(name, []).append(v)
+    out = M.mean_over_queries({k: torch.cat(v) for k, v in results.items()})
+    out["queries"] = int(len(queries))
+    return out
+
+
+def _blocks(pos_per_query: torch.Tensor, rows_per_block: int) -> list[tuple[int, int]]:
+    """Group consecutive queries so that each block holds at most rows_per_block queries and positives."""
+    n = len(pos_per_query)
+    cum = pos_per_query.cumsum(0)
+    bounds, lo = [], 0
+    while lo < n:
+        base = int(cum[lo - 1]) if lo else 0
+        by_pairs = int(torch.searchsorted(cum, base + rows_per_block, right=True))
+        hi = min(n, lo + rows_per_block, max(lo + 1, by_pairs))
+        bounds.append((lo, hi))
+        lo = hi
+    return bounds

@@ -1,0 +1,134 @@
+"""One side's features (users or items): encoders fitted on training entities, encoded into tensors.
+
+A `FeatureBlock` is a dict of tensors whose first dimension runs over entities; training batches
+gather rows of it with index tensors, so no per-row Python runs in the training loop.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import torch
+
+from .encoders import IdEncoder, encoder_from_state, make_encoder
+from .errors import TowersError, where
+from .tables import align_id_types, check_unique_ids, normalise_ids, read_table, require_columns
+
+FeatureBlock = dict[str, torch.Tensor]
+
+
+def take(block: FeatureBlock, rows: torch.Tensor) -> FeatureBlock:
+    """Gather the given entity rows of every tensor in a block."""
+    return {name: t.index_select(0, rows) for name, t in block.items()}
+
+
+def block_len(block: FeatureBlock) -> int:
+    return len(next(iter(block.values())))
+
+
+def slice_block(block: FeatureBlock, start: int, stop: int) -> FeatureBlock:
+    return {name: t[start:stop] for name, t in block.items()}
+
+
+class SideEncoders:
+    """The id encoder and feature encoders of one side, with plain-state save and load."""
+
+    def __init__(self, id_encoder: IdEncoder, encoders: list, id_column: str | None):
+        self.id_encoder = id_encoder
+        self.encoders = encoders
+        self.id_column = id_column
+
+    @classmethod
+    def fit(cls, table: pd.DataFrame | None, path, id_column: str | None, specs: list[dict],
+            train_ids: np.ndarray) -> "SideEncoders":
+        """Fit the id vocabulary and every feature encoder on the training entities' rows only."""
+        id_enc = IdEncoder.fit(train_ids)
+        encoders = [make_encoder(s) for s in specs]
+        if encoders:
+            ids = normalise_ids(table[id_column], path, id_column)
+            train_rows = table.iloc[np.flatnonzero(pd.Index(train_ids).get_indexer(ids) >= 0)] \
+                if len(train_ids) else table.iloc[:0]
+            if len(train_rows) == 0:
+                train_rows = table  # nothing to learn from; fall back to the whole table
+            for enc in encoders:
+                enc.fit(train_rows[enc.name], path)
+        return cls(id_enc, encoders, id_column)
+
+    def encode(self, ids: np.ndarray, table: pd.DataFrame | None, path) -> FeatureBlock:
+        """Encode entities (ids plus their feature rows, in the same order) into a block."""
+        block: FeatureBlock = {"id": self.id_encoder.transform(ids)}
+        for enc in self.encoders:
+            block[enc.name] = enc.transform(table[enc.name], path)
+        return block
+
+    def unknown_counts(self) -> dict[str, int]:
+        """Values mapped to the unknown bucket by the last encode, per feature (for warnings)."""
+        return {e.name: e.unknown_seen for e in self.encoders if getattr(e, "unknown_seen", 0)}
+
+    def model_inputs(self) -> list[dict]:
+        """What the tower needs to know about each feature: name, kind and size or width."""
+        out = []
+        for e in self.encoders:
+            if e.kind in ("categorical", "tokens"):
+                out.append({"name": e.name, "kind": e.kind, "size": e.size})
+            else:
+                out.append({"name": e.name, "kind": e.kind, "width": e.width})
+        return out
+
+    def state(self) -> dict:
+        return {"id_column": self.id_column, "ids": self.id_encoder.state(),
+                "features": [e.state() for e in self.encoders]}
+
+    @classmethod
+    def from_state(cls, state: dict) -> "SideEncoders":
+        return cls(encoder_from_state(state["ids"]), [encoder_from_state(s) for s in state["features"]],
+                   state["id_column"])
+
+
+class SideTable:
+    """A side's feature table read and keyed by id (or none when the side has no features)."""
+
+    def __init__(self, path, id_column: str | None, specs: list[dict], missing_rows: str):
+        self.path, self.id_column, self.specs, self.missing_rows = path, id_column, specs, missing_rows
+        self.table: pd.DataFrame | None = None
+        self.ids: np.ndarray | None = None
+        if path:
+            cols = [id_column] + [s["name"] for s in specs]
+            self.table = read_table(path, columns=None)
+            require_columns(self.table.columns, cols, path)
+            self.table = self.table[list(dict.fromkeys(cols))].reset_index(drop=True)
+            self.ids = normalise_ids(self.table[id_column], path, id_column)
+            check_unique_ids(self.ids, path, id_column)
+
+    @property
+    def has_table(self) -> bool:
+        return self.table is not None
+
+    def catalog(self, interaction_ids: np.ndarray, log_path, log_column) -> tuple[np.ndarray, pd.DataFrame | None, np.ndarray]:
+        """The side's entity universe: table ids plus (per missing_rows) ids only seen in the log.
+
+        Returns (catalog ids, feature rows aligned with them or None, keep-mask over interaction ids).
+        """
+        if self.table is None:
+            uniq = pd.unique(interaction_ids)
+            uniq = np.sort(uniq) if uniq.dtype.kind in "iu" else np.asarray(sorted(uniq), dtype=object)
+            return uniq, None, np.ones(len(interaction_ids), bool)
+        ids = align_id_types(interaction_ids, self.ids)
+        known = pd.Index(self.ids).get_indexer(ids) >= 0
+        keep = np.ones(len(ids), bool)
+        table, cat_ids = self.table, self.ids
+        if not known.all():
+            missing = pd.unique(ids[~known])
+            if self.missing_rows == "error":
+                row = int(np.flatnonzero(~known)[0])
+                raise TowersError(
+                    f"{where(log_path, log_column, row + 1)}: id {ids[row]!r} has no row in {self.path} "
+                    f"({len(missing)} such ids); add feature rows, or set missing_rows: drop or default")
+            if self.missing_rows == "drop":
+                keep = known
+            else:
+                filler = pd.DataFrame({c: pd.Series([None] * len(missing), dtype=object) for c in table.columns})
+                filler[self.id_column] = missing
+                table = pd.concat([table, filler], ignore_index=True)
+                cat_ids = np.concatenate([cat_ids, missing.astype(cat_ids.dtype)])
+        return cat_ids, table, keep

@@ -1,0 +1,56 @@
+"""Elementwise training losses and their weighted reduction.
+
+All functions are pure functions of tensors and keep the autograd graph, so
+they can be used directly inside a training step.
+"""
+
+from __future__ import annotations
+
+import torch
+import torch.nn.functional as F
+
+
+def squared_loss(pred: torch.Tensor, target: torch.Tensor) -> torch.Tensor:
+    """Elementwise half squared error, 0.5 * (pred - target)**2.
+
+    Returns a tensor of the broadcast shape of `pred` and `target`, in squared
+    units of the target.
+    """
+    # The factor 1/2 makes the gradient exactly (pred - target), so a penalty
+    # weight lambda on the nuclear norm is the soft-thresholding level of the
+    # singular values, with no stray factor of 2.
+    diff = pred - target
+    return 0.5 * diff * diff
+
+
+def logistic_loss(logits: torch.Tensor, target: torch.Tensor) -> torch.Tensor:
+    """Elementwise binary cross-entropy on logits, softplus(logits) - target * logits.
+
+    `target` may be any value in [0, 1] (soft labels allowed). Returns a tensor
+    of the broadcast shape, in nats; finite for every finite logit.
+    """
+    # softplus(x) = x + softplus(-x), so for x >= 0 the loss equals
+    # (1 - t) * x + softplus(-x). Using that branch for positive logits avoids
+    # subtracting two large, nearly equal numbers (softplus(x) and t * x when
+    # t is close to 1), and the negative branch never overflows. Both branches
+    # are finite everywhere, so torch.where leaks no NaN into the gradient, and
+    # the gradient is sigmoid(x) - t on both sides, including x = 0.
+    target = target.to(logits.dtype)
+    positive = logits >= 0
+    upper = (1.0 - target) * logits + F.softplus(-logits)
+    lower = F.softplus(logits) - target * logits
+    return torch.where(positive, upper, lower)
+
+
+def weighted_mean(values: torch.Tensor, weight: torch.Tensor | None = None) -> torch.Tensor:
+    """Mean of `values`, or sum(weight * values) / sum(weight) when `weight` is given.
+
+    `weight` must broadcast to the shape of `values`. Returns a 0-d tensor in
+    the unit of `values`; NaN when there are no values or the weights sum to 0.
+    """
+    if weight is None:
+        return values.mean()
+    # Broadcast first so that sum(weight) counts every element it multiplies,
+    # e.g. a scalar weight gives the plain mean rather than n times it.
+    weight = torch.broadcast_to(weight.to(values.dtype), values.shape)
+    return (weight * values).sum() / weight.sum()

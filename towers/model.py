@@ -1,0 +1,128 @@
+"""The two towers: encoded features -> concatenation -> MLP -> k-dim vector; score = dot product.
+
+The linear factor model is this same code with ids only and no hidden layer: the id table row is
+then the embedding itself (matrix factorisation with biases).
+"""
+
+from __future__ import annotations
+
+import torch
+import torch.nn as nn
+import torch.nn.functional as F
+
+ACTIVATIONS = {"relu": nn.ReLU, "gelu": nn.GELU, "tanh": nn.Tanh, "silu": nn.SiLU}
+ID_INIT_STD = 0.1  # common practice for factor tables (no source)
+
+
+def _sparse_table(rows: int, dim: int, std: float) -> nn.Embedding:
+    """An id table with sparse gradients; row 0 (the unknown id) starts at zero."""
+    table = nn.Embedding(rows, dim, sparse=True)
+    with torch.no_grad():
+        table.weight.normal_(0.0, std)
+        table.weight[0].zero_()
+    return table
+
+
+class Tower(nn.Module):
+    """Maps one side's encoded features (a FeatureBlock batch) to k-dim embeddings."""
+
+    def __init__(self, inputs: list[dict], id_rows: int, model_cfg: dict):
+        super().__init__()
+        dim = model_cfg["dim"]
+        self.inputs = inputs
+        self.normalize = model_cfg["normalize"]
+        self.non_negative = model_cfg["non_negative"]
+        self.id_dropout = model_cfg["id_dropout"]
+        self.use_ids = model_cfg["use_ids"]
+        hidden = model_cfg["hidden"]
+        # ids only and no hidden layer: the id row is the embedding (plain matrix factorisation)
+        self.direct = self.use_ids and not inputs and not hidden
+        if self.direct:
+            self.id_dropout = 0.0
+        id_dim = dim if self.direct else (model_cfg["id_dim"] or dim)
+        self.ids = _sparse_table(id_rows, id_dim, ID_INIT_STD) if self.use_ids else None
+        self.tables = nn.ModuleDict()
+        width = id_dim if self.use_ids else 0
+        for spec in inputs:
+            d = spec.get("dim") or model_cfg["feature_dim"]
+            if spec["kind"] == "categorical":
+                self.tables[spec["name"]] = nn.Embedding(spec["size"], d)
+                width += d
+            elif spec["kind"] == "tokens":
+                self.tables[spec["name"]] = nn.EmbeddingBag(spec["size"], d, mode="mean", padding_idx=0)
+                width += d
+            else:
+                width += spec["width"]
+        if width == 0:
+            raise ValueError("a tower needs ids or at least one feature")
+        layers: list[nn.Module] = []
+        if not self.direct:
+            for h in hidden:
+                layers += [nn.Linear(width, h), ACTIVATIONS[model_cfg["activation"]]()]
+                if model_cfg["dropout"] > 0:
+                    layers.append(nn.Dropout(model_cfg["dropout"]))
+                width = h
+            layers.append(nn.Linear(width, dim))
+        self.mlp = nn.Sequential(*layers)
+
+    def id_rows(self, block: dict) -> torch.Tensor:
+        """The id-table rows this batch uses; in training a share is swapped for the unknown row."""
+        ids = block["id"]
+        if self.training and self.id_dropout > 0:
+            ids = torch.where(torch.rand(ids.shape) < self.id_dropout, torch.zeros_like(ids), ids)
+        return ids
+
+    def forward(self, block: dict, ids: torch.Tensor | None = None) -> torch.Tensor:
+        if ids is None and self.use_ids:
+            ids = self.id_rows(block)
+        if self.direct:
+            out = self.ids(ids)
+        else:
+            parts = [self.ids(ids)] if self.use_ids else []
+            for spec in self.inputs:
+                x = block[spec["name"]]
+                if spec["kind"] in ("categorical", "tokens"):
+                    x = self.tables[spec["name"]](x)
+                parts.append(x)
+            out = self.mlp(torch.cat(parts, dim=1))
+        if self.non_negative:
+            out = F.softplus(out)
+        if self.normalize:
+            out = F.normalize(out, dim=1)
+        return out
+
+
+class TwoTowerModel(nn.Module):
+    """Query and candidate towers, optional per-id and global biases; score = q.c / temperature + biases."""
+
+    def __init__(self, query_inputs: list[dict], query_ids: int, cand_inputs: list[dict], cand_ids: int,
+                 model_cfg: dict, shared: bool = False):
+        super().__init__()
+        self.temperature = model_cfg["temperature"]
+        self.candidate_tower = Tower(cand_inputs, cand_ids, model_cfg)
+        self.shared = shared
+        self.query_tower = self.candidate_tower if shared else Tower(query_inputs, query_ids, model_cfg)
+        self.use_biases = model_cfg["biases"]
+        if self.use_biases:
+            self.candidate_bias = _sparse_table(cand_ids, 1, 0.0)
+            self.query_bias = self.candidate_bias if shared else _sparse_table(query_ids, 1, 0.0)
+            self.global_bias = nn.Parameter(torch.zeros(()))
+
+    def query_bias_of(self, ids: torch.Tensor) -> torch.Tensor:
+        return self.query_bias(ids).squeeze(1) if self.use_biases else torch.zeros(len(ids))
+
+    def candidate_bias_of(self, ids: torch.Tensor) -> torch.Tensor:
+        return self.candidate_bias(ids).squeeze(1) if self.use_biases else torch.zeros(len(ids))
+
+    def sparse_parameters(self) -> list[nn.Parameter]:
+        """Id and bias tables: updated with a sparse optimiser, penalised per row."""
+        out = []
+        for m in self.modules():
+            if isinstance(m, nn.Embedding) and m.sparse:
+                out.append(m.weight)
+        return list({id(p): p for p in out}.values())
+
+    def dense_parameters(self) -> list[nn.Parameter]:
+        sparse = {id(p) for p in self.sparse_parameters()}
+        skip = {id(self.global_bias)} if self.use_biases else set()
+        return [p for p in self.parameters() if id(p) not in sparse and id(p) not in skip]

@@ -1,0 +1,234 @@
+"""`towers train` end to end: prepare, train towers and the baseline, evaluate, export, save.
+
+Everything is written into RUN_DIR.partial first and renamed to RUN_DIR at the end, so a failed or
+killed run never leaves a half-written run folder under the requested name.
+"""
+
+from __future__ import annotations
+
+import json
+import shutil
+import time
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import torch
+
+from . import config as C
+from .atomic import write_atomic, write_text_atomic
+from .bundle import save_bundle
+from .dataset import Pairs, Prepared, prepare
+from .errors import TowersError
+from .evaluate import Scorer, popularity_scorer, ranking_metrics, rating_metrics
+from .export import read_embeddings, write_embeddings
+from .model import TwoTowerModel
+from .train import _with_dims, build_model, fit, log, model_scorer
+
+MODEL_ORDER = ("popularity", "linear_factor", "towers", "oracle")
+
+
+def check_out_dir(out: Path, overwrite: bool) -> None:
+    if out.exists() and any(out.iterdir()) and not overwrite:
+        raise TowersError(f"{out}: run folder already exists; choose another --out or pass --overwrite to replace it")
+    if out.exists() and not out.is_dir():
+        raise TowersError(f"{out}: exists and is not a folder; choose another --out")
+
+
+def apply_threads(cfg: dict) -> None:
+    if cfg["run"]["threads"]:
+        torch.set_num_threads(cfg["run"]["threads"])
+
+
+def baseline_model(data: Prepared, cfg: dict) -> tuple[TwoTowerModel, dict]:
+    """The linear factor model: the same towers with ids only and no hidden layer."""
+    preset = C.linear_factor_preset(cfg)
+    m = TwoTowerModel([], data.queries.encoders.id_encoder.size, [], data.candidates.encoders.id_encoder.size,
+                      preset["model"], shared=data.item_item and cfg["model"]["shared_tower"])
+    return m, preset
+
+
+def oracle_scorer(cfg: dict, data: Prepared) -> Scorer | None:
+    """True vectors from files (as the demo generator writes them), mapped to the catalogs."""
+    ev = cfg["evaluation"]
+    if not ev["oracle_items"] or data.item_item:
+        return None
+
+    def load(path, ids):
+        o_ids, vec, bias, _ = read_embeddings(path)
+        if o_ids.dtype != ids.dtype:
+            o_ids = o_ids.astype(str).astype(object) if ids.dtype == object else o_ids
+        rows = pd.Index(o_ids).get_indexer(ids)
+        if (rows < 0).any():
+            missing = ids[np.flatnonzero(rows < 0)[0]]
+            raise TowersError(f"{path}, column 'id': no oracle vector for id {missing!r}; the oracle must cover every entity")
+        r = torch.from_numpy(rows)
+        return vec.index_select(0, r), None if bias is None else bias.index_select(0, r)
+
+    qv, qb = load(ev["oracle_users"], data.queries.ids)
+    cv, cb = load(ev["oracle_items"], data.candidates.ids)
+    return Scorer(qv, cv, qb, cb)
+
+
+def known_pairs(data: Prepared) -> Pairs:
+    """Positives a query is known to have (training and validation): excluded from its test ranking."""
+    tr, va = data.train.positives(), data.valid.positives()
+    return Pairs(torch.cat([tr.query, va.query]), torch.cat([tr.candidate, va.candidate]))
+
+
+def evaluate_slices(scorers: dict[str, Scorer], data: Prepared, cfg: dict) -> dict:
+    """{slice: {model: {metric: value}}} for the warm test pairs and, if any, the cold ones."""
+    explicit = cfg["training"]["loss"] == "squared"
+    ks, tie = cfg["evaluation"]["top_k"], cfg["run"]["seed"]
+    known = known_pairs(data)
+    empty = Pairs(torch.zeros(0, dtype=torch.int64), torch.zeros(0, dtype=torch.int64))
+    out: dict = {"warm": {}}
+    if len(data.cold_test):
+        out["cold"] = {}
+    for name in MODEL_ORDER:
+        if name not in scorers:
+            continue
+        s = scorers[name]
+        if explicit:
+            out["warm"][name] = rating_metrics(s, data.test)
+            if "cold" in out:
+                out["cold"][name] = rating_metrics(s, data.cold_test)
+        else:
+            out["warm"][name] = ranking_metrics(s, data.test, known, data.warm_items, ks, tie, exclude_self=data.item_item)
+            if "cold" in out:
+                out["cold"][name] = ranking_metrics(s, data.cold_test, empty, data.cold_items, ks, tie,
+                                                    exclude_self=data.item_item)
+    return out
+
+
+def format_table(metrics: dict) -> str:
+    """The metrics as a plain text table, one block per slice."""
+    lines = []
+    for slice_name, models in metrics.items():
+        names = [m for m in models if models[m]]
+        if not names:
+            continue
+        cols = [c for c in next(iter(models[n] for n in names)) if c != "queries"]
+        width = max(len(n) for n in names) + 2
+        lines.append(f"[{slice_name}]" + (f"  ({models[names[0]].get('queries')} queries)" if "queries" in models[names[0]] else ""))
+        lines.append("model".ljust(width) + "".join(c.rjust(11) for c in cols))
+        for n in names:
+            lines.append(n.ljust(width) + "".join(f"{models[n].get(c, float('nan')):11.4f}" for c in cols))
+        lines.append("")
+    return "\n".join(lines).rstrip() + "\n"
+
+
+def export_run(folder: Path, model: TwoTowerModel, data: Prepared, cfg: dict, label: str) -> dict[str, str]:
+    """Write the embeddings of every catalog entity for one model; returns file names by side."""
+    s = model_scorer(model, data)
+    meta = {"normalized": str(bool(cfg["model"]["normalize"])).lower(),
+            "temperature": cfg["model"]["temperature"],
+            "score": "dot(query, item) / temperature + query bias + item bias + global bias"
+            if model.use_biases else "dot(query, item) / temperature",
+            "global_bias": s.global_bias, "model": label}
+    files = {}
+    write_embeddings(folder / "item_embeddings.parquet", data.candidates.ids, s.item_vectors, s.item_bias,
+                     meta | {"side": "item"})
+    files["items"] = "item_embeddings.parquet"
+    if not data.item_item:
+        write_embeddings(folder / "user_embeddings.parquet", data.queries.ids, s.query_vectors, s.query_bias,
+                         meta | {"side": "user"})
+        files["users"] = "user_embeddings.parquet"
+    elif not model.shared:
+        write_embeddings(folder / "query_embeddings.parquet", data.queries.ids, s.query_vectors, s.query_bias,
+                         meta | {"side": "query item"})
+        files["queries"] = "query_embeddings.parquet"
+    return files
+
+
+def _save_model(folder: Path, model: TwoTowerModel, model_cfg: dict, data: Prepared, cfg_for_inputs: dict,
+                use_features: bool) -> None:
+    side_q = "items" if data.item_item else "users"
+    q_inputs = _with_dims(data.queries.encoders.model_inputs(), cfg_for_inputs[side_q]["features"]) if use_features else []
+    c_inputs = _with_dims(data.candidates.encoders.model_inputs(), cfg_for_inputs["items"]["features"]) if use_features else []
+    save_bundle(folder / "model.pt", model, model_cfg, q_inputs, c_inputs, data.queries.encoders,
+                data.candidates.encoders, data.item_item)
+
+
+def save_pairs(path: Path, data: Prepared) -> None:
+    """Catalog ids and split pairs, as tensors and lists only (weights_only-loadable)."""
+    def pack(p: Pairs) -> dict:
+        d = {"query": p.query, "candidate": p.candidate}
+        if p.target is not None:
+            d["target"] = p.target
+        if p.weight is not None:
+            d["weight"] = p.weight
+        return d
+
+    payload = {"format": "towers-pairs", "version": 1,
+               "query_ids": data.queries.ids.tolist(), "item_ids": data.candidates.ids.tolist(),
+               "train": pack(data.train), "valid": pack(data.valid), "test": pack(data.test),
+               "cold_test": pack(data.cold_test), "cold_items": data.cold_items, "warm_items": data.warm_items,
+               "item_item": data.item_item}
+    write_atomic(path, lambda p: torch.save(payload, p))
+
+
+def train_run(config_path: str | Path, out_dir: str | Path, overwrite: bool = False, quiet: bool = False) -> dict:
+    """Train, evaluate and export one run; returns {'metrics': ..., 'out': path, 'table': text}."""
+    started = time.perf_counter()
+    cfg = C.load(config_path)
+    out = Path(out_dir)
+    check_out_dir(out, overwrite)
+    apply_threads(cfg)
+    torch.manual_seed(cfg["run"]["seed"])
+    data = prepare(cfg)
+    for note in data.notes:
+        log(note)
+    log(f"data: {len(data.train):,} training, {len(data.valid):,} validation, {len(data.test):,} test, "
+        f"{len(data.cold_test):,} cold-start pairs; {len(data.queries.ids):,} queries, {len(data.candidates.ids):,} items")
+
+    partial = out.parent / f"{out.name}.partial"
+    if partial.exists():
+        shutil.rmtree(partial)
+    (partial / "checkpoints").mkdir(parents=True)
+    write_text_atomic(partial / "config.yaml", C.dump(cfg))
+
+    def checkpoint(tag: str, state: dict, epoch: int, sub: str = "") -> None:
+        target = partial / sub / "checkpoints" / f"{tag}.pt"
+        write_atomic(target, lambda p: torch.save({"epoch": epoch, "state_dict": state}, p))
+
+    model = build_model(data, cfg)
+    result = fit(model, data, cfg, partial / "checkpoints", "towers", save_checkpoint=checkpoint)
+    scorers: dict[str, Scorer] = {
+        "popularity": popularity_scorer(data.train, len(data.queries.ids), len(data.candidates.ids),
+                                        cfg["training"]["loss"] == "squared", data.item_item),
+        "towers": model_scorer(model, data),
+    }
+    histories = {"towers": result.history}
+    if cfg["evaluation"]["baseline"]:
+        torch.manual_seed(cfg["run"]["seed"])
+        base, preset = baseline_model(data, cfg)
+        (partial / "linear_factor").mkdir()
+        base_result = fit(base, data, preset, None, "linear_factor",
+                          save_checkpoint=lambda t, s, e: checkpoint(t, s, e, "linear_factor"))
+        scorers["linear_factor"] = model_scorer(base, data)
+        histories["linear_factor"] = base_result.history
+        _save_model(partial / "linear_factor", base, preset["model"], data, preset, use_features=False)
+        export_run(partial / "linear_factor", base, data, preset, "linear_factor")
+    oracle = oracle_scorer(cfg, data)
+    if oracle is not None:
+        scorers["oracle"] = oracle
+    metrics = evaluate_slices(scorers, data, cfg)
+    _save_model(partial, model, cfg["model"], data, cfg, use_features=True)
+    files = export_run(partial, model, data, cfg, "towers")
+    save_pairs(partial / "pairs.pt", data)
+    write_text_atomic(partial / "metrics.json", json.dumps(metrics, indent=2))
+    write_text_atomic(partial / "history.json", json.dumps(
+        {"stop_metric": result.stop_metric, "best_epoch": result.best_epoch, "epochs": histories}, indent=2))
+    if out.exists():
+        old = out.parent / f"{out.name}.replaced"
+        if old.exists():
+            shutil.rmtree(old)
+        out.rename(old)
+        partial.rename(out)
+        shutil.rmtree(old)
+    else:
+        partial.rename(out)
+    table = format_table(metrics)
+    log(f"run written to {out} in {time.perf_counter() - started:.1f} s ({', '.join(files.values())})")
+    return {"metrics": metrics, "out": out, "table": table}

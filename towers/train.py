@@ -1,0 +1,302 @@
+"""The training loop: vectorised minibatches, sampled negatives, sparse id updates, early stopping.
+
+Objective (per training pair, averaged; see README "Training objective"):
+    J = 1/N sum_p w_p [ l(s_p, y_p) + sum_j l(s_pj, 0) ]
+        + lambda/(2N) sum_e (||e_e||^2 + b_e^2) + (wd/2) ||theta||^2
+The id-row penalty is spread over a row's pairs (1/n_e per pair), so each minibatch is an unbiased
+estimate of J and full-batch training minimises it exactly.
+"""
+
+from __future__ import annotations
+
+import math
+import sys
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import torch
+from tqdm import tqdm
+
+from .config import default_stop_metric, lower_is_better
+from .dataset import Pairs, Prepared
+from .errors import TowersError
+from .evaluate import Scorer, ranking_metrics, rating_metrics
+from .features import FeatureBlock, block_len, slice_block, take
+from .losses import logistic_loss, squared_loss
+from .model import Tower, TwoTowerModel
+
+EMBED_CHUNK = 65536
+
+
+def log(message: str) -> None:
+    """Plain log lines go to stderr so stdout stays clean for tables and results."""
+    print(message, file=sys.stderr, flush=True)
+
+
+def build_model(data: Prepared, cfg: dict) -> TwoTowerModel:
+    """A TwoTowerModel sized for the prepared data's encoders."""
+    q, c = data.queries.encoders, data.candidates.encoders
+    shared = data.item_item and cfg["model"]["shared_tower"]
+    q_inputs = _with_dims(q.model_inputs(), cfg["users" if not data.item_item else "items"]["features"])
+    c_inputs = _with_dims(c.model_inputs(), cfg["items"]["features"])
+    return TwoTowerModel(q_inputs, q.id_encoder.size, c_inputs, c.id_encoder.size, cfg["model"], shared=shared)
+
+
+def _with_dims(inputs: list[dict], specs: list[dict]) -> list[dict]:
+    dims = {s["name"]: s.get("dim") for s in specs}
+    return [dict(i, dim=dims.get(i["name"])) for i in inputs]
+
+
+@torch.no_grad()
+def embed_all(tower: Tower, block: FeatureBlock) -> torch.Tensor:
+    """Embeddings of every entity in a block, computed in chunks with the tower in eval mode."""
+    was = tower.training
+    tower.eval()
+    n = block_len(block)
+    out = torch.cat([tower(slice_block(block, i, min(n, i + EMBED_CHUNK))) for i in range(0, n, EMBED_CHUNK)]) \
+        if n else torch.zeros(0, tower.mlp[-1].out_features if len(tower.mlp) else tower.ids.embedding_dim)
+    tower.train(was)
+    return out
+
+
+@torch.no_grad()
+def model_scorer(model: TwoTowerModel, data: Prepared) -> Scorer:
+    """The trained model as vectors over both catalogs."""
+    qv = embed_all(model.query_tower, data.queries.block)
+    cv = qv if (model.shared and data.queries is data.candidates) else embed_all(model.candidate_tower, data.candidates.block)
+    qb = model.query_bias_of(data.queries.block["id"]) if model.use_biases else None
+    cb = model.candidate_bias_of(data.candidates.block["id"]) if model.use_biases else None
+    g = float(model.global_bias) if model.use_biases else 0.0
+    return Scorer(qv, cv, qb, cb, g, 1.0 / model.temperature)
+
+
+def validation_metrics(scorer: Scorer, data: Prepared, cfg: dict, pairs: Pairs) -> dict[str, float]:
+    """Metrics of `pairs` (validation or test) in the warm setting."""
+    if cfg["training"]["loss"] == "squared":
+        return rating_metrics(scorer, pairs)
+    return ranking_metrics(scorer, pairs, data.train.positives(), data.warm_items, cfg["evaluation"]["top_k"],
+                           tie_seed=cfg["run"]["seed"], max_queries=cfg["training"]["validate_queries"],
+                           exclude_self=data.item_item)
+
+
+class NegativeSampler:
+    """Draws negative candidate rows as one tensor op: uniform or proportional to popularity^alpha."""
+
+    def __init__(self, train: Pairs, n_items: int, warm: torch.Tensor, tcfg: dict, generator: torch.Generator):
+        counts = torch.bincount(train.candidate, minlength=n_items).double()
+        if tcfg["negative_sampling"] == "uniform":
+            weights = warm.double()
+        else:
+            weights = counts.pow(tcfg["popularity_exponent"]) * warm.double()
+        self.cdf = torch.cumsum(weights / weights.sum(), 0)
+        self.cdf[-1] = 1.0
+        self.generator = generator
+
+    def __call__(self, n: int) -> torch.Tensor:
+        u = torch.rand(n, generator=self.generator, dtype=torch.float64)
+        return torch.searchsorted(self.cdf, u, right=True).clamp_(max=len(self.cdf) - 1)
+
+
+def _id_counts(ids: torch.Tensor, rows: int) -> torch.Tensor:
+    """Training positives per id row; 1/count spreads a row's penalty over its pairs."""
+    c = torch.bincount(ids, minlength=rows).float()
+    return torch.where(c > 0, 1.0 / c.clamp(min=1), torch.zeros_like(c))
+
+
+def make_optimizers(model: TwoTowerModel, tcfg: dict) -> list[torch.optim.Optimizer]:
+    """Adam with L2 weight decay for the dense network; a sparse optimiser for id and bias tables."""
+    opts: list[torch.optim.Optimizer] = []
+    dense = model.dense_parameters()
+    groups = [{"params": dense, "weight_decay": tcfg["weight_decay"]}] if dense else []
+    if model.use_biases:
+        groups.append({"params": [model.global_bias], "weight_decay": 0.0})
+    if groups:
+        opts.append(torch.optim.Adam(groups, lr=tcfg["learning_rate"]))
+    sparse = model.sparse_parameters()
+    if sparse:
+        kind, lr = tcfg["id_optimizer"], tcfg["id_learning_rate"]
+        if kind == "adam":
+            opts.append(torch.optim.SparseAdam(sparse, lr=lr))
+        elif kind == "adagrad":
+            opts.append(torch.optim.Adagrad(sparse, lr=lr))
+        else:
+            opts.append(torch.optim.SGD(sparse, lr=lr))
+    return opts
+
+
+@dataclass
+class TrainResult:
+    history: list[dict] = field(default_factory=list)
+    best_epoch: int = 0
+    best_value: float | None = None
+    stop_metric: str = ""
+
+
+class Trainer:
+    """Runs epochs over the training pairs of a Prepared dataset for one model."""
+
+    def __init__(self, model: TwoTowerModel, data: Prepared, cfg: dict, label: str = "towers"):
+        self.model, self.data, self.cfg, self.label = model, data, cfg, label
+        self.tcfg = cfg["training"]
+        self.generator = torch.Generator().manual_seed(cfg["run"]["seed"])
+        self.optimizers = make_optimizers(model, self.tcfg)
+        self.logistic = self.tcfg["loss"] == "logistic"
+        self.n_neg = self.tcfg["negatives"] if self.logistic else 0
+        train = data.train
+        if not self.logistic and train.target is None:
+            raise TowersError("config key 'training.loss': squared loss needs interactions.target_column (ratings); "
+                              "use loss: logistic for events without a target")
+        self.sampler = NegativeSampler(train, block_len(data.candidates.block), data.warm_items, self.tcfg, self.generator) \
+            if self.n_neg else None
+        q_ids = data.queries.block["id"][train.query]
+        c_ids = data.candidates.block["id"][train.candidate]
+        if model.shared:
+            both = torch.cat([q_ids, c_ids])
+            self.q_inv = self.c_inv = _id_counts(both, data.candidates.encoders.id_encoder.size)
+        else:
+            self.q_inv = _id_counts(q_ids, data.queries.encoders.id_encoder.size)
+            self.c_inv = _id_counts(c_ids, data.candidates.encoders.id_encoder.size)
+        self.lam = self.tcfg["id_l2"]
+
+    def _penalty(self, tower: Tower, bias, ids: torch.Tensor, inv: torch.Tensor) -> torch.Tensor:
+        """lambda/2 * (||row||^2 + b^2) / n_row for each pair's id row (row 0, the unknown id, is free)."""
+        total = torch.zeros(len(ids))
+        if tower.ids is not None:
+            total = total + tower.ids(ids).pow(2).sum(1)
+        if bias is not None:
+            total = total + bias(ids).squeeze(1).pow(2)
+        return 0.5 * self.lam * total * inv.index_select(0, ids)
+
+    def batch_loss(self, idx: torch.Tensor) -> torch.Tensor:
+        """Mean objective over one minibatch of training pairs (see module docstring)."""
+        m, d, train = self.model, self.data, self.data.train
+        q_rows, c_rows = train.query.index_select(0, idx), train.candidate.index_select(0, idx)
+        qb = take(d.queries.block, q_rows)
+        q_ids = m.query_tower.id_rows(qb)
+        qe = m.query_tower(qb, q_ids)
+        b = len(idx)
+        if self.n_neg:
+            c_rows = torch.cat([c_rows, self.sampler(b * self.n_neg)])
+        cb = take(d.candidates.block, c_rows)
+        c_ids = m.candidate_tower.id_rows(cb)
+        ce = m.candidate_tower(cb, c_ids)
+        scale = 1.0 / m.temperature
+        qbias = m.query_bias_of(q_ids)
+        cbias = m.candidate_bias_of(c_ids)
+        g = m.global_bias if m.use_biases else 0.0
+        pos = (qe * ce[:b]).sum(1) * scale + qbias + cbias[:b] + g
+        y = train.target.index_select(0, idx) if train.target is not None else torch.ones(b)
+        if self.logistic:
+            loss = logistic_loss(pos, y)
+            if self.n_neg:
+                ne = ce[b:].view(b, self.n_neg, -1)
+                neg = torch.bmm(ne, qe.unsqueeze(2)).squeeze(2) * scale + qbias.unsqueeze(1) + cbias[b:].view(b, -1) + g
+                loss = loss + logistic_loss(neg, torch.zeros_like(neg)).sum(1)
+        else:
+            loss = squared_loss(pos, y)
+        if train.weight is not None:
+            loss = loss * train.weight.index_select(0, idx)
+        if self.lam > 0:
+            qbias_t = m.query_bias if m.use_biases else None
+            cbias_t = m.candidate_bias if m.use_biases else None
+            loss = loss + self._penalty(m.query_tower, qbias_t, q_ids, self.q_inv)
+            loss = loss + self._penalty(m.candidate_tower, cbias_t, c_ids[:b], self.c_inv)
+        return loss.mean()
+
+    def objective(self) -> float:
+        """The full objective J over all training pairs, without dropout (sampled negatives excluded)."""
+        keep_neg = self.n_neg
+        self.n_neg = 0
+        self.model.eval()
+        with torch.no_grad():
+            n = len(self.data.train)
+            total = sum(float(self.batch_loss(torch.arange(i, min(n, i + 65536)))) * min(65536, n - i)
+                        for i in range(0, n, 65536))
+            dense = sum(float(p.pow(2).sum()) for p in self.model.dense_parameters())
+        self.model.train()
+        self.n_neg = keep_neg
+        return total / n + 0.5 * self.tcfg["weight_decay"] * dense
+
+    def run_epoch(self, epoch: int, bar: bool) -> float:
+        """One pass over the shuffled training pairs; returns the mean batch loss."""
+        self.model.train()
+        n = len(self.data.train)
+        bs = self.tcfg["batch_size"]
+        perm = torch.randperm(n, generator=self.generator)
+        steps = math.ceil(n / bs)
+        progress = tqdm(total=n, desc=f"{self.label} epoch {epoch}", unit="pairs", leave=False, file=sys.stderr,
+                        disable=not bar, mininterval=0.5)
+        start, total = time.perf_counter(), 0.0
+        for s in range(steps):
+            idx = perm[s * bs:(s + 1) * bs]
+            loss = self.batch_loss(idx)
+            if not torch.isfinite(loss):
+                progress.close()
+                raise TowersError(
+                    f"training diverged at {self.label} epoch {epoch}, step {s + 1} (loss {float(loss)}); no model was "
+                    "written; lower training.learning_rate / id_learning_rate, or raise weight_decay / id_l2")
+            for opt in self.optimizers:
+                opt.zero_grad(set_to_none=True)
+            loss.backward()
+            for opt in self.optimizers:
+                opt.step()
+            total += float(loss.detach()) * len(idx)
+            progress.update(len(idx))
+            if bar and s % 20 == 0:
+                rate = progress.n / max(1e-9, time.perf_counter() - start)
+                progress.set_postfix(loss=f"{float(loss.detach()):.4f}", pairs_s=f"{rate:,.0f}")
+        progress.close()
+        self.last_rate = n / max(1e-9, time.perf_counter() - start)
+        return total / n
+
+
+def show_bar(progress: str) -> bool:
+    """tqdm only on a terminal (or when asked); plain log lines otherwise."""
+    if progress == "bar":
+        return True
+    if progress == "plain":
+        return False
+    return sys.stderr.isatty()
+
+
+def fit(model: TwoTowerModel, data: Prepared, cfg: dict, checkpoint_dir: Path | None, label: str,
+        save_checkpoint=None) -> TrainResult:
+    """Train with validation every epoch, early stopping, and best/last checkpoints."""
+    trainer = Trainer(model, data, cfg, label)
+    tcfg = cfg["training"]
+    metric = default_stop_metric(cfg)
+    lower = lower_is_better(metric)
+    bar = show_bar(tcfg["progress"])
+    result = TrainResult(stop_metric=metric)
+    best_state = None
+    stale = 0
+    for epoch in range(1, tcfg["epochs"] + 1):
+        loss = trainer.run_epoch(epoch, bar)
+        value = None
+        if len(data.valid):
+            vals = validation_metrics(model_scorer(model, data), data, cfg, data.valid)
+            value = vals.get(metric)
+        row = {"epoch": epoch, "loss": loss, "pairs_per_s": trainer.last_rate}
+        if value is not None:
+            row[f"valid_{metric}"] = value
+        result.history.append(row)
+        improved = value is not None and (result.best_value is None or
+                                          (value < result.best_value if lower else value > result.best_value))
+        if improved or value is None:
+            result.best_value, result.best_epoch, stale = value, epoch, 0
+            best_state = {k: v.detach().clone() for k, v in model.state_dict().items()}
+        else:
+            stale += 1
+        shown = "" if value is None else f"  valid {metric} {value:.4f}{' (best)' if improved else ''}"
+        log(f"{label} epoch {epoch}/{tcfg['epochs']}  loss {loss:.4f}  {trainer.last_rate:,.0f} pairs/s{shown}")
+        if save_checkpoint is not None:
+            save_checkpoint("last", model.state_dict(), epoch)
+            if improved or value is None:
+                save_checkpoint("best", best_state, epoch)
+        if stale >= tcfg["patience"]:
+            log(f"{label}: stopping early after epoch {epoch}; best epoch {result.best_epoch}")
+            break
+    if best_state is not None:
+        model.load_state_dict(best_state)
+    return result
