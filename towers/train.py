@@ -158,6 +158,10 @@ class Trainer:
             self.q_inv = _id_counts(q_ids, data.queries.encoders.id_encoder.size)
             self.c_inv = _id_counts(c_ids, data.candidates.encoders.id_encoder.size)
         self.lam = self.tcfg["id_l2"]
+        if not self.logistic and model.use_biases:
+            # start the global bias at the mean rating, so id rows and biases learn offsets from it
+            with torch.no_grad():
+                model.global_bias.fill_(float(train.target.mean()))
 
     def _penalty(self, tower: Tower, bias, ids: torch.Tensor, inv: torch.Tensor) -> torch.Tensor:
         """lambda/2 * (||row||^2 + b^2) / n_row for each pair's id row (row 0, the unknown id, is free)."""
