@@ -24,7 +24,7 @@ from .features import SideEncoders, block_len, slice_block
 from .retrieval import top_n
 from .runner import evaluate_slices, oracle_scorer
 from .tables import align_id_types, normalise_ids, require_columns
-from .train import EMBED_CHUNK
+from .training import EMBED_CHUNK
 
 
 def _unpack(d: dict) -> Pairs:

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import copy
 import difflib
+import math
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -130,8 +131,10 @@ def _suggest(name: str, options) -> str:
 
 
 def _check_value(label: str, key: Key, value: Any, base_dir: Path) -> Any:
+    given = value  # reported as written, before any coercion below
+
     def bad(expected: str) -> TowersError:
-        return TowersError(f"config key '{label}': got {value!r}; expected {expected}")
+        return TowersError(f"config key '{label}': got {given!r}; expected {expected}")
 
     if value is None:
         if key.nullable or key.default is None and key.kind in ("str", "path"):
@@ -150,6 +153,8 @@ def _check_value(label: str, key: Key, value: Any, base_dir: Path) -> Any:
             value = int(value)
         else:
             value = float(value)
+            if not math.isfinite(value):
+                raise bad("a finite number")
         if key.low is not None and (value <= key.low if key.low_open else value < key.low):
             raise bad(f"a number {'>' if key.low_open else '>='} {key.low}")
         if key.high is not None and value > key.high:
@@ -175,7 +180,14 @@ def _check_value(label: str, key: Key, value: Any, base_dir: Path) -> Any:
     if key.kind == "features":
         if not isinstance(value, list):
             raise bad("a list of {name, kind} entries")
-        return [_check_feature(label, i, f, base_dir) for i, f in enumerate(value)]
+        out = [_check_feature(label, i, f, base_dir) for i, f in enumerate(value)]
+        names = [f["name"] for f in out]
+        for i, name in enumerate(names):
+            if name == "id":  # the encoded block keeps the entity ids under "id"
+                raise TowersError(f"config key '{label}[{i}].name': 'id' is reserved for the entity id; rename that column")
+            if name in names[:i]:
+                raise TowersError(f"config key '{label}[{i}].name': feature '{name}' is listed twice; list each column once")
+        return out
     raise AssertionError(key.kind)
 
 
@@ -204,7 +216,8 @@ def resolve(raw: dict, base_dir: Path) -> dict:
             raise TowersError(f"config section '{section}' is unknown{_suggest(str(section), SCHEMA)}")
     out: dict[str, dict] = {}
     for section, keys in SCHEMA.items():
-        given = raw.get(section) or {}
+        given = raw.get(section)
+        given = {} if given is None else given
         if not isinstance(given, dict):
             raise TowersError(f"config section '{section}': expected a mapping of keys, got {given!r}")
         for k in given:
@@ -228,7 +241,7 @@ def _check_consistency(cfg: dict) -> None:
             raise TowersError(f"config key '{side}.id_column' is missing; name the id column of {s['path']}")
         if s["features"] and not s["path"]:
             raise TowersError(f"config key '{side}.path' is missing; features were listed but no feature table given")
-    if cfg["run"]["mode"] == "item_item" and cfg["users"]["path"]:
+    if cfg["run"]["mode"] == "item_item" and any(v != SIDE_KEYS[k].default for k, v in cfg["users"].items()):
         raise TowersError("config: item_item mode draws both sides from 'items'; remove the 'users' section or use mode user_item")
     if cfg["model"]["shared_tower"] and cfg["run"]["mode"] != "item_item":
         raise TowersError("config key 'model.shared_tower': only item_item mode can share one tower; set it false")
@@ -270,15 +283,20 @@ def load(path: str | Path, overrides: dict | None = None) -> dict:
         raise TowersError(f"{path}: config file not found; give the path to a YAML config (see configs/)")
     try:
         raw = yaml.safe_load(path.read_text(encoding="utf-8-sig"))
+    except UnicodeDecodeError:
+        raise TowersError(f"{path}: not UTF-8 text; save the config as UTF-8 YAML") from None
     except yaml.YAMLError as exc:
         mark = getattr(exc, "problem_mark", None)
         line = f", line {mark.line + 1}" if mark is not None else ""
         raise TowersError(f"{path}{line}: not valid YAML ({getattr(exc, 'problem', exc)}); fix the syntax") from None
-    raw = raw or {}
-    if overrides:
+    raw = {} if raw is None else raw
+    if overrides and isinstance(raw, dict):
         raw = copy.deepcopy(raw)
         for section, keys in overrides.items():
-            raw.setdefault(section, {}).update(keys)
+            if raw.get(section) is None:
+                raw[section] = {}
+            if isinstance(raw[section], dict):
+                raw[section].update(keys)
     return resolve(raw, path.resolve().parent)
 
 

@@ -16,14 +16,19 @@ from .errors import TowersError, where
 from .tables import numeric_column
 
 
+def _one_text(v) -> str:
+    # per value, so 2.0 reads '2' whatever else is in the column (training and serving agree)
+    if isinstance(v, (float, np.floating)) and float(v).is_integer():
+        return str(int(v))
+    return str(v)
+
+
 def _as_text(values: np.ndarray) -> np.ndarray:
     """Values as strings for vocabulary lookup; integers-as-floats lose their '.0'."""
     s = pd.Series(values)
-    if pd.api.types.is_float_dtype(s):
-        whole = s.dropna()
-        if len(whole) and (whole == np.round(whole)).all():
-            s = s.astype("Int64")
-    return s.astype(object).where(s.notna(), None).map(lambda v: None if v is None else str(v)).to_numpy(dtype=object)
+    # built by hand: a pandas result would infer a string dtype and turn None back into NaN
+    return np.array([_one_text(v) if ok else None for v, ok in zip(s.to_numpy(dtype=object), s.notna().to_numpy())],
+                    dtype=object)
 
 
 def _hash_buckets(text: np.ndarray, buckets: int) -> np.ndarray:
@@ -128,10 +133,18 @@ class TokenEncoder:
         try:
             arr = pa.array(values, from_pandas=True)
         except (pa.ArrowInvalid, pa.ArrowTypeError):
-            kinds = pd.Series(values).map(lambda v: isinstance(v, (str, list, tuple, np.ndarray)) or v is None or v != v)
-            row = int(np.flatnonzero(~kinds.to_numpy())[0]) if (~kinds).any() else 0
-            raise TowersError(f"{where(path, self.name, row + 1)}: {values[row]!r} is neither a token list nor "
-                              f"delimited text; store tags as a list or as text like 'a{self.separator}b'") from None
+            is_text = np.array([isinstance(v, str) for v in values], dtype=bool)
+            is_list = np.array([isinstance(v, (list, tuple, np.ndarray)) for v in values], dtype=bool)
+            bad = ~(is_text | is_list | pd.isna(pd.Series(values, dtype=object)).to_numpy())
+            if bad.any():
+                row = int(np.flatnonzero(bad)[0])
+                raise TowersError(f"{where(path, self.name, row + 1)}: {values[row]!r} is neither a token list nor "
+                                  f"delimited text; store tags as a list or as text like 'a{self.separator}b'") from None
+            if is_text.any() and is_list.any():
+                row = int(np.flatnonzero(is_list if is_text[np.flatnonzero(is_text | is_list)[0]] else is_text)[0])
+                raise TowersError(f"{where(path, self.name, row + 1)}: {values[row]!r} mixes token lists and delimited "
+                                  "text in one column; store every row the same way") from None
+            raise TowersError(f"{where(path, self.name)}: token lists mix text and numbers; store every token as text") from None
         if pa.types.is_null(arr.type):
             arr = pa.array([None] * len(values), type=pa.list_(pa.string()))
         if pa.types.is_string(arr.type) or pa.types.is_large_string(arr.type):
@@ -168,14 +181,16 @@ class TokenEncoder:
         if self.hash_buckets:
             codes = _hash_buckets(text, self.hash_buckets) + 1
         else:
-            codes = self._index.get_indexer(pd.Index(text, dtype=object)).astype(np.int64) + 2
-            codes[codes == 1] = 1  # -1 + 2: unknown token
-            self.unknown_seen = int((codes == 1).sum())
+            codes = self._index.get_indexer(pd.Index(text, dtype=object)).astype(np.int64) + 2  # -1 + 2 = 1: unknown
         empty = pd.isna(pd.Series(text, dtype=object)).to_numpy() | (text == "")
-        # position of each token within its row, for the padded layout
-        row_of = np.repeat(np.arange(n), np.diff(offsets))
-        pos = np.arange(len(text)) - offsets[:-1][row_of] if len(text) else np.zeros(0, np.int64)
-        keep = (pos < self.max_tokens) & ~empty
+        if not self.hash_buckets:
+            self.unknown_seen = int(((codes == 1) & ~empty).sum())
+        # position of each non-empty token within its row, for the padded layout (empty tokens take no slot)
+        row_of = np.repeat(np.arange(n), np.diff(offsets))[~empty]
+        codes = codes[~empty]
+        starts = np.concatenate([[0], np.cumsum(np.bincount(row_of, minlength=n))[:-1]]).astype(np.int64)
+        pos = np.arange(len(codes)) - starts[row_of] if len(codes) else np.zeros(0, np.int64)
+        keep = pos < self.max_tokens
         out = np.zeros((n, self.max_tokens), dtype=np.int64)
         out[row_of[keep], pos[keep]] = codes[keep]
         return torch.from_numpy(out)

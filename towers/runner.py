@@ -23,7 +23,7 @@ from .errors import TowersError
 from .evaluate import Scorer, popularity_scorer, ranking_metrics, rating_metrics
 from .export import read_embeddings, write_embeddings
 from .model import TwoTowerModel
-from .train import _with_dims, build_model, fit, log, model_scorer
+from .training import _with_dims, build_model, fit, log, model_scorer
 
 MODEL_ORDER = ("popularity", "linear_factor", "towers", "oracle")
 

@@ -83,10 +83,12 @@ def normalise_ids(series: pd.Series, path, column) -> np.ndarray:
         return series.to_numpy(dtype=np.int64)
     if pd.api.types.is_float_dtype(series):
         values = series.to_numpy(dtype=np.float64)
-        frac = values != np.round(values)
+        # infinite or beyond int64 ids would wrap silently in the cast below
+        frac = ~np.isfinite(values) | (values != np.round(values)) | (np.abs(values) >= 2.0 ** 63)
         if frac.any():
             row = int(np.flatnonzero(frac)[0])
-            raise TowersError(f"{where(path, column, row + 1)}: id {values[row]!r} is not a whole number; ids must be integers or strings")
+            raise TowersError(f"{where(path, column, row + 1)}: id {float(values[row])!r} is not a whole 64-bit number; "
+                              "ids must be integers or strings")
         return values.astype(np.int64)
     values = series.to_numpy(dtype=object)
     kinds = pd.Series(values).map(type)
@@ -116,7 +118,7 @@ def check_unique_ids(ids: np.ndarray, path, column) -> None:
     dup = pd.Series(ids).duplicated().to_numpy()
     if dup.any():
         row = int(np.flatnonzero(dup)[0])
-        raise TowersError(f"{where(path, column, row + 1)}: duplicate id {ids[row]!r}; a feature table needs one row per id "
+        raise TowersError(f"{where(path, column, row + 1)}: duplicate id {ids[row:row + 1].tolist()[0]!r}; a feature table needs one row per id "
                           "(deduplicate it)")
 
 

@@ -1,0 +1,418 @@
+"""Config schema, validation and YAML handling (towers/config.py)."""
+
+from __future__ import annotations
+
+import copy
+from pathlib import Path
+
+import pytest
+import yaml
+
+from towers import config as C
+from towers.errors import TowersError
+
+
+def minimal(**sections) -> dict:
+    """The smallest valid raw config, with extra sections merged in."""
+    raw = {"interactions": {"path": "log.csv", "query_column": "user", "candidate_column": "item"}}
+    for name, keys in sections.items():
+        raw.setdefault(name, {}).update(keys)
+    return raw
+
+
+def items_with_features(**extra) -> dict:
+    return {"path": "items.csv", "id_column": "item", "features": [{"name": "price", "kind": "numeric"}], **extra}
+
+
+def write(path: Path, text: str) -> Path:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
+# ---------------------------------------------------------------- defaults
+
+
+def test_every_schema_key_is_filled_with_its_default(tmp_path):
+    cfg = C.resolve(minimal(), tmp_path)
+    assert list(cfg) == list(C.SCHEMA)
+    for section, keys in C.SCHEMA.items():
+        assert set(cfg[section]) == set(keys), section
+        for name, key in keys.items():
+            if section == "interactions" and name in ("path", "query_column", "candidate_column"):
+                continue
+            assert cfg[section][name] == key.default, f"{section}.{name}"
+    assert cfg["training"]["epochs"] == 20
+    assert cfg["model"]["hidden"] == [128]
+    assert cfg["users"]["features"] == []
+
+
+def test_resolved_defaults_are_copies_not_the_schema_objects(tmp_path):
+    cfg = C.resolve(minimal(), tmp_path)
+    cfg["model"]["hidden"].append(7)
+    cfg["evaluation"]["top_k"].append(5)
+    cfg["items"]["features"].append({"name": "x"})
+    assert C.SCHEMA["model"]["hidden"].default == [128]
+    assert C.SCHEMA["evaluation"]["top_k"].default == [20]
+    assert C.SCHEMA["items"]["features"].default == []
+    again = C.resolve(minimal(), tmp_path)
+    assert again["model"]["hidden"] == [128]
+
+
+def test_empty_sections_mean_all_defaults(tmp_path):
+    cfg = C.resolve(minimal(model={}) | {"users": None}, tmp_path)
+    assert cfg["users"]["path"] is None and cfg["model"]["dim"] == 32
+
+
+def test_given_values_are_kept_and_coerced(tmp_path):
+    cfg = C.resolve(minimal(model={"dim": 8.0, "hidden": [], "temperature": 1}, training={"epochs": 3}), tmp_path)
+    assert cfg["model"]["dim"] == 8 and isinstance(cfg["model"]["dim"], int)
+    assert cfg["model"]["temperature"] == 1.0 and isinstance(cfg["model"]["temperature"], float)
+    assert cfg["model"]["hidden"] == []
+    assert cfg["training"]["epochs"] == 3
+
+
+def test_integer_column_names_become_text(tmp_path):
+    raw = minimal()
+    raw["interactions"].update(query_column=0, candidate_column=1)
+    cfg = C.resolve(raw, tmp_path)
+    assert cfg["interactions"]["query_column"] == "0" and cfg["interactions"]["candidate_column"] == "1"
+
+
+# ---------------------------------------------------------------- unknown names
+
+
+def test_unknown_key_suggests_the_closest_name(tmp_path):
+    with pytest.raises(TowersError) as err:
+        C.resolve(minimal(training={"epocs": 5}), tmp_path)
+    assert "'training.epocs' is unknown" in str(err.value)
+    assert "did you mean 'epochs'?" in str(err.value)
+
+
+def test_unknown_section_suggests_the_closest_name(tmp_path):
+    with pytest.raises(TowersError, match=r"section 'trainig' is unknown; did you mean 'training'\?"):
+        C.resolve(minimal() | {"trainig": {"epochs": 3}}, tmp_path)
+
+
+def test_unknown_key_without_close_match_lists_the_known_keys(tmp_path):
+    with pytest.raises(TowersError) as err:
+        C.resolve(minimal(run={"zzzzzz": 1}), tmp_path)
+    msg = str(err.value)
+    assert "did you mean" not in msg
+    assert "known keys: mode, seed, threads" in msg
+
+
+def test_top_level_must_be_a_mapping(tmp_path):
+    with pytest.raises(TowersError, match="top level must be a mapping"):
+        C.resolve([1, 2], tmp_path)
+
+
+@pytest.mark.parametrize("value", [[], False, 0, "dim: 3", [1]])
+def test_a_section_that_is_not_a_mapping_is_rejected(tmp_path, value):
+    raw = minimal()
+    raw["model"] = value
+    with pytest.raises(TowersError, match="config section 'model': expected a mapping"):
+        C.resolve(raw, tmp_path)
+
+
+# ---------------------------------------------------------------- types and ranges
+
+BAD_VALUES = [
+    ("model", "dim", 0, "a number >= 1"),
+    ("model", "dim", -3, "a number >= 1"),
+    ("model", "dim", 2.5, "a whole number"),
+    ("model", "dim", True, "a number (int)"),
+    ("model", "dim", "32", "a number (int)"),
+    ("training", "epochs", True, "a number (int)"),
+    ("training", "batch_size", False, "a number (int)"),
+    ("training", "weight_decay", -1e-6, "a number >= 0.0"),
+    ("training", "weight_decay", float("inf"), "a finite number"),
+    ("training", "learning_rate", 0, "a number > 0.0"),
+    ("training", "learning_rate", -0.1, "a number > 0.0"),
+    ("training", "learning_rate", float("nan"), "a finite number"),
+    ("training", "id_learning_rate", 0.0, "a number > 0.0"),
+    ("model", "temperature", 0, "a number > 0.0"),
+    ("model", "temperature", float("nan"), "a finite number"),
+    ("model", "dropout", 0.96, "a number <= 0.95"),
+    ("model", "id_dropout", 1.5, "a number <= 1.0"),
+    ("model", "hidden", 128, "a list of positive whole numbers"),
+    ("model", "hidden", "128", "a list of positive whole numbers"),
+    ("model", "hidden", [128, 0], "a list of positive whole numbers"),
+    ("model", "hidden", [64.5], "a list of positive whole numbers"),
+    ("model", "hidden", [True], "a list of positive whole numbers"),
+    ("model", "hidden", None, "may not be empty"),
+    ("model", "normalize", "yes", "true or false"),
+    ("model", "normalize", 1, "true or false"),
+    ("model", "activation", "sigmoid", "one of relu, gelu, tanh, silu"),
+    ("run", "mode", "pairs", "one of user_item, item_item"),
+    ("run", "seed", -1, "a number >= 0"),
+    ("training", "loss", "hinge", "one of squared, logistic"),
+    ("evaluation", "top_k", [0], "a list of positive whole numbers"),
+    ("evaluation", "test_fraction", 0.91, "a number <= 0.9"),
+    ("interactions", "weight_column", ["w"], "a string"),
+]
+
+
+@pytest.mark.parametrize("section,key,value,expected", BAD_VALUES)
+def test_wrong_types_and_ranges_name_the_key_the_value_and_the_expectation(tmp_path, section, key, value, expected):
+    with pytest.raises(TowersError) as err:
+        C.resolve(minimal(**{section: {key: value}}), tmp_path)
+    msg = str(err.value)
+    assert msg.startswith(f"config key '{section}.{key}': got {value!r}; expected"), msg
+    assert expected in msg
+    assert "\n" not in msg
+
+
+@pytest.mark.parametrize("section,key,value", [
+    ("model", "dim", 1),
+    ("model", "temperature", 1e-6),
+    ("model", "dropout", 0.95),
+    ("model", "id_dropout", 1.0),
+    ("training", "weight_decay", 0),
+    ("training", "negatives", 0),
+    ("evaluation", "test_fraction", 0.0),
+])
+def test_boundary_values_are_accepted(tmp_path, section, key, value):
+    assert C.resolve(minimal(**{section: {key: value}}), tmp_path)[section][key] == value
+
+
+# ---------------------------------------------------------------- feature specs
+
+
+def resolve_items(tmp_path, features, **extra):
+    return C.resolve(minimal(items={"path": "items.csv", "id_column": "item", "features": features, **extra}), tmp_path)
+
+
+def test_feature_defaults_are_filled(tmp_path):
+    cfg = resolve_items(tmp_path, [{"name": "tags", "kind": "tokens"}, {"name": "emb", "kind": "vector", "length": 4}])
+    tags, emb = cfg["items"]["features"]
+    assert set(tags) == set(C.FEATURE_KEYS)
+    assert tags == {"name": "tags", "kind": "tokens", "min_count": 1, "hash_buckets": 0, "separator": "|",
+                    "max_tokens": 32, "length": None, "dim": None}
+    assert emb["length"] == 4
+
+
+@pytest.mark.parametrize("spec,pattern", [
+    ({"kind": "numeric"}, r"'items\.features\[0\]\.name' is missing"),
+    ({"name": "price"}, r"'items\.features\[0\]\.kind' is missing"),
+    ({"name": "price", "kind": None}, r"'items\.features\[0\]\.kind' is missing"),
+    ({"name": "price", "kind": "text"}, r"'items\.features\[0\]\.kind': got 'text'; expected one of numeric, categorical, tokens, vector"),
+    ({"name": "emb", "kind": "vector"}, r"'items\.features\[0\]\.length' is missing; a vector feature needs its fixed length"),
+    ({"name": "emb", "kind": "vector", "length": 0}, r"'items\.features\[0\]\.length': got 0"),
+    ({"name": "emb", "kind": "vector", "lenght": 4}, r"'items\.features\[0\]\.lenght' is unknown; did you mean 'length'\?"),
+    ({"name": "c", "kind": "categorical", "min_count": 0}, r"'items\.features\[0\]\.min_count': got 0"),
+    ({"name": "c", "kind": "categorical", "hash_buckets": -1}, r"'items\.features\[0\]\.hash_buckets': got -1"),
+    ("price", r"'items\.features\[0\]': got 'price'; expected a mapping"),
+])
+def test_bad_feature_specs(tmp_path, spec, pattern):
+    with pytest.raises(TowersError, match=pattern):
+        resolve_items(tmp_path, [spec])
+
+
+def test_feature_error_names_the_right_index(tmp_path):
+    with pytest.raises(TowersError, match=r"'items\.features\[1\]\.kind' is missing"):
+        resolve_items(tmp_path, [{"name": "a", "kind": "numeric"}, {"name": "b"}])
+
+
+def test_features_must_be_a_list(tmp_path):
+    with pytest.raises(TowersError, match=r"'items\.features': got .*; expected a list"):
+        resolve_items(tmp_path, {"name": "a", "kind": "numeric"})
+
+
+def test_a_feature_listed_twice_is_rejected(tmp_path):
+    # Encoded features are keyed by column name, so a second entry would overwrite the first.
+    with pytest.raises(TowersError, match=r"'items\.features\[1\]\.name': feature 'a' is listed twice"):
+        resolve_items(tmp_path, [{"name": "a", "kind": "numeric"}, {"name": "a", "kind": "categorical"}])
+
+
+def test_a_feature_named_id_is_rejected(tmp_path):
+    # The encoded block keeps the entity ids under "id"; a feature of that name would replace them.
+    with pytest.raises(TowersError, match=r"'items\.features\[0\]\.name': 'id' is reserved"):
+        resolve_items(tmp_path, [{"name": "id", "kind": "categorical"}])
+
+
+# ---------------------------------------------------------------- contradictions
+
+
+@pytest.mark.parametrize("sections,pattern", [
+    ({"evaluation": {"cold_item_fraction": 0.1}}, r"'evaluation\.cold_item_fraction': a cold-start split needs item features"),
+    ({"evaluation": {"split": "time"}}, r"'evaluation\.split': 'time' needs interactions\.time_column"),
+    ({"model": {"shared_tower": True}}, r"'model\.shared_tower': only item_item mode"),
+    ({"run": {"mode": "item_item"}, "users": {"path": "users.csv", "id_column": "user"}}, r"item_item mode draws both sides from 'items'"),
+    ({"run": {"mode": "item_item"}, "users": {"missing_rows": "drop"}}, r"item_item mode draws both sides from 'items'"),
+    ({"users": {"path": "users.csv"}}, r"'users\.id_column' is missing"),
+    ({"items": {"features": [{"name": "p", "kind": "numeric"}]}}, r"'items\.path' is missing; features were listed"),
+    ({"evaluation": {"test_fraction": 0.5, "validation_fraction": 0.45}}, r"leave almost no training data"),
+    ({"evaluation": {"top_k": []}}, r"'evaluation\.top_k': give at least one K"),
+    ({"evaluation": {"oracle_users": "u.parquet"}}, r"'evaluation\.oracle_users' and 'oracle_items' go together"),
+    ({"training": {"stop_metric": "rmse"}}, r"'training\.stop_metric': got 'rmse'; expected one of auc, mrr, ndcg@20, recall@20"),
+    ({"training": {"loss": "squared", "stop_metric": "recall@20"}}, r"expected one of mae, rmse"),
+    ({"training": {"stop_metric": "recall@10"}}, r"'training\.stop_metric'"),
+])
+def test_contradictory_options_are_rejected(tmp_path, sections, pattern):
+    with pytest.raises(TowersError, match=pattern):
+        C.resolve(minimal(**sections), tmp_path)
+
+
+@pytest.mark.parametrize("sections", [
+    {"evaluation": {"cold_item_fraction": 0.1}, "items": items_with_features()},
+    {"evaluation": {"split": "time"}, "interactions": {"time_column": "ts"}},
+    {"run": {"mode": "item_item"}, "model": {"shared_tower": True}, "items": items_with_features()},
+    {"evaluation": {"top_k": [5, 10], "oracle_users": "u.parquet", "oracle_items": "i.parquet"},
+     "training": {"stop_metric": "ndcg@10"}},
+    {"training": {"loss": "squared", "stop_metric": "mae"}},
+])
+def test_consistent_combinations_are_accepted(tmp_path, sections):
+    C.resolve(minimal(**sections), tmp_path)
+
+
+@pytest.mark.parametrize("missing", ["path", "query_column", "candidate_column"])
+def test_interactions_needs_path_and_both_id_columns(tmp_path, missing):
+    raw = minimal()
+    del raw["interactions"][missing]
+    with pytest.raises(TowersError, match=rf"'interactions\.{missing}' is missing"):
+        C.resolve(raw, tmp_path)
+
+
+def test_default_stop_metric_and_direction(tmp_path):
+    cfg = C.resolve(minimal(evaluation={"top_k": [10, 50]}), tmp_path)
+    assert C.default_stop_metric(cfg) == "recall@10"
+    cfg = C.resolve(minimal(training={"loss": "squared"}), tmp_path)
+    assert C.default_stop_metric(cfg) == "rmse"
+    assert C.lower_is_better("rmse") and C.lower_is_better("mae")
+    assert not C.lower_is_better("recall@10") and not C.lower_is_better("auc")
+
+
+# ---------------------------------------------------------------- paths and files
+
+
+def test_relative_paths_resolve_against_the_config_folder(tmp_path, monkeypatch):
+    cfg_file = write(tmp_path / "project" / "configs" / "run.yaml", """
+interactions: {path: ../data/log.csv, query_column: u, candidate_column: i}
+items: {path: items.parquet, id_column: i}
+evaluation: {oracle_users: /abs/u.parquet, oracle_items: ~/i.parquet}
+""")
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    monkeypatch.chdir(elsewhere)
+    cfg = C.load(Path("..") / "project" / "configs" / "run.yaml")
+    folder = cfg_file.resolve().parent
+    assert cfg["interactions"]["path"] == str(folder.parent / "data" / "log.csv")  # '..' is collapsed
+    assert cfg["items"]["path"] == str(folder / "items.parquet")
+    assert cfg["evaluation"]["oracle_users"] == str(Path("/abs/u.parquet"))
+    assert cfg["evaluation"]["oracle_items"] == str(Path("~/i.parquet").expanduser())
+
+
+def test_missing_config_file(tmp_path):
+    with pytest.raises(TowersError, match="config file not found"):
+        C.load(tmp_path / "nope.yaml")
+
+
+def test_config_with_byte_order_mark_loads(tmp_path):
+    f = tmp_path / "bom.yaml"
+    f.write_bytes("\ufeffinteractions: {path: a.csv, query_column: u, candidate_column: i}\n".encode("utf-8"))
+    assert C.load(f)["interactions"]["query_column"] == "u"
+
+
+def test_config_that_is_not_utf8_is_a_clear_error(tmp_path):
+    f = tmp_path / "latin.yaml"
+    f.write_bytes("interactions: {path: caf\xe9.csv}\n".encode("latin-1"))
+    with pytest.raises(TowersError, match="not UTF-8 text"):
+        C.load(f)
+
+
+def test_empty_config_file_reports_the_first_missing_key(tmp_path):
+    with pytest.raises(TowersError, match=r"'interactions\.query_column' is missing"):
+        C.load(write(tmp_path / "empty.yaml", ""))
+
+
+def test_yaml_syntax_error_names_the_line(tmp_path):
+    f = write(tmp_path / "broken.yaml", "run:\n  seed: 1\nmodel:\n  hidden: [1, 2\n")
+    with pytest.raises(TowersError) as err:
+        C.load(f)
+    msg = str(err.value)
+    assert msg.startswith(str(f)) and "not valid YAML" in msg and "line " in msg
+
+
+@pytest.mark.parametrize("tag", [
+    "!!python/object/apply:os.mkdir [{marker}]",
+    "!!python/object:towers.errors.TowersError {{}}",
+    "!!python/name:os.system",
+])
+def test_python_tags_are_rejected_not_executed(tmp_path, tag):
+    # yaml.safe_load only builds plain data; a full loader would run os.mkdir here.
+    marker = tmp_path / "made_by_yaml"
+    text = "interactions: {path: a.csv, query_column: u, candidate_column: i}\nrun:\n  seed: " \
+        + tag.format(marker=str(marker)) + "\n"
+    f = write(tmp_path / "evil.yaml", text)
+    with pytest.raises(TowersError, match="not valid YAML"):
+        C.load(f)
+    assert not marker.exists()
+
+
+def test_overrides_apply_on_top_of_the_file(tmp_path):
+    f = write(tmp_path / "c.yaml", "interactions: {path: a.csv, query_column: u, candidate_column: i}\n"
+                                   "training: {epochs: 9, batch_size: 16}\nusers:\n")
+    cfg = C.load(f, {"training": {"epochs": 2}, "users": {"missing_rows": "drop"}, "model": {"dim": 4}})
+    assert cfg["training"]["epochs"] == 2 and cfg["training"]["batch_size"] == 16
+    assert cfg["users"]["missing_rows"] == "drop"  # the empty 'users:' section accepts overrides
+    assert cfg["model"]["dim"] == 4
+
+
+def test_overrides_are_checked_like_file_values(tmp_path):
+    f = write(tmp_path / "c.yaml", "interactions: {path: a.csv, query_column: u, candidate_column: i}\n")
+    with pytest.raises(TowersError, match=r"'training\.epochs': got 0"):
+        C.load(f, {"training": {"epochs": 0}})
+
+
+def test_top_level_list_file_is_rejected_even_with_overrides(tmp_path):
+    f = write(tmp_path / "list.yaml", "- a\n- b\n")
+    with pytest.raises(TowersError, match="top level must be a mapping"):
+        C.load(f, {"training": {"epochs": 2}})
+
+
+# ---------------------------------------------------------------- presets and dump
+
+
+def full_config(tmp_path) -> dict:
+    return C.resolve(minimal(
+        users={"path": "users.csv", "id_column": "user",
+               "features": [{"name": "age", "kind": "numeric"}, {"name": "city", "kind": "categorical", "min_count": 3}]},
+        items=items_with_features(features=[{"name": "tags", "kind": "tokens", "separator": ","},
+                                            {"name": "emb", "kind": "vector", "length": 8}]),
+        model={"hidden": [64, 32], "id_dropout": 0.3, "normalize": True, "temperature": 0.1, "dropout": 0.2},
+        evaluation={"cold_item_fraction": 0.2, "top_k": [5, 10]},
+    ), tmp_path)
+
+
+def test_linear_factor_preset(tmp_path):
+    cfg = full_config(tmp_path)
+    before = copy.deepcopy(cfg)
+    preset = C.linear_factor_preset(cfg)
+    assert preset["model"]["hidden"] == []
+    assert preset["users"]["features"] == [] and preset["items"]["features"] == []
+    assert preset["model"]["id_dropout"] == 0.0
+    assert preset["model"]["use_ids"] is True
+    assert preset["model"]["normalize"] is False and preset["model"]["temperature"] == 1.0
+    assert preset["training"] == cfg["training"]  # training settings are shared
+    assert cfg == before  # the run's own config is untouched
+
+
+def test_dump_round_trips_through_resolve(tmp_path):
+    cfg = full_config(tmp_path)
+    text = C.dump(cfg)
+    other = tmp_path / "somewhere" / "else"
+    back = C.resolve(yaml.safe_load(text), other)  # paths are absolute, so the folder no longer matters
+    assert back == cfg
+    assert C.dump(back) == text
+
+
+def test_dump_round_trips_for_item_item(tmp_path):
+    cfg = C.resolve(minimal(run={"mode": "item_item"}, model={"shared_tower": True}, items=items_with_features()), tmp_path)
+    assert C.resolve(yaml.safe_load(C.dump(cfg)), Path("/")) == cfg
+
+
+def test_dump_keeps_schema_order_and_plain_yaml(tmp_path):
+    text = C.dump(full_config(tmp_path))
+    assert "!!" not in text  # only plain YAML types, readable by any loader
+    assert [line.rstrip(":") for line in text.splitlines() if line and not line.startswith(" ")] == list(C.SCHEMA)
