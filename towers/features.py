@@ -121,8 +121,9 @@ class SideTable:
             missing = pd.unique(ids[~known])
             if self.missing_rows == "error":
                 row = int(np.flatnonzero(~known)[0])
+                bad = ids[row].item() if isinstance(ids[row], np.generic) else ids[row]
                 raise TowersError(
-                    f"{where(log_path, log_column, row + 1)}: id {ids[row]!r} has no row in {self.path} "
+                    f"{where(log_path, log_column, row + 1)}: id {bad!r} has no row in {self.path} "
                     f"({len(missing)} such ids); add feature rows, or set missing_rows: drop or default")
             if self.missing_rows == "drop":
                 keep = known

@@ -43,13 +43,14 @@ class Tower(nn.Module):
         self.ids = _sparse_table(id_rows, id_dim, ID_INIT_STD) if self.use_ids else None
         self.tables = nn.ModuleDict()
         width = id_dim if self.use_ids else 0
-        for spec in inputs:
+        # tables are keyed by position: column names may hold characters torch refuses in module names
+        for pos, spec in enumerate(inputs):
             d = spec.get("dim") or model_cfg["feature_dim"]
             if spec["kind"] == "categorical":
-                self.tables[spec["name"]] = nn.Embedding(spec["size"], d)
+                self.tables[f"f{pos}"] = nn.Embedding(spec["size"], d)
                 width += d
             elif spec["kind"] == "tokens":
-                self.tables[spec["name"]] = nn.EmbeddingBag(spec["size"], d, mode="mean", padding_idx=0)
+                self.tables[f"f{pos}"] = nn.EmbeddingBag(spec["size"], d, mode="mean", padding_idx=0)
                 width += d
             else:
                 width += spec["width"]
@@ -79,10 +80,10 @@ class Tower(nn.Module):
             out = self.ids(ids)
         else:
             parts = [self.ids(ids)] if self.use_ids else []
-            for spec in self.inputs:
+            for pos, spec in enumerate(self.inputs):
                 x = block[spec["name"]]
                 if spec["kind"] in ("categorical", "tokens"):
-                    x = self.tables[spec["name"]](x)
+                    x = self.tables[f"f{pos}"](x)
                 parts.append(x)
             out = self.mlp(torch.cat(parts, dim=1))
         if self.non_negative:
