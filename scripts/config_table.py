@@ -14,7 +14,7 @@ def _fmt(key) -> str:
     if key.high is not None:
         bounds.append(f"<= {key.high:g}")
     rng = f" ({', '.join(bounds)})" if bounds else ""
-    return f"{kind}{rng} | {default.replace('|', '/')}"
+    return f"{kind}{rng} | {default.replace('|', chr(92) + '|')}"
 
 
 def main() -> None:
@@ -23,7 +23,8 @@ def main() -> None:
         print("| key | type | default | meaning |")
         print("|---|---|---|---|")
         for name, key in keys.items():
-            print(f"| `{name}` | {_fmt(key)} | {key.meaning} |")
+            meaning = key.meaning.replace("|", "\\|")
+            print(f"| `{name}` | {_fmt(key)} | {meaning} |")
         print()
 
 

@@ -120,8 +120,9 @@ class Run:
         rows = pd.Index(ids_all).get_indexer(wanted)
         if (rows < 0).any():
             bad = wanted[np.flatnonzero(rows < 0)[0]]
-            raise TowersError(f"unknown {what} id {bad!r}: not in this run's exported {what}s; embed it first "
-                              f"(`towers embed`) or check the id")
+            bad = bad.item() if isinstance(bad, np.generic) else bad
+            raise TowersError(f"unknown {what} id {bad!r}: not in this run's catalog ({len(ids_all)} {what}s); "
+                              "check the id, or retrain with this entity in the feature table")
         return torch.from_numpy(rows.astype(np.int64))
 
     def _ranked_frame(self, query_ids, idx, scores, item_ids) -> pd.DataFrame:
@@ -141,7 +142,7 @@ class Run:
             raise TowersError(f"--top must be a positive whole number, got {top}")
         q_ids, q_vec, q_bias, meta = self.embeddings(self._query_side())
         i_ids, i_vec, i_bias, _ = self.embeddings("item")
-        rows = self._rows(q_ids, user_ids, "query" if self.item_item else "user")
+        rows = self._rows(q_ids, pd.unique(np.asarray(list(user_ids), dtype=object)), "query" if self.item_item else "user")
         scale = 1.0 / float(meta.get("temperature", 1.0))
         ex_r = ex_c = None
         if exclude_known:
@@ -244,8 +245,8 @@ def load(run_dir: str | Path) -> Run:
     return Run(run_dir)
 
 
-def train(config_path: str | Path, out_dir: str | Path, overwrite: bool = False) -> dict:
+def train(config_path: str | Path, out_dir: str | Path, overwrite: bool = False, resume: bool = False) -> dict:
     """Train a run from a YAML config (same as `towers train`); returns metrics, folder and table."""
     from .runner import train_run
 
-    return train_run(config_path, out_dir, overwrite=overwrite)
+    return train_run(config_path, out_dir, overwrite=overwrite, resume=resume)

@@ -18,6 +18,9 @@ def write_atomic(path: str | Path, write: Callable[[Path], None]) -> Path:
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     os.close(fd)
     tmp_path = Path(tmp)
+    umask = os.umask(0)
+    os.umask(umask)
+    os.chmod(tmp_path, 0o666 & ~umask)  # mkstemp makes files owner-only; give them the usual mode
     try:
         write(tmp_path)
         with open(tmp_path, "rb+") as fh:

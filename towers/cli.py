@@ -19,6 +19,7 @@ def _parser() -> argparse.ArgumentParser:
     t.add_argument("config", help="YAML config file")
     t.add_argument("--out", required=True, help="run folder to write")
     t.add_argument("--overwrite", action="store_true", help="replace an existing run folder")
+    t.add_argument("--resume", action="store_true", help="continue an interrupted run (RUN_DIR.partial) exactly")
 
     e = sub.add_parser("evaluate", help="re-score a run on its held-out pairs or on a new interaction file")
     e.add_argument("run_dir")
@@ -32,7 +33,7 @@ def _parser() -> argparse.ArgumentParser:
     side.add_argument("--users", help="user feature table (CSV or parquet)")
     m.add_argument("--out", required=True, help="parquet file to write")
 
-    r = sub.add_parser("recommend", help="top items for users (their training positives excluded)")
+    r = sub.add_parser("recommend", help="top items for users (their known training and validation positives excluded)")
     r.add_argument("run_dir")
     r.add_argument("--users", nargs="+", required=True, help="user ids")
     r.add_argument("--top", type=int, default=10, help="how many items per user (default 10)")
@@ -67,7 +68,7 @@ def run(args: argparse.Namespace) -> int:
     if args.command == "train":
         from .runner import train_run
 
-        result = train_run(args.config, args.out, overwrite=args.overwrite)
+        result = train_run(args.config, args.out, overwrite=args.overwrite, resume=args.resume)
         print(result["table"], end="")
         print(f"run folder: {result['out']}")
         return 0
@@ -95,6 +96,8 @@ def run(args: argparse.Namespace) -> int:
         from .tables import read_table
 
         source = args.items or args.users
+        if Path(args.out).suffix.lower() not in (".parquet", ".pq"):
+            raise TowersError(f"{args.out}: embeddings are written as parquet; give an --out ending in .parquet")
         df = read_table(source)
         out = run_.embed_items(df, source) if args.items else run_.embed_users(df, source)
         _, _, _, meta = run_.embeddings("item")
@@ -120,8 +123,9 @@ def main(argv: list[str] | None = None) -> int:
         try:
             return run(args)
         except TowersError as exc:
-            print(f"error: {exc}", file=sys.stderr)
-            return TowersError.exit_code
+            label = "interrupted" if exc.exit_code == 130 else "error"
+            print(f"{label}: {exc}", file=sys.stderr)
+            return exc.exit_code
         except KeyboardInterrupt:
             print("error: interrupted", file=sys.stderr)
             return 130

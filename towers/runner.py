@@ -14,6 +14,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import torch
+import yaml
 
 from . import config as C
 from .atomic import write_atomic, write_text_atomic
@@ -23,7 +24,7 @@ from .errors import TowersError
 from .evaluate import Scorer, popularity_scorer, ranking_metrics, rating_metrics
 from .export import read_embeddings, write_embeddings
 from .model import TwoTowerModel
-from .training import _with_dims, build_model, fit, log, model_scorer
+from .training import TrainingInterrupted, _with_dims, build_model, fit, log, model_scorer
 
 MODEL_ORDER = ("popularity", "linear_factor", "towers", "oracle")
 
@@ -168,12 +169,32 @@ def save_pairs(path: Path, data: Prepared) -> None:
     write_atomic(path, lambda p: torch.save(payload, p))
 
 
-def train_run(config_path: str | Path, out_dir: str | Path, overwrite: bool = False, quiet: bool = False) -> dict:
-    """Train, evaluate and export one run; returns {'metrics': ..., 'out': path, 'table': text}."""
+def _resumable(out: Path, partial: Path, cfg: dict) -> bool:
+    """Whether an interrupted run can continue here, checking the config has not changed."""
+    saved = partial / "config.yaml"
+    if not saved.is_file():
+        return False
+    if yaml.safe_load(saved.read_text(encoding="utf-8")) != yaml.safe_load(C.dump(cfg)):
+        raise TowersError(f"{saved}: the config differs from the interrupted run's; resume with the same config, "
+                          f"or drop --resume to start over")
+    return True
+
+
+def train_run(config_path: str | Path, out_dir: str | Path, overwrite: bool = False, resume: bool = False) -> dict:
+    """Train, evaluate and export one run; returns {'metrics': ..., 'out': path, 'table': text}.
+
+    resume=True continues an interrupted run from RUN_DIR.partial (exactly: the same weights as an
+    uninterrupted run with the same seed); with nothing to resume it starts afresh.
+    """
     started = time.perf_counter()
     cfg = C.load(config_path)
     out = Path(out_dir)
-    check_out_dir(out, overwrite)
+    partial = out.parent / f"{out.name}.partial"
+    resuming = resume and _resumable(out, partial, cfg)
+    if resume and not resuming and out.is_dir() and (out / "metrics.json").is_file() and not partial.exists():
+        raise TowersError(f"{out}: this run already finished; nothing to resume (use --overwrite to train it again)")
+    if not resuming:
+        check_out_dir(out, overwrite)
     apply_threads(cfg)
     torch.manual_seed(cfg["run"]["seed"])
     data = prepare(cfg)
@@ -182,34 +203,36 @@ def train_run(config_path: str | Path, out_dir: str | Path, overwrite: bool = Fa
     log(f"data: {len(data.train):,} training, {len(data.valid):,} validation, {len(data.test):,} test, "
         f"{len(data.cold_test):,} cold-start pairs; {len(data.queries.ids):,} queries, {len(data.candidates.ids):,} items")
 
-    partial = out.parent / f"{out.name}.partial"
-    if partial.exists():
-        shutil.rmtree(partial)
-    (partial / "checkpoints").mkdir(parents=True)
-    write_text_atomic(partial / "config.yaml", C.dump(cfg))
-
-    def checkpoint(tag: str, state: dict, epoch: int, sub: str = "") -> None:
-        target = partial / sub / "checkpoints" / f"{tag}.pt"
-        write_atomic(target, lambda p: torch.save({"epoch": epoch, "state_dict": state}, p))
-
-    model = build_model(data, cfg)
-    result = fit(model, data, cfg, partial / "checkpoints", "towers", save_checkpoint=checkpoint)
-    scorers: dict[str, Scorer] = {
-        "popularity": popularity_scorer(data.train, len(data.queries.ids), len(data.candidates.ids),
-                                        cfg["training"]["loss"] == "squared", data.item_item),
-        "towers": model_scorer(model, data),
-    }
-    histories = {"towers": result.history}
-    if cfg["evaluation"]["baseline"]:
-        torch.manual_seed(cfg["run"]["seed"])
-        base, preset = baseline_model(data, cfg)
-        (partial / "linear_factor").mkdir()
-        base_result = fit(base, data, preset, None, "linear_factor",
-                          save_checkpoint=lambda t, s, e: checkpoint(t, s, e, "linear_factor"))
-        scorers["linear_factor"] = model_scorer(base, data)
-        histories["linear_factor"] = base_result.history
-        _save_model(partial / "linear_factor", base, preset["model"], data, preset, use_features=False)
-        export_run(partial / "linear_factor", base, data, preset, "linear_factor")
+    if not resuming:
+        if partial.exists():
+            shutil.rmtree(partial)
+        (partial / "checkpoints").mkdir(parents=True)
+        write_text_atomic(partial / "config.yaml", C.dump(cfg))
+    (partial / "linear_factor" / "checkpoints").mkdir(parents=True, exist_ok=True)
+    resume_hint = f"resume with: towers train {config_path} --out {out} --resume"
+    try:
+        model = build_model(data, cfg)
+        result = fit(model, data, cfg, partial / "checkpoints", "towers", resume=resuming)
+        scorers: dict[str, Scorer] = {
+            "popularity": popularity_scorer(data.train, len(data.queries.ids), len(data.candidates.ids),
+                                            cfg["training"]["loss"] == "squared", data.item_item),
+            "towers": model_scorer(model, data),
+        }
+        histories = {"towers": result.history}
+        if cfg["evaluation"]["baseline"]:
+            torch.manual_seed(cfg["run"]["seed"])
+            base, preset = baseline_model(data, cfg)
+            base_result = fit(base, data, preset, partial / "linear_factor" / "checkpoints", "linear_factor",
+                              resume=resuming)
+            scorers["linear_factor"] = model_scorer(base, data)
+            histories["linear_factor"] = base_result.history
+            _save_model(partial / "linear_factor", base, preset["model"], data, preset, use_features=False)
+            export_run(partial / "linear_factor", base, data, preset, "linear_factor")
+    except TrainingInterrupted as stop:
+        raise TrainingInterrupted(f"{stop}; {resume_hint}") from None
+    except TowersError:
+        shutil.rmtree(partial, ignore_errors=True)  # a diverged run leaves nothing behind
+        raise
     oracle = oracle_scorer(cfg, data)
     if oracle is not None:
         scorers["oracle"] = oracle
@@ -220,6 +243,14 @@ def train_run(config_path: str | Path, out_dir: str | Path, overwrite: bool = Fa
     write_text_atomic(partial / "metrics.json", json.dumps(metrics, indent=2))
     write_text_atomic(partial / "history.json", json.dumps(
         {"stop_metric": result.stop_metric, "best_epoch": result.best_epoch, "epochs": histories}, indent=2))
+    _publish(partial, out)
+    table = format_table(metrics)
+    log(f"run written to {out} in {time.perf_counter() - started:.1f} s ({', '.join(files.values())})")
+    return {"metrics": metrics, "out": out, "table": table}
+
+
+def _publish(partial: Path, out: Path) -> None:
+    """Move the finished RUN.partial into place, replacing an older run folder only at the very end."""
     if out.exists():
         old = out.parent / f"{out.name}.replaced"
         if old.exists():
@@ -229,6 +260,3 @@ def train_run(config_path: str | Path, out_dir: str | Path, overwrite: bool = Fa
         shutil.rmtree(old)
     else:
         partial.rename(out)
-    table = format_table(metrics)
-    log(f"run written to {out} in {time.perf_counter() - started:.1f} s ({', '.join(files.values())})")
-    return {"metrics": metrics, "out": out, "table": table}

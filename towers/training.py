@@ -10,7 +10,9 @@ estimate of J and full-batch training minimises it exactly.
 from __future__ import annotations
 
 import math
+import signal
 import sys
+import threading
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -18,6 +20,8 @@ from pathlib import Path
 import torch
 from tqdm import tqdm
 
+from .atomic import write_atomic
+from .bundle import load_payload
 from .config import default_stop_metric, lower_is_better
 from .dataset import Pairs, Prepared
 from .errors import TowersError
@@ -37,6 +41,11 @@ def log(message: str) -> None:
 def build_model(data: Prepared, cfg: dict) -> TwoTowerModel:
     """A TwoTowerModel sized for the prepared data's encoders."""
     q, c = data.queries.encoders, data.candidates.encoders
+    if not cfg["model"]["use_ids"]:
+        for side, enc in (("users" if not data.item_item else "items", q), ("items", c)):
+            if not enc.encoders:
+                raise TowersError(f"config key 'model.use_ids': false leaves the {side} tower with no input; "
+                                  f"add {side}.features or set use_ids: true")
     shared = data.item_item and cfg["model"]["shared_tower"]
     q_inputs = _with_dims(q.model_inputs(), cfg["users" if not data.item_item else "items"]["features"])
     c_inputs = _with_dims(c.model_inputs(), cfg["items"]["features"])
@@ -158,6 +167,7 @@ class Trainer:
             self.q_inv = _id_counts(q_ids, data.queries.encoders.id_encoder.size)
             self.c_inv = _id_counts(c_ids, data.candidates.encoders.id_encoder.size)
         self.lam = self.tcfg["id_l2"]
+        self.stop_requested = False
         if not self.logistic and model.use_biases:
             # start the global bias at the mean rating, so id rows and biases learn offsets from it
             with torch.no_grad():
@@ -222,24 +232,33 @@ class Trainer:
         self.n_neg = keep_neg
         return total / n + 0.5 * self.tcfg["weight_decay"] * dense
 
-    def run_epoch(self, epoch: int, bar: bool) -> float:
-        """One pass over the shuffled training pairs; returns the mean batch loss."""
+    def run_epoch(self, epoch: int, bar: bool, perm: torch.Tensor | None = None, start_step: int = 0,
+                  done_loss: float = 0.0) -> float:
+        """One pass over the shuffled training pairs; returns the mean batch loss.
+
+        perm/start_step/done_loss continue an epoch that was interrupted part-way. A stop request
+        (Ctrl-C) is honoured between steps, never inside one, so the saved state is consistent.
+        """
         self.model.train()
         n = len(self.data.train)
         bs = self.tcfg["batch_size"]
-        perm = torch.randperm(n, generator=self.generator)
+        if perm is None:
+            perm = torch.randperm(n, generator=self.generator)
         steps = math.ceil(n / bs)
-        progress = tqdm(total=n, desc=f"{self.label} epoch {epoch}", unit="pairs", leave=False, file=sys.stderr,
-                        disable=not bar, mininterval=0.5)
-        start, total = time.perf_counter(), 0.0
-        for s in range(steps):
+        progress = tqdm(total=n, initial=min(n, start_step * bs), desc=f"{self.label} epoch {epoch}", unit="pairs",
+                        leave=False, file=sys.stderr, disable=not bar, mininterval=0.5)
+        start, total = time.perf_counter(), done_loss
+        for s in range(start_step, steps):
+            if self.stop_requested:
+                progress.close()
+                raise Interrupted(epoch, s, perm, total)
             idx = perm[s * bs:(s + 1) * bs]
             loss = self.batch_loss(idx)
             if not torch.isfinite(loss):
                 progress.close()
                 raise TowersError(
-                    f"training diverged at {self.label} epoch {epoch}, step {s + 1} (loss {float(loss)}); no model was "
-                    "written; lower training.learning_rate / id_learning_rate, or raise weight_decay / id_l2")
+                    f"training diverged at {self.label} epoch {epoch}, step {s + 1} (loss {float(loss.detach())}); no model "
+                    "was written; lower training.learning_rate / id_learning_rate, or raise weight_decay / id_l2")
             for opt in self.optimizers:
                 opt.zero_grad(set_to_none=True)
             loss.backward()
@@ -248,11 +267,25 @@ class Trainer:
             total += float(loss.detach()) * len(idx)
             progress.update(len(idx))
             if bar and s % 20 == 0:
-                rate = progress.n / max(1e-9, time.perf_counter() - start)
+                rate = (progress.n - progress.initial) / max(1e-9, time.perf_counter() - start)
                 progress.set_postfix(loss=f"{float(loss.detach()):.4f}", pairs_s=f"{rate:,.0f}")
         progress.close()
-        self.last_rate = n / max(1e-9, time.perf_counter() - start)
+        self.last_rate = (n - min(n, start_step * bs)) / max(1e-9, time.perf_counter() - start)
         return total / n
+
+
+class Interrupted(Exception):
+    """Raised between steps after a stop request, carrying the position to resume from."""
+
+    def __init__(self, epoch: int, step: int, perm: torch.Tensor, loss_so_far: float):
+        super().__init__(f"interrupted at epoch {epoch}, step {step}")
+        self.epoch, self.step, self.perm, self.loss_so_far = epoch, step, perm, loss_so_far
+
+
+class TrainingInterrupted(TowersError):
+    """Ctrl-C during training: a checkpoint was written; the message says how to resume."""
+
+    exit_code = 130
 
 
 def show_bar(progress: str) -> bool:
@@ -264,43 +297,117 @@ def show_bar(progress: str) -> bool:
     return sys.stderr.isatty()
 
 
+def _clone(state: dict) -> dict:
+    return {k: v.detach().clone() for k, v in state.items()}
+
+
 def fit(model: TwoTowerModel, data: Prepared, cfg: dict, checkpoint_dir: Path | None, label: str,
-        save_checkpoint=None) -> TrainResult:
-    """Train with validation every epoch, early stopping, and best/last checkpoints."""
+        resume: bool = False) -> TrainResult:
+    """Train with validation every epoch, early stopping, and best/last checkpoints.
+
+    checkpoint_dir/last.pt holds everything needed to continue exactly (weights, optimiser state,
+    random-number state, position in the epoch); best.pt holds the best weights so far. With
+    resume=True an existing last.pt is continued, and a finished one is simply loaded.
+    """
     trainer = Trainer(model, data, cfg, label)
     tcfg = cfg["training"]
     metric = default_stop_metric(cfg)
     lower = lower_is_better(metric)
     bar = show_bar(tcfg["progress"])
     result = TrainResult(stop_metric=metric)
-    best_state = None
-    stale = 0
-    for epoch in range(1, tcfg["epochs"] + 1):
-        loss = trainer.run_epoch(epoch, bar)
-        value = None
-        if len(data.valid):
-            vals = validation_metrics(model_scorer(model, data), data, cfg, data.valid)
-            value = vals.get(metric)
-        row = {"epoch": epoch, "loss": loss, "pairs_per_s": trainer.last_rate}
-        if value is not None:
-            row[f"valid_{metric}"] = value
-        result.history.append(row)
-        improved = value is not None and (result.best_value is None or
-                                          (value < result.best_value if lower else value > result.best_value))
-        if improved or value is None:
-            result.best_value, result.best_epoch, stale = value, epoch, 0
-            best_state = {k: v.detach().clone() for k, v in model.state_dict().items()}
-        else:
-            stale += 1
-        shown = "" if value is None else f"  valid {metric} {value:.4f}{' (best)' if improved else ''}"
-        log(f"{label} epoch {epoch}/{tcfg['epochs']}  loss {loss:.4f}  {trainer.last_rate:,.0f} pairs/s{shown}")
-        if save_checkpoint is not None:
-            save_checkpoint("last", model.state_dict(), epoch)
+    best_state, stale = None, 0
+    epoch, perm, start_step, done_loss = 1, None, 0, 0.0
+    last_path = checkpoint_dir / "last.pt" if checkpoint_dir is not None else None
+
+    def save(finished: bool, position: tuple | None = None) -> None:
+        if last_path is None:
+            return
+        ep, step, p, lsf = position if position else (epoch, 0, None, 0.0)
+        state = {"format": "towers-checkpoint", "version": 1, "label": label, "finished": finished,
+                 "epoch": ep, "step": step, "loss_so_far": lsf, "stale": stale,
+                 "best_value": result.best_value, "best_epoch": result.best_epoch, "history": result.history,
+                 "model": _clone(model.state_dict()), "best_model": best_state,
+                 "optimizers": [o.state_dict() for o in trainer.optimizers],
+                 "generator": trainer.generator.get_state(), "global_rng": torch.get_rng_state()}
+        if p is not None:
+            state["perm"] = p
+        write_atomic(last_path, lambda f: torch.save(state, f))
+
+    if resume and last_path is not None and last_path.is_file():
+        st = load_payload(last_path, "checkpoint")
+        if st.get("format") != "towers-checkpoint" or st.get("label") != label:
+            raise TowersError(f"{last_path}: not a {label} checkpoint of this run; remove the .partial folder to start over")
+        model.load_state_dict(st["model"])
+        for opt, o_state in zip(trainer.optimizers, st["optimizers"]):
+            opt.load_state_dict(o_state)
+        trainer.generator.set_state(st["generator"])
+        torch.set_rng_state(st["global_rng"])
+        result.history, result.best_value, result.best_epoch = st["history"], st["best_value"], st["best_epoch"]
+        best_state, stale = st["best_model"], st["stale"]
+        epoch, start_step, perm, done_loss = st["epoch"], st["step"], st.get("perm"), st["loss_so_far"]
+        if st["finished"]:
+            if best_state is not None:
+                model.load_state_dict(best_state)
+            log(f"{label}: already trained in the interrupted run; loaded its best weights")
+            return result
+        log(f"{label}: resuming at epoch {epoch}" + (f", step {start_step}" if start_step else ""))
+
+    previous = _install_stop_handler(trainer)
+    try:
+        while epoch <= tcfg["epochs"]:
+            try:
+                loss = trainer.run_epoch(epoch, bar, perm, start_step, done_loss)
+            except Interrupted as stop:
+                save(False, (stop.epoch, stop.step, stop.perm, stop.loss_so_far))
+                raise TrainingInterrupted(f"{label} training interrupted at epoch {stop.epoch}, step {stop.step}; "
+                                          "checkpoint written") from None
+            perm, start_step, done_loss = None, 0, 0.0
+            value = None
+            if len(data.valid):
+                value = validation_metrics(model_scorer(model, data), data, cfg, data.valid).get(metric)
+            row = {"epoch": epoch, "loss": loss, "pairs_per_s": trainer.last_rate}
+            if value is not None:
+                row[f"valid_{metric}"] = value
+            result.history.append(row)
+            improved = value is not None and (result.best_value is None or
+                                              (value < result.best_value if lower else value > result.best_value))
             if improved or value is None:
-                save_checkpoint("best", best_state, epoch)
-        if stale >= tcfg["patience"]:
-            log(f"{label}: stopping early after epoch {epoch}; best epoch {result.best_epoch}")
-            break
+                result.best_value, result.best_epoch, stale = value, epoch, 0
+                best_state = _clone(model.state_dict())
+                if checkpoint_dir is not None:
+                    write_atomic(checkpoint_dir / "best.pt",
+                                 lambda f: torch.save({"epoch": epoch, "state_dict": best_state}, f))
+            else:
+                stale += 1
+            shown = "" if value is None else f"  valid {metric} {value:.4f}{' (best)' if improved else ''}"
+            log(f"{label} epoch {epoch}/{tcfg['epochs']}  loss {loss:.4f}  {trainer.last_rate:,.0f} pairs/s{shown}")
+            epoch += 1
+            if stale >= tcfg["patience"]:
+                log(f"{label}: stopping early after epoch {epoch - 1}; best epoch {result.best_epoch}")
+                break
+            save(False)
+    finally:
+        _restore_stop_handler(previous)
     if best_state is not None:
         model.load_state_dict(best_state)
+    save(True)
     return result
+
+
+def _install_stop_handler(trainer: Trainer):
+    """Ctrl-C asks the trainer to stop after the current step (only possible in the main thread)."""
+    if threading.current_thread() is not threading.main_thread():
+        return None
+
+    def request_stop(signum, frame):
+        if trainer.stop_requested:  # a second Ctrl-C stops at once
+            raise KeyboardInterrupt
+        trainer.stop_requested = True
+        log("stopping after this step (Ctrl-C again to abort without a checkpoint)")
+
+    return signal.signal(signal.SIGINT, request_stop)
+
+
+def _restore_stop_handler(previous) -> None:
+    if previous is not None:
+        signal.signal(signal.SIGINT, previous)
