@@ -5,17 +5,25 @@ A killed process or a full disk leaves either the previous file or the new one, 
 
 from __future__ import annotations
 
+import errno
 import os
 import tempfile
 from pathlib import Path
 from typing import Callable
 
+from .errors import TowersError
+
+_NO_ROOM = {errno.ENOSPC, errno.EDQUOT, errno.EROFS, errno.EACCES, errno.EPERM}
+
 
 def write_atomic(path: str | Path, write: Callable[[Path], None]) -> Path:
     """Call write(tmp_path), fsync it, then rename tmp_path to path."""
     path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    except OSError as exc:
+        raise _write_error(path, exc) from None
     os.close(fd)
     tmp_path = Path(tmp)
     umask = os.umask(0)
@@ -26,10 +34,18 @@ def write_atomic(path: str | Path, write: Callable[[Path], None]) -> Path:
         with open(tmp_path, "rb+") as fh:
             os.fsync(fh.fileno())
         os.replace(tmp_path, path)
-    except BaseException:
+    except BaseException as exc:
         tmp_path.unlink(missing_ok=True)
+        if isinstance(exc, OSError) and exc.errno in _NO_ROOM:
+            raise _write_error(path, exc) from None
         raise
     return path
+
+
+def _write_error(path: Path, exc: OSError) -> TowersError:
+    """Disk full, read-only or no permission: the previous file (if any) is untouched."""
+    return TowersError(f"{path}: could not be written ({exc.strerror or exc}); the previous file, if any, is intact; "
+                       "free disk space or choose a writable folder, then rerun (training runs take --resume)")
 
 
 def write_text_atomic(path: str | Path, text: str) -> Path:

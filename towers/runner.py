@@ -24,7 +24,7 @@ from .errors import TowersError
 from .evaluate import Scorer, popularity_scorer, ranking_metrics, rating_metrics
 from .export import read_embeddings, write_embeddings
 from .model import TwoTowerModel
-from .training import TrainingInterrupted, _with_dims, build_model, fit, log, model_scorer
+from .training import TrainingDiverged, TrainingInterrupted, _with_dims, build_model, fit, log, model_scorer
 
 MODEL_ORDER = ("popularity", "linear_factor", "towers", "oracle")
 
@@ -230,7 +230,7 @@ def train_run(config_path: str | Path, out_dir: str | Path, overwrite: bool = Fa
             export_run(partial / "linear_factor", base, data, preset, "linear_factor")
     except TrainingInterrupted as stop:
         raise TrainingInterrupted(f"{stop}; {resume_hint}") from None
-    except TowersError:
+    except TrainingDiverged:
         shutil.rmtree(partial, ignore_errors=True)  # a diverged run leaves nothing behind
         raise
     oracle = oracle_scorer(cfg, data)

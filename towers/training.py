@@ -256,7 +256,7 @@ class Trainer:
             loss = self.batch_loss(idx)
             if not torch.isfinite(loss):
                 progress.close()
-                raise TowersError(
+                raise TrainingDiverged(
                     f"training diverged at {self.label} epoch {epoch}, step {s + 1} (loss {float(loss.detach())}); no model "
                     "was written; lower training.learning_rate / id_learning_rate, or raise weight_decay / id_l2")
             for opt in self.optimizers:
@@ -280,6 +280,10 @@ class Interrupted(Exception):
     def __init__(self, epoch: int, step: int, perm: torch.Tensor, loss_so_far: float):
         super().__init__(f"interrupted at epoch {epoch}, step {step}")
         self.epoch, self.step, self.perm, self.loss_so_far = epoch, step, perm, loss_so_far
+
+
+class TrainingDiverged(TowersError):
+    """A NaN or infinite loss: the run stops and writes no model."""
 
 
 class TrainingInterrupted(TowersError):

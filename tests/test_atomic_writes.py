@@ -1,0 +1,56 @@
+"""Atomic writes: a failed or interrupted write leaves the previous file intact and no temp file."""
+
+from __future__ import annotations
+
+import errno
+
+import numpy as np
+import pyarrow.parquet as pq
+import pytest
+import torch
+
+from towers import atomic
+from towers.errors import TowersError
+from towers.export import write_embeddings
+
+
+def _export(path, value: float):
+    return write_embeddings(path, np.array([1, 2]), torch.full((2, 3), value), None, {})
+
+
+def test_disk_full_leaves_previous_parquet_intact(tmp_path, monkeypatch):
+    path = tmp_path / "item_embeddings.parquet"
+    _export(path, 1.0)
+    before = path.read_bytes()
+
+    def full_disk(*args, **kwargs):
+        raise OSError(errno.ENOSPC, "No space left on device")
+
+    monkeypatch.setattr(pq, "write_table", full_disk)
+    with pytest.raises(TowersError, match="No space left.*previous file.*intact"):
+        _export(path, 2.0)
+    assert path.read_bytes() == before
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["item_embeddings.parquet"]
+
+
+def test_write_killed_half_way_never_replaces_the_target(tmp_path):
+    path = tmp_path / "notes.txt"
+    atomic.write_text_atomic(path, "old")
+
+    def half_then_crash(tmp):
+        tmp.write_text("new but trunc")
+        raise KeyboardInterrupt  # stands in for a process killed mid-write
+
+    with pytest.raises(KeyboardInterrupt):
+        atomic.write_atomic(path, half_then_crash)
+    assert path.read_text() == "old"
+    assert [p.name for p in tmp_path.iterdir()] == ["notes.txt"]
+
+
+def test_written_files_get_the_usual_permissions(tmp_path):
+    path = atomic.write_text_atomic(tmp_path / "a.txt", "x")
+    import os
+
+    umask = os.umask(0)
+    os.umask(umask)
+    assert path.stat().st_mode & 0o777 == 0o666 & ~umask
