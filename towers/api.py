@@ -6,6 +6,7 @@ The CLI calls exactly these functions, so both give the same results.
 from __future__ import annotations
 
 import warnings
+import zipfile
 from pathlib import Path
 from types import SimpleNamespace
 
@@ -26,6 +27,14 @@ from .runner import evaluate_slices, oracle_scorer
 from .tables import align_id_types, normalise_ids, require_columns
 from .training import EMBED_CHUNK
 
+_NO_MATCH = np.iinfo(np.int64).min  # what align_id_types gives text that is not a whole number
+
+
+def _check_archive(path: Path, kind: str) -> None:
+    """torch.save writes a zip archive; anything else (garbage, a cut-off copy) is damaged, not unsafe."""
+    if path.is_file() and not zipfile.is_zipfile(path):
+        raise TowersError(f"{path}: {kind} is corrupt or truncated (not a torch archive); retrain or restore the file")
+
 
 def _unpack(d: dict) -> Pairs:
     return Pairs(d["query"], d["candidate"], d.get("target"), d.get("weight"))
@@ -38,17 +47,31 @@ class Run:
         self.dir = Path(run_dir)
         if not (self.dir / "model.pt").is_file():
             raise TowersError(f"{self.dir}: not a run folder (no model.pt); give the --out folder of `towers train`")
+        _check_archive(self.dir / "model.pt", "model bundle")
         self.bundle = load_bundle(self.dir / "model.pt")
         cfg_path = self.dir / "config.yaml"
-        self.config = C.resolve(yaml.safe_load(cfg_path.read_text(encoding="utf-8")), self.dir) if cfg_path.is_file() else None
+        self.config = self._saved_config(cfg_path) if cfg_path.is_file() else None
         self.item_item = self.bundle.item_item
         self._pairs = None
         self._emb = {}
 
     # ---- saved state -------------------------------------------------------------------------
+    def _saved_config(self, cfg_path: Path) -> dict:
+        fix = "restore config.yaml from a backup or retrain the run"
+        try:
+            raw = yaml.safe_load(cfg_path.read_text(encoding="utf-8"))
+        except (yaml.YAMLError, UnicodeDecodeError) as exc:
+            problem = getattr(exc, "problem", None) or type(exc).__name__
+            raise TowersError(f"{cfg_path}: not valid YAML ({problem}); the run folder is damaged; {fix}") from None
+        try:
+            return C.resolve(raw, self.dir)
+        except TowersError as exc:
+            raise TowersError(f"{cfg_path}: {exc} (in the run's saved config; {fix})") from None
+
     @property
     def pairs(self) -> dict:
         if self._pairs is None:
+            _check_archive(self.dir / "pairs.pt", "pairs file")
             self._pairs = load_payload(self.dir / "pairs.pt", "pairs file")
         return self._pairs
 
@@ -76,8 +99,11 @@ class Run:
         if len(df) == 0:
             raise TowersError(f"{source}: no rows to embed")
         ids = normalise_ids(df[encoders.id_column], source, encoders.id_column)
-        ids = align_id_types(ids, encoders.id_encoder.ids) if len(encoders.id_encoder.ids) else ids
-        block = encoders.encode(ids, df.reset_index(drop=True), source)
+        lookup = align_id_types(ids, encoders.id_encoder.ids) if len(encoders.id_encoder.ids) else ids
+        if lookup.dtype == ids.dtype or not (lookup == _NO_MATCH).any():
+            ids = lookup  # the run's id type, where every id converts
+        # else: text ids that are no whole numbers are new entities; they keep their own text as id
+        block = encoders.encode(lookup, df.reset_index(drop=True), source)
         unknown = encoders.unknown_counts()
         if unknown:
             listed = ", ".join(f"{k}: {v}" for k, v in unknown.items())
@@ -113,7 +139,8 @@ class Run:
             parsed = pd.to_numeric(pd.Series(wanted), errors="coerce")
             if parsed.isna().any():
                 bad = wanted[np.flatnonzero(parsed.isna().to_numpy())[0]]
-                raise TowersError(f"{what} id {bad!r} is not a number, but this run's {what} ids are numbers")
+                raise TowersError(f"{self.dir}: {what} id {bad!r} is not a number, but this run's {what} ids are "
+                                  "numbers; give the id as a whole number")
             wanted = parsed.to_numpy().astype(np.int64)
         else:
             wanted = wanted.astype(str).astype(object)
@@ -121,7 +148,7 @@ class Run:
         if (rows < 0).any():
             bad = wanted[np.flatnonzero(rows < 0)[0]]
             bad = bad.item() if isinstance(bad, np.generic) else bad
-            raise TowersError(f"unknown {what} id {bad!r}: not in this run's catalog ({len(ids_all)} {what}s); "
+            raise TowersError(f"{self.dir}: unknown {what} id {bad!r}: not in this run's catalog ({len(ids_all)} {what}s); "
                               "check the id, or retrain with this entity in the feature table")
         return torch.from_numpy(rows.astype(np.int64))
 
@@ -139,7 +166,7 @@ class Run:
     def recommend(self, user_ids, top: int = 10, exclude_known: bool = True) -> pd.DataFrame:
         """Top items per user (query_id, rank, item_id, score); known training positives excluded."""
         if top <= 0:
-            raise TowersError(f"--top must be a positive whole number, got {top}")
+            raise TowersError(f"{self.dir}: --top must be a positive whole number, got {top}; ask for at least 1 item")
         q_ids, q_vec, q_bias, meta = self.embeddings(self._query_side())
         i_ids, i_vec, i_bias, _ = self.embeddings("item")
         rows = self._rows(q_ids, pd.unique(np.asarray(list(user_ids), dtype=object)), "query" if self.item_item else "user")
@@ -173,7 +200,7 @@ class Run:
         user_item runs: cosine similarity of item embeddings. item_item runs: the trained pair score.
         """
         if top <= 0:
-            raise TowersError(f"--top must be a positive whole number, got {top}")
+            raise TowersError(f"{self.dir}: --top must be a positive whole number, got {top}; ask for at least 1 item")
         i_ids, i_vec, i_bias, meta = self.embeddings("item")
         rows = self._rows(i_ids, item_ids, "item")
         self_rows = torch.arange(len(rows))

@@ -51,17 +51,30 @@ def _parser() -> argparse.ArgumentParser:
     return p
 
 
+FRAME_FORMATS = (".csv", ".parquet", ".pq")
+
+
+def _check_frame_out(out: str) -> None:
+    """Refuse an --out we could not write, before any work is done."""
+    if Path(out).suffix.lower() not in FRAME_FORMATS:
+        raise TowersError(f"{out}: unsupported output format; use .csv or .parquet")
+
+
 def _write_frame(df, out: str) -> None:
     from .atomic import write_atomic
 
+    _check_frame_out(out)
     path = Path(out)
     if path.suffix.lower() == ".csv":
         write_atomic(path, lambda p: df.to_csv(p, index=False))
-    elif path.suffix.lower() in (".parquet", ".pq"):
-        write_atomic(path, lambda p: df.to_parquet(p, index=False))
     else:
-        raise TowersError(f"{path}: unsupported output format; use .csv or .parquet")
+        write_atomic(path, lambda p: df.to_parquet(p, index=False))
     print(f"wrote {len(df)} rows to {path}")
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:
+    # one `warning: ...` line on stderr, wherever the warning came from
+    print(f"warning: {message}", file=sys.stderr)
 
 
 def run(args: argparse.Namespace) -> int:
@@ -82,6 +95,8 @@ def run(args: argparse.Namespace) -> int:
 
     from .api import load
 
+    if args.command in ("recommend", "similar") and args.out:
+        _check_frame_out(args.out)
     run_ = load(args.run_dir)
     if args.command == "evaluate":
         from .runner import format_table
@@ -119,7 +134,7 @@ def main(argv: list[str] | None = None) -> int:
     args = _parser().parse_args(argv)
     with warnings.catch_warnings():
         warnings.simplefilter("always")
-        warnings.formatwarning = lambda msg, *a, **k: f"warning: {msg}\n"
+        warnings.showwarning = _show_warning  # restored when the block ends
         try:
             return run(args)
         except TowersError as exc:

@@ -297,7 +297,10 @@ def load(path: str | Path, overrides: dict | None = None) -> dict:
                 raw[section] = {}
             if isinstance(raw[section], dict):
                 raw[section].update(keys)
-    return resolve(raw, path.resolve().parent)
+    try:
+        return resolve(raw, path.resolve().parent)
+    except TowersError as exc:  # name the file, as every input error does
+        raise TowersError(f"{path}: {exc}") from None
 
 
 def dump(cfg: dict) -> str:

@@ -117,7 +117,7 @@ def prepare(cfg: dict) -> Prepared:
     item_side = SideTable(cfg["items"]["path"], cfg["items"]["id_column"], cfg["items"]["features"], cfg["items"]["missing_rows"])
     if item_item:
         both = np.concatenate([q_raw, c_raw]) if q_raw.dtype == c_raw.dtype else np.concatenate([q_raw.astype(str), c_raw.astype(str)]).astype(object)
-        c_ids, c_table, keep_both = item_side.catalog(both, ic["path"], ic["query_column"])
+        c_ids, c_table, keep_both = item_side.catalog(both, ic["path"], (ic["query_column"], ic["candidate_column"]))
         n = len(q_raw)
         keep = keep_both[:n] & keep_both[n:]
         q_ids, q_table = c_ids, c_table
@@ -173,8 +173,19 @@ def prepare(cfg: dict) -> Prepared:
     if item_item:
         warm[train.query] = True
     _warn_small_data(cfg, train, len(q_ids), len(c_ids), notes)
-    return Prepared(q_side, c_side, train, pairs.subset(split.valid), pairs.subset(split.test),
-                    pairs.subset(split.cold_test), split.cold_items, warm, item_item, notes)
+    prepared = Prepared(q_side, c_side, train, pairs.subset(split.valid), pairs.subset(split.test),
+                        pairs.subset(split.cold_test), split.cold_items, warm, item_item, notes)
+    _check_oracles(cfg, prepared)
+    return prepared
+
+
+def _check_oracles(cfg: dict, data: Prepared) -> None:
+    """Read the oracle files now, so a missing or incomplete one fails before training, not after it."""
+    if not cfg["evaluation"]["oracle_items"]:
+        return
+    from .runner import oracle_scorer  # the same loader the run uses after training (imported late: runner imports us)
+
+    oracle_scorer(cfg, data)
 
 
 def _warn_small_data(cfg: dict, train: Pairs, n_queries: int, n_items: int, notes: list[str]) -> None:

@@ -63,6 +63,10 @@ class NumericEncoder:
         self.std = std if std > 1e-12 else 1.0
         return self
 
+    def validate(self, series: pd.Series, path) -> None:
+        """Raise on a bad value anywhere in the column (rows count from 1 in the order given)."""
+        numeric_column(series, path, self.name)
+
     def transform(self, series: pd.Series, path) -> torch.Tensor:
         v = numeric_column(series, path, self.name)
         missing = np.isnan(v)
@@ -87,6 +91,9 @@ class CategoricalEncoder:
         self.vocab = vocab or []
         self._index = pd.Index(self.vocab, dtype=object)
         self.unknown_seen = 0
+
+    def validate(self, series: pd.Series, path) -> None:
+        """Any value is a category (unseen ones go to the unknown bucket): nothing to reject."""
 
     def fit(self, series: pd.Series, path) -> "CategoricalEncoder":
         if not self.hash_buckets:
@@ -151,9 +158,16 @@ class TokenEncoder:
             arr = pc.split_pattern(arr, pattern=self.separator)
             arr = pa.ListArray.from_arrays(arr.offsets, pc.utf8_trim_whitespace(arr.flatten()), mask=arr.is_null())
         elif not (pa.types.is_list(arr.type) or pa.types.is_large_list(arr.type)):
-            raise TowersError(f"{where(path, self.name, 1)}: holds {arr.type} values, not token lists; "
-                              f"store tags as a list column or as text like 'a{self.separator}b'")
+            present = np.flatnonzero(np.asarray(arr.is_valid())) if len(arr) else np.zeros(0, np.int64)
+            row = int(present[0]) if len(present) else 0
+            raise TowersError(f"{where(path, self.name, row + 1)}: holds {arr.type} values, not token lists; "
+                              f"store tags as a list column or as text like 'a{self.separator}b' "
+                              "(or declare the column categorical if each row holds one value)")
         return arr
+
+    def validate(self, series: pd.Series, path) -> None:
+        """Raise unless every row is a token list, delimited text or missing."""
+        self._flat(series, path)
 
     def _flat(self, series, path):
         """Flattened token text plus per-row offsets; a null row is an empty list."""
@@ -237,7 +251,7 @@ class VectorEncoder:
         try:
             nums = np.asarray(flat.cast(pa.float64()).to_numpy(zero_copy_only=False), dtype=np.float64)
         except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
-            raise TowersError(f"{where(path, self.name)}: vector entries are not numbers; store floats") from None
+            raise self._not_numbers(flat, missing, path) from None
         mat = np.zeros((len(values), self.length))
         mat[~missing] = nums.reshape(-1, self.length)
         bad = ~np.isfinite(mat).all(axis=1)
@@ -245,6 +259,30 @@ class VectorEncoder:
             row = int(np.flatnonzero(bad)[0])
             raise TowersError(f"{where(path, self.name, row + 1)}: vector holds NaN or infinite entries; replace them")
         return mat, missing
+
+    def _not_numbers(self, flat: pa.Array, missing: np.ndarray, path) -> TowersError:
+        """The error naming the first row whose vector holds an entry that is not a number."""
+        def is_number(v) -> bool:
+            if v is None:
+                return True  # a missing entry: reported as NaN by the finiteness check
+            try:
+                float(v)
+            except (TypeError, ValueError):
+                return False
+            return True
+
+        entries = flat.to_pylist()
+        first = next((j for j, v in enumerate(entries) if not is_number(v)), None)
+        if first is None:  # a type arrow cannot cast at all (structs, nested lists)
+            return TowersError(f"{where(path, self.name)}: vector entries of type {flat.type} are not numbers; "
+                               "store vectors as lists of floats")
+        row = int(np.flatnonzero(~missing)[first // self.length])
+        return TowersError(f"{where(path, self.name, row + 1)}: vector entries are not numbers ({entries[first]!r}); "
+                           "store vectors as lists of floats")
+
+    def validate(self, series: pd.Series, path) -> None:
+        """Raise unless every row is a vector of `length` finite numbers (or missing)."""
+        self._matrix(series, path)
 
     def fit(self, series: pd.Series, path) -> "VectorEncoder":
         mat, missing = self._matrix(series, path)

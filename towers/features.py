@@ -99,20 +99,44 @@ class SideTable:
             self.table = self.table[list(dict.fromkeys(cols))].reset_index(drop=True)
             self.ids = normalise_ids(self.table[id_column], path, id_column)
             check_unique_ids(self.ids, path, id_column)
+            # every feature value is checked here, in file order, so an error names the file's row
+            # (encoders are later fitted on the training entities' rows only, a subset in another order)
+            for spec in specs:
+                make_encoder(spec).validate(self.table[spec["name"]], path)
 
     @property
     def has_table(self) -> bool:
         return self.table is not None
 
-    def catalog(self, interaction_ids: np.ndarray, log_path, log_column) -> tuple[np.ndarray, pd.DataFrame | None, np.ndarray]:
+    def catalog(self, interaction_ids: np.ndarray, log_path, log_column: str | tuple[str, ...]
+                ) -> tuple[np.ndarray, pd.DataFrame | None, np.ndarray]:
         """The side's entity universe: table ids plus (per missing_rows) ids only seen in the log.
 
+        `log_column` names the log column the ids came from; a tuple of names means the ids are those
+        columns one after another, equally long (item_item mode), so errors name the right column and row.
         Returns (catalog ids, feature rows aligned with them or None, keep-mask over interaction ids).
         """
+        columns = (log_column,) if isinstance(log_column, str) else tuple(log_column)
+        per_column = max(1, len(interaction_ids) // len(columns))
+
+        def locate(i: int) -> str:
+            return where(log_path, columns[min(i // per_column, len(columns) - 1)], i % per_column + 1)
+
         if self.table is None:
             uniq = pd.unique(interaction_ids)
             uniq = np.sort(uniq) if uniq.dtype.kind in "iu" else np.asarray(sorted(uniq), dtype=object)
             return uniq, None, np.ones(len(interaction_ids), bool)
+        if self.ids.dtype.kind in "iu" and interaction_ids.dtype == object and self.missing_rows != "drop":
+            # text ids in the log against whole-number ids in the table: any id that is not a whole number
+            # can match no row, and (missing_rows: default) could not become a catalog entity of that type
+            parsed = pd.to_numeric(pd.Series(interaction_ids, dtype=object), errors="coerce").to_numpy(dtype=np.float64)
+            with np.errstate(invalid="ignore"):
+                text = ~(np.isfinite(parsed) & (parsed == np.round(parsed)))
+            if text.any():
+                row = int(np.flatnonzero(text)[0])
+                raise TowersError(
+                    f"{locate(row)}: mixed id types: {interaction_ids[row]!r} is text but the ids in {self.path} are "
+                    "whole numbers; store every id as a number (or every id as text in both files)")
         ids = align_id_types(interaction_ids, self.ids)
         known = pd.Index(self.ids).get_indexer(ids) >= 0
         keep = np.ones(len(ids), bool)
@@ -123,7 +147,7 @@ class SideTable:
                 row = int(np.flatnonzero(~known)[0])
                 bad = ids[row].item() if isinstance(ids[row], np.generic) else ids[row]
                 raise TowersError(
-                    f"{where(log_path, log_column, row + 1)}: id {bad!r} has no row in {self.path} "
+                    f"{locate(row)}: id {bad!r} has no row in {self.path} "
                     f"({len(missing)} such ids); add feature rows, or set missing_rows: drop or default")
             if self.missing_rows == "drop":
                 keep = known

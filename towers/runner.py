@@ -30,10 +30,10 @@ MODEL_ORDER = ("popularity", "linear_factor", "towers", "oracle")
 
 
 def check_out_dir(out: Path, overwrite: bool) -> None:
-    if out.exists() and any(out.iterdir()) and not overwrite:
-        raise TowersError(f"{out}: run folder already exists; choose another --out or pass --overwrite to replace it")
     if out.exists() and not out.is_dir():
         raise TowersError(f"{out}: exists and is not a folder; choose another --out")
+    if out.exists() and any(out.iterdir()) and not overwrite:
+        raise TowersError(f"{out}: run folder already exists; choose another --out or pass --overwrite to replace it")
 
 
 def apply_threads(cfg: dict) -> None:

@@ -38,9 +38,21 @@ def read_table(path: str | Path, columns: list[str] | None = None) -> pd.DataFra
             if columns is not None:
                 require_columns(schema_names, columns, path)
             df = pq.read_table(path, columns=columns).to_pandas()
+            # a frame saved with its id as the index (df.set_index("id").to_parquet()): the id is a column here
+            named = [n for n in df.index.names if n is not None]
+            if named:
+                df = df.reset_index(level=named)
+            if not isinstance(df.index, pd.RangeIndex):
+                df = df.reset_index(drop=True)
         else:
             df = pd.read_csv(path, sep="\t" if suffix == ".tsv" else ",", encoding="utf-8-sig",
                              skipinitialspace=False, low_memory=False)
+            if not isinstance(df.index, pd.RangeIndex):
+                # pandas silently takes the first field as an index when the rows have more fields than the
+                # header, shifting every column one place; refuse rather than read the wrong values
+                raise TowersError(f"{where(path, row=1)}: the data rows have more fields than the header row "
+                                  f"({len(df.columns)} names); add the missing column names or remove trailing "
+                                  "delimiters")
     except TowersError:
         raise
     except (pd.errors.EmptyDataError,):
@@ -54,11 +66,19 @@ def read_table(path: str | Path, columns: list[str] | None = None) -> pd.DataFra
             raise TowersError(f"{path}: cannot be read as parquet ({first}); re-export the table") from None
         raise
     df.columns = [str(c).strip() for c in df.columns]
+    repeated = df.columns[df.columns.duplicated()]
+    if len(repeated):
+        raise TowersError(f"{where(path, shown(repeated[0]))}: the header names this column twice; rename one of them")
     if columns is not None:
         require_columns(df.columns, columns, path)
     if len(df) == 0:
         raise TowersError(f"{path}: the table has a header but no rows; export the data rows too")
     return df
+
+
+def shown(name: str) -> str:
+    """A column name fit for a one-line message: line breaks and other control characters escaped."""
+    return name if name.isprintable() else repr(name)[1:-1]
 
 
 def require_columns(present, wanted, path) -> None:
@@ -67,8 +87,9 @@ def require_columns(present, wanted, path) -> None:
     for col in wanted:
         if col not in present:
             close = difflib.get_close_matches(col, present, n=3, cutoff=0.5)
-            hint = f"did you mean {', '.join(repr(c) for c in close)}?" if close else f"columns present: {', '.join(present[:12])}"
-            raise TowersError(f"{where(path, col)}: no such column; {hint} (fix the config or the file)")
+            hint = (f"did you mean {', '.join(repr(c) for c in close)}?" if close
+                    else f"columns present: {', '.join(shown(c) for c in present[:12])}")
+            raise TowersError(f"{where(path, shown(str(col)))}: no such column; {hint} (fix the config or the file)")
 
 
 def normalise_ids(series: pd.Series, path, column) -> np.ndarray:
@@ -107,10 +128,16 @@ def align_id_types(ids: np.ndarray, reference: np.ndarray) -> np.ndarray:
     if reference.dtype == object:
         return ids.astype(str).astype(object)
     # reference integers, ids text: parse where possible; unparsable text stays unmatched.
-    parsed = pd.to_numeric(pd.Series(ids), errors="coerce")
+    text = pd.Series(ids, dtype=object).astype(str).str.strip()
     out = np.full(len(ids), np.iinfo(np.int64).min, dtype=np.int64)
-    ok = parsed.notna().to_numpy()
-    out[ok] = parsed[ok].to_numpy().astype(np.int64)
+    digits = text.str.fullmatch(r"[+-]?\d{1,18}").to_numpy(dtype=bool)  # parsed exactly, no float rounding
+    out[digits] = text[digits].astype(np.int64).to_numpy()
+    rest = np.flatnonzero(~digits)
+    parsed = pd.to_numeric(text.iloc[rest], errors="coerce").to_numpy(dtype=np.float64)
+    with np.errstate(invalid="ignore"):
+        # '17.0' matches id 17; '1.5' must not be truncated onto id 1
+        ok = np.isfinite(parsed) & (parsed == np.round(parsed)) & (np.abs(parsed) < 2.0 ** 63)
+    out[rest[ok]] = parsed[ok].astype(np.int64)
     return out
 
 
