@@ -687,3 +687,12 @@ def test_k_larger_than_the_data_supports_warns_and_trains(store, tmp_path, capsy
     warn = [line for line in err.splitlines() if line.startswith("warning: ")]
     assert len(warn) == 1, err
     assert "model.dim = 250" in warn[0] and "min(#queries, #items) = 200" in warn[0]
+
+
+def test_usage_mistakes_are_one_line(capsys):
+    # argparse's own two-line usage message is replaced by the one-line `error:` form
+    with pytest.raises(SystemExit) as stop:
+        cli(["recommend", "somewhere", "--users", "1", "--top", "abc"])
+    assert stop.value.code == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("error: towers recommend:") and "--top" in err[0]

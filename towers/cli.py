@@ -11,9 +11,16 @@ from pathlib import Path
 from .errors import TowersError
 
 
+class _OneLineParser(argparse.ArgumentParser):
+    """Usage mistakes get the same one-line `error:` form (exit 2) as every other user error."""
+
+    def error(self, message: str):
+        self.exit(2, f"error: {self.prog}: {message}; see `{self.prog} --help`\n")
+
+
 def _parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(prog="towers", description="Train two-tower embedding models on a CPU.")
-    sub = p.add_subparsers(dest="command", required=True)
+    p = _OneLineParser(prog="towers", description="Train two-tower embedding models on a CPU.")
+    sub = p.add_subparsers(dest="command", required=True, parser_class=_OneLineParser)
 
     t = sub.add_parser("train", help="train towers and baselines from a YAML config, evaluate, export")
     t.add_argument("config", help="YAML config file")
