@@ -67,6 +67,7 @@ class Prepared:
     warm_items: torch.Tensor  # bool (n_candidates,): candidates with training pairs
     item_item: bool
     notes: list[str]
+    oracle: object = None  # evaluate.Scorer of the planted truth, when the config names oracle files
 
 
 def read_interactions(cfg: dict):
@@ -183,9 +184,9 @@ def _check_oracles(cfg: dict, data: Prepared) -> None:
     """Read the oracle files now, so a missing or incomplete one fails before training, not after it."""
     if not cfg["evaluation"]["oracle_items"]:
         return
-    from .runner import oracle_scorer  # the same loader the run uses after training (imported late: runner imports us)
+    from .runner import oracle_scorer  # the loader api.evaluate uses too (imported late: runner imports us)
 
-    oracle_scorer(cfg, data)
+    data.oracle = oracle_scorer(cfg, data)
 
 
 def _warn_small_data(cfg: dict, train: Pairs, n_queries: int, n_items: int, notes: list[str]) -> None:

@@ -233,9 +233,8 @@ def train_run(config_path: str | Path, out_dir: str | Path, overwrite: bool = Fa
     except TrainingDiverged:
         shutil.rmtree(partial, ignore_errors=True)  # a diverged run leaves nothing behind
         raise
-    oracle = oracle_scorer(cfg, data)
-    if oracle is not None:
-        scorers["oracle"] = oracle
+    if data.oracle is not None:
+        scorers["oracle"] = data.oracle
     metrics = evaluate_slices(scorers, data, cfg)
     _save_model(partial, model, cfg["model"], data, cfg, use_features=True)
     files = export_run(partial, model, data, cfg, "towers")
