@@ -134,16 +134,19 @@ class Run:
 
     # ---- retrieval ------------------------------------------------------------------------------
     def _rows(self, ids_all: np.ndarray, wanted, what: str) -> torch.Tensor:
-        wanted = np.asarray(list(wanted), dtype=object)
+        """Catalog rows of requested ids, parsed the same way as log ids are matched to tables."""
+        values = list(wanted)
+        if all(isinstance(v, (int, np.integer)) and not isinstance(v, bool) for v in values):
+            given = np.asarray(values, dtype=np.int64)
+        else:
+            given = np.asarray([str(v) for v in values], dtype=object)
+        wanted = align_id_types(given, ids_all)
         if ids_all.dtype.kind in "iu":
-            parsed = pd.to_numeric(pd.Series(wanted), errors="coerce")
-            if parsed.isna().any():
-                bad = wanted[np.flatnonzero(parsed.isna().to_numpy())[0]]
+            unparsed = wanted == np.iinfo(np.int64).min  # align_id_types' mark for text that is no whole number
+            if unparsed.any():
+                bad = given[np.flatnonzero(unparsed)[0]]
                 raise TowersError(f"{self.dir}: {what} id {bad!r} is not a number, but this run's {what} ids are "
                                   "numbers; give the id as a whole number")
-            wanted = parsed.to_numpy().astype(np.int64)
-        else:
-            wanted = wanted.astype(str).astype(object)
         rows = pd.Index(ids_all).get_indexer(wanted)
         if (rows < 0).any():
             bad = wanted[np.flatnonzero(rows < 0)[0]]
