@@ -5,7 +5,6 @@ A resumed run must reach exactly the weights of an uninterrupted run with the sa
 
 from __future__ import annotations
 
-import os
 import random
 import signal
 import subprocess

@@ -5,6 +5,7 @@ The CLI calls exactly these functions, so both give the same results.
 
 from __future__ import annotations
 
+import re
 import warnings
 import zipfile
 from pathlib import Path
@@ -16,18 +17,33 @@ import torch
 import yaml
 
 from . import config as C
+from .align import align_run  # noqa: F401  (towers.api.align_run: the same as `towers align`)
 from .bundle import load_bundle, load_payload
 from .dataset import Pairs, read_interactions
 from .errors import TowersError
 from .evaluate import Scorer, popularity_scorer
 from .export import read_embeddings
-from .features import SideEncoders, block_len, slice_block
+from .context import AveragedOverContexts, ContextEncoders, vectors_with_context
+from .features import SideEncoders
 from .retrieval import top_n
 from .runner import evaluate_slices, oracle_scorer
-from .tables import align_id_types, normalise_ids, require_columns
+from .tables import align_id_types, normalise_ids, read_table, require_columns
 from .training import EMBED_CHUNK
 
 _NO_MATCH = np.iinfo(np.int64).min  # what align_id_types gives text that is not a whole number
+
+
+def _rows_in_file(exc: TowersError, source, start: int) -> TowersError:
+    """An error about row r of a piece that starts at row `start` of the file, renumbered to the file's row."""
+    if not start:
+        return exc
+    text = str(exc)
+    pattern = re.compile(re.escape(str(source)) + r"(, column '.*?')?, row (\d+)")
+    found = pattern.match(text)
+    if not found:
+        return exc
+    head = text[:found.start(2)]
+    return TowersError(f"{head}{int(found.group(2)) + start}{text[found.end(2):]}")
 
 
 def _check_archive(path: Path, kind: str) -> None:
@@ -37,7 +53,7 @@ def _check_archive(path: Path, kind: str) -> None:
 
 
 def _unpack(d: dict) -> Pairs:
-    return Pairs(d["query"], d["candidate"], d.get("target"), d.get("weight"))
+    return Pairs(d["query"], d["candidate"], d.get("target"), d.get("weight"), context=d.get("context"))
 
 
 class Run:
@@ -92,45 +108,168 @@ class Run:
 
     # ---- embedding unseen entities ----------------------------------------------------------------
     def _embed(self, df: pd.DataFrame, encoders: SideEncoders, tower, bias_table, source: str) -> pd.DataFrame:
-        if encoders.id_column is None:
-            raise TowersError(f"{source}: this run has no feature table for that side, so new entities cannot be "
-                              "embedded from features; train with a feature table")
+        self._check_embeddable(encoders, source)
         require_columns(df.columns, [encoders.id_column] + [e.name for e in encoders.encoders], source)
         if len(df) == 0:
             raise TowersError(f"{source}: no rows to embed")
-        ids = normalise_ids(df[encoders.id_column], source, encoders.id_column)
-        lookup = align_id_types(ids, encoders.id_encoder.ids) if len(encoders.id_encoder.ids) else ids
-        if lookup.dtype == ids.dtype or not (lookup == _NO_MATCH).any():
-            ids = lookup  # the run's id type, where every id converts
-        # else: text ids that are no whole numbers are new entities; they keep their own text as id
-        block = encoders.encode(lookup, df.reset_index(drop=True), source)
-        unknown = encoders.unknown_counts()
-        if unknown:
-            listed = ", ".join(f"{k}: {v}" for k, v in unknown.items())
-            warnings.warn(f"{source}: values unseen in training were mapped to the unknown bucket ({listed})", stacklevel=3)
-        tower.eval()
-        n = block_len(block)
-        with torch.no_grad():
-            vecs = torch.cat([tower(slice_block(block, i, min(n, i + EMBED_CHUNK))) for i in range(0, n, EMBED_CHUNK)])
-            bias = bias_table(block["id"]).squeeze(1) if bias_table is not None else None
+        ids, lookup = self._embed_ids(df[encoders.id_column], encoders, source)
+        frame = df.reset_index(drop=True)
+        pieces = ((i, frame.iloc[i:i + EMBED_CHUNK]) for i in range(0, len(frame), EMBED_CHUNK))
+        parts = list(self._embed_pieces(pieces, lookup, encoders, tower, bias_table, source))
+        vecs = torch.cat([v for _, v, _ in parts])
+        bias = torch.cat([b for _, _, b in parts]) if bias_table is not None else None
         out = pd.DataFrame({"id": ids, "embedding": list(vecs.numpy())})
         if bias is not None:
             out["bias"] = bias.numpy()
         out.attrs["vectors"], out.attrs["bias"] = vecs, bias
         return out
 
-    def embed_items(self, df: pd.DataFrame, source: str = "items") -> pd.DataFrame:
-        """Embed item rows (id column plus feature columns) with the candidate tower."""
-        m = self.bundle.model
-        return self._embed(df, self.bundle.candidate_encoders, m.candidate_tower,
-                           m.candidate_bias if m.use_biases else None, source)
+    @staticmethod
+    def _check_embeddable(encoders: SideEncoders, source) -> None:
+        if encoders.id_column is None:
+            raise TowersError(f"{source}: this run has no feature table for that side, so new entities cannot be "
+                              "embedded from features; train with a feature table")
 
-    def embed_users(self, df: pd.DataFrame, source: str = "users") -> pd.DataFrame:
-        """Embed user rows (id column plus feature columns) with the query tower."""
+    @staticmethod
+    def _embed_ids(column: pd.Series, encoders: SideEncoders, source) -> tuple[np.ndarray, np.ndarray]:
+        """(ids as they are written out, ids as the run's id encoder looks them up) for a whole id column."""
+        ids = normalise_ids(column, source, encoders.id_column)
+        lookup = align_id_types(ids, encoders.id_encoder.ids) if len(encoders.id_encoder.ids) else ids
+        if lookup.dtype == ids.dtype or not (lookup == _NO_MATCH).any():
+            ids = lookup  # the run's id type, where every id converts
+        # else: text ids that are no whole numbers are new entities; they keep their own text as id
+        return ids, lookup
+
+    @staticmethod
+    def _embed_pieces(pieces, lookup: np.ndarray, encoders: SideEncoders, tower, bias_table, source):
+        """Yield (first row, vectors, bias or None) for each (first row, feature frame) piece of a table.
+
+        Pieces are encoded and embedded one at a time, so memory holds one piece's encoded block,
+        whatever the table's length. Counts of values unseen in training are summed over the pieces
+        and reported in one warning at the end.
+        """
+        unknown: dict[str, int] = {}
+        tower.eval()
+        for start, frame in pieces:
+            try:
+                block = encoders.encode(lookup[start:start + len(frame)], frame.reset_index(drop=True), source)
+            except TowersError as exc:
+                raise _rows_in_file(exc, source, start) from None
+            for name, count in encoders.unknown_counts().items():
+                unknown[name] = unknown.get(name, 0) + count
+            with torch.no_grad():
+                vecs = tower(block)
+                bias = bias_table(block["id"]).squeeze(1) if bias_table is not None else None
+            yield start, vecs, bias
+        if unknown:
+            listed = ", ".join(f"{k}: {v}" for k, v in unknown.items())
+            warnings.warn(f"{source}: values unseen in training were mapped to the unknown bucket ({listed})", stacklevel=4)
+
+    def _side_parts(self, side: str):
+        """(encoders, tower, bias table) that embed new rows of one side: 'items' or 'users'."""
+        m = self.bundle.model
+        if side == "items":
+            return self.bundle.candidate_encoders, m.candidate_tower, m.candidate_bias if m.use_biases else None
         if self.item_item:
             raise TowersError("this run is item_item: it has no user tower; use embed_items")
-        m = self.bundle.model
-        return self._embed(df, self.bundle.query_encoders, m.query_tower, m.query_bias if m.use_biases else None, source)
+        tower = m.query_tower
+        if self.context is not None:
+            tower = AveragedOverContexts(m.query_tower, self.bundle.extra["context_sample"])
+        return self.bundle.query_encoders, tower, m.query_bias if m.use_biases else None
+
+    def embed_file(self, source: str | Path, out: str | Path, side: str = "items") -> int:
+        """Embed every row of a feature table file into an embeddings parquet; returns the row count.
+
+        A parquet table is read, encoded, embedded and written EMBED_CHUNK rows at a time, so memory
+        stays bounded however many rows it has (a CSV table is read whole first). The output is
+        written atomically, in the format of the run's own embeddings files. `side`: items or users.
+        """
+        import pyarrow.parquet as pq
+
+        from .atomic import write_atomic
+        from .export import embeddings_table
+        from .tables import read_table_chunks
+
+        encoders, tower, bias_table = self._side_parts(side)
+        self._check_embeddable(encoders, source)
+        names = [e.name for e in encoders.encoders]
+        meta = dict(self.embeddings("item")[3], side="item" if side == "items" else "user", source=str(source))
+        if Path(source).suffix.lower() not in (".parquet", ".pq"):
+            df = read_table(source)
+            result = self._embed(df, encoders, tower, bias_table, source)
+            from .export import write_embeddings
+
+            write_embeddings(out, result["id"].to_numpy(), result.attrs["vectors"], result.attrs["bias"], meta)
+            return len(result)
+        ids, lookup = self._embed_ids(read_table(source, columns=[encoders.id_column])[encoders.id_column],
+                                      encoders, source)
+        n = len(ids)
+        if names:
+            pieces = read_table_chunks(source, names, EMBED_CHUNK)
+        else:
+            pieces = ((i, pd.DataFrame(index=pd.RangeIndex(min(n, i + EMBED_CHUNK) - i))) for i in range(0, n, EMBED_CHUNK))
+
+        def write(path: Path) -> None:
+            writer = None
+            try:
+                for start, vecs, bias in self._embed_pieces(pieces, lookup, encoders, tower, bias_table, source):
+                    table = embeddings_table(ids[start:start + len(vecs)], vecs, bias, meta)
+                    if writer is None:
+                        writer = pq.ParquetWriter(path, table.schema)
+                    writer.write_table(table)
+            finally:
+                if writer is not None:
+                    writer.close()
+
+        write_atomic(out, write)
+        return n
+
+    def embed_items(self, df: pd.DataFrame, source: str = "items") -> pd.DataFrame:
+        """Embed item rows (id column plus feature columns) with the candidate tower."""
+        return self._embed(df, *self._side_parts("items"), source)
+
+    def embed_users(self, df: pd.DataFrame, source: str = "users") -> pd.DataFrame:
+        """Embed user rows (id column plus feature columns) with the query tower.
+
+        A run with context columns gives each user's vector averaged over the training context sample
+        saved in its bundle, as user_embeddings.parquet does.
+        """
+        return self._embed(df, *self._side_parts("users"), source)
+
+    # ---- context ----------------------------------------------------------------------------------
+    @property
+    def context(self) -> ContextEncoders | None:
+        """Encoders of the run's context columns, or None when its query tower reads none."""
+        state = self.bundle.extra.get("context")
+        return ContextEncoders.from_state(state) if state else None
+
+    def _user_block(self, rows: torch.Tensor) -> dict:
+        """Encoded features of catalog users (rows), read from the run's user feature table."""
+        enc = self.bundle.query_encoders
+        ids = self.embeddings(self._query_side())[0][rows.numpy()]
+        if not enc.encoders:
+            return {"id": enc.id_encoder.transform(ids)}
+        ucfg = self.config["users"]
+        table = read_table(ucfg["path"])
+        require_columns(table.columns, [ucfg["id_column"]] + [e.name for e in enc.encoders], ucfg["path"])
+        t_ids = align_id_types(normalise_ids(table[ucfg["id_column"]], ucfg["path"], ucfg["id_column"]), ids)
+        at = pd.Index(t_ids).get_indexer(ids)
+        if (at < 0).any():
+            bad = ids[np.flatnonzero(at < 0)[0]]
+            raise TowersError(f"{ucfg['path']}, column '{ucfg['id_column']}': user {bad!r} has no row any more; "
+                              "restore the user feature table the run was trained with")
+        rows_df = table.iloc[at].reset_index(drop=True)
+        return enc.encode(ids, rows_df, ucfg["path"])
+
+    def _context_block(self, context: dict, n: int) -> dict:
+        """One context (column -> value) encoded n times; columns not given count as missing."""
+        enc = self.context
+        unknown = [k for k in context if k not in enc.names]
+        if unknown:
+            raise TowersError(f"{self.dir}: unknown context column {unknown[0]!r}; this run's context columns are "
+                              f"{', '.join(enc.names)}")
+        frame = pd.DataFrame({name: pd.Series([context.get(name)] * n, dtype=object) for name in enc.names})
+        return enc.encode(frame, "--context")
 
     # ---- retrieval ------------------------------------------------------------------------------
     def _rows(self, ids_all: np.ndarray, wanted, what: str) -> torch.Tensor:
@@ -166,13 +305,24 @@ class Run:
             "score": scores.numpy().reshape(-1)[valid],
         })
 
-    def recommend(self, user_ids, top: int = 10, exclude_known: bool = True) -> pd.DataFrame:
-        """Top items per user (query_id, rank, item_id, score); known training positives excluded."""
+    def recommend(self, user_ids, top: int = 10, exclude_known: bool = True, context: dict | None = None) -> pd.DataFrame:
+        """Top items per user (query_id, rank, item_id, score); known training positives excluded.
+
+        context: {column: value} for runs with context columns; without it the users' exported
+        vectors (averaged over the training context mix) are used.
+        """
         if top <= 0:
             raise TowersError(f"{self.dir}: --top must be a positive whole number, got {top}; ask for at least 1 item")
+        if context and self.context is None:
+            raise TowersError(f"{self.dir}: this run was trained without context columns; drop --context")
         q_ids, q_vec, q_bias, meta = self.embeddings(self._query_side())
         i_ids, i_vec, i_bias, _ = self.embeddings("item")
         rows = self._rows(q_ids, pd.unique(np.asarray(list(user_ids), dtype=object)), "query" if self.item_item else "user")
+        if context:
+            tower = self.bundle.model.query_tower
+            with torch.no_grad():
+                q_vec = torch.zeros(len(q_ids), q_vec.shape[1])
+                q_vec[rows] = tower(self._user_block(rows) | self._context_block(context, len(rows)))
         scale = 1.0 / float(meta.get("temperature", 1.0))
         ex_r = ex_c = None
         if exclude_known:
@@ -240,7 +390,8 @@ class Run:
         if interactions is not None:
             cfg = C.resolve({**{k: dict(v) for k, v in cfg.items()}, "interactions": {**cfg["interactions"], "path": str(interactions)}},
                             Path.cwd())
-            q, c, target, weight, _ = read_interactions(cfg)
+            log = read_interactions(cfg)
+            q, c, target, weight = log.query, log.candidate, log.target, log.weight
             qr = pd.Index(query_ids).get_indexer(align_id_types(q, query_ids))
             cr = pd.Index(item_ids).get_indexer(align_id_types(c, item_ids))
             ok = (qr >= 0) & (cr >= 0)
@@ -251,14 +402,17 @@ class Run:
             f32 = lambda a: None if a is None else torch.from_numpy(a[ok].astype(np.float32))  # noqa: E731
             new = Pairs(torch.from_numpy(qr[ok].astype(np.int64)), torch.from_numpy(cr[ok].astype(np.int64)),
                         f32(target), f32(weight))
+            if log.context is not None and self.context is not None:
+                new.context = self.context.encode(log.context.iloc[np.flatnonzero(ok)], interactions)
             warm = data.warm_items[new.candidate]
             data.test = new.subset(torch.nonzero(warm).flatten())
             data.cold_test = new.subset(torch.nonzero(~warm).flatten())
             data.cold_items = ~data.warm_items
         explicit = cfg["training"]["loss"] == "squared"
         scorers = {"popularity": popularity_scorer(data.train, len(query_ids), len(item_ids), explicit, data.item_item)}
-        if (self.dir / "linear_factor" / "item_embeddings.parquet").is_file():
-            scorers["linear_factor"] = self._scorer("linear_factor")
+        for folder in ("linear_factor", "bilinear"):
+            if (self.dir / folder / "item_embeddings.parquet").is_file():
+                scorers[folder] = self._scorer(folder)
         scorers["towers"] = self._scorer("")
         try:
             oracle = oracle_scorer(cfg, data)
@@ -267,7 +421,15 @@ class Run:
             oracle = None
         if oracle is not None:
             scorers["oracle"] = oracle
-        return {"metrics": evaluate_slices(scorers, data, cfg), "notes": notes}
+        event_vectors = {}
+        if self.context is not None:
+            block = self._user_block(torch.arange(len(query_ids)))
+            towers = {"towers": self.bundle.model.query_tower}
+            if "bilinear" in scorers:
+                towers["bilinear"] = load_bundle(self.dir / "bilinear" / "model.pt").model.query_tower
+            for name, tower in towers.items():
+                event_vectors[name] = (lambda t: lambda p: vectors_with_context(t, block, p.query, p.context))(tower)
+        return {"metrics": evaluate_slices(scorers, data, cfg, event_vectors), "notes": notes}
 
 
 def load(run_dir: str | Path) -> Run:
@@ -275,8 +437,9 @@ def load(run_dir: str | Path) -> Run:
     return Run(run_dir)
 
 
-def train(config_path: str | Path, out_dir: str | Path, overwrite: bool = False, resume: bool = False) -> dict:
+def train(config_path: str | Path, out_dir: str | Path, overwrite: bool = False, resume: bool = False,
+          init_from: str | Path | None = None) -> dict:
     """Train a run from a YAML config (same as `towers train`); returns metrics, folder and table."""
     from .runner import train_run
 
-    return train_run(config_path, out_dir, overwrite=overwrite, resume=resume)
+    return train_run(config_path, out_dir, overwrite=overwrite, resume=resume, init_from=init_from)

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import sys
 import warnings
 from pathlib import Path
@@ -27,6 +28,9 @@ def _parser() -> argparse.ArgumentParser:
     t.add_argument("--out", required=True, help="run folder to write")
     t.add_argument("--overwrite", action="store_true", help="replace an existing run folder")
     t.add_argument("--resume", action="store_true", help="continue an interrupted run (RUN_DIR.partial) exactly")
+    t.add_argument("--init-from", metavar="RUN_DIR", help="start from an earlier run's weights and encoders (new logs)")
+    t.add_argument("--workers", type=int, default=1, metavar="N",
+                   help="train in N data-parallel processes on this machine (through torchrun; default 1)")
 
     e = sub.add_parser("evaluate", help="re-score a run on its held-out pairs or on a new interaction file")
     e.add_argument("run_dir")
@@ -44,6 +48,8 @@ def _parser() -> argparse.ArgumentParser:
     r.add_argument("run_dir")
     r.add_argument("--users", nargs="+", required=True, help="user ids")
     r.add_argument("--top", type=int, default=10, help="how many items per user (default 10)")
+    r.add_argument("--context", nargs="+", metavar="COLUMN=VALUE",
+                   help="the event's context for runs trained with interactions.context, e.g. channel=app hour=20")
     r.add_argument("--out", help="write CSV or parquet instead of printing")
 
     s = sub.add_parser("similar", help="most similar items for items")
@@ -51,6 +57,25 @@ def _parser() -> argparse.ArgumentParser:
     s.add_argument("--items", nargs="+", required=True, help="item ids")
     s.add_argument("--top", type=int, default=10, help="how many items per item (default 10)")
     s.add_argument("--out", help="write CSV or parquet instead of printing")
+
+    a = sub.add_parser("align", help="rotate a retrained run onto an older run's vectors; every score stays the same")
+    a.add_argument("run_dir", help="the new run")
+    a.add_argument("--reference", required=True, help="the older run whose vectors to match")
+    a.add_argument("--out", required=True, help="aligned run folder to write")
+    a.add_argument("--overwrite", action="store_true", help="replace an existing aligned run folder")
+
+    rp = sub.add_parser("report", help="rewrite report.html (curves, metrics, spectrum, item map, neighbours) for a run")
+    rp.add_argument("run_dir")
+
+    w = sub.add_parser("sweep", help="train a grid of k by one penalty; choose by the validation metric")
+    w.add_argument("config", help="YAML config file")
+    w.add_argument("--out", required=True, help="sweep folder (cells/, sweep.csv, plots, best_config.yaml)")
+    w.add_argument("--dims", nargs="+", type=int, required=True, help="values of k (model.dim), e.g. 8 16 32 64")
+    w.add_argument("--penalties", nargs="+", type=float, required=True, help="values of the penalty, e.g. 1e-6 1e-5 1e-4")
+    w.add_argument("--penalty-key", default="training.weight_decay", choices=("training.weight_decay", "training.id_l2"),
+                   help="which penalty the grid varies (default training.weight_decay)")
+    w.add_argument("--jobs", type=int, default=1, help="cells trained at once, each on cores/jobs threads (default 1)")
+    w.add_argument("--baseline", action="store_true", help="also train the linear factor model in every cell")
 
     d = sub.add_parser("demo-data", help="generate the fictional hardware-and-garden store data")
     d.add_argument("--out", required=True, help="folder to write the demo tables into")
@@ -79,6 +104,19 @@ def _write_frame(df, out: str) -> None:
     print(f"wrote {len(df)} rows to {path}")
 
 
+def _context_pairs(items: list[str] | None) -> dict | None:
+    """--context COLUMN=VALUE ... as a mapping."""
+    if not items:
+        return None
+    out = {}
+    for item in items:
+        name, sep, value = item.partition("=")
+        if not sep or not name:
+            raise TowersError(f"--context {item!r}: expected COLUMN=VALUE, e.g. channel=app")
+        out[name] = value
+    return out
+
+
 def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:
     # one `warning: ...` line on stderr, wherever the warning came from
     print(f"warning: {message}", file=sys.stderr)
@@ -88,9 +126,16 @@ def run(args: argparse.Namespace) -> int:
     if args.command == "train":
         from .runner import train_run
 
-        result = train_run(args.config, args.out, overwrite=args.overwrite, resume=args.resume)
-        print(result["table"], end="")
-        print(f"run folder: {result['out']}")
+        if args.workers != 1 and "WORLD_SIZE" not in os.environ:
+            from .distributed import launch_workers
+
+            argv = ["train", args.config, "--out", args.out] + ["--overwrite"] * args.overwrite + \
+                ["--resume"] * args.resume + (["--init-from", args.init_from] if args.init_from else [])
+            return launch_workers(args.workers, argv)
+        result = train_run(args.config, args.out, overwrite=args.overwrite, resume=args.resume, init_from=args.init_from)
+        if result["metrics"] is not None:  # process 0 of a data-parallel run, or a plain run
+            print(result["table"], end="")
+            print(f"run folder: {result['out']}")
         return 0
     if args.command == "demo-data":
         from .demo_store import generate_store
@@ -98,6 +143,28 @@ def run(args: argparse.Namespace) -> int:
         files = generate_store(args.out, seed=args.seed)
         for name, path in files.items():
             print(f"{name}: {path}")
+        return 0
+
+    if args.command == "sweep":
+        from .sweep import run_sweep
+
+        result = run_sweep(args.config, args.out, args.dims, args.penalties, args.penalty_key, args.jobs, args.baseline)
+        print(result["table"], end="")
+        best = result["best"]
+        print(f"chosen: model.dim {best['dim']}, {args.penalty_key} {best['penalty']:g}; "
+              f"config: {result['files']['best_config.yaml']}")
+        return 0
+    if args.command == "report":
+        from .report import write_report
+
+        print(f"wrote {write_report(args.run_dir)}")
+        return 0
+    if args.command == "align":
+        from .align import align_run, format_drift
+
+        record = align_run(args.run_dir, args.reference, args.out, overwrite=args.overwrite)
+        print(format_drift(record), end="")
+        print(f"aligned run: {args.out}")
         return 0
 
     from .api import load
@@ -114,21 +181,15 @@ def run(args: argparse.Namespace) -> int:
         print(json.dumps(result["metrics"], indent=2) if args.json else format_table(result["metrics"]), end="\n" if args.json else "")
         return 0
     if args.command == "embed":
-        from .export import write_embeddings
-        from .tables import read_table
-
         source = args.items or args.users
         if Path(args.out).suffix.lower() not in (".parquet", ".pq"):
             raise TowersError(f"{args.out}: embeddings are written as parquet; give an --out ending in .parquet")
-        df = read_table(source)
-        out = run_.embed_items(df, source) if args.items else run_.embed_users(df, source)
-        _, _, _, meta = run_.embeddings("item")
-        meta = dict(meta, side="item" if args.items else "user", source=str(source))
-        write_embeddings(args.out, out["id"].to_numpy(), out.attrs["vectors"], out.attrs["bias"], meta)
-        print(f"embedded {len(out)} {'items' if args.items else 'users'} into {args.out}")
+        count = run_.embed_file(source, args.out, "items" if args.items else "users")
+        print(f"embedded {count} {'items' if args.items else 'users'} into {args.out}")
         return 0
     if args.command in ("recommend", "similar"):
-        frame = run_.recommend(args.users, args.top) if args.command == "recommend" else run_.similar(args.items, args.top)
+        frame = run_.recommend(args.users, args.top, context=_context_pairs(args.context)) \
+            if args.command == "recommend" else run_.similar(args.items, args.top)
         if args.out:
             _write_frame(frame, args.out)
         else:

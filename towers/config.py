@@ -71,6 +71,8 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "target_column": Key("str", None, "rating, 0/1 label or count; absent means every row is a positive event", nullable=True),
         "weight_column": Key("str", None, "non-negative weight of each row in the loss", nullable=True),
         "time_column": Key("str", None, "event time; enables the time split", nullable=True),
+        "context": Key("features", [], "columns of the log describing each event (hour, channel, device ...), "
+                       "numeric or categorical, fed to the query tower beside the user's features"),
     },
     "users": SIDE_KEYS,
     "items": SIDE_KEYS,
@@ -91,12 +93,15 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "shared_tower": Key("bool", False, "item_item mode: one tower embeds both sides"),
     },
     "training": {
-        "loss": Key("choice", "logistic", "squared (ratings) or logistic (events with sampled negatives, or 0/1 targets)",
-                    choices=("squared", "logistic")),
+        "loss": Key("choice", "logistic", "squared (ratings), logistic (events with sampled negatives, or 0/1 targets) "
+                    "or softmax (events; each pair's item against the other items in its batch)",
+                    choices=("squared", "logistic", "softmax")),
         "negatives": Key("int", 4, "logistic: sampled negatives per positive", low=0),
         "negative_sampling": Key("choice", "popularity", "uniform over training items, or popularity^alpha",
                                  choices=("uniform", "popularity")),
         "popularity_exponent": Key("float", 0.75, "alpha in popularity^alpha", low=0.0, high=2.0),
+        "logq_correction": Key("bool", True, "softmax: subtract log of each item's share of training events from its "
+                               "in-batch logit, so popular items are not penalised for appearing often as negatives"),
         "epochs": Key("int", 20, "maximum passes over the training pairs", low=1),
         "batch_size": Key("int", 2048, "positive pairs per step", low=1),
         "learning_rate": Key("float", 0.003, "Adam step size for network weights", low=0.0, low_open=True),
@@ -119,8 +124,29 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "cold_item_fraction": Key("float", 0.0, "share of items (with features) held out whole for the cold slice", low=0.0, high=0.9),
         "top_k": Key("int_list", [20], "K values for recall@K and ndcg@K"),
         "baseline": Key("bool", True, "also train the linear factor model (ids only, no hidden layer)"),
+        "bilinear": Key("bool", False, "also train the bilinear model (features and ids, linear towers: no hidden "
+                        "layer), to see what the towers' hidden layers add"),
+        "baseline_solver": Key("choice", "gradient", "how the linear factor model is trained: gradient (the same loop as "
+                               "the towers), als (ratings, squared loss) or weighted_als (implicit events)",
+                               choices=("gradient", "als", "weighted_als")),
+        "baseline_sweeps": Key("int", 15, "als / weighted_als: most sweeps (one sweep solves every user row, then every item row)", low=1),
+        "baseline_cg_steps": Key("int", 3, "als / weighted_als: conjugate-gradient steps per row solve in each sweep; "
+                                 "0 solves every row exactly by Cholesky", low=0),
+        "baseline_confidence": Key("float", 40.0, "weighted_als: alpha in the confidence 1 + alpha * r of an observed cell", low=0.0),
+        "baseline_non_negative": Key("bool", False, "als: keep every factor entry >= 0 (non-negative matrix factorisation by HALS)"),
+        "certificate_gap": Key("float", 0.001, "the linear factor certificate passes when its objective is within this share "
+                               "of the global optimum (squared loss)", low=0.0, low_open=True),
         "oracle_users": Key("path", None, "parquet of true query vectors (id, embedding, bias), for an oracle row", nullable=True),
         "oracle_items": Key("path", None, "parquet of true item vectors (id, embedding, bias), for an oracle row", nullable=True),
+    },
+    "report": {
+        "enabled": Key("bool", True, "write report.html into the run folder at the end of `towers train`"),
+        "color_feature": Key("str", None, "categorical item feature that colours the item map (default: the first one listed)",
+                             nullable=True),
+        "anchors": Key("int", 6, "how many of the most popular items get a neighbour list (when anchor_ids is empty)", low=0),
+        "anchor_ids": Key("str_or_int_list", [], "item ids to show neighbour lists for, instead of the most popular items"),
+        "neighbours": Key("int", 8, "neighbours listed per anchor item", low=1),
+        "map_items": Key("int", 20000, "at most this many items are drawn on the item map (a seeded random subset)", low=1),
     },
 }
 
@@ -176,6 +202,10 @@ def _check_value(label: str, key: Key, value: Any, base_dir: Path) -> Any:
     if key.kind == "int_list":
         if not isinstance(value, list) or not all(isinstance(v, int) and not isinstance(v, bool) and v > 0 for v in value):
             raise bad("a list of positive whole numbers, e.g. [128, 64]")
+        return list(value)
+    if key.kind == "str_or_int_list":
+        if not isinstance(value, list) or not all(isinstance(v, (str, int)) and not isinstance(v, bool) for v in value):
+            raise bad("a list of ids (strings or whole numbers), e.g. [TR-00012, TR-00345]")
         return list(value)
     if key.kind == "features":
         if not isinstance(value, list):
@@ -245,6 +275,7 @@ def _check_consistency(cfg: dict) -> None:
         raise TowersError("config: item_item mode draws both sides from 'items'; remove the 'users' section or use mode user_item")
     if cfg["model"]["shared_tower"] and cfg["run"]["mode"] != "item_item":
         raise TowersError("config key 'model.shared_tower': only item_item mode can share one tower; set it false")
+    _check_context(cfg)
     ev = cfg["evaluation"]
     if ev["cold_item_fraction"] > 0 and not cfg["items"]["features"]:
         raise TowersError("config key 'evaluation.cold_item_fraction': a cold-start split needs item features "
@@ -263,6 +294,63 @@ def _check_consistency(cfg: dict) -> None:
             f"{m}@{k}" for m in ("recall", "ndcg") for k in ev["top_k"]}
         if stop not in allowed:
             raise TowersError(f"config key 'training.stop_metric': got {stop!r}; expected one of {', '.join(sorted(allowed))}")
+    _check_baseline_solver(cfg)
+    colour = cfg["report"]["color_feature"]
+    categorical = [f["name"] for f in cfg["items"]["features"] if f["kind"] == "categorical"]
+    if colour is not None and colour not in categorical:
+        raise TowersError(f"config key 'report.color_feature': got {colour!r}; expected one of the categorical item "
+                          f"features ({', '.join(categorical)})" if categorical else
+                          f"config key 'report.color_feature': got {colour!r}; expected null (items.features lists no "
+                          "categorical feature)")
+
+
+def _check_baseline_solver(cfg: dict) -> None:
+    """ALS fits ratings, weighted ALS fits events; both need lambda > 0 and two separate id tables."""
+    ev = cfg["evaluation"]
+    solver, loss = ev["baseline_solver"], cfg["training"]["loss"]
+    here = f"config key 'evaluation.baseline_solver': got {solver!r}"
+    if solver == "als" and loss != "squared":
+        raise TowersError(f"{here}; expected gradient or weighted_als, since training.loss is {loss} "
+                          "(als fits ratings under squared loss; weighted_als fits implicit events)")
+    if solver == "weighted_als" and loss == "squared":
+        raise TowersError(f"{here}; expected gradient or als, since training.loss is squared "
+                          "(weighted_als is for implicit events; als fits ratings)")
+    if solver != "gradient" and cfg["training"]["id_l2"] <= 0:
+        raise TowersError(f"{here}; expected gradient while training.id_l2 is 0 (ALS row solves need lambda > 0; raise id_l2)")
+    if solver != "gradient" and cfg["run"]["mode"] == "item_item" and cfg["model"]["shared_tower"]:
+        raise TowersError(f"{here}; expected gradient with model.shared_tower: true "
+                          "(ALS alternates between two separate id tables; set shared_tower: false)")
+    if ev["baseline_non_negative"] and solver != "als":
+        raise TowersError("config key 'evaluation.baseline_non_negative': got True; expected false unless "
+                          "evaluation.baseline_solver is als (non-negative factors are fitted by HALS under squared loss)")
+
+
+CONTEXT_KINDS = ("numeric", "categorical")
+
+
+def _check_context(cfg: dict) -> None:
+    """Context columns feed the query tower; their names share its input namespace."""
+    context = cfg["interactions"]["context"]
+    if not context:
+        return
+    side = "items" if cfg["run"]["mode"] == "item_item" else "users"
+    taken = {f["name"] for f in cfg[side]["features"]}
+    own = {cfg["interactions"][k] for k in ("query_column", "candidate_column", "target_column", "weight_column")}
+    for i, f in enumerate(context):
+        here = f"config key 'interactions.context[{i}]"
+        if f["kind"] not in CONTEXT_KINDS:
+            raise TowersError(f"{here}.kind': got {f['kind']!r}; context columns are numeric or categorical")
+        if f["name"] in taken:
+            raise TowersError(f"{here}.name': '{f['name']}' is also a {side} feature; rename one of the columns")
+        if f["name"] in own:
+            raise TowersError(f"{here}.name': '{f['name']}' is already an id, target or weight column; "
+                              "list only the columns that describe the event")
+    if cfg["run"]["mode"] == "item_item":
+        raise TowersError("config key 'interactions.context': context columns are for user_item runs; "
+                          "remove them or use mode user_item")
+    if cfg["model"]["shared_tower"]:
+        raise TowersError("config key 'interactions.context': a shared tower embeds both sides alike, but context "
+                          "belongs to the query side only; set model.shared_tower: false")
 
 
 def default_stop_metric(cfg: dict) -> str:
@@ -306,6 +394,13 @@ def load(path: str | Path, overrides: dict | None = None) -> dict:
 def dump(cfg: dict) -> str:
     """The resolved config as YAML text (absolute paths, every default filled in)."""
     return yaml.safe_dump(cfg, sort_keys=False)
+
+
+def bilinear_preset(cfg: dict) -> dict:
+    """The bilinear model: each tower a linear map of its features and id row (no hidden layer)."""
+    base = copy.deepcopy(cfg)
+    base["model"].update(hidden=[], dropout=0.0)
+    return base
 
 
 def linear_factor_preset(cfg: dict) -> dict:

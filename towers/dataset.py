@@ -12,7 +12,9 @@ import pandas as pd
 import torch
 
 from .errors import TowersError, where
-from .features import FeatureBlock, SideEncoders, SideTable
+from .context import ContextEncoders
+from .encoders import make_encoder
+from .features import FeatureBlock, SideEncoders, SideTable, take
 from .splits import Split, make_split
 from .tables import align_id_types, normalise_ids, numeric_column, read_table, time_column
 
@@ -26,6 +28,7 @@ class Pairs:
     target: torch.Tensor | None = None  # float32
     weight: torch.Tensor | None = None  # float32
     time: torch.Tensor | None = None  # int64
+    context: FeatureBlock | None = None  # encoded context columns, one row per pair
 
     def __len__(self) -> int:
         return len(self.query)
@@ -33,7 +36,8 @@ class Pairs:
     def subset(self, idx) -> "Pairs":
         idx = torch.as_tensor(idx, dtype=torch.int64)
         pick = lambda t: None if t is None else t.index_select(0, idx)  # noqa: E731
-        return Pairs(pick(self.query), pick(self.candidate), pick(self.target), pick(self.weight), pick(self.time))
+        return Pairs(pick(self.query), pick(self.candidate), pick(self.target), pick(self.weight), pick(self.time),
+                     None if self.context is None else take(self.context, idx))
 
     def positives(self) -> "Pairs":
         """Rows that count as positive events (target > 0, or every row when there is no target)."""
@@ -68,24 +72,39 @@ class Prepared:
     item_item: bool
     notes: list[str]
     oracle: object = None  # evaluate.Scorer of the planted truth, when the config names oracle files
+    context: ContextEncoders | None = None  # encoders of interactions.context, fitted on training events
+    started_from: dict | None = None  # warm start: ids and values added to the earlier run's encoders
 
 
-def read_interactions(cfg: dict):
-    """The log's id arrays and optional target / weight / time arrays, validated."""
+@dataclass
+class Log:
+    """The interaction log's columns, validated: ids, optional target / weight / time, context frame."""
+
+    query: np.ndarray
+    candidate: np.ndarray
+    target: np.ndarray | None
+    weight: np.ndarray | None
+    time: np.ndarray | None
+    context: pd.DataFrame | None
+
+
+def read_interactions(cfg: dict) -> Log:
+    """The log's id arrays, optional target / weight / time arrays and context columns, validated."""
     ic = cfg["interactions"]
     path = ic["path"]
     cols = [ic["query_column"], ic["candidate_column"]] + [ic[k] for k in ("target_column", "weight_column", "time_column") if ic[k]]
-    df = read_table(path, columns=list(dict.fromkeys(cols)))
+    context_cols = [f["name"] for f in ic["context"]]
+    df = read_table(path, columns=list(dict.fromkeys(cols + context_cols)))
     q = normalise_ids(df[ic["query_column"]], path, ic["query_column"])
     c = normalise_ids(df[ic["candidate_column"]], path, ic["candidate_column"])
     target = weight = when = None
     if ic["target_column"]:
         target = numeric_column(df[ic["target_column"]], path, ic["target_column"], allow_missing=False)
-        if cfg["training"]["loss"] == "logistic":
+        if cfg["training"]["loss"] != "squared":
             out = (target < 0) | (target > 1)
             if out.any():
                 row = int(np.flatnonzero(out)[0])
-                raise TowersError(f"{where(path, ic['target_column'], row + 1)}: logistic targets must lie in [0, 1], got "
+                raise TowersError(f"{where(path, ic['target_column'], row + 1)}: {cfg['training']['loss']} targets must lie in [0, 1], got "
                                   f"{target[row]!r}; use loss: squared for ratings, or move counts to weight_column")
     if ic["weight_column"]:
         weight = numeric_column(df[ic["weight_column"]], path, ic["weight_column"], allow_missing=False)
@@ -95,7 +114,12 @@ def read_interactions(cfg: dict):
             raise TowersError(f"{where(path, ic['weight_column'], row + 1)}: negative weight {weight[row]!r}; weights must be >= 0")
     if ic["time_column"]:
         when = time_column(df[ic["time_column"]], path, ic["time_column"])
-    return q, c, target, weight, when
+    context = None
+    if context_cols:
+        context = df[context_cols].reset_index(drop=True)
+        for spec in ic["context"]:  # every value checked in file order, so an error names the log's row
+            make_encoder(spec).validate(context[spec["name"]], path)
+    return Log(q, c, target, weight, when, context)
 
 
 def _as_pairs(qr, cr, target, weight, when) -> Pairs:
@@ -108,11 +132,16 @@ def _train_entities(ids: np.ndarray, rows: np.ndarray) -> np.ndarray:
     return ids[np.unique(rows)]
 
 
-def prepare(cfg: dict) -> Prepared:
-    """Read, validate, split and encode everything the config names."""
+def prepare(cfg: dict, previous=None) -> Prepared:
+    """Read, validate, split and encode everything the config names.
+
+    previous: an earlier run's LoadedBundle to warm-start from; its encoders are extended, never
+    renumbered (warm_start.py), and `started_from` records what was added.
+    """
     ic = cfg["interactions"]
     item_item = cfg["run"]["mode"] == "item_item"
-    q_raw, c_raw, target, weight, when = read_interactions(cfg)
+    log = read_interactions(cfg)
+    q_raw, c_raw, target, weight, when = log.query, log.candidate, log.target, log.weight, log.time
     notes: list[str] = []
 
     item_side = SideTable(cfg["items"]["path"], cfg["items"]["id_column"], cfg["items"]["features"], cfg["items"]["missing_rows"])
@@ -147,9 +176,14 @@ def prepare(cfg: dict) -> Prepared:
     split: Split = make_split(pairs, len(c_ids), cfg["evaluation"], cfg["run"]["seed"],
                               cold_eligible=torch.from_numpy(item_has_row) if has_item_features else None,
                               item_item=item_item)
-    train = pairs.subset(split.train)
-    if len(train) == 0:
+    if len(split.train) == 0:
         raise TowersError(f"{ic['path']}: the split leaves no training pairs; lower evaluation fractions or add data")
+    context_encoders = None
+    if log.context is not None:
+        frame = log.context.iloc[np.flatnonzero(keep)].reset_index(drop=True)
+        context_encoders = ContextEncoders.fit(frame, ic["context"], np.asarray(split.train), ic["path"])
+        pairs.context = context_encoders.encode(frame, ic["path"])
+    train = pairs.subset(split.train)
 
     tq, tc = train.query.numpy(), train.candidate.numpy()
     if item_item:
@@ -161,6 +195,20 @@ def prepare(cfg: dict) -> Prepared:
                                  _train_entities(q_ids, tq))
         c_enc = SideEncoders.fit(c_table, cfg["items"]["path"], cfg["items"]["id_column"], cfg["items"]["features"],
                                  _train_entities(c_ids, tc))
+    started_from = None
+    if previous is not None:
+        from .warm_start import extend_context, extend_side
+
+        started_from = {}
+        c_enc, started_from["items"] = extend_side(c_enc, previous.candidate_encoders, "item")
+        if item_item:
+            q_enc = c_enc
+        else:
+            q_enc, started_from["users"] = extend_side(q_enc, previous.query_encoders, "user")
+        context_encoders, started_from["context"] = extend_context(context_encoders, previous.extra.get("context"))
+        if context_encoders is not None:
+            pairs.context = context_encoders.encode(frame, ic["path"])
+            train = pairs.subset(split.train)
     c_block = c_enc.encode(c_ids, c_table, cfg["items"]["path"])
     c_side = Side(c_ids, c_enc, c_block, has_item_features)
     if item_item:
@@ -175,7 +223,8 @@ def prepare(cfg: dict) -> Prepared:
         warm[train.query] = True
     _warn_small_data(cfg, train, len(q_ids), len(c_ids), notes)
     prepared = Prepared(q_side, c_side, train, pairs.subset(split.valid), pairs.subset(split.test),
-                        pairs.subset(split.cold_test), split.cold_items, warm, item_item, notes)
+                        pairs.subset(split.cold_test), split.cold_items, warm, item_item, notes, context=context_encoders,
+                        started_from=started_from)
     _check_oracles(cfg, prepared)
     return prepared
 

@@ -41,6 +41,12 @@ class Scorer:
             s = s + self.query_bias.index_select(0, q_rows).unsqueeze(1)
         return s + self.global_bias if self.global_bias else s
 
+    def for_events(self, users: torch.Tensor, vectors: torch.Tensor | None = None) -> "Scorer":
+        """One query row per event: the event's own vector (context-aware towers) or its user's."""
+        qv = vectors if vectors is not None else self.query_vectors.index_select(0, users)
+        qb = None if self.query_bias is None else self.query_bias.index_select(0, users)
+        return Scorer(qv, self.item_vectors, qb, self.item_bias, self.global_bias, self.scale)
+
     def pairs(self, q: torch.Tensor, c: torch.Tensor) -> torch.Tensor:
         s = (self.query_vectors.index_select(0, q) * self.item_vectors.index_select(0, c)).sum(1) * self.scale
         if self.item_bias is not None:

@@ -30,6 +30,17 @@ def slice_block(block: FeatureBlock, start: int, stop: int) -> FeatureBlock:
     return {name: t[start:stop] for name, t in block.items()}
 
 
+def inputs_of(encoders: list) -> list[dict]:
+    """What a tower needs to know about each feature: name, kind and size or width."""
+    out = []
+    for e in encoders:
+        if e.kind in ("categorical", "tokens"):
+            out.append({"name": e.name, "kind": e.kind, "size": e.size})
+        else:
+            out.append({"name": e.name, "kind": e.kind, "width": e.width})
+    return out
+
+
 class SideEncoders:
     """The id encoder and feature encoders of one side, with plain-state save and load."""
 
@@ -66,14 +77,7 @@ class SideEncoders:
         return {e.name: e.unknown_seen for e in self.encoders if getattr(e, "unknown_seen", 0)}
 
     def model_inputs(self) -> list[dict]:
-        """What the tower needs to know about each feature: name, kind and size or width."""
-        out = []
-        for e in self.encoders:
-            if e.kind in ("categorical", "tokens"):
-                out.append({"name": e.name, "kind": e.kind, "size": e.size})
-            else:
-                out.append({"name": e.name, "kind": e.kind, "width": e.width})
-        return out
+        return inputs_of(self.encoders)
 
     def state(self) -> dict:
         return {"id_column": self.id_column, "ids": self.id_encoder.state(),

@@ -42,6 +42,24 @@ def logistic_loss(logits: torch.Tensor, target: torch.Tensor) -> torch.Tensor:
     return torch.where(positive, upper, lower)
 
 
+def in_batch_softmax_loss(logits: torch.Tensor, candidates: torch.Tensor,
+                          log_q: torch.Tensor | None = None) -> torch.Tensor:
+    """Per-row cross-entropy of each query's own candidate against the other candidates in the batch.
+
+    logits: (B, B) scores of query i with the candidate of pair j; the positive is the diagonal.
+    candidates: (B,) candidate ids of the pairs; a column holding the same item as row i's positive
+    is not a negative for row i and is left out. log_q: (B,) log of each column's chance of being in
+    a batch; subtracting it is the sampling-bias correction of Yi et al. (RecSys 2019), without which
+    popular items are pushed down simply for appearing as negatives more often. Returns (B,) in nats.
+    """
+    if log_q is not None:
+        logits = logits - log_q.unsqueeze(0)
+    same = candidates.unsqueeze(0) == candidates.unsqueeze(1)
+    same.fill_diagonal_(False)
+    logits = logits.masked_fill(same, float("-inf"))
+    return torch.logsumexp(logits, dim=1) - logits.diagonal()
+
+
 def weighted_mean(values: torch.Tensor, weight: torch.Tensor | None = None) -> torch.Tensor:
     """Mean of `values`, or sum(weight * values) / sum(weight) when `weight` is given.
 

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import json
 import shutil
+import tempfile
 import time
 from pathlib import Path
 
@@ -17,16 +18,23 @@ import torch
 import yaml
 
 from . import config as C
+from . import distributed
 from .atomic import write_atomic, write_text_atomic
+from .als import fit_als
 from .bundle import save_bundle
+from .certificate import certify
+from .certificate import describe as describe_certificate
+from .context import event_pairs, sample_contexts, vectors_with_context
 from .dataset import Pairs, Prepared, prepare
 from .errors import TowersError
 from .evaluate import Scorer, popularity_scorer, ranking_metrics, rating_metrics
 from .export import read_embeddings, write_embeddings
 from .model import TwoTowerModel
-from .training import TrainingDiverged, TrainingInterrupted, _with_dims, build_model, fit, log, model_scorer
+from .report import write_report
+from .training import TrainingDiverged, TrainingInterrupted, build_model, fit, log, model_scorer, reads_context
+from .warm_start import grow_weights, load_previous
 
-MODEL_ORDER = ("popularity", "linear_factor", "towers", "oracle")
+MODEL_ORDER = ("popularity", "linear_factor", "bilinear", "towers", "oracle")
 
 
 def check_out_dir(out: Path, overwrite: bool) -> None:
@@ -77,28 +85,35 @@ def known_pairs(data: Prepared) -> Pairs:
     return Pairs(torch.cat([tr.query, va.query]), torch.cat([tr.candidate, va.candidate]))
 
 
-def evaluate_slices(scorers: dict[str, Scorer], data: Prepared, cfg: dict) -> dict:
-    """{slice: {model: {metric: value}}} for the warm test pairs and, if any, the cold ones."""
+def evaluate_slices(scorers: dict[str, Scorer], data: Prepared, cfg: dict, event_vectors: dict | None = None) -> dict:
+    """{slice: {model: {metric: value}}} for the warm test pairs and, if any, the cold ones.
+
+    With context columns each held-out event is its own query (context.py); event_vectors maps a
+    model name to a function giving its query vectors for a slice's events (context-aware towers).
+    """
     explicit = cfg["training"]["loss"] == "squared"
     ks, tie = cfg["evaluation"]["top_k"], cfg["run"]["seed"]
-    known = known_pairs(data)
     empty = Pairs(torch.zeros(0, dtype=torch.int64), torch.zeros(0, dtype=torch.int64))
-    out: dict = {"warm": {}}
+    slices = {"warm": (data.test, known_pairs(data), data.warm_items)}
     if len(data.cold_test):
-        out["cold"] = {}
-    for name in MODEL_ORDER:
-        if name not in scorers:
-            continue
-        s = scorers[name]
-        if explicit:
-            out["warm"][name] = rating_metrics(s, data.test)
-            if "cold" in out:
-                out["cold"][name] = rating_metrics(s, data.cold_test)
-        else:
-            out["warm"][name] = ranking_metrics(s, data.test, known, data.warm_items, ks, tie, exclude_self=data.item_item)
-            if "cold" in out:
-                out["cold"][name] = ranking_metrics(s, data.cold_test, empty, data.cold_items, ks, tie,
-                                                    exclude_self=data.item_item)
+        slices["cold"] = (data.cold_test, empty, data.cold_items)
+    out: dict = {name: {} for name in slices}
+    for slice_name, (pairs, known, candidates) in slices.items():
+        users = None
+        if pairs.context is not None:
+            raw = pairs
+            pairs, known, users = event_pairs(pairs, known)
+        for name in MODEL_ORDER:
+            if name not in scorers:
+                continue
+            s = scorers[name]
+            if users is not None:
+                fn = (event_vectors or {}).get(name)
+                s = s.for_events(users, fn(raw) if fn else None)
+            if explicit:
+                out[slice_name][name] = rating_metrics(s, pairs)
+            else:
+                out[slice_name][name] = ranking_metrics(s, pairs, known, candidates, ks, tie, exclude_self=data.item_item)
     return out
 
 
@@ -142,19 +157,22 @@ def export_run(folder: Path, model: TwoTowerModel, data: Prepared, cfg: dict, la
     return files
 
 
-def _save_model(folder: Path, model: TwoTowerModel, model_cfg: dict, data: Prepared, cfg_for_inputs: dict,
-                use_features: bool) -> None:
-    side_q = "items" if data.item_item else "users"
-    q_inputs = _with_dims(data.queries.encoders.model_inputs(), cfg_for_inputs[side_q]["features"]) if use_features else []
-    c_inputs = _with_dims(data.candidates.encoders.model_inputs(), cfg_for_inputs["items"]["features"]) if use_features else []
-    save_bundle(folder / "model.pt", model, model_cfg, q_inputs, c_inputs, data.queries.encoders,
-                data.candidates.encoders, data.item_item)
+def _save_model(folder: Path, model: TwoTowerModel, model_cfg: dict, data: Prepared) -> None:
+    """The bundle: weights, the towers' input descriptions, and every encoder's plain state."""
+    extra = {}
+    if reads_context(model.query_tower, data):
+        extra["context"] = data.context.state()
+        extra["context_sample"] = sample_contexts(data.train.context)
+    save_bundle(folder / "model.pt", model, model_cfg, model.query_tower.inputs, model.candidate_tower.inputs,
+                data.queries.encoders, data.candidates.encoders, data.item_item, extra)
 
 
 def save_pairs(path: Path, data: Prepared) -> None:
     """Catalog ids and split pairs, as tensors and lists only (weights_only-loadable)."""
     def pack(p: Pairs) -> dict:
         d = {"query": p.query, "candidate": p.candidate}
+        if p.context is not None:
+            d["context"] = p.context
         if p.target is not None:
             d["target"] = p.target
         if p.weight is not None:
@@ -180,11 +198,13 @@ def _resumable(out: Path, partial: Path, cfg: dict) -> bool:
     return True
 
 
-def train_run(config_path: str | Path, out_dir: str | Path, overwrite: bool = False, resume: bool = False) -> dict:
+def train_run(config_path: str | Path, out_dir: str | Path, overwrite: bool = False, resume: bool = False,
+              init_from: str | Path | None = None) -> dict:
     """Train, evaluate and export one run; returns {'metrics': ..., 'out': path, 'table': text}.
 
     resume=True continues an interrupted run from RUN_DIR.partial (exactly: the same weights as an
-    uninterrupted run with the same seed); with nothing to resume it starts afresh.
+    uninterrupted run with the same seed); with nothing to resume it starts afresh. init_from starts
+    every model from an earlier run's weights, grown for new users, items and values (warm_start.py).
     """
     started = time.perf_counter()
     cfg = C.load(config_path)
@@ -195,14 +215,29 @@ def train_run(config_path: str | Path, out_dir: str | Path, overwrite: bool = Fa
         raise TowersError(f"{out}: this run already finished; nothing to resume (use --overwrite to train it again)")
     if not resuming:
         check_out_dir(out, overwrite)
+    distributed.start()
+    primary = distributed.is_primary()
+    scratch = None
+    if not primary:  # the other processes train alongside and write only into a private scratch folder
+        scratch = Path(tempfile.mkdtemp(prefix="towers-process-"))
+        if resuming:
+            shutil.copytree(partial, scratch / partial.name)
+        partial = scratch / partial.name
+    if distributed.rank_and_size()[1] > 1:
+        cfg["run"]["threads"] = distributed.threads_per_process(cfg["run"]["threads"])
     apply_threads(cfg)
     torch.manual_seed(cfg["run"]["seed"])
-    data = prepare(cfg)
+    previous = load_previous(init_from) if init_from else None
+    data = prepare(cfg, previous)
+    started_from = None if previous is None else {"run": str(Path(init_from).resolve()), "encoders": data.started_from}
     for note in data.notes:
         log(note)
     log(f"data: {len(data.train):,} training, {len(data.valid):,} validation, {len(data.test):,} test, "
         f"{len(data.cold_test):,} cold-start pairs; {len(data.queries.ids):,} queries, {len(data.candidates.ids):,} items")
 
+    model = build_model(data, cfg)
+    if previous is not None:  # before anything is written, so a mismatch leaves no folder behind
+        started_from["towers"] = grow_weights(model, previous.model.state_dict(), previous.path)
     if not resuming:
         if partial.exists():
             shutil.rmtree(partial)
@@ -211,7 +246,6 @@ def train_run(config_path: str | Path, out_dir: str | Path, overwrite: bool = Fa
     (partial / "linear_factor" / "checkpoints").mkdir(parents=True, exist_ok=True)
     resume_hint = f"resume with: towers train {config_path} --out {out} --resume"
     try:
-        model = build_model(data, cfg)
         result = fit(model, data, cfg, partial / "checkpoints", "towers", resume=resuming)
         scorers: dict[str, Scorer] = {
             "popularity": popularity_scorer(data.train, len(data.queries.ids), len(data.candidates.ids),
@@ -222,30 +256,67 @@ def train_run(config_path: str | Path, out_dir: str | Path, overwrite: bool = Fa
         if cfg["evaluation"]["baseline"]:
             torch.manual_seed(cfg["run"]["seed"])
             base, preset = baseline_model(data, cfg)
-            base_result = fit(base, data, preset, partial / "linear_factor" / "checkpoints", "linear_factor",
-                              resume=resuming)
+            if init_from and (Path(init_from) / "linear_factor" / "model.pt").is_file():
+                lf_prev = load_previous(init_from, "linear_factor")
+                started_from["linear_factor"] = grow_weights(base, lf_prev.model.state_dict(), lf_prev.path)
+            train_base = fit if preset["evaluation"]["baseline_solver"] == "gradient" else fit_als
+            base_result = train_base(base, data, preset, partial / "linear_factor" / "checkpoints", "linear_factor",
+                                     resume=resuming)
+            if cfg["training"]["loss"] == "squared":  # is it the global optimum? (certificate.py)
+                cert = certify(base, data, preset)
+                write_text_atomic(partial / "linear_factor" / "certificate.json", json.dumps(cert, indent=2))
+                log(describe_certificate(cert))
             scorers["linear_factor"] = model_scorer(base, data)
             histories["linear_factor"] = base_result.history
-            _save_model(partial / "linear_factor", base, preset["model"], data, preset, use_features=False)
+            _save_model(partial / "linear_factor", base, preset["model"], data)
             export_run(partial / "linear_factor", base, data, preset, "linear_factor")
+        context_models = {"towers": model}
+        if cfg["evaluation"]["bilinear"]:
+            torch.manual_seed(cfg["run"]["seed"])
+            bi_cfg = C.bilinear_preset(cfg)
+            (partial / "bilinear" / "checkpoints").mkdir(parents=True, exist_ok=True)
+            bilinear = build_model(data, bi_cfg)
+            if init_from and (Path(init_from) / "bilinear" / "model.pt").is_file():
+                bi_prev = load_previous(init_from, "bilinear")
+                started_from["bilinear"] = grow_weights(bilinear, bi_prev.model.state_dict(), bi_prev.path)
+            histories["bilinear"] = fit(bilinear, data, bi_cfg, partial / "bilinear" / "checkpoints", "bilinear",
+                                        resume=resuming).history
+            scorers["bilinear"] = model_scorer(bilinear, data)
+            context_models["bilinear"] = bilinear
+            _save_model(partial / "bilinear", bilinear, bi_cfg["model"], data)
+            export_run(partial / "bilinear", bilinear, data, bi_cfg, "bilinear")
     except TrainingInterrupted as stop:
         raise TrainingInterrupted(f"{stop}; {resume_hint}") from None
     except TrainingDiverged:
         shutil.rmtree(partial, ignore_errors=True)  # a diverged run leaves nothing behind
         raise
+    if not primary:
+        shutil.rmtree(scratch, ignore_errors=True)
+        return {"metrics": None, "out": out, "table": ""}
     if data.oracle is not None:
         scorers["oracle"] = data.oracle
-    metrics = evaluate_slices(scorers, data, cfg)
-    _save_model(partial, model, cfg["model"], data, cfg, use_features=True)
+    event_vectors = {name: _event_vectors(m.query_tower, data) for name, m in context_models.items()
+                     if reads_context(m.query_tower, data)}
+    metrics = evaluate_slices(scorers, data, cfg, event_vectors)
+    _save_model(partial, model, cfg["model"], data)
     files = export_run(partial, model, data, cfg, "towers")
     save_pairs(partial / "pairs.pt", data)
     write_text_atomic(partial / "metrics.json", json.dumps(metrics, indent=2))
+    if started_from is not None:
+        write_text_atomic(partial / "started_from.json", json.dumps(started_from, indent=2))
     write_text_atomic(partial / "history.json", json.dumps(
         {"stop_metric": result.stop_metric, "best_epoch": result.best_epoch, "epochs": histories}, indent=2))
+    if cfg["report"]["enabled"]:
+        write_report(partial)  # report.html, read back from the finished files
     _publish(partial, out)
     table = format_table(metrics)
     log(f"run written to {out} in {time.perf_counter() - started:.1f} s ({', '.join(files.values())})")
     return {"metrics": metrics, "out": out, "table": table}
+
+
+def _event_vectors(tower, data: Prepared):
+    """A function giving a context-aware query tower's vectors for a slice's events."""
+    return lambda p: vectors_with_context(tower, data.queries.block, p.query, p.context)
 
 
 def _publish(partial: Path, out: Path) -> None:

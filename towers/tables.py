@@ -23,13 +23,7 @@ def read_table(path: str | Path, columns: list[str] | None = None) -> pd.DataFra
     CSV handling: a UTF-8 byte-order mark, quoted delimiters and Windows line ends are read correctly.
     """
     path = Path(path)
-    if not path.exists():
-        raise TowersError(f"{path}: file not found; check the path in the config (relative paths start at the config file)")
-    if path.is_dir():
-        raise TowersError(f"{path}: is a folder, not a table; give a .csv or .parquet file")
-    suffix = path.suffix.lower()
-    if suffix not in READABLE:
-        raise TowersError(f"{path}: unsupported format '{suffix or '(none)'}'; save the table as .csv or .parquet")
+    suffix = _check_file(path)
     try:
         if suffix in (".parquet", ".pq"):
             import pyarrow.parquet as pq
@@ -37,13 +31,7 @@ def read_table(path: str | Path, columns: list[str] | None = None) -> pd.DataFra
             schema_names = pq.read_schema(path).names
             if columns is not None:
                 require_columns(schema_names, columns, path)
-            df = pq.read_table(path, columns=columns).to_pandas()
-            # a frame saved with its id as the index (df.set_index("id").to_parquet()): the id is a column here
-            named = [n for n in df.index.names if n is not None]
-            if named:
-                df = df.reset_index(level=named)
-            if not isinstance(df.index, pd.RangeIndex):
-                df = df.reset_index(drop=True)
+            df = _plain_frame(pq.read_table(path, columns=columns).to_pandas())
         else:
             df = pd.read_csv(path, sep="\t" if suffix == ".tsv" else ",", encoding="utf-8-sig",
                              skipinitialspace=False, low_memory=False)
@@ -61,9 +49,7 @@ def read_table(path: str | Path, columns: list[str] | None = None) -> pd.DataFra
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise TowersError(f"{path}: cannot be read as {suffix[1:]} ({first}); check the file is a valid {suffix[1:]} table") from None
     except Exception as exc:  # pyarrow raises its own ArrowInvalid family
-        if type(exc).__module__.startswith("pyarrow"):
-            first = str(exc).strip().splitlines()[0]
-            raise TowersError(f"{path}: cannot be read as parquet ({first}); re-export the table") from None
+        _raise_if_arrow(exc, path)
         raise
     df.columns = [str(c).strip() for c in df.columns]
     repeated = df.columns[df.columns.duplicated()]
@@ -74,6 +60,76 @@ def read_table(path: str | Path, columns: list[str] | None = None) -> pd.DataFra
     if len(df) == 0:
         raise TowersError(f"{path}: the table has a header but no rows; export the data rows too")
     return df
+
+
+def _check_file(path: Path) -> str:
+    """The table's suffix, after checking that it is an existing file of a readable format."""
+    if not path.exists():
+        raise TowersError(f"{path}: file not found; check the path in the config (relative paths start at the config file)")
+    if path.is_dir():
+        raise TowersError(f"{path}: is a folder, not a table; give a .csv or .parquet file")
+    suffix = path.suffix.lower()
+    if suffix not in READABLE:
+        raise TowersError(f"{path}: unsupported format '{suffix or '(none)'}'; save the table as .csv or .parquet")
+    return suffix
+
+
+def _plain_frame(df: pd.DataFrame) -> pd.DataFrame:
+    """A frame read from parquet with a plain 0..n-1 index."""
+    # a frame saved with its id as the index (df.set_index("id").to_parquet()): the id is a column here
+    named = [n for n in df.index.names if n is not None]
+    if named:
+        df = df.reset_index(level=named)
+    if not isinstance(df.index, pd.RangeIndex):
+        df = df.reset_index(drop=True)
+    return df
+
+
+def _raise_if_arrow(exc: Exception, path: Path) -> None:
+    if type(exc).__module__.startswith("pyarrow"):
+        first = str(exc).strip().splitlines()[0]
+        raise TowersError(f"{path}: cannot be read as parquet ({first}); re-export the table") from None
+
+
+def read_table_chunks(path: str | Path, columns: list[str], rows: int):
+    """Yield (first row, DataFrame of `columns`) pieces of a table, `rows` rows at a time.
+
+    Parquet is read one batch at a time, so only one piece is in memory; a CSV file is read whole
+    and yielded as one piece. The checks and messages are read_table's; an empty table yields nothing.
+    """
+    path = Path(path)
+    suffix = _check_file(path)
+    if suffix not in (".parquet", ".pq"):
+        df = read_table(path, columns=columns)
+        yield 0, df[columns]
+        return
+    import pyarrow.parquet as pq
+
+    try:
+        parquet = pq.ParquetFile(path)
+        require_columns(parquet.schema_arrow.names, columns, path)
+        batches = parquet.iter_batches(batch_size=rows, columns=columns)
+    except TowersError:
+        raise
+    except (ValueError, OSError) as exc:
+        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise TowersError(f"{path}: cannot be read as {suffix[1:]} ({first}); check the file is a valid {suffix[1:]} table") from None
+    except Exception as exc:
+        _raise_if_arrow(exc, path)
+        raise
+    start = 0
+    while True:
+        try:
+            batch = next(batches, None)
+        except Exception as exc:
+            _raise_if_arrow(exc, path)
+            raise
+        if batch is None:
+            return
+        df = _plain_frame(batch.to_pandas())
+        df.columns = [str(c).strip() for c in df.columns]
+        yield start, df[[str(c).strip() for c in columns]]
+        start += len(df)
 
 
 def shown(name: str) -> str:
@@ -119,6 +175,24 @@ def normalise_ids(series: pd.Series, path, column) -> np.ndarray:
         raise TowersError(f"{where(path, column, row + 1)}: mixed id types (found {type(values[row]).__name__} among strings); "
                           "store every id as text or every id as a number")
     return np.asarray(values.astype(str), dtype=object)
+
+
+def factorize_ids(series: pd.Series, path, column) -> tuple[np.ndarray, np.ndarray]:
+    """normalise_ids for a long column, as (codes, distinct ids): ids == uniques[codes].
+
+    The distinct ids come in order of first appearance, as int64 or a str object array. Text columns
+    read from parquet or CSV are factorized by arrow without one Python string per row, so a log of
+    millions of rows costs its codes plus one string per distinct id. Checks and errors are
+    normalise_ids' own (the same first bad row).
+    """
+    missing = series.isna().to_numpy()
+    if missing.any() or pd.api.types.is_bool_dtype(series) or pd.api.types.is_numeric_dtype(series) \
+            or not pd.api.types.is_string_dtype(series) or series.dtype == object:
+        values = normalise_ids(series, path, column)
+        codes, uniques = pd.factorize(values)
+        return codes.astype(np.int64, copy=False), np.asarray(uniques, dtype=values.dtype)
+    codes, uniques = pd.factorize(series)  # a string dtype: every value is a str, as normalise_ids requires
+    return codes.astype(np.int64, copy=False), np.asarray(uniques.to_numpy(dtype=object), dtype=object)
 
 
 def align_id_types(ids: np.ndarray, reference: np.ndarray) -> np.ndarray:

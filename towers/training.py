@@ -4,7 +4,8 @@ Objective (per training pair, averaged; see README "Training objective"):
     J = 1/N sum_p w_p [ l(s_p, y_p) + sum_j l(s_pj, 0) ]
         + lambda/(2N) sum_e (||e_e||^2 + b_e^2) + (wd/2) ||theta||^2
 The id-row penalty is spread over a row's pairs (1/n_e per pair), so each minibatch is an unbiased
-estimate of J and full-batch training minimises it exactly.
+estimate of J and full-batch training minimises it exactly. Under loss: softmax the bracket is the
+in-batch sampled softmax of losses.in_batch_softmax_loss (the batch's other items as negatives).
 """
 
 from __future__ import annotations
@@ -23,19 +24,22 @@ from tqdm import tqdm
 from .atomic import write_atomic
 from .bundle import load_payload
 from .config import default_stop_metric, lower_is_better
+from .context import averaged_vectors, event_pairs, sample_contexts, vectors_with_context
 from .dataset import Pairs, Prepared
+from .distributed import is_primary, mean_over_processes, peer_failure, rank_and_size, wrap
 from .errors import TowersError
 from .evaluate import Scorer, ranking_metrics, rating_metrics
 from .features import FeatureBlock, block_len, slice_block, take
-from .losses import logistic_loss, squared_loss
+from .losses import in_batch_softmax_loss, logistic_loss, squared_loss
 from .model import Tower, TwoTowerModel
 
 EMBED_CHUNK = 65536
 
 
 def log(message: str) -> None:
-    """Plain log lines go to stderr so stdout stays clean for tables and results."""
-    print(message, file=sys.stderr, flush=True)
+    """Plain log lines go to stderr so stdout stays clean for tables and results (process 0 only)."""
+    if is_primary():
+        print(message, file=sys.stderr, flush=True)
 
 
 def build_model(data: Prepared, cfg: dict) -> TwoTowerModel:
@@ -48,6 +52,8 @@ def build_model(data: Prepared, cfg: dict) -> TwoTowerModel:
                                   f"add {side}.features or set use_ids: true")
     shared = data.item_item and cfg["model"]["shared_tower"]
     q_inputs = _with_dims(q.model_inputs(), cfg["users" if not data.item_item else "items"]["features"])
+    if data.context is not None:
+        q_inputs += _with_dims(data.context.model_inputs(), cfg["interactions"]["context"])
     c_inputs = _with_dims(c.model_inputs(), cfg["items"]["features"])
     return TwoTowerModel(q_inputs, q.id_encoder.size, c_inputs, c.id_encoder.size, cfg["model"], shared=shared)
 
@@ -71,8 +77,15 @@ def embed_all(tower: Tower, block: FeatureBlock) -> torch.Tensor:
 
 @torch.no_grad()
 def model_scorer(model: TwoTowerModel, data: Prepared) -> Scorer:
-    """The trained model as vectors over both catalogs."""
-    qv = embed_all(model.query_tower, data.queries.block)
+    """The trained model as vectors over both catalogs.
+
+    A query tower that reads context columns gives each query its vector averaged over a fixed sample
+    of training contexts (context.sample_contexts): its expected scores over the usual context mix.
+    """
+    if reads_context(model.query_tower, data):
+        qv = averaged_vectors(model.query_tower, data.queries.block, sample_contexts(data.train.context))
+    else:
+        qv = embed_all(model.query_tower, data.queries.block)
     cv = qv if (model.shared and data.queries is data.candidates) else embed_all(model.candidate_tower, data.candidates.block)
     qb = model.query_bias_of(data.queries.block["id"]) if model.use_biases else None
     cb = model.candidate_bias_of(data.candidates.block["id"]) if model.use_biases else None
@@ -80,11 +93,28 @@ def model_scorer(model: TwoTowerModel, data: Prepared) -> Scorer:
     return Scorer(qv, cv, qb, cb, g, 1.0 / model.temperature)
 
 
-def validation_metrics(scorer: Scorer, data: Prepared, cfg: dict, pairs: Pairs) -> dict[str, float]:
-    """Metrics of `pairs` (validation or test) in the warm setting."""
+def reads_context(tower: Tower, data: Prepared) -> bool:
+    """Whether a query tower takes the data's context columns as inputs."""
+    return data.context is not None and any(i["name"] in data.context.names for i in tower.inputs)
+
+
+def validation_metrics(scorer: Scorer, data: Prepared, cfg: dict, pairs: Pairs,
+                       model: TwoTowerModel | None = None) -> dict[str, float]:
+    """Metrics of `pairs` (validation or test) in the warm setting.
+
+    With context columns every pair is its own query event (see context.py); `model` then gives the
+    events' query vectors when its query tower reads the context.
+    """
+    known = data.train.positives()
+    if pairs.context is not None:
+        vectors = None
+        if model is not None and reads_context(model.query_tower, data):
+            vectors = vectors_with_context(model.query_tower, data.queries.block, pairs.query, pairs.context)
+        pairs, known, users = event_pairs(pairs, known)
+        scorer = scorer.for_events(users, vectors)
     if cfg["training"]["loss"] == "squared":
         return rating_metrics(scorer, pairs)
-    return ranking_metrics(scorer, pairs, data.train.positives(), data.warm_items, cfg["evaluation"]["top_k"],
+    return ranking_metrics(scorer, pairs, known, data.warm_items, cfg["evaluation"]["top_k"],
                            tie_seed=cfg["run"]["seed"], max_queries=cfg["training"]["validate_queries"],
                            exclude_self=data.item_item)
 
@@ -93,18 +123,46 @@ class NegativeSampler:
     """Draws negative candidate rows as one tensor op: uniform or proportional to popularity^alpha."""
 
     def __init__(self, train: Pairs, n_items: int, warm: torch.Tensor, tcfg: dict, generator: torch.Generator):
-        counts = torch.bincount(train.candidate, minlength=n_items).double()
+        self.generator = generator
+        self.cdf = None
         if tcfg["negative_sampling"] == "uniform":
-            weights = warm.double()
-        else:
-            weights = counts.pow(tcfg["popularity_exponent"]) * warm.double()
+            self.rows = torch.nonzero(warm).flatten()  # uniform: one randint, no search
+            return
+        counts = torch.bincount(train.candidate, minlength=n_items).double()
+        weights = counts.pow(tcfg["popularity_exponent"]) * warm.double()
         self.cdf = torch.cumsum(weights / weights.sum(), 0)
         self.cdf[-1] = 1.0
-        self.generator = generator
 
     def __call__(self, n: int) -> torch.Tensor:
+        if self.cdf is None:
+            return self.rows.index_select(0, torch.randint(0, len(self.rows), (n,), generator=self.generator))
         u = torch.rand(n, generator=self.generator, dtype=torch.float64)
         return torch.searchsorted(self.cdf, u, right=True).clamp_(max=len(self.cdf) - 1)
+
+
+def _log_batch_share(candidates: torch.Tensor, n_items: int) -> torch.Tensor:
+    """log of each item's share of training positives: its chance to be any given in-batch candidate."""
+    counts = torch.bincount(candidates, minlength=n_items).double()
+    return torch.log(counts.clamp(min=1) / len(candidates)).float()
+
+
+class _SquaredNorms(torch.autograd.Function):
+    """||x_r||^2 of each row, with a one-pass backward (2 x_r g_r); pow(2).sum(1) takes three passes."""
+
+    @staticmethod
+    def forward(ctx, x: torch.Tensor) -> torch.Tensor:
+        ctx.save_for_backward(x)
+        return (x * x).sum(1)
+
+    @staticmethod
+    def backward(ctx, grad: torch.Tensor) -> torch.Tensor:
+        (x,) = ctx.saved_tensors
+        return x * (2.0 * grad).unsqueeze(1)
+
+
+def _output_is_id_row(tower: Tower) -> bool:
+    """Whether the tower's output is exactly its id-table row (ids only, no hidden layer, no softplus or norm)."""
+    return tower.direct and not tower.normalize and not tower.non_negative
 
 
 def _id_counts(ids: torch.Tensor, rows: int) -> torch.Tensor:
@@ -140,6 +198,33 @@ class TrainResult:
     best_epoch: int = 0
     best_value: float | None = None
     stop_metric: str = ""
+    best_state: dict | None = None
+
+
+def record_epoch(model: TwoTowerModel, data: Prepared, cfg: dict, result: TrainResult, epoch: int, loss: float,
+                 rate: float, checkpoint_dir: Path | None) -> tuple[float | None, bool]:
+    """Validate after an epoch (or ALS sweep), append its history row, keep and save the best weights.
+
+    Returns (validation value, whether this epoch is the best so far); with no validation pairs every
+    epoch counts as the best.
+    """
+    metric = result.stop_metric
+    value = None
+    if len(data.valid):
+        value = validation_metrics(model_scorer(model, data), data, cfg, data.valid, model).get(metric)
+    row = {"epoch": epoch, "loss": loss, "pairs_per_s": rate}
+    if value is not None:
+        row[f"valid_{metric}"] = value
+    result.history.append(row)
+    lower = lower_is_better(metric)
+    improved = value is None or result.best_value is None or (value < result.best_value if lower else value > result.best_value)
+    if improved:
+        result.best_value, result.best_epoch = value, epoch
+        result.best_state = _clone(model.state_dict())
+        if checkpoint_dir is not None:
+            state = result.best_state
+            write_atomic(checkpoint_dir / "best.pt", lambda f: torch.save({"epoch": epoch, "state_dict": state}, f))
+    return value, improved
 
 
 class Trainer:
@@ -150,14 +235,22 @@ class Trainer:
         self.tcfg = cfg["training"]
         self.generator = torch.Generator().manual_seed(cfg["run"]["seed"])
         self.optimizers = make_optimizers(model, self.tcfg)
+        self.rank, self.world = rank_and_size()
+        # one process: negatives come from the shuffling generator, as always; several: each process
+        # draws its own negatives, while the shared shuffle keeps every process on the same order
+        self.negative_generator = self.generator if self.world == 1 else \
+            torch.Generator().manual_seed(cfg["run"]["seed"] + 1 + self.rank)
         self.logistic = self.tcfg["loss"] == "logistic"
+        self.softmax = self.tcfg["loss"] == "softmax"
         self.n_neg = self.tcfg["negatives"] if self.logistic else 0
         train = data.train
-        if not self.logistic and train.target is None:
+        self.log_q = _log_batch_share(train.candidate, block_len(data.candidates.block)) \
+            if self.softmax and self.tcfg["logq_correction"] else None
+        if self.tcfg["loss"] == "squared" and train.target is None:
             raise TowersError("config key 'training.loss': squared loss needs interactions.target_column (ratings); "
                               "use loss: logistic for events without a target")
-        self.sampler = NegativeSampler(train, block_len(data.candidates.block), data.warm_items, self.tcfg, self.generator) \
-            if self.n_neg else None
+        self.sampler = NegativeSampler(train, block_len(data.candidates.block), data.warm_items, self.tcfg,
+                                       self.negative_generator) if self.n_neg else None
         q_ids = data.queries.block["id"][train.query]
         c_ids = data.candidates.block["id"][train.candidate]
         if model.shared:
@@ -168,25 +261,69 @@ class Trainer:
             self.c_inv = _id_counts(c_ids, data.candidates.encoders.id_encoder.size)
         self.lam = self.tcfg["id_l2"]
         self.stop_requested = False
-        if not self.logistic and model.use_biases:
+        self.step_loss = self.batch_loss if self.world == 1 else wrap(self)
+        if self.tcfg["loss"] == "squared" and model.use_biases:
             # start the global bias at the mean rating, so id rows and biases learn offsets from it
             with torch.no_grad():
                 model.global_bias.fill_(float(train.target.mean()))
 
-    def _penalty(self, tower: Tower, bias, ids: torch.Tensor, inv: torch.Tensor) -> torch.Tensor:
-        """lambda/2 * (||row||^2 + b^2) / n_row for each pair's id row (row 0, the unknown id, is free)."""
-        total = torch.zeros(len(ids))
+    def _penalty(self, tower: Tower, bias, ids: torch.Tensor, inv: torch.Tensor, rows: torch.Tensor | None = None,
+                 bias_rows: torch.Tensor | None = None) -> torch.Tensor:
+        """lambda/2 * (||row||^2 + b^2) / n_row for each pair's id row (row 0, the unknown id, is free).
+
+        rows / bias_rows: the id rows and biases of `ids` when the caller has gathered them already (an
+        id-only tower's output is its id row), so the tables are not read twice and each table gets
+        one sparse gradient per step instead of two to be added together.
+        """
+        total = None
         if tower.ids is not None:
-            total = total + tower.ids(ids).pow(2).sum(1)
+            total = _SquaredNorms.apply(rows if rows is not None else tower.ids(ids))
         if bias is not None:
-            total = total + bias(ids).squeeze(1).pow(2)
-        return 0.5 * self.lam * total * inv.index_select(0, ids)
+            b2 = (bias_rows if bias_rows is not None else bias(ids).squeeze(1)).pow(2)
+            total = b2 if total is None else total + b2
+        if total is None:
+            return torch.zeros(len(ids))
+        return (0.5 * self.lam) * total * inv.index_select(0, ids)
+
+    def in_batch_loss(self, idx: torch.Tensor) -> torch.Tensor:
+        """Sampled softmax over the batch: each pair's candidate against the batch's other candidates.
+
+        Query and global biases cancel inside a softmax over candidates, so only candidate biases enter.
+        """
+        m, d, train = self.model, self.data, self.data.train
+        q_rows, c_rows = train.query.index_select(0, idx), train.candidate.index_select(0, idx)
+        qb = self.query_batch(idx, q_rows)
+        q_ids = m.query_tower.id_rows(qb)
+        qe = m.query_tower(qb, q_ids)
+        cb = take(d.candidates.block, c_rows)
+        c_ids = m.candidate_tower.id_rows(cb)
+        ce = m.candidate_tower(cb, c_ids)
+        logits = (qe @ ce.T) / m.temperature + m.candidate_bias_of(c_ids).unsqueeze(0)
+        log_q = self.log_q.index_select(0, c_rows) if self.log_q is not None else None
+        loss = in_batch_softmax_loss(logits, c_rows, log_q)
+        if train.target is not None:  # a label in [0, 1] scales its row; label 0 rows teach nothing here
+            loss = loss * train.target.index_select(0, idx)
+        if train.weight is not None:
+            loss = loss * train.weight.index_select(0, idx)
+        if self.lam > 0:
+            loss = loss + self._penalty(m.query_tower, m.query_bias if m.use_biases else None, q_ids, self.q_inv)
+            loss = loss + self._penalty(m.candidate_tower, m.candidate_bias if m.use_biases else None, c_ids, self.c_inv)
+        return loss.mean()
+
+    def query_batch(self, idx: torch.Tensor, q_rows: torch.Tensor) -> dict:
+        """The query tower's input for pairs idx: the query entity's features, plus the pairs' context columns."""
+        qb = take(self.data.queries.block, q_rows)
+        if self.data.train.context is not None:
+            qb = qb | take(self.data.train.context, idx)
+        return qb
 
     def batch_loss(self, idx: torch.Tensor) -> torch.Tensor:
         """Mean objective over one minibatch of training pairs (see module docstring)."""
+        if self.softmax:
+            return self.in_batch_loss(idx)
         m, d, train = self.model, self.data, self.data.train
         q_rows, c_rows = train.query.index_select(0, idx), train.candidate.index_select(0, idx)
-        qb = take(d.queries.block, q_rows)
+        qb = self.query_batch(idx, q_rows)
         q_ids = m.query_tower.id_rows(qb)
         qe = m.query_tower(qb, q_ids)
         b = len(idx)
@@ -199,13 +336,17 @@ class Trainer:
         qbias = m.query_bias_of(q_ids)
         cbias = m.candidate_bias_of(c_ids)
         g = m.global_bias if m.use_biases else 0.0
-        pos = (qe * ce[:b]).sum(1) * scale + qbias + cbias[:b] + g
+        # split, not slices: a slice's backward zero-fills a gradient of the whole tensor for each part
+        ce_pos, ce_neg = ce.split([b, len(ce) - b])
+        cbias_pos, cbias_neg = cbias.split([b, len(cbias) - b])
+        pos = (qe * ce_pos).sum(1) * scale + qbias + cbias_pos + g
         y = train.target.index_select(0, idx) if train.target is not None else torch.ones(b)
         if self.logistic:
             loss = logistic_loss(pos, y)
             if self.n_neg:
-                ne = ce[b:].view(b, self.n_neg, -1)
-                neg = torch.bmm(ne, qe.unsqueeze(2)).squeeze(2) * scale + qbias.unsqueeze(1) + cbias[b:].view(b, -1) + g
+                ne = ce_neg.view(b, self.n_neg, -1)
+                # elementwise, not bmm: b tiny (n_neg x k) products are slower as a batched matmul
+                neg = (ne * qe.unsqueeze(1)).sum(2) * scale + qbias.unsqueeze(1) + cbias_neg.view(b, -1) + g
                 loss = loss + logistic_loss(neg, torch.zeros_like(neg)).sum(1)
         else:
             loss = squared_loss(pos, y)
@@ -214,8 +355,12 @@ class Trainer:
         if self.lam > 0:
             qbias_t = m.query_bias if m.use_biases else None
             cbias_t = m.candidate_bias if m.use_biases else None
-            loss = loss + self._penalty(m.query_tower, qbias_t, q_ids, self.q_inv)
-            loss = loss + self._penalty(m.candidate_tower, cbias_t, c_ids[:b], self.c_inv)
+            q_rows_seen = qe if _output_is_id_row(m.query_tower) else None
+            c_rows_seen = ce_pos if _output_is_id_row(m.candidate_tower) else None
+            loss = loss + self._penalty(m.query_tower, qbias_t, q_ids, self.q_inv, q_rows_seen,
+                                        qbias if m.use_biases else None)
+            loss = loss + self._penalty(m.candidate_tower, cbias_t, c_ids[:b], self.c_inv, c_rows_seen,
+                                        cbias_pos if m.use_biases else None)
         return loss.mean()
 
     def objective(self) -> float:
@@ -225,8 +370,9 @@ class Trainer:
         self.model.eval()
         with torch.no_grad():
             n = len(self.data.train)
-            total = sum(float(self.batch_loss(torch.arange(i, min(n, i + 65536)))) * min(65536, n - i)
-                        for i in range(0, n, 65536))
+            step = self.tcfg["batch_size"] if self.softmax else 65536  # softmax: batches as in training
+            total = sum(float(self.batch_loss(torch.arange(i, min(n, i + step)))) * min(step, n - i)
+                        for i in range(0, n, step))
             dense = sum(float(p.pow(2).sum()) for p in self.model.dense_parameters())
         self.model.train()
         self.n_neg = keep_neg
@@ -253,7 +399,9 @@ class Trainer:
                 progress.close()
                 raise Interrupted(epoch, s, perm, total)
             idx = perm[s * bs:(s + 1) * bs]
-            loss = self.batch_loss(idx)
+            if self.world > 1:  # this process's share of the global batch (distributed.py)
+                idx = idx[self.rank::self.world]
+            loss = self.step_loss(idx)
             if not torch.isfinite(loss):
                 progress.close()
                 raise TrainingDiverged(
@@ -271,6 +419,8 @@ class Trainer:
                 progress.set_postfix(loss=f"{float(loss.detach()):.4f}", pairs_s=f"{rate:,.0f}")
         progress.close()
         self.last_rate = (n - min(n, start_step * bs)) / max(1e-9, time.perf_counter() - start)
+        if self.world > 1:
+            return mean_over_processes(total * self.world / n)
         return total / n
 
 
@@ -316,7 +466,6 @@ def fit(model: TwoTowerModel, data: Prepared, cfg: dict, checkpoint_dir: Path | 
     trainer = Trainer(model, data, cfg, label)
     tcfg = cfg["training"]
     metric = default_stop_metric(cfg)
-    lower = lower_is_better(metric)
     bar = show_bar(tcfg["progress"])
     result = TrainResult(stop_metric=metric)
     best_state, stale = None, 0
@@ -361,26 +510,18 @@ def fit(model: TwoTowerModel, data: Prepared, cfg: dict, checkpoint_dir: Path | 
         while epoch <= tcfg["epochs"]:
             try:
                 loss = trainer.run_epoch(epoch, bar, perm, start_step, done_loss)
+            except RuntimeError as exc:  # a collective failed: a peer process is gone
+                if trainer.world > 1:
+                    raise peer_failure(exc) from None
+                raise
             except Interrupted as stop:
                 save(False, (stop.epoch, stop.step, stop.perm, stop.loss_so_far))
                 raise TrainingInterrupted(f"{label} training interrupted at epoch {stop.epoch}, step {stop.step}; "
                                           "checkpoint written") from None
             perm, start_step, done_loss = None, 0, 0.0
-            value = None
-            if len(data.valid):
-                value = validation_metrics(model_scorer(model, data), data, cfg, data.valid).get(metric)
-            row = {"epoch": epoch, "loss": loss, "pairs_per_s": trainer.last_rate}
-            if value is not None:
-                row[f"valid_{metric}"] = value
-            result.history.append(row)
-            improved = value is not None and (result.best_value is None or
-                                              (value < result.best_value if lower else value > result.best_value))
-            if improved or value is None:
-                result.best_value, result.best_epoch, stale = value, epoch, 0
-                best_state = _clone(model.state_dict())
-                if checkpoint_dir is not None:
-                    write_atomic(checkpoint_dir / "best.pt",
-                                 lambda f: torch.save({"epoch": epoch, "state_dict": best_state}, f))
+            value, improved = record_epoch(model, data, cfg, result, epoch, loss, trainer.last_rate, checkpoint_dir)
+            if improved:
+                best_state, stale = result.best_state, 0
             else:
                 stale += 1
             shown = "" if value is None else f"  valid {metric} {value:.4f}{' (best)' if improved else ''}"
@@ -399,8 +540,11 @@ def fit(model: TwoTowerModel, data: Prepared, cfg: dict, checkpoint_dir: Path | 
 
 
 def _install_stop_handler(trainer: Trainer):
-    """Ctrl-C asks the trainer to stop after the current step (only possible in the main thread)."""
-    if threading.current_thread() is not threading.main_thread():
+    """Ctrl-C asks the trainer to stop after the current step (only possible in the main thread).
+
+    Several processes could not agree on a step to stop at, so there Ctrl-C ends them at once.
+    """
+    if threading.current_thread() is not threading.main_thread() or trainer.world > 1:
         return None
 
     def request_stop(signum, frame):

@@ -1,0 +1,201 @@
+"""Accuracy against the limit: train on planted data whose best possible score is known.
+
+Generates the planted explicit and implicit data sets (towers/planted.py, default sizes), trains
+configs/planted_explicit.yaml and configs/planted_implicit.yaml through towers.api.train (the path
+a user takes), and prints each model's figure next to the limit:
+
+- ratings: held-out RMSE over sigma, the noise level (no model can beat it: the Bayes risk of
+  squared loss is the noise variance); the oracle, which predicts the true mean, lands near 1;
+- events: recall@20 over the oracle's (which ranks by the true scores) and over popularity's, on
+  warm items and on cold items held out whole.
+
+Exits 1 when a target is missed. Run it as scripts/accuracy (sets up .venv first).
+
+    scripts/accuracy                 # data, runs and accuracy.table under build/accuracy/
+    scripts/accuracy --out /tmp/acc
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import sys
+import time
+from pathlib import Path
+
+import yaml
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+
+import towers  # noqa: E402
+from accuracy_ratios import ratio  # noqa: E402
+from towers.atomic import write_text_atomic  # noqa: E402
+from towers.bundle import load_payload  # noqa: E402
+from towers.planted import generate_explicit, generate_implicit  # noqa: E402
+
+# The targets of the full benchmark (tests/test_accuracy.py asserts looser ones on smaller data).
+RMSE_OVER_SIGMA_MAX = 1.05    # linear factor and towers, held-out ratings
+WARM_OVER_ORACLE_MIN = 0.90   # recall@20, warm items
+COLD_OVER_ORACLE_MIN = 0.80   # recall@20, cold items, towers
+COLD_OVER_POPULARITY_MIN = 2.0
+BAND_SDS = 4.0                # the oracle's RMSE must lie within this many standard errors of sigma
+
+
+def planted_config(name: str, data_dir: Path, out_dir: Path, changes: dict | None = None) -> Path:
+    """configs/planted_NAME.yaml with its data paths pointed into data_dir, written under out_dir.
+
+    changes: {section: {key: value}} applied on top (the tests use it for shorter runs).
+    """
+    cfg = yaml.safe_load((ROOT / "configs" / f"planted_{name}.yaml").read_text(encoding="utf-8"))
+    for section in ("interactions", "items"):
+        cfg[section]["path"] = str(data_dir / Path(cfg[section]["path"]).name)
+    for key in ("oracle_users", "oracle_items"):
+        cfg["evaluation"][key] = str(data_dir / "truth" / Path(cfg["evaluation"][key]).name)
+    for section, keys in (changes or {}).items():
+        cfg.setdefault(section, {}).update(keys)
+    return write_text_atomic(out_dir / "configs" / f"planted_{name}.yaml", yaml.safe_dump(cfg, sort_keys=False))
+
+
+def noise_band(sigma: float, n_test: int, sds: float = BAND_SDS) -> float:
+    """Half-width of the band around sigma that a held-out RMSE of pure noise falls into.
+
+    With n iid N(0, sigma^2) residuals the mean square has standard deviation sigma^2 sqrt(2/n), so
+    RMSE / sigma has about sqrt(1/(2n)) (the delta method; chi-square variance 2n, from memory).
+    """
+    return sds * math.sqrt(1.0 / (2.0 * n_test))
+
+
+def explicit_report(metrics: dict, info: dict, n_test: int, max_ratio: float = RMSE_OVER_SIGMA_MAX,
+                    sds: float = BAND_SDS) -> tuple[list[dict], list[str]]:
+    """Rows {model, rmse, rmse/sigma, target, ok} and the list of missed targets."""
+    sigma, band = info["noise"], noise_band(info["noise"], n_test, sds)
+    rows, missed = [], []
+    for model, m in metrics["warm"].items():
+        r = m["rmse"] / sigma
+        if model in ("linear_factor", "towers"):
+            target, ok = f"<= {max_ratio:.2f}", r <= max_ratio
+        elif model == "oracle":
+            target, ok = f"1 +- {band:.3f}", abs(r - 1.0) <= band
+        else:
+            target, ok = "", True
+        if r < 1.0 - band:  # beating the noise on held-out data would mean leakage or a bug
+            target, ok = target + " (below the floor!)", False
+        rows.append({"model": model, "rmse": m["rmse"], "rmse/sigma": r, "target": target, "ok": ok})
+        if not ok:
+            missed.append(f"explicit {model}: rmse/sigma {r:.4f}, target {target}")
+    return rows, missed
+
+
+def implicit_report(metrics: dict, metric: str = "recall@20", warm_min: float = WARM_OVER_ORACLE_MIN,
+                    cold_min: float = COLD_OVER_ORACLE_MIN, cold_pop_min: float = COLD_OVER_POPULARITY_MIN
+                    ) -> tuple[list[dict], list[str]]:
+    """Rows {slice, model, value, /oracle, /popularity, target, ok} and the list of missed targets."""
+    rows, missed = [], []
+    for slice_name, models in metrics.items():
+        for model, m in models.items():
+            over_o = ratio(metrics, slice_name, model, "oracle", metric)
+            over_p = ratio(metrics, slice_name, model, "popularity", metric)
+            target, ok = "", True
+            if slice_name == "warm" and model in ("linear_factor", "towers"):
+                target, ok = f"/oracle >= {warm_min:.2f}", over_o >= warm_min
+            elif slice_name == "cold" and model == "towers":
+                target = f"/oracle >= {cold_min:.2f}, /popularity >= {cold_pop_min:.1f}"
+                ok = over_o >= cold_min and over_p >= cold_pop_min
+            elif slice_name == "cold" and model == "linear_factor":
+                # ids only: every cold item gets the same unknown row, so it can only tie them all
+                target, ok = "= popularity (ties)", abs(over_p - 1.0) < 1e-9
+            rows.append({"slice": slice_name, "model": model, "value": m[metric], "/oracle": over_o,
+                         "/popularity": over_p, "target": target, "ok": ok})
+            if not ok:
+                missed.append(f"implicit {slice_name} {model}: {metric} {m[metric]:.4f} "
+                              f"(/oracle {over_o:.3f}, /popularity {over_p:.3f}), target {target}")
+    return rows, missed
+
+
+def _mark(ok: bool, target: str) -> str:
+    return "" if not target else ("ok  " if ok else "MISS") + " " + target
+
+
+def format_explicit(rows: list[dict], info: dict, n_test: int) -> str:
+    head = (f"ratings: rank {info['rank']}, {info['n_users']:,} users x {info['n_items']:,} items, noise sigma "
+            f"{info['noise']}, {info['n_ratings']:,} ratings = {info['n_ratings'] / info['threshold']:.1f} x "
+            f"r(n+m)ln(n) ({info['density']:.1%} of the matrix); {n_test:,} held-out ratings")
+    lines = [head, f"{'model':<15}{'rmse':>9}{'rmse/sigma':>12}  target"]
+    for r in rows:
+        lines.append(f"{r['model']:<15}{r['rmse']:9.4f}{r['rmse/sigma']:12.4f}  {_mark(r['ok'], r['target'])}".rstrip())
+    return "\n".join(lines) + "\n"
+
+
+def format_implicit(rows: list[dict], info: dict, metrics: dict, metric: str = "recall@20") -> str:
+    head = (f"events: rank {info['rank']}, {info['n_users']:,} users x {info['n_items']:,} items, "
+            f"{info['n_events']:,} events = {info['n_events'] / info['threshold']:.1f} x r(n+m)ln(n); "
+            f"users draw items by softmax of the true scores")
+    lines = [head, f"{'slice':<6}{'model':<15}{metric:>11}{'/oracle':>9}{'/popularity':>13}  target"]
+    for r in rows:
+        fmt = lambda v: "n/a" if v is None else f"{v:.3f}"  # noqa: E731
+        lines.append(f"{r['slice']:<6}{r['model']:<15}{r['value']:11.4f}{fmt(r['/oracle']):>9}"
+                     f"{fmt(r['/popularity']):>13}  {_mark(r['ok'], r['target'])}".rstrip())
+    queries = {s: next(iter(m.values())).get("queries") for s, m in metrics.items()}
+    lines.append("queries: " + ", ".join(f"{s} {q:,}" for s, q in queries.items()))
+    return "\n".join(lines) + "\n"
+
+
+def held_out_count(run_dir: Path, part: str = "test") -> int:
+    return len(load_payload(run_dir / "pairs.pt", "pairs file")[part]["query"])
+
+
+def run_benchmark(out: Path) -> tuple[str, list[str], dict]:
+    """Generate, train and report both data sets; returns (table text, missed targets, figures)."""
+    figures, missed, parts = {}, [], []
+
+    data = out / "explicit"
+    generate_explicit(data)
+    info = json.loads((data / "truth" / "planted.json").read_text())
+    started = time.perf_counter()
+    result = towers.train(planted_config("explicit", data, out), out / "runs" / "explicit", overwrite=True)
+    seconds = time.perf_counter() - started
+    n_test = held_out_count(out / "runs" / "explicit")
+    rows, miss = explicit_report(result["metrics"], info, n_test)
+    parts.append(format_explicit(rows, info, n_test) + f"(trained in {seconds:.0f} s)\n")
+    figures["explicit"] = {"planted": info, "rows": rows, "n_test": n_test, "seconds": seconds}
+    missed += miss
+
+    data = out / "implicit"
+    generate_implicit(data)
+    info = json.loads((data / "truth" / "planted.json").read_text())
+    started = time.perf_counter()
+    result = towers.train(planted_config("implicit", data, out), out / "runs" / "implicit", overwrite=True)
+    seconds = time.perf_counter() - started
+    rows, miss = implicit_report(result["metrics"])
+    parts.append(format_implicit(rows, info, result["metrics"]) + f"(trained in {seconds:.0f} s)\n")
+    figures["implicit"] = {"planted": info, "rows": rows, "seconds": seconds}
+    missed += miss
+    return "\n".join(parts), missed, figures
+
+
+def main(argv=None) -> int:
+    parser = argparse.ArgumentParser(prog="scripts/accuracy", description=__doc__.splitlines()[0])
+    parser.add_argument("--out", default=str(ROOT / "build" / "accuracy"),
+                        help="folder for the planted data, the runs and accuracy.table (default build/accuracy)")
+    args = parser.parse_args(argv)
+    out = Path(args.out).resolve()
+    started = time.perf_counter()
+    try:
+        table, missed, figures = run_benchmark(out)
+    except towers.TowersError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 2
+    total = time.perf_counter() - started
+    table += "\n" + ("all targets met" if not missed else "missed:\n  " + "\n  ".join(missed)) + \
+        f"\naccuracy benchmark finished in {total:.0f} s\n"
+    write_text_atomic(out / "accuracy.table", table)
+    write_text_atomic(out / "accuracy.json", json.dumps(figures | {"missed": missed, "seconds": total}, indent=2))
+    print(table, end="")
+    return 1 if missed else 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,64 @@
+"""Ratio rows from a run's metrics.json: each model against the oracle and against popularity.
+
+Used by scripts/accuracy (planted data) and scripts/demo (the demo store). A ranking metric is
+better when higher, so model/oracle near 1 means close to the limit; for rmse lower is better, so
+model/oracle near 1 from above means close to the floor.
+
+    .venv/bin/python scripts/accuracy_ratios.py demo_runs/baskets demo_runs/ratings
+"""
+
+from __future__ import annotations
+
+import json
+import sys
+from pathlib import Path
+
+ROWS = (("towers", "oracle"), ("towers", "popularity"), ("linear_factor", "oracle"))
+
+
+def headline_metric(metrics: dict) -> str:
+    """rmse for rating runs, else the first recall@K."""
+    first = next(iter(next(iter(metrics.values())).values()))
+    if "rmse" in first:
+        return "rmse"
+    return next(m for m in first if m.startswith("recall@"))
+
+
+def ratio(metrics: dict, slice_name: str, model: str, reference: str, metric: str) -> float | None:
+    """metrics[slice][model][metric] / metrics[slice][reference][metric], or None when either is absent or 0."""
+    s = metrics.get(slice_name, {})
+    a, b = s.get(model, {}).get(metric), s.get(reference, {}).get(metric)
+    if a is None or not b:
+        return None
+    return a / b
+
+
+def ratio_rows(metrics: dict, metric: str | None = None) -> str:
+    """The ratio rows of every slice as text: 'towers/oracle', 'towers/popularity', 'linear_factor/oracle'."""
+    metric = metric or headline_metric(metrics)
+    lines = []
+    for slice_name in metrics:
+        lines.append(f"[{slice_name}] {metric} ratios")
+        for model, reference in ROWS:
+            r = ratio(metrics, slice_name, model, reference, metric)
+            shown = "n/a (no such row)" if r is None else f"{r:.3f}"
+            lines.append(f"  {model + '/' + reference:<22}{shown}")
+    return "\n".join(lines) + "\n"
+
+
+def main(argv: list[str]) -> int:
+    if not argv:
+        print("usage: accuracy_ratios.py RUN_DIR [RUN_DIR ...]", file=sys.stderr)
+        return 2
+    for run in argv:
+        path = Path(run) / "metrics.json"
+        if not path.is_file():
+            print(f"error: {path}: not found; train the run first", file=sys.stderr)
+            return 2
+        print(f"== {run}")
+        print(ratio_rows(json.loads(path.read_text(encoding="utf-8"))))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main(sys.argv[1:]))

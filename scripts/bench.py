@@ -1,0 +1,755 @@
+"""Speed benchmarks for towers: each figure is a ratio of two timings taken in the same run.
+
+    scripts/bench            full sizes (the sizes named in each case below)
+    scripts/bench --quick    smaller sizes, the same figures, under 3 minutes on 2 cores
+    scripts/bench --only retrieval als       some cases only
+
+Every case runs in its own child process (`bench.py --child CASE`), so one measurement's memory
+peak never leaks into the next; the parent prints a table and writes bench.json. Absolute times on
+shared machines are noise; the ratios are the point. The cases and the meaning of every key are
+described in DEVELOPERS.md, "Benchmarking".
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+# sizes per case: (full, quick)
+SIZES = {
+    "id_training": ({"users": 200_000, "items": 100_000, "pairs": 2_000_000, "textbook_pairs": 61_440},
+                    {"users": 50_000, "items": 25_000, "pairs": 500_000, "textbook_pairs": 20_480}),
+    "tower_flops": ({"users": 100_000, "items": 20_000, "pairs": 600_000},
+                    {"users": 30_000, "items": 10_000, "pairs": 150_000}),
+    "als": ({"users": 40_000, "items": 10_000, "ratings": 1_000_000},
+            {"users": 10_000, "items": 4_000, "ratings": 200_000}),
+    "retrieval": ({"queries": 20_000, "items": 200_000, "top": 100},
+                  {"queries": 4_000, "items": 100_000, "top": 100}),
+    "scale": ({"small": 1_000_000, "large": 10_000_000, "items": 100_000},
+              {"small": 200_000, "large": 2_000_000, "items": 50_000}),
+    "embed": ({"items": 1_000_000}, {"items": 300_000}),
+}
+CASES = tuple(SIZES)
+K = 64  # k, the embedding size, in every case
+
+
+# ---- measuring -------------------------------------------------------------------------------------
+
+def peak_rss_bytes() -> int:
+    """This process's peak resident memory (Linux reports ru_maxrss in KiB)."""
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+
+
+def status_bytes(field: str) -> int | None:
+    """A memory figure (VmRSS, VmHWM) of this process from /proc, in bytes; None off Linux."""
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith(field + ":"):
+                return int(line.split()[1]) * 1024
+    except OSError:
+        return None
+    return None
+
+
+def reset_peak_rss() -> bool:
+    """Reset VmHWM to the current RSS (Linux >= 4.0), so a later VmHWM is the peak of what follows."""
+    try:
+        Path("/proc/self/clear_refs").write_text("5")
+        return True
+    except OSError:
+        return False
+
+
+def best_time(fn, repeats: int = 3) -> float:
+    """Shortest wall time of several calls, in seconds (the least disturbed by other processes)."""
+    best = float("inf")
+    for _ in range(repeats):
+        t = time.perf_counter()
+        fn()
+        best = min(best, time.perf_counter() - t)
+    return best
+
+
+def log(message: str) -> None:
+    print(f"[bench] {message}", file=sys.stderr, flush=True)
+
+
+# ---- synthetic data ----------------------------------------------------------------------------------
+
+def popular_items(rng, n: int, n_items: int):
+    """Item rows drawn with a long tail: P(item of rank r) ~ (r + 10)^-0.8 (shop-like, no source)."""
+    import numpy as np
+
+    w = (np.arange(n_items) + 10.0) ** -0.8
+    cdf = np.cumsum(w / w.sum())
+    return np.minimum(np.searchsorted(cdf, rng.random(n)), n_items - 1)
+
+
+def write_id_log(path: Path, n_pairs: int, n_users: int, n_items: int, seed: int) -> None:
+    """An event log of integer user and item ids as parquet."""
+    import numpy as np
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    rng = np.random.default_rng(seed)
+    users = rng.integers(0, n_users, n_pairs)
+    items = popular_items(rng, n_pairs, n_items)
+    pq.write_table(pa.table({"user": users, "item": items}), path)
+
+
+def sku_text(rows):
+    """Item codes such as SKU-0001234, built by arrow (no Python string per row)."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    digits = pc.utf8_lpad(pc.cast(pa.array(rows), pa.string()), 7, "0")
+    return pc.binary_join_element_wise("SKU-", digits, "")
+
+
+def write_item_table(path: Path, n_items: int, seed: int, first: int = 0) -> None:
+    """An item feature table: text id, category (500 values), price, tags as 'a|b|c' text."""
+    import numpy as np
+    import pyarrow as pa
+    import pyarrow.compute as pc
+    import pyarrow.parquet as pq
+
+    rng = np.random.default_rng(seed)
+    rows = np.arange(first, first + n_items)
+    tags = pa.array(np.char.add("t", rng.integers(0, 2000, n_items).astype(str)))
+    more = pa.array(np.char.add("t", rng.integers(0, 2000, n_items).astype(str)))
+    table = pa.table({
+        "item_id": sku_text(rows),
+        "category": pa.array(np.char.add("c", rng.integers(0, 500, n_items).astype(str))),
+        "price": pa.array(np.round(rng.lognormal(2.5, 0.8, n_items), 2)),
+        "tags": pc.binary_join_element_wise(tags, more, "|"),
+    })
+    pq.write_table(table, path)
+
+
+def write_shop_log(path: Path, n_pairs: int, n_users: int, n_items: int, seed: int) -> None:
+    """An event log with integer customer ids and text item codes, as parquet."""
+    import numpy as np
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    rng = np.random.default_rng(seed)
+    users = rng.integers(0, n_users, n_pairs)
+    items = sku_text(popular_items(rng, n_pairs, n_items))
+    pq.write_table(pa.table({"customer": users, "sku": items}), path)
+
+
+# ---- configs -----------------------------------------------------------------------------------------
+
+def id_config(log_path: Path, batch: int) -> dict:
+    """The linear factor model (ids only, no hidden layer) under logistic loss with one negative."""
+    return {
+        "run": {"seed": 1},
+        "interactions": {"path": str(log_path), "query_column": "user", "candidate_column": "item"},
+        "model": {"dim": K, "hidden": [], "id_dropout": 0.0},
+        "training": {"loss": "logistic", "negatives": 1, "negative_sampling": "uniform", "batch_size": batch,
+                     "id_optimizer": "sgd", "id_learning_rate": 20.0, "epochs": 1, "progress": "plain"},
+        "evaluation": {"test_fraction": 0.0, "validation_fraction": 0.0, "baseline": False},
+    }
+
+
+ID_BATCH = 16384
+TOWER_BATCH = 4096
+
+
+# ---- cases (children) ----------------------------------------------------------------------------------
+
+def case_id_training(size: dict, work: Path) -> dict:
+    """Id-only training, three ways over the same pairs: towers' Trainer, a bare SGD kernel, a textbook loop."""
+    import torch
+
+    from towers import config as C
+    from towers.dataset import prepare
+    from towers.training import Trainer, build_model
+
+    log_path = work / "ids.parquet"
+    write_id_log(log_path, size["pairs"], size["users"], size["items"], seed=3)
+    cfg = C.resolve(id_config(log_path, ID_BATCH), work)
+    data = prepare(cfg)
+    torch.manual_seed(1)
+    model = build_model(data, cfg)
+    trainer = Trainer(model, data, cfg)
+    n = len(data.train)
+
+    losses = []
+
+    def towers_epoch():
+        losses.append(trainer.run_epoch(len(losses) + 1, False))
+
+    bare = BareKernel(model, data, cfg)
+    t_towers, t_bare = [], []
+    for _ in range(2):  # interleaved, so both see the same machine
+        t_towers.append(best_time(towers_epoch, 1))
+        t_bare.append(best_time(bare.epoch, 1))
+    towers_rate, bare_rate = n / min(t_towers), n / min(t_bare)
+    log(f"id training: towers {towers_rate:,.0f} pairs/s (epoch losses {', '.join(f'{x:.4f}' for x in losses)}), "
+        f"bare kernel {bare_rate:,.0f} pairs/s (losses {', '.join(f'{x:.4f}' for x in bare.losses)})")
+    textbook_rate = textbook_loop(data, size["textbook_pairs"])
+    log(f"id training: textbook per-sample loop {textbook_rate:,.0f} pairs/s")
+    return {
+        "id_training_vs_bare_kernel": towers_rate / bare_rate,
+        "id_training_vs_per_sample_loop": towers_rate / textbook_rate,
+        "id_training_pairs_per_s": towers_rate, "bare_kernel_pairs_per_s": bare_rate,
+        "per_sample_loop_pairs_per_s": textbook_rate,
+        "id_training_epoch_losses": losses, "bare_kernel_epoch_losses": bare.losses,
+    }
+
+
+class BareKernel:
+    """Gather-dot-scatter SGD for the same objective, written by hand: no autograd, no modules.
+
+    Per batch: gather the query, positive and negative rows and biases, compute the logistic-loss
+    gradients and the spread id penalty in closed form, and scatter-add them into the tables. The
+    scatter is a sparse COO add, the fastest row scatter-add torch offers on this CPU (index_add_
+    and index_put_(accumulate=True) were measured slower). Works on copies of the model's tables.
+    """
+
+    def __init__(self, model, data, cfg):
+        import torch
+
+        self.U = model.query_tower.ids.weight.detach().clone()
+        self.V = model.candidate_tower.ids.weight.detach().clone()
+        self.bu = model.query_bias.weight.detach().clone().squeeze(1)
+        self.bv = model.candidate_bias.weight.detach().clone().squeeze(1)
+        self.g = 0.0
+        self.q = data.queries.block["id"].index_select(0, data.train.query)
+        self.c = data.candidates.block["id"].index_select(0, data.train.candidate)
+        self.q_inv = 1.0 / torch.bincount(self.q, minlength=len(self.U)).clamp(min=1).float()
+        self.c_inv = 1.0 / torch.bincount(self.c, minlength=len(self.V)).clamp(min=1).float()
+        self.warm = torch.unique(self.c)
+        self.lr, self.lam = cfg["training"]["id_learning_rate"], cfg["training"]["id_l2"]
+        self.batch = cfg["training"]["batch_size"]
+        self.gen = torch.Generator().manual_seed(5)
+        self.losses = []
+
+    @staticmethod
+    def scatter(table, rows, values, alpha):
+        import torch
+
+        table.add_(torch.sparse_coo_tensor(rows.unsqueeze(0), values, table.shape, check_invariants=False), alpha=alpha)
+
+    def epoch(self) -> None:
+        import torch
+        import torch.nn.functional as F
+
+        n, b_max, lam, lr = len(self.q), self.batch, self.lam, self.lr
+        perm = torch.randperm(n, generator=self.gen)
+        total = 0.0
+        for s in range(0, n, b_max):
+            idx = perm[s:s + b_max]
+            b = len(idx)
+            qi = self.q.index_select(0, idx)
+            ci = torch.cat([self.c.index_select(0, idx),
+                            self.warm.index_select(0, torch.randint(0, len(self.warm), (b,), generator=self.gen))])
+            u, v = self.U.index_select(0, qi), self.V.index_select(0, ci)
+            bu, bv = self.bu.index_select(0, qi), self.bv.index_select(0, ci)
+            vp, vn = v[:b], v[b:]
+            sp = (u * vp).sum(1) + bu + bv[:b] + self.g
+            sn = (u * vn).sum(1) + bu + bv[b:] + self.g
+            total += float(F.softplus(-sp).sum() + F.softplus(sn).sum())
+            gp, gn = (torch.sigmoid(sp) - 1.0) / b, torch.sigmoid(sn) / b  # d(mean loss)/d score
+            pq = (lam / b) * self.q_inv.index_select(0, qi)  # spread penalty, per pair
+            pc = (lam / b) * self.c_inv.index_select(0, ci[:b])
+            grad_u = gp.unsqueeze(1) * vp + gn.unsqueeze(1) * vn + pq.unsqueeze(1) * u
+            grad_v = torch.cat([gp.unsqueeze(1) * u + pc.unsqueeze(1) * vp, gn.unsqueeze(1) * u])
+            grad_bu = gp + gn + pq * bu
+            grad_bv = torch.cat([gp + pc * bv[:b], gn])
+            self.scatter(self.U, qi, grad_u, -lr)
+            self.scatter(self.V, ci, grad_v, -lr)
+            self.scatter(self.bu, qi, grad_bu, -lr)
+            self.scatter(self.bv, ci, grad_bv, -lr)
+            self.g -= 0.003 * float(gp.sum() + gn.sum())
+        self.losses.append(total / n)
+
+
+def textbook_loop(data, n_pairs: int) -> float:
+    """The loop most tutorials write: a per-sample Dataset, a DataLoader, dense tables and dense Adam."""
+    import random
+
+    import torch
+    import torch.nn as nn
+    import torch.nn.functional as F
+    from torch.utils.data import DataLoader, Dataset
+
+    users = data.queries.block["id"].index_select(0, data.train.query).tolist()
+    items = data.candidates.block["id"].index_select(0, data.train.candidate).tolist()
+    n_users, n_items = len(data.queries.ids) + 1, len(data.candidates.ids) + 1
+
+    class Pairs(Dataset):
+        def __len__(self):
+            return len(users)
+
+        def __getitem__(self, i):
+            return users[i], items[i], random.randrange(1, n_items)
+
+    class Factors(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.u, self.v = nn.Embedding(n_users, K), nn.Embedding(n_items, K)
+            self.bu, self.bv = nn.Embedding(n_users, 1), nn.Embedding(n_items, 1)
+            for e in (self.u, self.v):
+                nn.init.normal_(e.weight, std=0.1)
+            for e in (self.bu, self.bv):
+                nn.init.zeros_(e.weight)
+
+        def forward(self, u, i):
+            return (self.u(u) * self.v(i)).sum(1) + self.bu(u).squeeze(1) + self.bv(i).squeeze(1)
+
+    random.seed(0)
+    torch.manual_seed(0)
+    model = Factors()
+    opt = torch.optim.Adam(model.parameters(), lr=0.01)
+    loader = DataLoader(Pairs(), batch_size=1024, shuffle=True)
+    steps = n_pairs // 1024
+    done, start = 0, None
+    for step, (u, i, j) in enumerate(loader):
+        if step == 2:  # the first steps allocate Adam's state: not timed
+            start, done = time.perf_counter(), 0
+        pos, neg = model(u, i), model(u, j)
+        loss = F.binary_cross_entropy_with_logits(torch.cat([pos, neg]), torch.cat([torch.ones_like(pos), torch.zeros_like(neg)]))
+        loss = loss + 0.1 * (model.u(u).pow(2).sum(1) + model.v(i).pow(2).sum(1)).mean() / 100
+        opt.zero_grad()
+        loss.backward()
+        opt.step()
+        done += len(u)
+        if step >= steps + 1:
+            break
+    return done / (time.perf_counter() - start)
+
+
+def tower_flops_per_pair(model, n_neg: int) -> tuple[int, int]:
+    """Matrix-product FLOPs per training pair in the two towers' Linear layers: (forward, training step).
+
+    A Linear layer costs 2*in*out per row forward, and as much again for each of the two backward
+    products (gradient of the input, gradient of the weight): 6*in*out per row per step. Elementwise
+    work (activations, embedding lookups, the loss) is not counted.
+    """
+    import torch.nn as nn
+
+    def per_row(tower):
+        return sum(2 * m.in_features * m.out_features for m in tower.modules() if isinstance(m, nn.Linear))
+
+    forward = per_row(model.query_tower) + (1 + n_neg) * per_row(model.candidate_tower)
+    return forward, 3 * forward
+
+
+def matmul_peak_flops() -> float:
+    """FLOP/s of torch.mm on 2048 x 2048 float32 matrices (best of 10)."""
+    import torch
+
+    a, b = torch.randn(2048, 2048), torch.randn(2048, 2048)
+    out = torch.empty(2048, 2048)
+    torch.mm(a, b, out=out)
+    return 2 * 2048 ** 3 / best_time(lambda: torch.mm(a, b, out=out), 10)
+
+
+def case_tower_flops(size: dict, work: Path) -> dict:
+    """MLP towers [256, 256] -> 64 with id, categorical, numeric and token inputs, batch 4096."""
+    import numpy as np
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+    import torch
+
+    from towers import config as C
+    from towers.dataset import prepare
+    from towers.training import Trainer, build_model
+
+    rng = np.random.default_rng(4)
+    n_users = size["users"]
+    pq.write_table(pa.table({"customer": np.arange(n_users),
+                             "region": np.char.add("r", rng.integers(0, 40, n_users).astype(str)),
+                             "age": rng.integers(18, 90, n_users).astype(float)}), work / "users.parquet")
+    write_item_table(work / "items.parquet", size["items"], seed=5)
+    write_shop_log(work / "log.parquet", size["pairs"], n_users, size["items"], seed=6)
+    raw = {
+        "run": {"seed": 1},
+        "interactions": {"path": str(work / "log.parquet"), "query_column": "customer", "candidate_column": "sku"},
+        "users": {"path": str(work / "users.parquet"), "id_column": "customer",
+                  "features": [{"name": "region", "kind": "categorical"}, {"name": "age", "kind": "numeric"}]},
+        "items": {"path": str(work / "items.parquet"), "id_column": "item_id",
+                  "features": [{"name": "category", "kind": "categorical"}, {"name": "price", "kind": "numeric"},
+                               {"name": "tags", "kind": "tokens"}]},
+        "model": {"dim": K, "hidden": [256, 256]},
+        "training": {"loss": "logistic", "negatives": 1, "batch_size": TOWER_BATCH, "epochs": 1, "progress": "plain"},
+        "evaluation": {"test_fraction": 0.0, "validation_fraction": 0.0, "baseline": False},
+    }
+    cfg = C.resolve(raw, work)
+    data = prepare(cfg)
+    torch.manual_seed(1)
+    model = build_model(data, cfg)
+    trainer = Trainer(model, data, cfg)
+    n = len(data.train)
+    _, step_flops = tower_flops_per_pair(model, cfg["training"]["negatives"])
+    peak = matmul_peak_flops()
+    epochs = []
+    seconds = best_time(lambda: epochs.append(trainer.run_epoch(len(epochs) + 1, False)), 2)
+    achieved = n * step_flops / seconds
+    peak = max(peak, matmul_peak_flops())  # measured before and after, the better one kept
+    log(f"towers: {n / seconds:,.0f} pairs/s, {achieved / 1e9:.1f} GFLOP/s in Linear layers; "
+        f"torch.mm 2048^2 {peak / 1e9:.1f} GFLOP/s")
+    return {"tower_flops_vs_matmul_peak": achieved / peak, "tower_gflops": achieved / 1e9,
+            "matmul_2048_gflops": peak / 1e9, "tower_pairs_per_s": n / seconds}
+
+
+def case_als(size: dict, work: Path) -> dict:
+    """One ALS sweep of towers.als against solving every row's normal equations with its own Cholesky."""
+    import numpy as np
+    import torch
+
+    from towers import als
+    from towers.config import SCHEMA
+
+    rng = np.random.default_rng(7)
+    nu, ni, n = size["users"], size["items"], size["ratings"]
+    pu, pi = rng.normal(0, 0.6, (nu, 8)), rng.normal(0, 0.6, (ni, 8))
+    u = rng.integers(0, nu, n)
+    i = popular_items(rng, n, ni)
+    y = np.clip(np.round(3.5 + (pu[u] * pi[i]).sum(1) + rng.normal(0, 0.8, n)), 1, 5)
+    # id rows: row 0 is the unknown id, so catalog row r is id row r + 1
+    cells = als.Cells.build(torch.from_numpy(u + 1), torch.from_numpy(i + 1), torch.from_numpy(y).float(), None,
+                            nu + 1, ni + 1)
+    lam = SCHEMA["training"]["id_l2"].default
+    cg_steps = SCHEMA["evaluation"]["baseline_cg_steps"].default
+    g = torch.Generator().manual_seed(8)
+
+    def start() -> als.Factors:
+        q, c = torch.randn(nu + 1, K, generator=g) * 0.1, torch.randn(ni + 1, K, generator=g) * 0.1
+        q[0], c[0] = 0, 0
+        return als.Factors(q, c, torch.zeros(nu + 1), torch.zeros(ni + 1), float(y.mean()))
+
+    f0 = start()
+    fast = als.Factors(f0.query.clone(), f0.candidate.clone(), f0.query_bias.clone(), f0.candidate_bias.clone(),
+                       f0.global_bias)
+    warm = start()
+    als.als_sweep(warm, cells, lam, cg_steps)  # first call: lazy set-up inside torch, not timed
+    t = time.perf_counter()
+    als.als_sweep(fast, cells, lam, cg_steps)
+    t_fast = time.perf_counter() - t
+    exact = als.Factors(f0.query.clone(), f0.candidate.clone(), f0.query_bias.clone(), f0.candidate_bias.clone(),
+                        f0.global_bias)
+    als.als_sweep(exact, cells, lam, 0)  # towers' batched Cholesky: the reference's answer, for the check
+    ref = PerRowCholesky(cells, f0, lam)
+    t = time.perf_counter()
+    ref.sweep()
+    t_ref = time.perf_counter() - t
+    diff = float(np.abs(ref.query[:, :K] - exact.query.double().numpy()).max())
+    objective = {name: als.objective(fac, cells, lam) / n for name, fac in
+                 (("start", f0), ("cg", fast), ("exact", exact))}
+    log(f"ALS sweep ({cg_steps} CG steps) {t_fast:.2f} s; per-row Cholesky reference {t_ref:.2f} s; "
+        f"objective per rating: start {objective['start']:.4f}, CG sweep {objective['cg']:.4f}, "
+        f"exact sweep {objective['exact']:.4f}; reference vs towers' exact solve: max |diff| {diff:.2e}")
+    return {"als_vs_per_row_cholesky": t_ref / t_fast, "als_sweep_s": t_fast, "per_row_cholesky_sweep_s": t_ref,
+            "als_cg_steps": cg_steps, "als_objective_after_cg_sweep": objective["cg"],
+            "als_objective_after_exact_sweep": objective["exact"], "als_reference_max_abs_diff": diff}
+
+
+class PerRowCholesky:
+    """The textbook ALS sweep: for each row, gather its cells, build (F^T W F + lambda I), Cholesky, solve.
+
+    The same objective as towers.als (bias appended to the vector, the other side's bias and the
+    global bias as an offset, the global bias re-fitted after each half), in float64 numpy/scipy.
+    """
+
+    def __init__(self, cells, f, lam: float):
+        import numpy as np
+
+        self.lam = lam
+        self.query = np.concatenate([f.query.double().numpy(), f.query_bias.double().numpy()[:, None]], 1)
+        self.cand = np.concatenate([f.candidate.double().numpy(), f.candidate_bias.double().numpy()[:, None]], 1)
+        self.g = f.global_bias
+        self.rows, self.cols = cells.rows.numpy(), cells.cols.numpy()
+        self.w, self.y = cells.weight.double().numpy(), cells.target.double().numpy()
+
+    def half(self, mine, other, my_rows, other_rows) -> None:
+        import numpy as np
+        from scipy.linalg import cho_factor, cho_solve
+
+        order = np.argsort(my_rows, kind="stable")
+        r_sorted, o_sorted = my_rows[order], other_rows[order]
+        w, y = self.w[order], self.y[order]
+        bounds = np.flatnonzero(np.diff(r_sorted)) + 1
+        starts = np.concatenate([[0], bounds])
+        ends = np.concatenate([bounds, [len(r_sorted)]])
+        d = mine.shape[1]
+        eye = self.lam * np.eye(d)
+        for a, b in zip(starts, ends):
+            o = o_sorted[a:b]
+            F = np.concatenate([other[o, :-1], np.ones((b - a, 1))], 1)
+            target = y[a:b] - other[o, -1] - self.g
+            A = F.T @ (w[a:b, None] * F) + eye
+            mine[r_sorted[a]] = cho_solve(cho_factor(A), F.T @ (w[a:b] * target))
+
+    def refit_global(self) -> None:
+        import numpy as np
+
+        s0 = (self.query[self.rows, :-1] * self.cand[self.cols, :-1]).sum(1) + self.query[self.rows, -1] + \
+            self.cand[self.cols, -1]
+        self.g = float(np.sum(self.w * (self.y - s0)) / np.sum(self.w))
+
+    def sweep(self) -> None:
+        self.half(self.query, self.cand, self.rows, self.cols)
+        self.refit_global()
+        self.half(self.cand, self.query, self.cols, self.rows)
+        self.refit_global()
+
+
+def case_retrieval(size: dict, work: Path) -> dict:
+    """Blocked exact top-N (towers.retrieval.top_n) against the same blocked products without selection."""
+    import numpy as np
+    import torch
+
+    from towers import retrieval as R
+
+    g = torch.Generator().manual_seed(9)
+    nq, ni, top = size["queries"], size["items"], size["top"]
+    # vectors with a shared direction and varied norms, as trained embeddings have (not plain noise)
+    common = torch.randn(K, generator=g)
+    q = torch.randn(nq, K, generator=g) + 0.3 * common
+    items = (torch.randn(ni, K, generator=g) + 0.3 * common) * torch.rand(ni, 1, generator=g).add(0.5)
+    bias = torch.randn(ni, generator=g) * 0.5
+    ex_r = torch.arange(nq).repeat_interleave(20)  # 20 known items per query, excluded as recommend does
+    ex_c = torch.randint(0, ni, (nq * 20,), generator=g)
+
+    rows = max(1, min(nq, R.BLOCK_ENTRIES // (ni if ni <= 2 * R.ITEM_TILE else R.ITEM_TILE)))
+    cols = ni if ni <= 2 * R.ITEM_TILE else R.ITEM_TILE
+
+    def bare():
+        buf = torch.empty(rows * cols)
+        for lo in range(0, nq, rows):
+            qb = q[lo:lo + rows]
+            for j0 in range(0, ni, cols):
+                j1 = min(ni, j0 + cols)
+                R.score_tile(qb, items[j0:j1], bias[j0:j1], buf[:len(qb) * (j1 - j0)].view(len(qb), j1 - j0))
+
+    result = {}
+
+    def search():
+        result["top"] = R.top_n(q, items, top, bias, ex_r, ex_c)
+
+    bare()  # warm-up: first touch of the buffers
+    rss_before = status_bytes("VmRSS")
+    peak_ok = reset_peak_rss()
+    t_search = [best_time(search, 1)]
+    extra = (status_bytes("VmHWM") - rss_before) if peak_ok and rss_before else None
+    t_bare = [best_time(bare, 1)]
+    t_search.append(best_time(search, 1))
+    t_bare.append(best_time(bare, 1))
+    # spot check against brute force on 64 queries (the tests check exclusions and ties in detail)
+    pick = torch.randperm(nq, generator=g)[:64]
+    full = (q[pick].double() @ items.double().T + bias.double()).numpy()
+    local = np.full(nq, -1)
+    local[pick.numpy()] = np.arange(len(pick))
+    mine = local[ex_r.numpy()] >= 0
+    full[local[ex_r.numpy()[mine]], ex_c.numpy()[mine]] = -np.inf
+    expect = -np.sort(-full, axis=1)[:, :top]
+    got = result["top"][1][pick].double().numpy()
+    max_err = float(np.abs(got - expect).max())
+    flops = 2.0 * nq * ni * K
+    log(f"retrieval: top-{top} {min(t_search):.2f} s, bare blocked products {min(t_bare):.2f} s "
+        f"({flops / min(t_bare) / 1e9:.1f} GFLOP/s); extra peak memory "
+        f"{'n/a' if extra is None else f'{extra / 2**20:.0f} MiB'}; max |score - brute force| {max_err:.1e}")
+    return {"retrieval_vs_bare_matmul": min(t_bare) / min(t_search), "retrieval_s": min(t_search),
+            "bare_matmul_s": min(t_bare), "retrieval_peak_extra_mb": None if extra is None else extra / 2 ** 20,
+            "retrieval_tile_mb": R.BLOCK_ENTRIES * 4 / 2 ** 20, "full_score_matrix_mb": nq * ni * 4 / 2 ** 20,
+            "retrieval_max_abs_error": max_err}
+
+
+def scale_config(work: Path, tag: str) -> dict:
+    return {
+        "run": {"seed": 1},
+        "interactions": {"path": str(work / f"log_{tag}.parquet"), "query_column": "customer", "candidate_column": "sku"},
+        "items": {"path": str(work / "items.parquet"), "id_column": "item_id",
+                  "features": [{"name": "category", "kind": "categorical"}, {"name": "price", "kind": "numeric"},
+                               {"name": "tags", "kind": "tokens", "max_tokens": 4}]},  # 2 tags per item here
+        "model": {"dim": 32, "hidden": [64]},
+        "training": {"loss": "logistic", "negatives": 1, "batch_size": 8192, "id_optimizer": "sgd",
+                     "id_learning_rate": 5.0, "epochs": 1, "progress": "plain"},
+        "evaluation": {"baseline": False},
+    }
+
+
+def case_scale_data(size: dict, work: Path) -> dict:
+    """Writes the item table and both logs (users grow with the log: 20 events per customer)."""
+    write_item_table(work / "items.parquet", size["items"], seed=10)
+    for tag in ("small", "large"):
+        write_shop_log(work / f"log_{tag}.parquet", size[tag], size[tag] // 20, size["items"], seed=11)
+    return {}
+
+
+def case_scale_run(size: dict, work: Path, tag: str) -> dict:
+    """Load from parquet, match ids, split, fit encoders, encode, one training epoch; time and peak memory."""
+    import torch
+
+    from towers import config as C
+    from towers.dataset import prepare
+    from towers.training import Trainer, build_model
+
+    t = time.perf_counter()
+    cfg = C.resolve(scale_config(work, tag), work)
+    data = prepare(cfg)
+    t_prepare = time.perf_counter() - t
+    torch.manual_seed(1)
+    trainer = Trainer(build_model(data, cfg), data, cfg)
+    trainer.run_epoch(1, False)
+    total = time.perf_counter() - t
+    log(f"scale {size[tag]:,} events: prepare {t_prepare:.1f} s, total {total:.1f} s, "
+        f"peak RSS {peak_rss_bytes() / 2**30:.2f} GiB")
+    return {"seconds": total, "prepare_s": t_prepare, "peak_rss_gb": peak_rss_bytes() / 2 ** 30}
+
+
+def case_embed_setup(size: dict, work: Path) -> dict:
+    """A small trained run with item features, and a table of unseen items to embed."""
+    from towers.runner import train_run
+    import yaml
+
+    write_item_table(work / "items.parquet", 5_000, seed=12)
+    write_shop_log(work / "log.parquet", 50_000, 2_000, 5_000, seed=13)
+    cfg = scale_config(work, "x")
+    cfg["interactions"]["path"] = str(work / "log.parquet")
+    cfg["model"] = {"dim": K, "hidden": [256, 256]}
+    (work / "embed.yaml").write_text(yaml.safe_dump(cfg))
+    train_run(work / "embed.yaml", work / "run", overwrite=True)
+    write_item_table(work / "unseen.parquet", size["items"], seed=14, first=10_000_000)
+    return {}
+
+
+def case_embed_run(size: dict, work: Path) -> dict:
+    """`towers embed RUN --items unseen.parquet`: time and peak memory of the whole command."""
+    from towers.cli import main
+
+    t = time.perf_counter()
+    code = main(["embed", str(work / "run"), "--items", str(work / "unseen.parquet"), "--out", str(work / "unseen_vectors.parquet")])
+    seconds = time.perf_counter() - t
+    if code:
+        raise SystemExit(f"towers embed failed with exit code {code}")
+    log(f"embed {size['items']:,} unseen items: {seconds:.1f} s, peak RSS {peak_rss_bytes() / 2**30:.2f} GiB")
+    return {"seconds": seconds, "peak_rss_gb": peak_rss_bytes() / 2 ** 30}
+
+
+CHILDREN = {"id_training": case_id_training, "tower_flops": case_tower_flops, "als": case_als,
+            "retrieval": case_retrieval, "scale_data": case_scale_data,
+            "scale_small": lambda s, w: case_scale_run(s, w, "small"),
+            "scale_large": lambda s, w: case_scale_run(s, w, "large"),
+            "embed_setup": case_embed_setup, "embed_run": case_embed_run}
+
+
+# ---- the parent ------------------------------------------------------------------------------------
+
+def child(name: str, size: dict, work: Path) -> dict:
+    """Run one measurement in a fresh process; returns its JSON result."""
+    cmd = [sys.executable, __file__, "--child", name, "--size", json.dumps(size), "--work", str(work)]
+    proc = subprocess.run(cmd, stdout=subprocess.PIPE, text=True, cwd=ROOT)
+    if proc.returncode != 0:
+        raise SystemExit(f"bench: case {name} failed (exit {proc.returncode})")
+    return json.loads(proc.stdout.strip().splitlines()[-1])
+
+
+def run_case(name: str, size: dict, work: Path) -> dict:
+    if name == "scale":
+        child("scale_data", size, work)
+        small, large = child("scale_small", size, work), child("scale_large", size, work)
+        return {"scale_10m_over_1m": large["seconds"] / small["seconds"], "peak_rss_gb_10m": large["peak_rss_gb"],
+                "peak_rss_gb_1m": small["peak_rss_gb"], "scale_seconds_1m": small["seconds"],
+                "scale_seconds_10m": large["seconds"], "scale_prepare_s_1m": small["prepare_s"],
+                "scale_prepare_s_10m": large["prepare_s"]}
+    if name == "embed":
+        child("embed_setup", size, work)
+        out = child("embed_run", size, work)
+        return {"embed_1m_unseen_peak_rss_gb": out["peak_rss_gb"], "embed_1m_unseen_s": out["seconds"]}
+    return child(name, size, work)
+
+
+GOALS = {  # key: (goal, "at least" or "at most")
+    "id_training_vs_bare_kernel": (0.8, ">="), "id_training_vs_per_sample_loop": (20, ">="),
+    "tower_flops_vs_matmul_peak": (0.4, ">="), "als_vs_per_row_cholesky": (5, ">="),
+    "retrieval_vs_bare_matmul": (0.8, ">="), "scale_10m_over_1m": (11, "<="), "peak_rss_gb_10m": (4, "<="),
+    "embed_1m_unseen_peak_rss_gb": (None, ""),
+}
+
+
+def table(figures: dict) -> str:
+    lines = [f"{'figure':34s} {'value':>10s}  {'goal':>8s}  met"]
+    for key, (goal, sense) in GOALS.items():
+        if key not in figures:
+            continue
+        v = figures[key]
+        met = "" if goal is None else ("yes" if (v >= goal if sense == ">=" else v <= goal) else "NO")
+        lines.append(f"{key:34s} {v:10.3f}  {'' if goal is None else f'{sense} {goal:g}':>8s}  {met}")
+    return "\n".join(lines)
+
+
+def load_average() -> list[float] | None:
+    try:
+        return [round(x, 2) for x in os.getloadavg()]
+    except OSError:
+        return None
+
+
+def main(argv=None) -> int:
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--quick", action="store_true", help="smaller sizes, the same figures (under 3 minutes)")
+    p.add_argument("--only", nargs="+", choices=CASES, help="run only these cases")
+    p.add_argument("--out", default=str(ROOT / "bench.json"), help="where to write the figures (default bench.json)")
+    p.add_argument("--child", help=argparse.SUPPRESS)
+    p.add_argument("--size", help=argparse.SUPPRESS)
+    p.add_argument("--work", help=argparse.SUPPRESS)
+    args = p.parse_args(argv)
+    if args.child:
+        result = CHILDREN[args.child](json.loads(args.size), Path(args.work))
+        print(json.dumps(result))
+        return 0
+
+    import torch
+
+    from towers.atomic import write_text_atomic
+
+    started = time.perf_counter()
+    figures: dict = {}
+    sizes = {}
+    load_start = load_average()
+    with tempfile.TemporaryDirectory(prefix="towers-bench-") as tmp:
+        for name in args.only or CASES:
+            size = SIZES[name][1 if args.quick else 0]
+            sizes[name] = size
+            work = Path(tmp) / name
+            work.mkdir()
+            t = time.perf_counter()
+            log(f"{name} {json.dumps(size)}")
+            figures.update(run_case(name, size, work))
+            log(f"{name} done in {time.perf_counter() - t:.0f} s")
+    elapsed = time.perf_counter() - started
+    report = {
+        **{k: figures[k] for k in GOALS if k in figures},
+        "details": {k: v for k, v in figures.items() if k not in GOALS},
+        "run": {"mode": "quick" if args.quick else "full", "seconds": round(elapsed, 1), "sizes": sizes,
+                "command": "scripts/bench" + (" --quick" if args.quick else "") +
+                           (f" --only {' '.join(args.only)}" if args.only else ""),
+                "load_average_start": load_start, "load_average_end": load_average(),
+                "threads": torch.get_num_threads(), "cpu_count": os.cpu_count(), "torch": torch.__version__,
+                "python": platform.python_version(), "machine": platform.machine(),
+                "finished": time.strftime("%Y-%m-%d %H:%M:%S")},
+    }
+    write_text_atomic(Path(args.out), json.dumps(report, indent=2) + "\n")
+    print(table(figures))
+    print(f"\n{report['run']['mode']} run in {elapsed:.0f} s; load average {load_start} -> {report['run']['load_average_end']}; "
+          f"figures written to {args.out}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
