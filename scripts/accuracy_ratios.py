@@ -41,7 +41,8 @@ def ratio_rows(metrics: dict, metric: str | None = None) -> str:
         lines.append(f"[{slice_name}] {metric} ratios")
         for model, reference in ROWS:
             r = ratio(metrics, slice_name, model, reference, metric)
-            shown = "n/a (no such row)" if r is None else f"{r:.3f}"
+            missing = next((m for m in (reference, model) if m not in metrics[slice_name]), None)
+            shown = f"{r:.3f}" if r is not None else f"n/a (no {missing} row)" if missing else "n/a (zero)"
             lines.append(f"  {model + '/' + reference:<22}{shown}")
     return "\n".join(lines) + "\n"
 

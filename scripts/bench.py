@@ -525,16 +525,18 @@ def case_retrieval(size: dict, work: Path) -> dict:
     ex_r = torch.arange(nq).repeat_interleave(20)  # 20 known items per query, excluded as recommend does
     ex_c = torch.randint(0, ni, (nq * 20,), generator=g)
 
-    rows = max(1, min(nq, R.BLOCK_ENTRIES // (ni if ni <= 2 * R.ITEM_TILE else R.ITEM_TILE)))
-    cols = ni if ni <= 2 * R.ITEM_TILE else R.ITEM_TILE
+    layout = R.Layout(ni)
+    rows = max(1, min(nq, R.BLOCK_ENTRIES // layout.step_width))
 
     def bare():
-        buf = torch.empty(rows * cols)
+        """The same products in the same buffer and order as top_n, with no selection at all."""
+        buffer = torch.empty(layout.sub_tiles, rows, layout.sub_width)
         for lo in range(0, nq, rows):
             qb = q[lo:lo + rows]
-            for j0 in range(0, ni, cols):
-                j1 = min(ni, j0 + cols)
-                R.score_tile(qb, items[j0:j1], bias[j0:j1], buf[:len(qb) * (j1 - j0)].view(len(qb), j1 - j0))
+            for j0 in range(0, ni, layout.step_width):
+                for t, (a, c) in enumerate(layout.sub_tiles_of(j0)):
+                    out = buffer[t].view(-1)[:len(qb) * c].view(len(qb), c)
+                    R.score_tile(qb, items[a:a + c], bias[a:a + c], out)
 
     result = {}
 

@@ -4,7 +4,7 @@ from towers.config import FEATURE_KEYS, SCHEMA
 
 
 def _fmt(key) -> str:
-    kind = {"int_list": "list of int", "features": "list of feature specs", "choice": " / ".join(key.choices)}.get(key.kind, key.kind)
+    kind = {"int_list": "list of int", "str_or_int_list": "list of ids", "features": "list of feature specs", "choice": " / ".join(key.choices)}.get(key.kind, key.kind)
     if key.nullable and key.kind != "choice":
         kind += " or null"
     default = "required" if key.default is None and not key.nullable and key.kind != "features" else repr(key.default)

@@ -99,7 +99,7 @@ def test_unknown_key_without_close_match_lists_the_known_keys(tmp_path):
         C.resolve(minimal(run={"zzzzzz": 1}), tmp_path)
     msg = str(err.value)
     assert "did you mean" not in msg
-    assert "known keys: mode, seed, threads" in msg
+    assert "known keys: mode, reuse_memory, seed, threads" in msg
 
 
 def test_top_level_must_be_a_mapping(tmp_path):
@@ -146,6 +146,7 @@ BAD_VALUES = [
     ("model", "activation", "sigmoid", "one of relu, gelu, tanh, silu"),
     ("run", "mode", "pairs", "one of user_item, item_item"),
     ("run", "seed", -1, "a number >= 0"),
+    ("run", "reuse_memory", "yes", "true or false"),
     ("training", "loss", "hinge", "one of squared, logistic"),
     ("evaluation", "top_k", [0], "a list of positive whole numbers"),
     ("evaluation", "test_fraction", 0.91, "a number <= 0.9"),

@@ -38,18 +38,20 @@ def check_against_brute_force(q, items, n, bias=None, ex_r=None, ex_c=None, scal
     return idx, val
 
 
-@pytest.fixture(params=[(1 << 22, 8192), (1 << 10, 64), (1 << 12, 96)], ids=["default", "tiny-tiles", "odd-tiles"])
+@pytest.fixture(params=[(1 << 22, 2048, 4), (1 << 10, 64, 2), (1 << 12, 48, 3), (1 << 9, 32, 1)],
+                ids=["default", "tiny-tiles", "odd-tiles", "one-group-tiles"])
 def tiles(request, monkeypatch):
-    """The default tile, and tiles small enough that the pruned merge runs over many item tiles."""
-    entries, item_tile = request.param
+    """The default tiles, and tiles small enough that the pruned merge runs over many steps."""
+    entries, sub_tile, sub_tiles = request.param
     monkeypatch.setattr(R, "BLOCK_ENTRIES", entries)
-    monkeypatch.setattr(R, "ITEM_TILE", item_tile)
+    monkeypatch.setattr(R, "SUB_TILE", sub_tile)
+    monkeypatch.setattr(R, "SUB_TILES", sub_tiles)
 
 
 @pytest.mark.parametrize("seed", range(6))
 def test_top_n_equals_brute_force(tiles, seed):
     g = torch.Generator().manual_seed(seed)
-    nq, ni, k = 40 + 17 * seed, 700 + 331 * seed, 8
+    nq, ni, k = 20 + 7 * seed, 300 + 170 * seed, 8
     q = torch.randn(nq, k, generator=g) * torch.rand(nq, 1, generator=g).add(0.2)
     items = torch.randn(ni, k, generator=g)
     bias = torch.randn(ni, generator=g) if seed % 2 else None

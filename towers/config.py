@@ -63,6 +63,8 @@ SCHEMA: dict[str, dict[str, Key]] = {
                     choices=("user_item", "item_item")),
         "seed": Key("int", 0, "random seed: the same seed and data give the same run", low=0),
         "threads": Key("int", 0, "torch CPU threads; 0 keeps torch's default", low=0),
+        "reuse_memory": Key("bool", True, "training keeps memory it frees for its next steps (glibc malloc settings) "
+                            "instead of handing it back to the system and faulting it in again each step"),
     },
     "interactions": {
         "path": Key("path", None, "interaction log, CSV or parquet, one row per observed pair"),
@@ -240,7 +242,7 @@ def _check_feature(label: str, index: int, spec: Any, base_dir: Path) -> dict:
 def resolve(raw: dict, base_dir: Path) -> dict:
     """Check a raw config mapping against SCHEMA and fill defaults; paths resolve against base_dir."""
     if not isinstance(raw, dict):
-        raise TowersError("config: the top level must be a mapping of sections (run, interactions, users, items, model, training, evaluation)")
+        raise TowersError(f"config: the top level must be a mapping of sections ({', '.join(SCHEMA)})")
     for section in raw:
         if section not in SCHEMA:
             raise TowersError(f"config section '{section}' is unknown{_suggest(str(section), SCHEMA)}")

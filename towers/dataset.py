@@ -16,7 +16,7 @@ from .context import ContextEncoders
 from .encoders import make_encoder
 from .features import FeatureBlock, SideEncoders, SideTable, take
 from .splits import Split, make_split
-from .tables import align_id_types, normalise_ids, numeric_column, read_table, time_column
+from .tables import align_id_types, factorize_ids, numeric_column, read_table, time_column
 
 
 @dataclass
@@ -77,15 +77,36 @@ class Prepared:
 
 
 @dataclass
+class IdColumn:
+    """A log's id column as codes into its distinct ids (ids == uniques[codes]): memory-light for text ids."""
+
+    codes: np.ndarray  # int64, one per row
+    uniques: np.ndarray  # int64 or str objects, in order of first appearance
+
+    def values(self) -> np.ndarray:
+        return self.uniques[self.codes]
+
+
+@dataclass
 class Log:
     """The interaction log's columns, validated: ids, optional target / weight / time, context frame."""
 
-    query: np.ndarray
-    candidate: np.ndarray
+    query_ids: IdColumn
+    candidate_ids: IdColumn
     target: np.ndarray | None
     weight: np.ndarray | None
     time: np.ndarray | None
     context: pd.DataFrame | None
+
+    @property
+    def query(self) -> np.ndarray:
+        """The query ids, one per row."""
+        return self.query_ids.values()
+
+    @property
+    def candidate(self) -> np.ndarray:
+        """The candidate ids, one per row."""
+        return self.candidate_ids.values()
 
 
 def read_interactions(cfg: dict) -> Log:
@@ -95,8 +116,8 @@ def read_interactions(cfg: dict) -> Log:
     cols = [ic["query_column"], ic["candidate_column"]] + [ic[k] for k in ("target_column", "weight_column", "time_column") if ic[k]]
     context_cols = [f["name"] for f in ic["context"]]
     df = read_table(path, columns=list(dict.fromkeys(cols + context_cols)))
-    q = normalise_ids(df[ic["query_column"]], path, ic["query_column"])
-    c = normalise_ids(df[ic["candidate_column"]], path, ic["candidate_column"])
+    q = IdColumn(*factorize_ids(df[ic["query_column"]], path, ic["query_column"]))
+    c = IdColumn(*factorize_ids(df[ic["candidate_column"]], path, ic["candidate_column"]))
     target = weight = when = None
     if ic["target_column"]:
         target = numeric_column(df[ic["target_column"]], path, ic["target_column"], allow_missing=False)
@@ -129,7 +150,23 @@ def _as_pairs(qr, cr, target, weight, when) -> Pairs:
 
 
 def _train_entities(ids: np.ndarray, rows: np.ndarray) -> np.ndarray:
-    return ids[np.unique(rows)]
+    """The catalog ids that have rows among `rows`, in catalog order (a bincount: linear, not a sort)."""
+    return ids[np.flatnonzero(np.bincount(rows, minlength=len(ids)))]
+
+
+def _joint_ids(a: IdColumn, b: IdColumn) -> IdColumn:
+    """Both columns one after another as one IdColumn (item_item mode), distinct ids in order of first appearance."""
+    ua, ub = a.uniques, b.uniques
+    if ua.dtype != ub.dtype:  # an integer column and a text column: compare as text
+        ua, ub = ua.astype(str).astype(object), ub.astype(str).astype(object)
+    inverse, uniques = pd.factorize(np.concatenate([ua, ub]))
+    codes = np.concatenate([inverse[:len(ua)][a.codes], inverse[len(ua):][b.codes]]).astype(np.int64)
+    return IdColumn(codes, np.asarray(uniques, dtype=ua.dtype))
+
+
+def _catalog_rows(ids: IdColumn, catalog_ids: np.ndarray) -> np.ndarray:
+    """Each row's position in the catalog (-1 where absent), matched once per distinct id."""
+    return pd.Index(catalog_ids).get_indexer(align_id_types(ids.uniques, catalog_ids))[ids.codes]
 
 
 def prepare(cfg: dict, previous=None) -> Prepared:
@@ -141,29 +178,29 @@ def prepare(cfg: dict, previous=None) -> Prepared:
     ic = cfg["interactions"]
     item_item = cfg["run"]["mode"] == "item_item"
     log = read_interactions(cfg)
-    q_raw, c_raw, target, weight, when = log.query, log.candidate, log.target, log.weight, log.time
+    q_log, c_log, target, weight, when = log.query_ids, log.candidate_ids, log.target, log.weight, log.time
     notes: list[str] = []
 
     item_side = SideTable(cfg["items"]["path"], cfg["items"]["id_column"], cfg["items"]["features"], cfg["items"]["missing_rows"])
+    # ids are matched once per distinct id and mapped to rows through the codes (see IdColumn)
     if item_item:
-        both = np.concatenate([q_raw, c_raw]) if q_raw.dtype == c_raw.dtype else np.concatenate([q_raw.astype(str), c_raw.astype(str)]).astype(object)
-        c_ids, c_table, keep_both = item_side.catalog(both, ic["path"], (ic["query_column"], ic["candidate_column"]))
-        n = len(q_raw)
+        both = _joint_ids(q_log, c_log)
+        c_ids, c_table, keep_both = item_side.catalog(both.uniques, ic["path"], (ic["query_column"], ic["candidate_column"]),
+                                                      codes=both.codes)
+        n = len(q_log.codes)
         keep = keep_both[:n] & keep_both[n:]
         q_ids, q_table = c_ids, c_table
-        q_aligned = align_id_types(both[:n], c_ids)
-        c_aligned = align_id_types(both[n:], c_ids)
+        rows_both = _catalog_rows(both, c_ids)
+        q_rows, c_rows = rows_both[:n][keep], rows_both[n:][keep]
     else:
         user_side = SideTable(cfg["users"]["path"], cfg["users"]["id_column"], cfg["users"]["features"], cfg["users"]["missing_rows"])
-        q_ids, q_table, keep_q = user_side.catalog(q_raw, ic["path"], ic["query_column"])
-        c_ids, c_table, keep_c = item_side.catalog(c_raw, ic["path"], ic["candidate_column"])
+        q_ids, q_table, keep_q = user_side.catalog(q_log.uniques, ic["path"], ic["query_column"], codes=q_log.codes)
+        c_ids, c_table, keep_c = item_side.catalog(c_log.uniques, ic["path"], ic["candidate_column"], codes=c_log.codes)
         keep = keep_q & keep_c
-        q_aligned, c_aligned = align_id_types(q_raw, q_ids), align_id_types(c_raw, c_ids)
+        q_rows, c_rows = _catalog_rows(q_log, q_ids)[keep], _catalog_rows(c_log, c_ids)[keep]
     dropped = int((~keep).sum())
     if dropped:
         notes.append(f"dropped {dropped} interaction rows whose ids have no feature row (missing_rows: drop)")
-    q_rows = pd.Index(q_ids).get_indexer(q_aligned[keep])
-    c_rows = pd.Index(c_ids).get_indexer(c_aligned[keep])
     sel = lambda a: None if a is None else a[keep]  # noqa: E731
     pairs = _as_pairs(q_rows, c_rows, sel(target), sel(weight), sel(when))
     if len(pairs) == 0:

@@ -34,12 +34,18 @@ class Scorer:
         items = self.item_vectors if item_rows is None else self.item_vectors.index_select(0, item_rows)
         s = self.query_vectors.index_select(0, q_rows) @ items.T
         if self.scale != 1.0:
-            s = s * self.scale
+            s = _add_or_mul(s, self.scale, multiply=True)
         if self.item_bias is not None:
-            s = s + (self.item_bias if item_rows is None else self.item_bias.index_select(0, item_rows))
+            s = _add_or_mul(s, self.item_bias if item_rows is None else self.item_bias.index_select(0, item_rows))
         if self.query_bias is not None:
-            s = s + self.query_bias.index_select(0, q_rows).unsqueeze(1)
-        return s + self.global_bias if self.global_bias else s
+            s = _add_or_mul(s, self.query_bias.index_select(0, q_rows).unsqueeze(1))
+        return _add_or_mul(s, self.global_bias) if self.global_bias else s
+
+    def over_items(self, item_rows: torch.Tensor) -> "Scorer":
+        """The same model restricted to some items (column j is item_rows[j]): selected once, not per block."""
+        bias = None if self.item_bias is None else self.item_bias.index_select(0, item_rows)
+        return Scorer(self.query_vectors, self.item_vectors.index_select(0, item_rows), self.query_bias, bias,
+                      self.global_bias, self.scale)
 
     def for_events(self, users: torch.Tensor, vectors: torch.Tensor | None = None) -> "Scorer":
         """One query row per event: the event's own vector (context-aware towers) or its user's."""
@@ -54,6 +60,14 @@ class Scorer:
         if self.query_bias is not None:
             s = s + self.query_bias.index_select(0, q)
         return s + self.global_bias
+
+
+def _add_or_mul(s: torch.Tensor, other, multiply: bool = False) -> torch.Tensor:
+    """s + other (or s * other), in place when that gives the same dtype: the same values as the
+    out-of-place operation, without a fresh block-sized tensor for every term."""
+    if torch.result_type(s, other) == s.dtype:
+        return s.mul_(other) if multiply else s.add_(other)
+    return s * other if multiply else s + other
 
 
 def popularity_scorer(train: Pairs, n_queries: int, n_items: int, explicit: bool, item_item: bool = False) -> Scorer:
@@ -116,6 +130,7 @@ def ranking_metrics(scorer: Scorer, test: Pairs, known: Pairs, candidate_mask: t
         pq, pc = pq[sel], pc[sel]
         queries, q_index = torch.unique(pq, return_inverse=True)
     cand_rows = torch.nonzero(candidate_mask).flatten()
+    over = scorer.over_items(cand_rows)
     col_of = torch.full((n_items,), -1, dtype=torch.int64)
     col_of[cand_rows] = torch.arange(len(cand_rows))
     n_cols = len(cand_rows)
@@ -136,7 +151,7 @@ def ranking_metrics(scorer: Scorer, test: Pairs, known: Pairs, candidate_mask: t
     results: dict[str, list] = {}
     for lo, hi in bounds:
         qs = queries[lo:hi]
-        scores = scorer.block(qs, cand_rows).float()
+        scores = over.block(qs).float()
         k_lo, k_hi = torch.searchsorted(kq, qs[0]), torch.searchsorted(kq, qs[-1], right=True)
         if k_hi > k_lo:
             local = torch.searchsorted(qs, kq[k_lo:k_hi])

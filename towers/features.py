@@ -112,24 +112,35 @@ class SideTable:
     def has_table(self) -> bool:
         return self.table is not None
 
-    def catalog(self, interaction_ids: np.ndarray, log_path, log_column: str | tuple[str, ...]
-                ) -> tuple[np.ndarray, pd.DataFrame | None, np.ndarray]:
+    def catalog(self, interaction_ids: np.ndarray, log_path, log_column: str | tuple[str, ...],
+                codes: np.ndarray | None = None) -> tuple[np.ndarray, pd.DataFrame | None, np.ndarray]:
         """The side's entity universe: table ids plus (per missing_rows) ids only seen in the log.
 
         `log_column` names the log column the ids came from; a tuple of names means the ids are those
         columns one after another, equally long (item_item mode), so errors name the right column and row.
-        Returns (catalog ids, feature rows aligned with them or None, keep-mask over interaction ids).
+        With `codes`, interaction_ids are the log's distinct ids and row r of the log holds
+        interaction_ids[codes[r]] (dataset.IdColumn): every check runs once per distinct id.
+        Returns (catalog ids, feature rows aligned with them or None, keep-mask over the log's rows).
         """
         columns = (log_column,) if isinstance(log_column, str) else tuple(log_column)
-        per_column = max(1, len(interaction_ids) // len(columns))
+        n_rows = len(interaction_ids) if codes is None else len(codes)
+        per_column = max(1, n_rows // len(columns))
 
         def locate(i: int) -> str:
             return where(log_path, columns[min(i // per_column, len(columns) - 1)], i % per_column + 1)
 
+        def per_row(mask: np.ndarray) -> np.ndarray:
+            return mask if codes is None else mask[codes]
+
+        def first_row(mask: np.ndarray) -> tuple[int, int]:
+            """(log row, index into interaction_ids) of the first row where mask holds."""
+            row = int(np.flatnonzero(per_row(mask))[0])
+            return row, row if codes is None else int(codes[row])
+
         if self.table is None:
             uniq = pd.unique(interaction_ids)
             uniq = np.sort(uniq) if uniq.dtype.kind in "iu" else np.asarray(sorted(uniq), dtype=object)
-            return uniq, None, np.ones(len(interaction_ids), bool)
+            return uniq, None, np.ones(n_rows, bool)
         if self.ids.dtype.kind in "iu" and interaction_ids.dtype == object and self.missing_rows != "drop":
             # text ids in the log against whole-number ids in the table: any id that is not a whole number
             # can match no row, and (missing_rows: default) could not become a catalog entity of that type
@@ -137,24 +148,24 @@ class SideTable:
             with np.errstate(invalid="ignore"):
                 text = ~(np.isfinite(parsed) & (parsed == np.round(parsed)))
             if text.any():
-                row = int(np.flatnonzero(text)[0])
+                row, at = first_row(text)
                 raise TowersError(
-                    f"{locate(row)}: mixed id types: {interaction_ids[row]!r} is text but the ids in {self.path} are "
+                    f"{locate(row)}: mixed id types: {interaction_ids[at]!r} is text but the ids in {self.path} are "
                     "whole numbers; store every id as a number (or every id as text in both files)")
         ids = align_id_types(interaction_ids, self.ids)
         known = pd.Index(self.ids).get_indexer(ids) >= 0
-        keep = np.ones(len(ids), bool)
+        keep = np.ones(n_rows, bool)
         table, cat_ids = self.table, self.ids
         if not known.all():
             missing = pd.unique(ids[~known])
             if self.missing_rows == "error":
-                row = int(np.flatnonzero(~known)[0])
-                bad = ids[row].item() if isinstance(ids[row], np.generic) else ids[row]
+                row, at = first_row(~known)
+                bad = ids[at].item() if isinstance(ids[at], np.generic) else ids[at]
                 raise TowersError(
                     f"{locate(row)}: id {bad!r} has no row in {self.path} "
                     f"({len(missing)} such ids); add feature rows, or set missing_rows: drop or default")
             if self.missing_rows == "drop":
-                keep = known
+                keep = per_row(known)
             else:
                 filler = pd.DataFrame({c: pd.Series([None] * len(missing), dtype=object) for c in table.columns})
                 filler[self.id_column] = missing

@@ -1,23 +1,27 @@
 """Blocked exact top-N retrieval: score tiles of queries x items, keep each query's best N.
 
-The full query x item score matrix is never built: one tile of BLOCK_ENTRIES scores is reused for
-the whole search, so the extra memory is bounded by the tile, not by the catalog.
+The full query x item score matrix is never built: one buffer of BLOCK_ENTRIES scores is reused for
+the whole search, so the extra memory is bounded by that buffer, not by the catalog.
 
-Selection costs little next to the matrix product because most of each tile is pruned before any
-sorting: after the first tile every query has a running N-th best score, and a later tile is cut
-into groups of GROUP consecutive items whose maximum is one cheap reduction. Only groups whose
-maximum beats the query's running N-th best are gathered and merged with topk; on real and random
-data that is a small share of the tile after the first few tiles. A tile where many groups pass
-falls back to a plain topk over the tile, so the result is exact either way.
+Selection costs little next to the matrix products because most scores are pruned before any
+sorting. Scores are computed SUB_TILE items at a time (a product whose output still sits in the
+cache), and each sub-tile is cut at once into groups of GROUP items (every n_groups-th column, so the
+group maxima are one vectorised reduction over the cached scores). A selection step looks at the
+group maxima of SUB_TILES sub-tiles together: only groups whose maximum reaches the query's floor,
+a lower bound on its final n-th best score, are gathered, and their scores at or above the floor
+wait to be merged into the running top-n with one topk every few steps. The floor is the running
+n-th best, raised on the first steps by the n-th best group maximum (n distinct scores are that
+high). A step where most groups pass falls back to a plain topk, so the result is exact either way.
 """
 
 from __future__ import annotations
 
 import torch
 
-BLOCK_ENTRIES = 1 << 22  # scores per tile (16 MB of float32): the extra memory of one search
-ITEM_TILE = 8192  # items per tile when the catalog is larger (a multiple of GROUP)
-GROUP = 32  # items per group in the pre-filter
+BLOCK_ENTRIES = 1 << 22  # scores in the reusable buffer (16 MB of float32): the extra memory of a search
+SUB_TILE = 2048  # items per matrix product (a multiple of GROUP)
+SUB_TILES = 4  # sub-tiles per selection step
+GROUP = 16  # items per group in the pre-filter
 LOWEST = torch.finfo(torch.float32).min
 
 
@@ -41,17 +45,36 @@ def top_n(query_vectors: torch.Tensor, item_vectors: torch.Tensor, n: int, item_
         queries = queries * scale  # folded into the queries: one pass over q, not over every score
     items = item_vectors.float().contiguous()
     bias = None if item_bias is None else item_bias.float().contiguous()
-    cols = ni if ni <= 2 * ITEM_TILE else ITEM_TILE
-    rows = max(1, min(nq, BLOCK_ENTRIES // cols))
-    tile = torch.empty(rows * cols)
+    layout = Layout(ni)
+    rows = max(1, min(nq, BLOCK_ENTRIES // layout.step_width))
+    buffer = torch.empty(layout.sub_tiles, rows, layout.sub_width)
     has_ex = exclude_rows is not None and len(exclude_rows) > 0
     for lo in range(0, nq, rows):
         hi = min(nq, lo + rows)
         ex = _block_exclusions(exclude_rows, exclude_cols, lo, hi) if has_ex else None
-        val, idx = _search_block(queries[lo:hi], items, bias, n_eff, tile, cols, ex)
+        val, idx = _search_block(queries[lo:hi], items, bias, n_eff, buffer, layout, ex)
         out_score[lo:hi], out_idx[lo:hi] = val, idx
     out_idx[torch.isneginf(out_score)] = -1
     return out_idx, out_score
+
+
+class Layout:
+    """How a catalog of ni items is cut: steps of up to SUB_TILES sub-tiles of up to SUB_TILE items."""
+
+    def __init__(self, ni: int):
+        self.ni = ni
+        # a small catalog is one step of one sub-tile, rounded up to whole groups
+        self.sub_width = min(SUB_TILE, -(-ni // GROUP) * GROUP)
+        self.sub_tiles = max(1, min(SUB_TILES, -(-ni // self.sub_width)))
+        self.step_width = self.sub_width * self.sub_tiles
+
+    def sub_tiles_of(self, j0: int):
+        """(first item, items) of each sub-tile of the step starting at item j0."""
+        for t in range(self.sub_tiles):
+            a = j0 + t * self.sub_width
+            if a >= self.ni:
+                return
+            yield a, min(self.ni, a + self.sub_width) - a
 
 
 def _block_exclusions(rows: torch.Tensor, cols: torch.Tensor, lo: int, hi: int):
@@ -71,25 +94,34 @@ def score_tile(queries: torch.Tensor, items: torch.Tensor, bias: torch.Tensor | 
     return torch.addmm(bias, queries, items.T, out=out)
 
 
-def _search_block(q: torch.Tensor, items: torch.Tensor, bias: torch.Tensor | None, n: int, tile: torch.Tensor,
-                  cols: int, ex) -> tuple[torch.Tensor, torch.Tensor]:
-    """Exact top-n over all items for one block of queries, one item tile at a time."""
-    r, ni = q.shape[0], items.shape[0]
+def _search_block(q: torch.Tensor, items: torch.Tensor, bias: torch.Tensor | None, n: int, buffer: torch.Tensor,
+                  layout: Layout, ex) -> tuple[torch.Tensor, torch.Tensor]:
+    """Exact top-n over all items for one block of queries, one selection step at a time."""
+    r = q.shape[0]
     best = _Running(r, n)
-    for j0 in range(0, ni, cols):
-        j1 = min(ni, j0 + cols)
-        c = j1 - j0
-        s = tile[:r * c].view(r, c)  # contiguous, whatever the tile's shape
-        score_tile(q, items[j0:j1], None if bias is None else bias[j0:j1], s)
-        if ex is not None:
-            a, b = int(torch.searchsorted(ex[1], j0)), int(torch.searchsorted(ex[1], j1))
-            if b > a:
-                s[ex[0][a:b], ex[1][a:b] - j0] = float("-inf")
-        if c % GROUP or c // GROUP < n:
-            # a tile that is not whole groups, or has fewer groups than n: a plain topk
-            best.merge_tile(s, j0)
-        else:
-            best.add_pruned(s, j0)
+    n_groups = layout.sub_width // GROUP
+    tops = torch.empty(layout.sub_tiles, r, n_groups)  # group maxima of one step: (sub-tile, row, group)
+    for j0 in range(0, layout.ni, layout.step_width):
+        widths = []
+        for t, (a, c) in enumerate(layout.sub_tiles_of(j0)):
+            width = -(-c // GROUP) * GROUP
+            s = buffer[t].view(-1)[:r * width].view(r, width)
+            score_tile(q, items[a:a + c], None if bias is None else bias[a:a + c], s[:, :c])
+            if width > c:
+                s[:, c:] = float("-inf")
+            if ex is not None:
+                lo, hi = int(torch.searchsorted(ex[1], a)), int(torch.searchsorted(ex[1], a + c))
+                if hi > lo:
+                    s[ex[0][lo:hi], ex[1][lo:hi] - a] = float("-inf")
+            # group maxima now, while this sub-tile's scores are still in the cache; group g of a
+            # sub-tile of width w holds its columns g, g + w/GROUP, g + 2w/GROUP, ...
+            if width == layout.sub_width:
+                torch.amax(s.view(r, GROUP, n_groups), 1, out=tops[t])
+            else:
+                tops[t, :, :width // GROUP] = s.view(r, GROUP, -1).amax(1)
+                tops[t, :, width // GROUP:] = float("-inf")
+            widths.append(width)
+        best.add_step(tops[:len(widths)], widths, j0, buffer, layout.sub_width)
     best.flush()
     return best.val, best.idx
 
@@ -98,9 +130,8 @@ class _Running:
     """Each query's running top-n (sorted, best first), plus candidates waiting to be merged into it.
 
     `floor` is a lower bound on each row's final n-th best score, so no score below it can be in the
-    result: the running n-th best, raised by the n-th best group maximum of any tile seen (n distinct
-    scores were that high). Candidates at or above the floor are collected from several tiles and
-    merged with one topk, because a topk per tile would cost more than the tiles' few candidates.
+    result. Candidates at or above the floor are collected over several steps and merged with one
+    topk, because a topk per step would cost more than the steps' few candidates.
     """
 
     def __init__(self, rows: int, n: int):
@@ -110,48 +141,62 @@ class _Running:
         self.floor = torch.full((rows, 1), LOWEST)  # LOWEST, not -inf: excluded (-inf) entries never pass
         self.pending: list[tuple[torch.Tensor, torch.Tensor, torch.Tensor]] = []
         self.waiting = 0
+        self.weak = True  # no score seen yet
 
-    def merge_tile(self, s: torch.Tensor, j0: int) -> None:
-        """Merge a whole tile with a plain topk."""
-        v, i = torch.topk(s, min(self.n, s.shape[1]), dim=1)
-        self._merge(torch.arange(s.shape[0]), v, i + j0)
+    def add_step(self, tops: torch.Tensor, widths: list[int], j0: int, buffer: torch.Tensor, sub_width: int) -> None:
+        """Collect the scores of one step that can still reach the top n.
 
-    def add_pruned(self, s: torch.Tensor, j0: int) -> None:
-        """Collect the scores of a tile (width a multiple of GROUP) that can still reach the top n."""
-        r, width = s.shape
-        groups = s.view(r, width // GROUP, GROUP)
-        tops = groups.amax(2)  # (r, groups): each group's best score
-        hit = tops >= self.floor
-        if int(hit.sum()) * 8 > hit.numel():  # a weak floor (the first tiles): raise it with this tile
-            kth = torch.topk(tops, self.n, dim=1, sorted=False).values.amin(1, keepdim=True)
-            torch.maximum(self.floor, kth, out=self.floor)
-            hit = tops >= self.floor
-        hit_rows, hit_groups = hit.nonzero(as_tuple=True)  # row-major order
-        if len(hit_rows) == 0:
+        tops: (sub-tiles, rows, groups) group maxima; sub-tile t holds the items j0 + t * sub_width
+        onwards, its scores (rows, widths[t]) at the start of buffer[t].
+        """
+        r, n = self.val.shape
+        can_raise = tops.shape[0] * tops.shape[2] >= n
+        if self.weak and can_raise:  # nothing seen yet: start from this step's n-th best group maximum
+            self._raise_floor(tops)
+        t_of, rows, group = (tops >= self.floor).nonzero(as_tuple=True)
+        if len(rows) * 8 > tops.numel() and can_raise and not self.weak:
+            # still a weak floor (the first steps): raise it to the n-th best group maximum of this step
+            self._raise_floor(tops)
+            t_of, rows, group = (tops >= self.floor).nonzero(as_tuple=True)
+        self.weak = False
+        if len(rows) == 0:
             return
-        if len(hit_rows) * 2 > hit.numel():
-            # most groups pass (many equal scores, or rows with few finite ones): a plain topk
-            self.merge_tile(s, j0)
+        if len(rows) * 2 > tops.numel():
+            # most groups pass (many equal scores, rows with few finite ones, or a tiny step): plain topk
+            for t, width in enumerate(widths):
+                s = buffer[t].view(-1)[:r * width].view(r, width)
+                v, i = torch.topk(s, min(n, width), dim=1)
+                keep = v > float("-inf")  # padding columns past the catalog end are -inf
+                self._merge(torch.arange(r), v, torch.where(keep, i + j0 + t * sub_width, -1))
             return
-        # flat index_select rather than advanced indexing: the same gathers, several times faster
-        vals = groups.view(-1, GROUP).index_select(0, hit_rows * tops.shape[1] + hit_groups)
-        g_at, offset = (vals >= self.floor.index_select(0, hit_rows)).nonzero(as_tuple=True)  # row order kept
-        self.pending.append((hit_rows.index_select(0, g_at), hit_groups.index_select(0, g_at) * GROUP + offset + j0,
-                             vals.view(-1).index_select(0, g_at * GROUP + offset)))
-        self.waiting += len(g_at)
+        n_groups = torch.tensor(widths, dtype=torch.int64) // GROUP
+        stride = n_groups.index_select(0, t_of)  # columns between the members of a group
+        # flat position in the buffer of member k of each passing group: one index_select gathers them all
+        base = t_of * buffer[0].numel() + rows * (stride * GROUP) + group
+        members = torch.arange(GROUP)
+        vals = buffer.view(-1).index_select(0, (base.unsqueeze(1) + stride.unsqueeze(1) * members).view(-1))
+        at, k = (vals.view(-1, GROUP) >= self.floor.index_select(0, rows)).nonzero(as_tuple=True)
+        self.pending.append((rows.index_select(0, at),
+                             (j0 + t_of.index_select(0, at) * sub_width + group.index_select(0, at)
+                              + k * stride.index_select(0, at)),
+                             vals.index_select(0, at * GROUP + k)))
+        self.waiting += len(at)
         if self.waiting > self.val.numel() // 2:
             self.flush()
+
+    def _raise_floor(self, tops: torch.Tensor) -> None:
+        """floor = max(floor, n-th best group maximum of this step): n distinct scores are that high."""
+        per_row = tops.permute(1, 0, 2).reshape(tops.shape[1], -1)
+        kth = torch.topk(per_row, self.n, dim=1, sorted=False).values.amin(1, keepdim=True)
+        torch.maximum(self.floor, kth, out=self.floor)
 
     def flush(self) -> None:
         """Merge the waiting candidates: pack each row's left into (rows with any, most), -inf elsewhere."""
         if not self.pending:
             return
-        if len(self.pending) == 1:
-            rows, cols, score = self.pending[0]
-        else:  # concatenated tiles: sort by row (stable keeps each row's order) for the packing below
-            rows, cols, score = (torch.cat(t) for t in zip(*self.pending))
-            order = torch.argsort(rows, stable=True)
-            rows, cols, score = rows.index_select(0, order), cols.index_select(0, order), score.index_select(0, order)
+        rows, cols, score = (torch.cat(t) for t in zip(*self.pending)) if len(self.pending) > 1 else self.pending[0]
+        order = torch.argsort(rows, stable=True)  # grouped by row for the packing below
+        rows, cols, score = rows.index_select(0, order), cols.index_select(0, order), score.index_select(0, order)
         self.pending, self.waiting = [], 0
         r = self.val.shape[0]
         per_row = torch.bincount(rows, minlength=r)

@@ -21,6 +21,7 @@ from pathlib import Path
 import torch
 from tqdm import tqdm
 
+from .allocator import reuse_freed_memory
 from .atomic import write_atomic
 from .bundle import load_payload
 from .config import default_stop_metric, lower_is_better
@@ -233,6 +234,8 @@ class Trainer:
     def __init__(self, model: TwoTowerModel, data: Prepared, cfg: dict, label: str = "towers"):
         self.model, self.data, self.cfg, self.label = model, data, cfg, label
         self.tcfg = cfg["training"]
+        if cfg["run"]["reuse_memory"]:
+            reuse_freed_memory()
         self.generator = torch.Generator().manual_seed(cfg["run"]["seed"])
         self.optimizers = make_optimizers(model, self.tcfg)
         self.rank, self.world = rank_and_size()
