@@ -31,7 +31,8 @@ from .evaluate import Scorer, popularity_scorer, ranking_metrics, rating_metrics
 from .export import read_embeddings, write_embeddings
 from .model import TwoTowerModel
 from .report import write_report
-from .training import TrainingDiverged, TrainingInterrupted, build_model, fit, log, model_scorer, reads_context
+from .training import (TrainingDiverged, TrainingInterrupted, build_model, fit, log, model_scorer, reads_context,
+                       start_global_bias)
 from .warm_start import grow_weights, load_previous
 
 MODEL_ORDER = ("popularity", "linear_factor", "bilinear", "towers", "oracle")
@@ -54,7 +55,7 @@ def baseline_model(data: Prepared, cfg: dict) -> tuple[TwoTowerModel, dict]:
     preset = C.linear_factor_preset(cfg)
     m = TwoTowerModel([], data.queries.encoders.id_encoder.size, [], data.candidates.encoders.id_encoder.size,
                       preset["model"], shared=data.item_item and cfg["model"]["shared_tower"])
-    return m, preset
+    return start_global_bias(m, data, preset), preset
 
 
 def oracle_scorer(cfg: dict, data: Prepared) -> Scorer | None:
@@ -134,9 +135,13 @@ def format_table(metrics: dict) -> str:
     return "\n".join(lines).rstrip() + "\n"
 
 
-def export_run(folder: Path, model: TwoTowerModel, data: Prepared, cfg: dict, label: str) -> dict[str, str]:
-    """Write the embeddings of every catalog entity for one model; returns file names by side."""
-    s = model_scorer(model, data)
+def export_run(folder: Path, model: TwoTowerModel, data: Prepared, cfg: dict, label: str,
+               scorer: Scorer | None = None) -> dict[str, str]:
+    """Write the embeddings of every catalog entity for one model; returns file names by side.
+
+    scorer: the model's vectors when the caller already has them (they are not computed twice).
+    """
+    s = scorer if scorer is not None else model_scorer(model, data)
     meta = {"normalized": str(bool(cfg["model"]["normalize"])).lower(),
             "temperature": cfg["model"]["temperature"],
             "score": "dot(query, item) / temperature + query bias + item bias + global bias"
@@ -269,7 +274,7 @@ def train_run(config_path: str | Path, out_dir: str | Path, overwrite: bool = Fa
             scorers["linear_factor"] = model_scorer(base, data)
             histories["linear_factor"] = base_result.history
             _save_model(partial / "linear_factor", base, preset["model"], data)
-            export_run(partial / "linear_factor", base, data, preset, "linear_factor")
+            export_run(partial / "linear_factor", base, data, preset, "linear_factor", scorers["linear_factor"])
         context_models = {"towers": model}
         if cfg["evaluation"]["bilinear"]:
             torch.manual_seed(cfg["run"]["seed"])
@@ -284,7 +289,7 @@ def train_run(config_path: str | Path, out_dir: str | Path, overwrite: bool = Fa
             scorers["bilinear"] = model_scorer(bilinear, data)
             context_models["bilinear"] = bilinear
             _save_model(partial / "bilinear", bilinear, bi_cfg["model"], data)
-            export_run(partial / "bilinear", bilinear, data, bi_cfg, "bilinear")
+            export_run(partial / "bilinear", bilinear, data, bi_cfg, "bilinear", scorers["bilinear"])
     except TrainingInterrupted as stop:
         raise TrainingInterrupted(f"{stop}; {resume_hint}") from None
     except TrainingDiverged:
@@ -299,7 +304,7 @@ def train_run(config_path: str | Path, out_dir: str | Path, overwrite: bool = Fa
                      if reads_context(m.query_tower, data)}
     metrics = evaluate_slices(scorers, data, cfg, event_vectors)
     _save_model(partial, model, cfg["model"], data)
-    files = export_run(partial, model, data, cfg, "towers")
+    files = export_run(partial, model, data, cfg, "towers", scorers["towers"])
     save_pairs(partial / "pairs.pt", data)
     write_text_atomic(partial / "metrics.json", json.dumps(metrics, indent=2))
     if started_from is not None:

@@ -56,7 +56,19 @@ def build_model(data: Prepared, cfg: dict) -> TwoTowerModel:
     if data.context is not None:
         q_inputs += _with_dims(data.context.model_inputs(), cfg["interactions"]["context"])
     c_inputs = _with_dims(c.model_inputs(), cfg["items"]["features"])
-    return TwoTowerModel(q_inputs, q.id_encoder.size, c_inputs, c.id_encoder.size, cfg["model"], shared=shared)
+    return start_global_bias(TwoTowerModel(q_inputs, q.id_encoder.size, c_inputs, c.id_encoder.size, cfg["model"],
+                                           shared=shared), data, cfg)
+
+
+def start_global_bias(model: TwoTowerModel, data: Prepared, cfg: dict) -> TwoTowerModel:
+    """A new model's global bias starts at the mean training rating, so id rows and biases learn offsets.
+
+    Done once when a model is built (not by each Trainer), so a trained or warm-started bias is kept.
+    """
+    if cfg["training"]["loss"] == "squared" and model.use_biases and data.train.target is not None:
+        with torch.no_grad():
+            model.global_bias.fill_(float(data.train.target.mean()))
+    return model
 
 
 def _with_dims(inputs: list[dict], specs: list[dict]) -> list[dict]:
@@ -265,10 +277,6 @@ class Trainer:
         self.lam = self.tcfg["id_l2"]
         self.stop_requested = False
         self.step_loss = self.batch_loss if self.world == 1 else wrap(self)
-        if self.tcfg["loss"] == "squared" and model.use_biases:
-            # start the global bias at the mean rating, so id rows and biases learn offsets from it
-            with torch.no_grad():
-                model.global_bias.fill_(float(train.target.mean()))
 
     def _penalty(self, tower: Tower, bias, ids: torch.Tensor, inv: torch.Tensor, rows: torch.Tensor | None = None,
                  bias_rows: torch.Tensor | None = None) -> torch.Tensor:
