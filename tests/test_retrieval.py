@@ -100,3 +100,66 @@ def test_score_tile_matches_matmul():
     R.score_tile(q, items, bias, out)
     # reference: numpy matrix product plus the bias row
     np.testing.assert_allclose(out.numpy(), q.numpy() @ items.numpy().T + bias.numpy(), rtol=1e-5, atol=1e-5)
+
+
+def test_a_guess_that_proves_too_high_is_searched_again(monkeypatch):
+    # a negative margin makes every guess far too high: the rows must be searched again from the safe
+    # floor and still equal brute force
+    monkeypatch.setattr(R, "SUB_TILE", 64)
+    monkeypatch.setattr(R, "GUESS_SIGMAS", -30.0)
+    calls = []
+    search = R._search
+
+    def spy(queries, n, layout, work, ex_r, ex_c, guess):
+        calls.append((guess, queries.shape[0]))
+        return search(queries, n, layout, work, ex_r, ex_c, guess)
+
+    monkeypatch.setattr(R, "_search", spy)
+    g = torch.Generator().manual_seed(21)
+    q, items = torch.randn(40, 6, generator=g), torch.randn(3000, 6, generator=g)
+    ex_r = torch.sort(torch.randint(0, 40, (200,), generator=g)).values
+    ex_c = torch.randint(0, 3000, (200,), generator=g)
+    check_against_brute_force(q, items, 10, torch.randn(3000, generator=g), ex_r, ex_c)
+    assert calls[0] == (True, 40) and calls[1][0] is False and calls[1][1] > 0
+
+
+def test_catalog_ordered_by_score_still_exact(tiles):
+    # items sorted so the best come first (a popularity-ordered catalog): the first step's spread
+    # sample and the safe floor keep the answer exact
+    g = torch.Generator().manual_seed(22)
+    q = torch.randn(30, 5, generator=g).abs()
+    items = torch.randn(2500, 5, generator=g).abs()
+    items = items[torch.argsort(items.sum(1), descending=True)]
+    check_against_brute_force(q, items, 25, torch.linspace(2.0, -2.0, 2500))
+
+
+def test_keys_sort_as_scores_then_items():
+    # reference: numpy's lexsort of (item, score) gives the order the int64 keys must have
+    rng = np.random.default_rng(23)
+    score = np.concatenate([rng.normal(size=500), [0.0, np.inf, -np.inf, 1e-40, -1e-40, 3.5, 3.5]]).astype(np.float32)
+    item = rng.integers(0, 2 ** 31, len(score))
+    keys = R.encode(score, item)
+    order = np.argsort(keys, kind="stable")
+    expect = np.lexsort((item, score))
+    np.testing.assert_array_equal(score[order], score[expect])
+    np.testing.assert_array_equal(item[order], item[expect])
+    # -0.0 and +0.0 are equal scores; their keys put -0.0 first, a tie order like any other
+    assert R.encode(np.float32([-0.0]), np.int64([5]))[0] < R.encode(np.float32([0.0]), np.int64([0]))[0]
+    back_score, back_item = R.decode(keys)
+    np.testing.assert_array_equal(back_score, score)
+    np.testing.assert_array_equal(back_item, item)
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_kernel_keeps_the_n_largest(seed):
+    from towers import select_kernels as K
+
+    rng = np.random.default_rng(24 + seed)
+    c, n = 400, [1, 37, 100, 399][seed]
+    s = rng.integers(0, 20 if seed % 2 else 10 ** 6, c).astype(np.float32)  # odd seeds: many ties
+    it = np.arange(c, dtype=np.int64)
+    orig = s.copy()
+    K._keep_best(s, it, c, n)
+    # reference: numpy's partition gives the n largest values
+    np.testing.assert_array_equal(np.sort(s[:n]), np.sort(np.partition(orig, c - n)[c - n:]))
+    np.testing.assert_array_equal(orig[it], s)  # items moved with their scores

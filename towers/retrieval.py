@@ -1,27 +1,39 @@
 """Blocked exact top-N retrieval: score tiles of queries x items, keep each query's best N.
 
-The full query x item score matrix is never built: one buffer of BLOCK_ENTRIES scores is reused for
-the whole search, so the extra memory is bounded by that buffer, not by the catalog.
+The full query x item score matrix is never built: one buffer of BLOCK_ENTRIES scores (and
+candidate lists of the same order) is reused for the whole search, so the extra memory is bounded
+by that buffer, not by the catalog.
 
-Selection costs little next to the matrix products because most scores are pruned before any
-sorting. Scores are computed SUB_TILE items at a time (a product whose output still sits in the
-cache), and each sub-tile is cut at once into groups of GROUP items (every n_groups-th column, so the
-group maxima are one vectorised reduction over the cached scores). A selection step looks at the
-group maxima of SUB_TILES sub-tiles together: only groups whose maximum reaches the query's floor,
-a lower bound on its final n-th best score, are gathered, and their scores at or above the floor
-wait to be merged into the running top-n with one topk every few steps. The floor is the running
-n-th best, raised on the first steps by the n-th best group maximum (n distinct scores are that
-high). A step where most groups pass falls back to a plain topk, so the result is exact either way.
+The catalog is cut into chunks of SUB_TILE items. For a block of queries each chunk is scored with
+one matrix product, and the compiled kernels of select_kernels keep each row's candidates at or
+above its floor while the tile is still in the cache; the floor rises to the n-th best kept
+whenever a row's candidates fill up.
+
+The starting floor comes from the first step, SUB_TILES chunks spread over the catalog (a fair
+sample even when the catalog is ordered by popularity, say). The n-th best of its group maxima
+(groups of GROUP items) is a lower bound on the final n-th best score, since n distinct items are
+that high: a safe floor. Its j-th best, with j chosen so that the whole catalog should hold well
+over n items above it, is a far tighter guess; once a quarter of the catalog is seen, the guess is
+made again from the candidates, a larger sample. The search runs with the guesses; a row whose
+n-th best found score ends below its highest guess is searched again with the safe floor, so the
+result is exact either way.
 """
 
 from __future__ import annotations
 
+import math
+
+import numpy as np
 import torch
 
+from . import select_kernels as K
+
 BLOCK_ENTRIES = 1 << 22  # scores in the reusable buffer (16 MB of float32): the extra memory of a search
-SUB_TILE = 2048  # items per matrix product (a multiple of GROUP)
-SUB_TILES = 4  # sub-tiles per selection step
-GROUP = 32  # items per group in the pre-filter
+SUB_TILE = 2048  # items per chunk, one matrix product each (rounded up to whole groups)
+SUB_TILES = 4  # chunks in the first step, the sample for the starting floor
+GROUP = 16  # items per group maximum in the first step
+CANDIDATES = 4  # candidate room per row, in multiples of n (when full, the n best are kept)
+GUESS_SIGMAS = 3.0  # how far below the expected count a guess may fall before it fails (common practice)
 LOWEST = torch.finfo(torch.float32).min
 
 
@@ -36,45 +48,101 @@ def top_n(query_vectors: torch.Tensor, item_vectors: torch.Tensor, n: int, item_
     """
     nq, ni = query_vectors.shape[0], item_vectors.shape[0]
     n_eff = min(n, ni)
-    out_idx = torch.full((nq, n_eff), -1, dtype=torch.int64)
-    out_score = torch.full((nq, n_eff), float("-inf"), dtype=torch.float32)
     if nq == 0 or n_eff == 0:
-        return out_idx, out_score
+        return torch.full((nq, n_eff), -1, dtype=torch.int64), torch.full((nq, n_eff), float("-inf"))
     queries = query_vectors.float()
     if scale != 1.0:
         queries = queries * scale  # folded into the queries: one pass over q, not over every score
-    items = item_vectors.float().contiguous()
-    bias = None if item_bias is None else item_bias.float().contiguous()
-    layout = Layout(ni)
-    rows = max(1, min(nq, BLOCK_ENTRIES // layout.step_width))
-    buffer = torch.empty(layout.sub_tiles, rows, layout.sub_width)
+    layout = Layout(item_vectors, item_bias)
+    work = Workspace(layout, layout.rows_per_block(nq, n_eff), n_eff)
+    val, idx, missed = _search(queries, n_eff, layout, work, exclude_rows, exclude_cols, guess=True)
+    if len(missed):  # a guessed floor was too high for these rows: search them again from safe floors
+        ex_r, ex_c = _rows_of_exclusions(exclude_rows, exclude_cols, missed, nq)
+        again = _search(queries.index_select(0, missed), n_eff, layout, work, ex_r, ex_c, False)
+        val[missed], idx[missed] = again[0], again[1]
+    idx[torch.isneginf(val)] = -1
+    return idx, val
+
+
+def _search(queries: torch.Tensor, n: int, layout: Layout, work: Workspace, exclude_rows, exclude_cols,
+            guess: bool) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
+    """Top-n (values, indices) of every query, block by block, and the rows whose guessed floor failed."""
+    nq = queries.shape[0]
+    rows = layout.rows_per_block(nq, n)
+    val = torch.empty((nq, n), dtype=torch.float32)
+    idx = torch.empty((nq, n), dtype=torch.int64)
+    missed = []
     has_ex = exclude_rows is not None and len(exclude_rows) > 0
     for lo in range(0, nq, rows):
         hi = min(nq, lo + rows)
         ex = _block_exclusions(exclude_rows, exclude_cols, lo, hi) if has_ex else None
-        val, idx = _search_block(queries[lo:hi], items, bias, n_eff, buffer, layout, ex)
-        out_score[lo:hi], out_idx[lo:hi] = val, idx
-    out_idx[torch.isneginf(out_score)] = -1
-    return out_idx, out_score
+        val[lo:hi], idx[lo:hi], block_missed = _search_block(queries[lo:hi], n, layout, work, ex, guess)
+        missed.append(block_missed + lo)
+    return val, idx, torch.cat(missed)
 
 
 class Layout:
-    """How a catalog of ni items is cut: steps of up to SUB_TILES sub-tiles of up to SUB_TILE items."""
+    """How a catalog is cut: chunks of `sub_width` items, SUB_TILES chunks a step, the first step spread out.
 
-    def __init__(self, ni: int):
-        self.ni = ni
-        # a small catalog is one step of one sub-tile, rounded up to whole groups
-        self.sub_width = min(-(-SUB_TILE // GROUP) * GROUP, -(-ni // GROUP) * GROUP)
-        self.sub_tiles = max(1, min(SUB_TILES, -(-ni // self.sub_width)))
+    Every chunk is a full `sub_width` wide: the last, partial one is scored from a zero-padded copy
+    whose padding items have bias -inf, so padding never enters a result.
+    """
+
+    def __init__(self, item_vectors: torch.Tensor, item_bias: torch.Tensor | None):
+        self.items = item_vectors.float().contiguous()
+        self.bias = None if item_bias is None else item_bias.float().contiguous()
+        ni = self.ni = self.items.shape[0]
+        self.sub_width = min(_round_up(SUB_TILE, GROUP), _round_up(ni, GROUP))
+        n_chunks = -(-ni // self.sub_width)
+        self.sub_tiles = max(1, min(SUB_TILES, n_chunks))
         self.step_width = self.sub_width * self.sub_tiles
+        starts = [c * self.sub_width for c in range(n_chunks)]
+        # the first step takes chunks spread evenly over the catalog, so that its scores are a fair
+        # sample for the guessed floor even when the catalog is ordered (by popularity, say)
+        first = sorted({starts[(c * n_chunks) // self.sub_tiles] for c in range(self.sub_tiles)})
+        rest = [a for a in starts if a not in set(first)]
+        self.steps = [first] + [rest[i:i + self.sub_tiles] for i in range(0, len(rest), self.sub_tiles)]
+        tail = starts[-1]
+        self.tail_start = tail if ni - tail < self.sub_width else None
+        if self.tail_start is not None:  # the partial last chunk, padded to full width
+            w, c = self.sub_width, ni - tail
+            self.tail_items = torch.zeros(w, self.items.shape[1])
+            self.tail_items[:c] = self.items[tail:]
+            self.tail_bias = torch.full((w,), float("-inf"))
+            self.tail_bias[:c] = 0.0 if self.bias is None else self.bias[tail:]
 
-    def sub_tiles_of(self, j0: int):
-        """(first item, items) of each sub-tile of the step starting at item j0."""
-        for t in range(self.sub_tiles):
-            a = j0 + t * self.sub_width
-            if a >= self.ni:
-                return
-            yield a, min(self.ni, a + self.sub_width) - a
+    def rows_per_block(self, nq: int, n: int) -> int:
+        """Query rows per block: the first step's scores and the candidate lists each fit BLOCK_ENTRIES."""
+        return max(1, min(nq, BLOCK_ENTRIES // self.step_width, BLOCK_ENTRIES // (CANDIDATES * n + K.LANE)))
+
+    def tile(self, start: int) -> tuple[torch.Tensor, torch.Tensor | None]:
+        """Item vectors (sub_width, k) and bias (or None) of the chunk starting at item `start`."""
+        if start == self.tail_start:
+            return self.tail_items, self.tail_bias
+        stop = start + self.sub_width
+        return self.items[start:stop], None if self.bias is None else self.bias[start:stop]
+
+
+class Workspace:
+    """The reusable buffers of one search: the first step's scores and each row's candidates."""
+
+    def __init__(self, layout: Layout, rows: int, n: int):
+        self.scores = torch.empty(layout.sub_tiles, rows, layout.sub_width)
+        cap = CANDIDATES * n + K.LANE
+        self.cand_s = np.empty((rows, cap), np.float32)
+        self.cand_i = np.empty((rows, cap), np.int64)
+
+    def scan(self, tile: np.ndarray, first_item: int, n: int, floor: np.ndarray, count: np.ndarray) -> None:
+        """Candidates of every row of tile (rows, width), whose columns are items first_item onwards.
+
+        One thread: on this machine a second thread scanning half the rows made the search slower
+        (measured in scripts/bench, DEVELOPERS.md profile notes).
+        """
+        K.scan_rows(tile, 0, tile.shape[0], first_item, n, floor, count, self.cand_s, self.cand_i)
+
+
+def _round_up(x: int, multiple: int) -> int:
+    return -(-x // multiple) * multiple
 
 
 def _block_exclusions(rows: torch.Tensor, cols: torch.Tensor, lo: int, hi: int):
@@ -87,6 +155,17 @@ def _block_exclusions(rows: torch.Tensor, cols: torch.Tensor, lo: int, hi: int):
     return r.index_select(0, order), c.index_select(0, order)
 
 
+def _rows_of_exclusions(rows: torch.Tensor | None, cols: torch.Tensor | None, keep: torch.Tensor, nq: int):
+    """The exclusions of the query rows `keep` (increasing, of nq), renumbered 0..len(keep)-1."""
+    if rows is None or len(rows) == 0:
+        return None, None
+    new = torch.full((nq,), -1, dtype=torch.int64)
+    new[keep] = torch.arange(len(keep))
+    mapped = new.index_select(0, rows)
+    mine = mapped >= 0
+    return mapped[mine], cols[mine]  # still sorted by row: the renumbering keeps the order
+
+
 def score_tile(queries: torch.Tensor, items: torch.Tensor, bias: torch.Tensor | None, out: torch.Tensor) -> torch.Tensor:
     """out = queries @ items.T (+ bias per item), written into the given buffer."""
     if bias is None:
@@ -94,134 +173,115 @@ def score_tile(queries: torch.Tensor, items: torch.Tensor, bias: torch.Tensor | 
     return torch.addmm(bias, queries, items.T, out=out)
 
 
-def _search_block(q: torch.Tensor, items: torch.Tensor, bias: torch.Tensor | None, n: int, buffer: torch.Tensor,
-                  layout: Layout, ex) -> tuple[torch.Tensor, torch.Tensor]:
-    """Exact top-n over all items for one block of queries, one selection step at a time."""
-    r = q.shape[0]
-    best = _Running(r, n)
-    n_groups = layout.sub_width // GROUP
-    tops = torch.empty(layout.sub_tiles, r, n_groups)  # group maxima of one step: (sub-tile, row, group)
-    for j0 in range(0, layout.ni, layout.step_width):
-        widths = []
-        for t, (a, c) in enumerate(layout.sub_tiles_of(j0)):
-            width = -(-c // GROUP) * GROUP
-            s = buffer[t].view(-1)[:r * width].view(r, width)
-            score_tile(q, items[a:a + c], None if bias is None else bias[a:a + c], s[:, :c])
-            if width > c:
-                s[:, c:] = float("-inf")
+def _search_block(q: torch.Tensor, n: int, layout: Layout, work: Workspace, ex, guess: bool):
+    """Top-n (values, indices) over all items for one block of queries, and the rows not proven exact.
+
+    guess: start from a guessed floor; a row whose n-th best found score ends below its guess is
+    returned as missed. False starts from the safe floor, and nothing is missed.
+    """
+    r, w = q.shape[0], layout.sub_width
+    floor = np.full(r, LOWEST, np.float32)
+    count = np.zeros(r, np.int64)
+    guessed = None
+    refine_at = layout.ni // 4  # items seen when the guess is made again from the candidates
+    seen = 0
+    for step, starts in enumerate(layout.steps):
+        for t, a in enumerate(starts):
+            s = work.scores[t if step == 0 else 0, :r]
+            items, bias = layout.tile(a)
+            score_tile(q, items, bias, s)
             if ex is not None:
-                lo, hi = int(torch.searchsorted(ex[1], a)), int(torch.searchsorted(ex[1], a + c))
+                lo, hi = int(torch.searchsorted(ex[1], a)), int(torch.searchsorted(ex[1], a + w))
                 if hi > lo:
                     s[ex[0][lo:hi], ex[1][lo:hi] - a] = float("-inf")
-            # group maxima now, while this sub-tile's scores are still in the cache; group g of a
-            # sub-tile of width w holds its columns g, g + w/GROUP, g + 2w/GROUP, ...
-            if width == layout.sub_width:
-                torch.amax(s.view(r, GROUP, n_groups), 1, out=tops[t])
-            else:
-                tops[t, :, :width // GROUP] = s.view(r, GROUP, -1).amax(1)
-                tops[t, :, width // GROUP:] = float("-inf")
-            widths.append(width)
-        best.add_step(tops[:len(widths)], widths, j0, buffer, layout.sub_width)
-    best.flush()
-    return best.val, best.idx
+            if step:  # scanned at once, while the tile is in the cache
+                work.scan(s.numpy(), a, n, floor, count)
+        if step == 0:  # the first step sets the floor before any of it is scanned
+            sample = work.scores[:len(starts), :r]
+            guessed = _start_floor(sample, n, _guess_rank(n, sample.shape[0] * w, layout.ni) if guess else None, floor)
+            for t, a in enumerate(starts):
+                work.scan(sample[t].numpy(), a, n, floor, count)
+        seen += len(starts) * w
+        if guessed is not None and seen - len(starts) * w < refine_at <= seen:
+            guessed = _refine_guess(work.cand_s[:r], count, _guess_rank(n, seen, layout.ni), n, guessed, floor)
+    val, idx = _best_first(work.cand_s[:r], work.cand_i[:r], count, n)
+    missed = np.zeros(0, np.int64) if guessed is None else np.flatnonzero(val[:, -1] < guessed)
+    return torch.from_numpy(val), torch.from_numpy(idx), torch.from_numpy(missed)
 
 
-class _Running:
-    """Each query's running top-n (sorted, best first), plus candidates waiting to be merged into it.
+def _start_floor(sample: torch.Tensor, n: int, guess_rank: int | None, floor: np.ndarray) -> np.ndarray | None:
+    """Raise floor (in place) from the first step's group maxima; the guessed values, or None.
 
-    `floor` is a lower bound on each row's final n-th best score, so no score below it can be in the
-    result. Candidates at or above the floor are collected over several steps and merged with one
-    topk, because a topk per step would cost more than the steps' few candidates.
+    sample: (chunks, rows, width) scores. The safe floor is the n-th best group maximum; with a
+    guess_rank below n, the guess_rank-th best (at least as high) is used and returned.
     """
+    t_n, r, w = sample.shape
+    if t_n * (w // GROUP) < n:
+        return None  # fewer than n groups in the first step (a tiny catalog): start from the lowest floor
+    maxima = torch.amax(sample.view(t_n, r, GROUP, w // GROUP), 2).permute(1, 0, 2).reshape(r, -1)
+    ranked = np.sort(maxima.numpy(), axis=1)  # numpy's sort is many times faster than torch.topk here
+    np.maximum(floor, ranked[:, -n], out=floor)
+    if guess_rank is None or guess_rank >= n:
+        return None
+    guessed = ranked[:, -guess_rank].copy()
+    np.maximum(floor, guessed, out=floor)
+    return guessed
 
-    def __init__(self, rows: int, n: int):
-        self.n = n
-        self.val = torch.full((rows, n), float("-inf"))
-        self.idx = torch.full((rows, n), -1, dtype=torch.int64)
-        self.floor = torch.full((rows, 1), LOWEST)  # LOWEST, not -inf: excluded (-inf) entries never pass
-        self.pending: list[tuple[torch.Tensor, torch.Tensor, torch.Tensor]] = []
-        self.waiting = 0
-        self.weak = True  # no score seen yet
 
-    def add_step(self, tops: torch.Tensor, widths: list[int], j0: int, buffer: torch.Tensor, sub_width: int) -> None:
-        """Collect the scores of one step that can still reach the top n.
+def _refine_guess(cand_s: np.ndarray, count: np.ndarray, rank: int, n: int, guessed: np.ndarray,
+                  floor: np.ndarray) -> np.ndarray:
+    """A new guess from a larger sample: each row's rank-th best candidate so far, if above the old one.
 
-        tops: (sub-tiles, rows, groups) group maxima; sub-tile t holds the items j0 + t * sub_width
-        onwards, its scores (rows, widths[t]) at the start of buffer[t].
-        """
-        r, n = self.val.shape
-        n_sub, _, ng = tops.shape
-        can_raise = n_sub * ng >= n
-        if self.weak and can_raise:  # nothing seen yet: start from this step's n-th best group maximum
-            self._raise_floor(tops)
-        found = (tops >= self.floor).nonzero(as_tuple=True)
-        if len(found[0]) * 8 > tops.numel() and can_raise and not self.weak:
-            # still a weak floor (the first steps): raise it to the n-th best group maximum of this step
-            self._raise_floor(tops)
-            found = (tops >= self.floor).nonzero(as_tuple=True)
-        self.weak = False
-        if len(found[0]) == 0:
-            return
-        if len(found[0]) * 2 > tops.numel():
-            # most groups pass (many equal scores, rows with few finite ones, or a tiny step): plain topk
-            for t, width in enumerate(widths):
-                s = buffer[t].view(-1)[:r * width].view(r, width)
-                v, i = torch.topk(s, min(n, width), dim=1)
-                keep = v > float("-inf")  # padding columns past the catalog end are -inf
-                self._merge(torch.arange(r), v, torch.where(keep, i + j0 + t * sub_width, -1))
-            return
-        t_of, rows, group = found  # in sub-tile order (nonzero is row-major over (sub-tile, row, group))
-        # gather each passing group's members: advanced indexing of a (row, group, member) view of each
-        # sub-tile, many times faster than building one flat index per member
-        per_sub = torch.bincount(t_of, minlength=len(widths)).tolist()
-        parts = []
-        for t, (width, rows_t, group_t) in enumerate(zip(widths, rows.split(per_sub), group.split(per_sub))):
-            if len(rows_t):
-                s = buffer[t].view(-1)[:r * width].view(r, width)
-                parts.append(s.view(r, GROUP, width // GROUP).permute(0, 2, 1)[rows_t, group_t])
-        vals = torch.cat(parts) if len(parts) > 1 else parts[0]  # (passing groups, GROUP)
-        at, k = (vals >= self.floor.index_select(0, rows)).nonzero(as_tuple=True)
-        stride = (torch.tensor(widths, dtype=torch.int64) // GROUP).index_select(0, t_of.index_select(0, at))
-        self.pending.append((rows.index_select(0, at),
-                             j0 + t_of.index_select(0, at) * sub_width + group.index_select(0, at) + k * stride,
-                             vals[at, k]))
-        self.waiting += len(at)
-        if self.waiting > self.val.numel() // 2:
-            self.flush()
+    The candidates hold every score seen so far at or above the floor, so where a row has rank of
+    them, the rank-th best of them is the rank-th best of all items seen.
+    """
+    if rank >= n:
+        return guessed
+    used = np.arange(cand_s.shape[1]) < count[:, None]
+    kth = np.partition(np.where(used, cand_s, -np.inf), -rank, axis=1)[:, -rank]
+    guessed = np.maximum(guessed, kth)
+    np.maximum(floor, guessed, out=floor)
+    return guessed
 
-    def _raise_floor(self, tops: torch.Tensor) -> None:
-        """floor = max(floor, n-th best group maximum of this step): n distinct scores are that high."""
-        per_row = tops.permute(1, 0, 2).reshape(tops.shape[1], -1)
-        kth = torch.topk(per_row, self.n, dim=1, sorted=False).values.amin(1, keepdim=True)
-        torch.maximum(self.floor, kth, out=self.floor)
 
-    def flush(self) -> None:
-        """Merge the waiting candidates: pack each row's left into (rows with any, most), -inf elsewhere."""
-        if not self.pending:
-            return
-        rows, cols, score = (torch.cat(t) for t in zip(*self.pending)) if len(self.pending) > 1 else self.pending[0]
-        order = torch.argsort(rows, stable=True)  # grouped by row for the packing below
-        rows, cols, score = rows.index_select(0, order), cols.index_select(0, order), score.index_select(0, order)
-        self.pending, self.waiting = [], 0
-        r = self.val.shape[0]
-        per_row = torch.bincount(rows, minlength=r)
-        rows_hit = torch.nonzero(per_row).flatten()
-        local = torch.zeros(r, dtype=torch.int64)
-        local[rows_hit] = torch.arange(len(rows_hit))
-        slot = torch.arange(len(rows)) - (torch.cumsum(per_row, 0) - per_row).index_select(0, rows)
-        most = int(per_row.max())
-        packed_v = torch.full((len(rows_hit), most), float("-inf"))
-        packed_i = torch.full((len(rows_hit), most), -1, dtype=torch.int64)
-        at = local.index_select(0, rows) * most + slot
-        packed_v.view(-1).index_copy_(0, at, score)
-        packed_i.view(-1).index_copy_(0, at, cols)
-        self._merge(rows_hit, packed_v, packed_i)
+def _guess_rank(n: int, seen: int, ni: int) -> int:
+    """j such that fewer than n of the ni items beat the j-th best of `seen` only GUESS_SIGMAS sd below the mean.
 
-    def _merge(self, rows: torch.Tensor, v: torch.Tensor, cols: torch.Tensor) -> None:
-        """best[rows] = top-n of (best[rows], new candidates v / cols of those rows)."""
-        all_v = torch.cat([self.val.index_select(0, rows), v], 1)
-        all_i = torch.cat([self.idx.index_select(0, rows), cols], 1)
-        top_v, pos = torch.topk(all_v, self.n, dim=1)
-        self.val[rows] = top_v
-        self.idx[rows] = all_i.gather(1, pos)
-        torch.maximum(self.floor, self.val[:, -1:], out=self.floor)
+    The share of the catalog above the j-th best of a sample is Beta(j, seen - j + 1) distributed, of
+    mean j / seen and relative sd about 1 / sqrt(j) (order statistics of a uniform sample; a normal
+    approximation, standard result). So ni * j / seen * (1 - z / sqrt(j)) >= n, solved for sqrt(j).
+    """
+    x = (GUESS_SIGMAS + math.sqrt(GUESS_SIGMAS ** 2 + 4 * n * seen / ni)) / 2
+    return max(1, min(n, math.ceil(x * x)))
+
+
+# A (score, item) pair as one int64 whose order is the order of scores, then of items: the float's
+# bits made monotone (negative floats have their magnitude bits flipped) in the high half, the item
+# in the low half. numpy sorts such keys several times faster than torch.topk or an argsort.
+_LOW = np.int64(0xFFFFFFFF)
+_FLIP = np.int64(0x7FFFFFFF)
+
+
+def encode(score: np.ndarray, item: np.ndarray) -> np.ndarray:
+    """Sortable int64 keys of float32 scores and non-negative item indices (< 2**32)."""
+    b = score.astype(np.float32, copy=False).view(np.int32).astype(np.int64)
+    return (np.where(b < 0, b ^ _FLIP, b) << 32) | item
+
+
+def decode(keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(float32 scores, int64 items) of keys made by encode."""
+    high = keys >> 32
+    return np.where(high < 0, high ^ _FLIP, high).astype(np.int32).view(np.float32), keys & _LOW
+
+
+def _best_first(cand_s: np.ndarray, cand_i: np.ndarray, count: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
+    """Each row's n best candidates (scores, items), best first; -inf / -1 where a row has fewer than n."""
+    r, cap = cand_s.shape
+    used = np.arange(cap) < count[:, None]
+    keys = np.where(used, encode(cand_s, np.maximum(cand_i, 0)), _PAD_KEY)
+    score, item = decode(np.ascontiguousarray(np.sort(keys, axis=1)[:, ::-1][:, :n]))
+    item[np.isneginf(score)] = -1
+    return score, item
+
+
+_PAD_KEY = encode(np.array([-np.inf], np.float32), np.array([0], np.int64))[0]

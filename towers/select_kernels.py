@@ -1,0 +1,119 @@
+"""Compiled (numba) kernels that keep each row's best n scores while a score tile is still in the cache.
+
+Why compiled: selection must cost a small fraction of the matrix product that made the scores. In
+torch or numpy each step of it is a separate pass over memory plus a dispatch; here one pass over a
+tile does it. For each row, blocks of SPAN scores are first tested against the row's floor with one
+vectorised count (almost every block has no score at the floor, and is done); a block with some is
+tested in LANE-wide parts, and the parts with hits are appended without branches. When a row's
+candidate buffer fills, a three-way quickselect keeps its n best and the floor rises to the n-th
+of them, so the floor is always a lower bound on the row's final n-th best. Compiled once per
+machine and cached next to this file (numba's cache=True).
+"""
+
+from __future__ import annotations
+
+import numba
+import numpy as np
+
+SPAN = 64  # scores tested together first
+LANE = 16  # scores tested and appended together within a block that has hits
+
+
+@numba.njit(boundscheck=False, cache=True, nogil=True)
+def _keep_best(s, it, c, n):
+    """Reorder s[:c] (and it[:c] with it) so that s[:n] hold the n largest; three-way quickselect.
+
+    Three-way partitions keep equal scores together, so many ties cost no more than distinct ones.
+    """
+    lo, hi = 0, c - 1
+    while lo < hi:
+        a, b, d = s[lo], s[(lo + hi) // 2], s[hi]
+        p = max(min(a, b), min(max(a, b), d))  # median of three
+        lt, i, gt = lo, lo, hi  # [lo, lt) > p, [lt, i) == p, (gt, hi] < p
+        while i <= gt:
+            v = s[i]
+            if v > p:
+                s[i] = s[lt]
+                s[lt] = v
+                t = it[i]
+                it[i] = it[lt]
+                it[lt] = t
+                lt += 1
+                i += 1
+            elif v < p:
+                s[i] = s[gt]
+                s[gt] = v
+                t = it[i]
+                it[i] = it[gt]
+                it[gt] = t
+                gt -= 1
+            else:
+                i += 1
+        if n - 1 < lt:
+            hi = lt - 1
+        elif n - 1 > gt:
+            lo = gt + 1
+        else:
+            return
+
+
+@numba.njit(boundscheck=False, cache=True, nogil=True)
+def _shrink(s, it, c, n, f):
+    """Keep the n best of c candidates; the new floor is max(f, the n-th best)."""
+    _keep_best(s, it, c, n)
+    m = s[0]
+    for k in range(1, n):
+        m = min(m, s[k])
+    return n, max(f, m)
+
+
+@numba.njit(boundscheck=False, cache=True, nogil=True)
+def scan_rows(tile, r0, r1, first_item, n, floor, count, cand_s, cand_i):
+    """Append every score of tile rows r0..r1 at or above the row's floor to its candidates.
+
+    tile (rows, width) float32, column j is item first_item + j; floor (rows,) float32 and count
+    (rows,) int64 are updated in place; cand_s / cand_i (rows, cap) hold the candidates, cap >= n + LANE.
+    """
+    w = tile.shape[1]
+    lanes = w // LANE
+    cap = cand_s.shape[1]
+    per_span = SPAN // LANE
+    for i in range(r0, r1):
+        f = floor[i]
+        c = count[i]
+        cs = cand_s[i]
+        ci = cand_i[i]
+        skip = False
+        for b in range(lanes):
+            j0 = b * LANE
+            if b % per_span == 0:
+                if b + per_span <= lanes:
+                    hits = 0
+                    for j in range(SPAN):
+                        hits += tile[i, j0 + j] >= f
+                    skip = hits == 0
+                else:
+                    skip = False
+            if skip:
+                continue
+            hits = 0
+            for j in range(LANE):
+                hits += tile[i, j0 + j] >= f
+            if hits:
+                if c + LANE > cap:
+                    c, f = _shrink(cs, ci, c, n, f)
+                for j in range(LANE):
+                    v = tile[i, j0 + j]
+                    cs[c] = v
+                    ci[c] = first_item + j0 + j
+                    c += v >= f
+        for j in range(lanes * LANE, w):  # the last scores of a width that is not a multiple of LANE
+            v = tile[i, j]
+            if v >= f:
+                if c == cap:
+                    c, f = _shrink(cs, ci, c, n, f)
+                cs[c] = v
+                ci[c] = first_item + j
+                c += 1
+        count[i] = c
+        floor[i] = f
