@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import math
 
+import numba
 import numpy as np
 import torch
 
@@ -34,6 +35,7 @@ SUB_TILES = 4  # chunks in the first step, the sample for the starting floor
 GROUP = 16  # items per group maximum in the first step
 CANDIDATES = 4  # candidate room per row, in multiples of n (when full, the n best are kept)
 GUESS_SIGMAS = 3.0  # how far below the expected count a guess may fall before it fails (common practice)
+MIN_ROWS_PER_THREAD = 64  # fewer rows than this per thread are scanned on one thread
 LOWEST = torch.finfo(torch.float32).min
 
 
@@ -75,7 +77,7 @@ def _search(queries: torch.Tensor, n: int, layout: Layout, work: Workspace, excl
     has_ex = exclude_rows is not None and len(exclude_rows) > 0
     for lo in range(0, nq, rows):
         hi = min(nq, lo + rows)
-        ex = _block_exclusions(exclude_rows, exclude_cols, lo, hi) if has_ex else None
+        ex = _block_exclusions(exclude_rows, exclude_cols, lo, hi, layout) if has_ex else None
         val[lo:hi], idx[lo:hi], block_missed = _search_block(queries[lo:hi], n, layout, work, ex, guess)
         missed.append(block_missed + lo)
     return val, idx, torch.cat(missed)
@@ -135,24 +137,45 @@ class Workspace:
     def scan(self, tile: np.ndarray, first_item: int, n: int, floor: np.ndarray, count: np.ndarray) -> None:
         """Candidates of every row of tile (rows, width), whose columns are items first_item onwards.
 
-        One thread: on this machine a second thread scanning half the rows made the search slower
-        (measured in scripts/bench, DEVELOPERS.md profile notes).
+        The rows are split over torch's number of threads (so `run.threads` holds here too), run by
+        numba's thread pool; below MIN_ROWS_PER_THREAD rows a thread is not worth starting.
         """
-        K.scan_rows(tile, 0, tile.shape[0], first_item, n, floor, count, self.cand_s, self.cand_i)
+        parts = min(torch.get_num_threads(), numba.config.NUMBA_NUM_THREADS, tile.shape[0] // MIN_ROWS_PER_THREAD)
+        if parts > 1:
+            numba.set_num_threads(parts)
+            K.scan_tile_parallel(tile, first_item, n, floor, count, self.cand_s, self.cand_i, parts)
+        else:
+            K.scan_rows(tile, 0, tile.shape[0], first_item, n, floor, count, self.cand_s, self.cand_i)
 
 
 def _round_up(x: int, multiple: int) -> int:
     return -(-x // multiple) * multiple
 
 
-def _block_exclusions(rows: torch.Tensor, cols: torch.Tensor, lo: int, hi: int):
-    """The exclusions of query rows lo..hi as (local row, column), sorted by column, or None."""
+class _Exclusions:
+    """One block's excluded (row, item) pairs, sorted by item, as flat offsets into a chunk's tile.
+
+    starts[a] / ends[a]: the range of pairs inside the chunk starting at item a, found with one
+    searchsorted for the whole block rather than two per chunk.
+    """
+
+    def __init__(self, rows: torch.Tensor, cols: torch.Tensor, layout: Layout):
+        w = layout.sub_width
+        self.flat = rows * w + cols % w  # chunks start at multiples of w
+        first = sorted(a for step in layout.steps for a in step)
+        edges = torch.searchsorted(cols, torch.tensor(first + [layout.ni], dtype=cols.dtype)).tolist()
+        self.starts = dict(zip(first, edges[:-1]))
+        self.ends = dict(zip(first, edges[1:]))
+
+
+def _block_exclusions(rows: torch.Tensor, cols: torch.Tensor, lo: int, hi: int, layout: Layout):
+    """The exclusions of query rows lo..hi as _Exclusions (local rows), or None."""
     a, b = int(torch.searchsorted(rows, lo)), int(torch.searchsorted(rows, hi))
     if b <= a:
         return None
     r, c = rows[a:b] - lo, cols[a:b]
     order = torch.argsort(c)
-    return r.index_select(0, order), c.index_select(0, order)
+    return _Exclusions(r.index_select(0, order), c.index_select(0, order), layout)
 
 
 def _rows_of_exclusions(rows: torch.Tensor | None, cols: torch.Tensor | None, keep: torch.Tensor, nq: int):
@@ -190,10 +213,8 @@ def _search_block(q: torch.Tensor, n: int, layout: Layout, work: Workspace, ex, 
             s = work.scores[t if step == 0 else 0, :r]
             items, bias = layout.tile(a)
             score_tile(q, items, bias, s)
-            if ex is not None:
-                lo, hi = int(torch.searchsorted(ex[1], a)), int(torch.searchsorted(ex[1], a + w))
-                if hi > lo:
-                    s[ex[0][lo:hi], ex[1][lo:hi] - a] = float("-inf")
+            if ex is not None and ex.ends[a] > ex.starts[a]:
+                s.view(-1).index_fill_(0, ex.flat[ex.starts[a]:ex.ends[a]], float("-inf"))
             if step:  # scanned at once, while the tile is in the cache
                 work.scan(s.numpy(), a, n, floor, count)
         if step == 0:  # the first step sets the floor before any of it is scanned

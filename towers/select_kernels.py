@@ -117,3 +117,11 @@ def scan_rows(tile, r0, r1, first_item, n, floor, count, cand_s, cand_i):
                 c += 1
         count[i] = c
         floor[i] = f
+
+
+@numba.njit(boundscheck=False, cache=True, parallel=True)
+def scan_tile_parallel(tile, first_item, n, floor, count, cand_s, cand_i, parts):
+    """scan_rows over all rows of tile, the rows cut into `parts` ranges run on numba's threads."""
+    r = tile.shape[0]
+    for p in numba.prange(parts):
+        scan_rows(tile, r * p // parts, r * (p + 1) // parts, first_item, n, floor, count, cand_s, cand_i)
