@@ -105,3 +105,68 @@ def test_uniform_sampler_draws_warm_items_uniformly(tmp_path):
     share = counts[warm] / len(draws)
     # reference: a uniform draw over 10 items has standard deviation sqrt(0.1 * 0.9 / n) per share
     assert (share - 0.1).abs().max() < 5 * (0.1 * 0.9 / len(draws)) ** 0.5
+
+
+@pytest.mark.parametrize("loss,negatives,biases,id_l2", [("logistic", 2, True, 0.4), ("logistic", 0, False, 0.0),
+                                                        ("squared", 0, True, 0.3)],
+                         ids=["logistic-soft-labels", "logistic-no-negatives", "squared"])
+def test_closed_form_id_row_objective_equals_the_general_path(tmp_path, loss, negatives, biases, id_l2):
+    # reference: the general autograd path of batch_loss (itself checked against torch's BCE above),
+    # on a log with targets in [0, 1] (or ratings) and pair weights, so every term is present
+    rng = np.random.default_rng(5)
+    n = 500
+    target = rng.random(n) if loss == "logistic" else rng.integers(1, 6, n).astype(float)
+    pd.DataFrame({"u": rng.integers(0, 35, n), "i": rng.integers(0, 25, n), "y": target,
+                  "w": rng.uniform(0.2, 2.0, n)}).to_parquet(tmp_path / "log.parquet")
+    cfg = C.resolve({
+        "interactions": {"path": str(tmp_path / "log.parquet"), "query_column": "u", "candidate_column": "i",
+                         "target_column": "y", "weight_column": "w"},
+        "model": {"dim": 5, "hidden": [], "id_dropout": 0.0, "biases": biases},
+        "training": {"loss": loss, "negatives": negatives, "id_l2": id_l2},
+        "evaluation": {"test_fraction": 0.0, "validation_fraction": 0.0, "baseline": False},
+    }, tmp_path)
+    data = prepare(cfg)
+    torch.manual_seed(0)
+    model = build_model(data, cfg)
+    if biases:
+        with torch.no_grad():
+            model.query_bias.weight.normal_(0, 0.3)
+            model.candidate_bias.weight.normal_(0, 0.3)
+            model.global_bias.fill_(0.2)
+    trainer = Trainer(model, data, cfg)
+    assert trainer.id_rows_only
+    idx = torch.randperm(len(data.train), generator=torch.Generator().manual_seed(3))[:64]
+    results = []
+    for fused in (True, False):
+        trainer.id_rows_only = fused
+        state = trainer.generator.get_state()
+        value = trainer.batch_loss(idx)
+        value.backward()
+        trainer.generator.set_state(state)  # the same negatives for both paths
+        results.append((value.detach(), _grads(model)))
+    (got, got_grads), (want, want_grads) = results
+    torch.testing.assert_close(got, want, rtol=1e-5, atol=1e-6)
+    assert got_grads.keys() == want_grads.keys()
+    for name in want_grads:
+        torch.testing.assert_close(got_grads[name], want_grads[name], rtol=1e-4, atol=1e-6, msg=name)
+
+
+def test_closed_form_id_row_gradient_passes_gradcheck():
+    # reference: torch.autograd.gradcheck, central finite differences in float64
+    from towers.training import _IdRowObjective
+
+    g = torch.Generator().manual_seed(6)
+    b, k, n_neg = 5, 3, 2
+
+    def leaf(*shape):
+        return torch.randn(*shape, generator=g, dtype=torch.float64).requires_grad_(True)
+
+    q, c, qb, cb, gb = leaf(b, k), leaf(b * (1 + n_neg), k), leaf(b), leaf(b * (1 + n_neg)), leaf(())
+    y = torch.rand(b, generator=g, dtype=torch.float64)
+    w = torch.rand(b, generator=g, dtype=torch.float64) + 0.5
+    pq = torch.rand(b, generator=g, dtype=torch.float64)
+    pc = torch.rand(b, generator=g, dtype=torch.float64)
+    for logistic, neg in ((True, n_neg), (False, 0)):
+        cc, cbb = (c, cb) if neg else (c[:b].detach().clone().requires_grad_(True), cb[:b].detach().clone().requires_grad_(True))
+        assert torch.autograd.gradcheck(
+            lambda *x: _IdRowObjective.apply(*x, y, w, pq, pc, 0.7, neg, logistic), (q, cc, qb, cbb, gb))

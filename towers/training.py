@@ -19,6 +19,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import torch
+import torch.nn.functional as F
 from tqdm import tqdm
 
 from .allocator import reuse_freed_memory
@@ -159,6 +160,83 @@ def _log_batch_share(candidates: torch.Tensor, n_items: int) -> torch.Tensor:
     return torch.log(counts.clamp(min=1) / len(candidates)).float()
 
 
+class _IdRowObjective(torch.autograd.Function):
+    """Per-pair objective of a batch where both towers output their id rows (the linear factor model),
+    with its gradient in closed form: one node instead of some forty, so autograd's bookkeeping and
+    temporaries stay off the hot path of id-only training.
+
+    Inputs: q (b, k) query rows; c (b (1 + n_neg), k) candidate rows, positives first; qb (b,),
+    cb (b (1 + n_neg),) biases and g the global bias (zeros when the model has none); y (b,) targets
+    or None (all 1); w (b,) pair weights or None; pq, pc (b,) = lambda / n_row of each pair's query
+    and positive candidate rows (None when lambda = 0). Per pair:
+      w * (loss(s q.c+ + qb + cb+ + g, y) + sum_j softplus(s q.c-_j + qb + cb-_j + g)) [logistic]
+      w * (pos - y)^2 / 2                                                         [squared]
+      + pq (|q|^2 + qb^2) / 2 + pc (|c+|^2 + cb+^2) / 2,
+    the same value as the general path of Trainer.batch_loss (tests/test_batch_loss.py checks both
+    the value and every gradient against it).
+    """
+
+    @staticmethod
+    def forward(ctx, q, c, qb, cb, g, y, w, pq, pc, scale: float, n_neg: int, logistic: bool):
+        # row dot products with linalg.vecdot and sums over negatives with einsum: each is one pass,
+        # where (x * y).sum(1) writes and rereads a temporary (measured 1.5x to 4x faster here)
+        b = q.shape[0]
+        cp, cbp = c[:b], cb[:b]
+        pos = torch.linalg.vecdot(q, cp) * scale + qb + cbp + g
+        t = y if y is not None else torch.ones(b)
+        d_neg = None
+        if logistic:
+            loss = logistic_loss(pos, t)
+            d_pos = torch.sigmoid(pos) - t
+            if n_neg:
+                cn = c[b:].view(b, n_neg, -1)
+                neg = torch.einsum("bnk,bk->bn", cn, q) * scale + (qb + g).unsqueeze(1) + cb[b:].view(b, n_neg)
+                loss = loss + F.softplus(neg, threshold=50.0).sum(1)
+                d_neg = torch.sigmoid(neg)
+        else:
+            loss = squared_loss(pos, t)
+            d_pos = pos - t
+        if w is not None:
+            loss = loss * w
+            d_pos = d_pos * w
+            d_neg = None if d_neg is None else d_neg * w.unsqueeze(1)
+        if pq is not None:
+            norms_q = torch.linalg.vecdot(q, q) + qb * qb
+            norms_c = torch.linalg.vecdot(cp, cp) + cbp * cbp
+            loss = loss + 0.5 * (pq * norms_q + pc * norms_c)
+        ctx.save_for_backward(q, c, qb, cb, d_pos, d_neg, pq, pc)
+        ctx.scale, ctx.n_neg = scale, n_neg
+        return loss
+
+    @staticmethod
+    def backward(ctx, grad):
+        q, c, qb, cb, d_pos, d_neg, pq, pc = ctx.saved_tensors
+        b, s, n_neg = q.shape[0], ctx.scale, ctx.n_neg
+        gp = d_pos * grad  # d objective / d positive score, per pair
+        gps = (gp * s).unsqueeze(1)
+        gq = gps * c[:b]
+        g_qb = gp.clone()
+        g_c = torch.empty_like(c)
+        torch.mul(gps, q, out=g_c[:b])
+        g_cb = torch.empty_like(cb)
+        g_cb[:b] = gp
+        if d_neg is not None:
+            gn = d_neg * grad.unsqueeze(1)  # (b, n_neg)
+            cn = c[b:].view(b, n_neg, -1)
+            gq.add_(torch.einsum("bn,bnk->bk", gn, cn), alpha=s)
+            torch.mul((gn * s).unsqueeze(2), q.unsqueeze(1), out=g_c[b:].view(b, n_neg, -1))
+            g_cb[b:] = gn.reshape(-1)
+            g_qb += gn.sum(1)
+        g_g = g_qb.sum() if ctx.needs_input_grad[4] else None
+        if pq is not None:
+            kq, kc = pq * grad, pc * grad
+            gq.addcmul_(kq.unsqueeze(1), q)
+            g_qb.addcmul_(kq, qb)
+            g_c[:b].addcmul_(kc.unsqueeze(1), c[:b])
+            g_cb[:b].addcmul_(kc, cb[:b])
+        return gq, g_c, g_qb, g_cb, g_g, None, None, None, None, None, None, None
+
+
 class _SquaredNorms(torch.autograd.Function):
     """||x_r||^2 of each row, with a one-pass backward (2 x_r g_r); pow(2).sum(1) takes three passes."""
 
@@ -258,6 +336,11 @@ class Trainer:
         self.logistic = self.tcfg["loss"] == "logistic"
         self.softmax = self.tcfg["loss"] == "softmax"
         self.n_neg = self.tcfg["negatives"] if self.logistic else 0
+        # both towers output their id rows (the linear factor model): the closed-form objective node
+        self.id_rows_only = _output_is_id_row(model.query_tower) and _output_is_id_row(model.candidate_tower)
+        if self.id_rows_only:  # each pair's id-table rows, looked up once instead of twice per step
+            self.pair_q_ids = data.queries.block["id"].index_select(0, data.train.query)
+            self.pair_c_ids = data.candidates.block["id"].index_select(0, data.train.candidate)
         train = data.train
         self.log_q = _log_batch_share(train.candidate, block_len(data.candidates.block)) \
             if self.softmax and self.tcfg["logq_correction"] else None
@@ -332,6 +415,8 @@ class Trainer:
         """Mean objective over one minibatch of training pairs (see module docstring)."""
         if self.softmax:
             return self.in_batch_loss(idx)
+        if self.id_rows_only:
+            return self.id_row_loss(idx)
         m, d, train = self.model, self.data, self.data.train
         q_rows, c_rows = train.query.index_select(0, idx), train.candidate.index_select(0, idx)
         qb = self.query_batch(idx, q_rows)
@@ -372,6 +457,27 @@ class Trainer:
                                         qbias if m.use_biases else None)
             loss = loss + self._penalty(m.candidate_tower, cbias_t, c_ids[:b], self.c_inv, c_rows_seen,
                                         cbias_pos if m.use_biases else None)
+        return loss.mean()
+
+    def id_row_loss(self, idx: torch.Tensor) -> torch.Tensor:
+        """batch_loss for a model whose towers both output their id rows, through _IdRowObjective."""
+        m, d, train = self.model, self.data, self.data.train
+        b = len(idx)
+        c_codes = self.pair_c_ids.index_select(0, idx)
+        if self.n_neg:
+            c_codes = torch.cat([c_codes, d.candidates.block["id"].index_select(0, self.sampler(b * self.n_neg))])
+        q_ids = m.query_tower.id_rows({"id": self.pair_q_ids.index_select(0, idx)})
+        c_ids = m.candidate_tower.id_rows({"id": c_codes})
+        q, c = m.query_tower.ids(q_ids), m.candidate_tower.ids(c_ids)
+        g = m.global_bias if m.use_biases else torch.zeros(())
+        y = train.target.index_select(0, idx) if train.target is not None else None
+        w = train.weight.index_select(0, idx) if train.weight is not None else None
+        pq = pc = None
+        if self.lam > 0:
+            pq = self.lam * self.q_inv.index_select(0, q_ids)
+            pc = self.lam * self.c_inv.index_select(0, c_ids[:b])
+        loss = _IdRowObjective.apply(q, c, m.query_bias_of(q_ids), m.candidate_bias_of(c_ids), g, y, w, pq, pc,
+                                     1.0 / m.temperature, self.n_neg, self.logistic)
         return loss.mean()
 
     def objective(self) -> float:
