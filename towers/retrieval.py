@@ -300,7 +300,8 @@ def _best_first(cand_s: np.ndarray, cand_i: np.ndarray, count: np.ndarray, n: in
     r, cap = cand_s.shape
     used = np.arange(cap) < count[:, None]
     keys = np.where(used, encode(cand_s, np.maximum(cand_i, 0)), _PAD_KEY)
-    score, item = decode(np.ascontiguousarray(np.sort(keys, axis=1)[:, ::-1][:, :n]))
+    best = np.partition(keys, cap - n, axis=1)[:, cap - n:]  # the n largest keys, then only they are sorted
+    score, item = decode(np.ascontiguousarray(np.sort(best, axis=1)[:, ::-1]))
     item[np.isneginf(score)] = -1
     return score, item
 
