@@ -133,16 +133,18 @@ class Workspace:
         cap = CANDIDATES * n + K.LANE
         self.cand_s = np.empty((rows, cap), np.float32)
         self.cand_i = np.empty((rows, cap), np.int64)
+        # threads for the scan: torch's number (so `run.threads` holds here too), run by numba's pool
+        self.threads = max(1, min(torch.get_num_threads(), numba.config.NUMBA_NUM_THREADS))
+        if self.threads > 1:
+            numba.set_num_threads(self.threads)
 
     def scan(self, tile: np.ndarray, first_item: int, n: int, floor: np.ndarray, count: np.ndarray) -> None:
         """Candidates of every row of tile (rows, width), whose columns are items first_item onwards.
 
-        The rows are split over torch's number of threads (so `run.threads` holds here too), run by
-        numba's thread pool; below MIN_ROWS_PER_THREAD rows a thread is not worth starting.
+        The rows are split over the threads; below MIN_ROWS_PER_THREAD rows a thread is not worth starting.
         """
-        parts = min(torch.get_num_threads(), numba.config.NUMBA_NUM_THREADS, tile.shape[0] // MIN_ROWS_PER_THREAD)
+        parts = min(self.threads, tile.shape[0] // MIN_ROWS_PER_THREAD)
         if parts > 1:
-            numba.set_num_threads(parts)
             K.scan_tile_parallel(tile, first_item, n, floor, count, self.cand_s, self.cand_i, parts)
         else:
             K.scan_rows(tile, 0, tile.shape[0], first_item, n, floor, count, self.cand_s, self.cand_i)
