@@ -62,15 +62,14 @@ def top_n(query_vectors: torch.Tensor, item_vectors: torch.Tensor, n: int, item_
         ex_r, ex_c = _rows_of_exclusions(exclude_rows, exclude_cols, missed, nq)
         again = _search(queries.index_select(0, missed), n_eff, layout, work, ex_r, ex_c, False)
         val[missed], idx[missed] = again[0], again[1]
-    idx[torch.isneginf(val)] = -1
-    return idx, val
+    return idx, val  # _best_first already gave -inf scores the index -1
 
 
 def _search(queries: torch.Tensor, n: int, layout: Layout, work: Workspace, exclude_rows, exclude_cols,
             guess: bool) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
     """Top-n (values, indices) of every query, block by block, and the rows whose guessed floor failed."""
     nq = queries.shape[0]
-    rows = layout.rows_per_block(nq, n)
+    rows = min(nq, work.rows)
     val = torch.empty((nq, n), dtype=torch.float32)
     idx = torch.empty((nq, n), dtype=torch.int64)
     missed = []
@@ -102,7 +101,8 @@ class Layout:
         # the first step takes chunks spread evenly over the catalog, so that its scores are a fair
         # sample for the guessed floor even when the catalog is ordered (by popularity, say)
         first = sorted({starts[(c * n_chunks) // self.sub_tiles] for c in range(self.sub_tiles)})
-        rest = [a for a in starts if a not in set(first)]
+        taken = set(first)
+        rest = [a for a in starts if a not in taken]
         self.steps = [first] + [rest[i:i + self.sub_tiles] for i in range(0, len(rest), self.sub_tiles)]
         tail = starts[-1]
         self.tail_start = tail if ni - tail < self.sub_width else None
@@ -129,6 +129,7 @@ class Workspace:
     """The reusable buffers of one search: the first step's scores and each row's candidates."""
 
     def __init__(self, layout: Layout, rows: int, n: int):
+        self.rows = rows  # query rows per block
         self.scores = torch.empty(layout.sub_tiles, rows, layout.sub_width)
         cap = CANDIDATES * n + K.LANE
         self.cand_s = np.empty((rows, cap), np.float32)
