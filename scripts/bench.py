@@ -530,18 +530,18 @@ def case_retrieval(size: dict, work: Path) -> dict:
     rows = layout.rows_per_block(nq, top)
 
     def bare():
-        """The same products into the same buffer and in the same order as top_n, with no selection."""
-        work = R.Workspace(layout, rows, top)
+        """The same products as top_n in the same chunk order, with no selection: blocks of rows as a
+        single-worker search cuts them, each product on all of torch's threads (top_n with enough
+        queries runs one product per core on each of its workers instead)."""
+        scores = torch.empty(layout.sub_tiles, rows, layout.sub_width)
         for lo in range(0, nq, rows):
             qb = q[lo:lo + rows]
             for step, starts in enumerate(layout.steps):
                 for t, a in enumerate(starts):
                     chunk, chunk_bias = layout.tile(a)
-                    R.score_tile(qb, chunk, chunk_bias, work.scores[t if step == 0 else 0, :len(qb)])
+                    R.score_tile(qb, chunk, chunk_bias, scores[t if step == 0 else 0, :len(qb)])
 
-    probe = R.Workspace(layout, rows, top)
-    buffers_mb = (probe.scores.nbytes + probe.cand_s.nbytes + probe.cand_i.nbytes) / 2 ** 20
-    del probe
+    buffers_mb = layout.buffer_bytes(nq, top) / 2 ** 20
     result = {}
 
     def search():

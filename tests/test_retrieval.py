@@ -110,9 +110,9 @@ def test_a_guess_that_proves_too_high_is_searched_again(monkeypatch):
     calls = []
     search = R._search
 
-    def spy(queries, n, layout, work, ex_r, ex_c, guess):
+    def spy(queries, n, layout, ex_r, ex_c, guess):
         calls.append((guess, queries.shape[0]))
-        return search(queries, n, layout, work, ex_r, ex_c, guess)
+        return search(queries, n, layout, ex_r, ex_c, guess)
 
     monkeypatch.setattr(R, "_search", spy)
     g = torch.Generator().manual_seed(21)
@@ -121,6 +121,57 @@ def test_a_guess_that_proves_too_high_is_searched_again(monkeypatch):
     ex_c = torch.randint(0, 3000, (200,), generator=g)
     check_against_brute_force(q, items, 10, torch.randn(3000, generator=g), ex_r, ex_c)
     assert calls[0] == (True, 40) and calls[1][0] is False and calls[1][1] > 0
+
+
+@pytest.fixture
+def two_threads():
+    """torch set to two threads (the search then runs blocks on two worker threads), restored after."""
+    before = torch.get_num_threads()
+    torch.set_num_threads(2)
+    yield
+    torch.set_num_threads(before)
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_blocks_on_worker_threads_equal_brute_force(tiles, two_threads, seed):
+    # enough queries that each of two threads takes whole blocks, does their products on one core
+    # and scans them; the shared thread count is restored afterwards
+    g = torch.Generator().manual_seed(40 + seed)
+    nq, ni = 300 + 150 * seed, 900 + 400 * seed
+    q, items = torch.randn(nq, 6, generator=g), torch.randn(ni, 6, generator=g)
+    ex_r = torch.sort(torch.randint(0, nq, (4 * nq,), generator=g)).values
+    ex_c = torch.randint(0, ni, (4 * nq,), generator=g)
+    check_against_brute_force(q, items, [5, 40, 130][seed], torch.randn(ni, generator=g), ex_r, ex_c)
+    assert torch.get_num_threads() == 2
+
+
+def test_worker_threads_search_failed_guesses_again(two_threads, monkeypatch):
+    # every guess far too high, on the worker-thread path: the rows of every block are searched again
+    monkeypatch.setattr(R, "SUB_TILE", 64)
+    monkeypatch.setattr(R, "BLOCK_ENTRIES", 1 << 14)
+    monkeypatch.setattr(R, "GUESS_SIGMAS", -30.0)
+    g = torch.Generator().manual_seed(23)
+    q, items = torch.randn(400, 6, generator=g), torch.randn(2000, 6, generator=g)
+    check_against_brute_force(q, items, 12, torch.randn(2000, generator=g))
+
+
+def test_same_answer_on_one_thread_and_on_two(two_threads):
+    g = torch.Generator().manual_seed(24)
+    q, items = torch.randn(500, 8, generator=g), torch.randn(5000, 8, generator=g)
+    two = top_n(q, items, 30)
+    torch.set_num_threads(1)
+    one = top_n(q, items, 30)
+    assert torch.equal(one[0], two[0]) and torch.equal(one[1], two[1])
+
+
+def test_inputs_that_require_grad_are_searched_without_it():
+    # worker threads start with autograd on: the search must not try to record the products
+    g = torch.Generator().manual_seed(25)
+    q = torch.randn(300, 4, generator=g).requires_grad_()
+    items = torch.randn(700, 4, generator=g).requires_grad_()
+    idx, val = top_n(q, items, 9)
+    assert not val.requires_grad
+    check_against_brute_force(q.detach(), items.detach(), 9)
 
 
 def test_catalog_ordered_by_score_still_exact(tiles):

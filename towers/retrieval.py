@@ -22,6 +22,8 @@ result is exact either way.
 from __future__ import annotations
 
 import math
+import threading
+from concurrent.futures import ThreadPoolExecutor
 
 import numba
 import numpy as np
@@ -52,34 +54,68 @@ def top_n(query_vectors: torch.Tensor, item_vectors: torch.Tensor, n: int, item_
     n_eff = min(n, ni)
     if nq == 0 or n_eff == 0:
         return torch.full((nq, n_eff), -1, dtype=torch.int64), torch.full((nq, n_eff), float("-inf"))
-    queries = query_vectors.float()
+    queries = query_vectors.detach().float()
     if scale != 1.0:
         queries = queries * scale  # folded into the queries: one pass over q, not over every score
     layout = Layout(item_vectors, item_bias)
-    work = Workspace(layout, layout.rows_per_block(nq, n_eff), n_eff)
-    val, idx, missed = _search(queries, n_eff, layout, work, exclude_rows, exclude_cols, guess=True)
+    val, idx, missed = _search(queries, n_eff, layout, exclude_rows, exclude_cols, guess=True)
     if len(missed):  # a guessed floor was too high for these rows: search them again from safe floors
         ex_r, ex_c = _rows_of_exclusions(exclude_rows, exclude_cols, missed, nq)
-        again = _search(queries.index_select(0, missed), n_eff, layout, work, ex_r, ex_c, False)
+        again = _search(queries.index_select(0, missed), n_eff, layout, ex_r, ex_c, False)
         val[missed], idx[missed] = again[0], again[1]
     return idx, val  # _best_first already gave -inf scores the index -1
 
 
-def _search(queries: torch.Tensor, n: int, layout: Layout, work: Workspace, exclude_rows, exclude_cols,
+def _search(queries: torch.Tensor, n: int, layout: Layout, exclude_rows, exclude_cols,
             guess: bool) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
-    """Top-n (values, indices) of every query, block by block, and the rows whose guessed floor failed."""
+    """Top-n (values, indices) of every query, block by block, and the rows whose guessed floor failed.
+
+    With several threads and enough queries, each thread takes whole blocks and does their matrix
+    products (on one core) and their scans itself: a tile is scanned in the cache of the core that
+    wrote it, and no thread waits for another between chunks. Otherwise blocks go one by one, each
+    product and scan spread over all threads.
+    """
     nq = queries.shape[0]
-    rows = min(nq, work.rows)
+    threads = torch.get_num_threads()
+    workers = _workers(nq)
+    rows = layout.rows_per_block(nq, n, workers)
     val = torch.empty((nq, n), dtype=torch.float32)
     idx = torch.empty((nq, n), dtype=torch.int64)
     missed = []
     has_ex = exclude_rows is not None and len(exclude_rows) > 0
-    for lo in range(0, nq, rows):
-        hi = min(nq, lo + rows)
-        ex = _block_exclusions(exclude_rows, exclude_cols, lo, hi, layout) if has_ex else None
-        val[lo:hi], idx[lo:hi], block_missed = _search_block(queries[lo:hi], n, layout, work, ex, guess)
-        missed.append(block_missed + lo)
-    return val, idx, torch.cat(missed)
+    blocks = iter(range(0, nq, rows))
+    lock = threading.Lock()
+
+    def run(work: Workspace) -> None:
+        while True:
+            with lock:
+                lo = next(blocks, None)
+            if lo is None:
+                return
+            hi = min(nq, lo + rows)
+            ex = _block_exclusions(exclude_rows, exclude_cols, lo, hi, layout) if has_ex else None
+            val[lo:hi], idx[lo:hi], block_missed = _search_block(queries[lo:hi], n, layout, work, ex, guess)
+            missed.append(block_missed + lo)
+
+    if workers <= 1:
+        run(Workspace(layout, rows, n, threads))
+    else:
+        def one_core() -> None:
+            torch.set_num_threads(1)  # this thread's products on its own core (OpenMP and MKL settings are per thread)
+            run(Workspace(layout, rows, n, 1))
+
+        try:
+            with ThreadPoolExecutor(workers) as pool:
+                for done in [pool.submit(one_core) for _ in range(workers)]:
+                    done.result()
+        finally:
+            torch.set_num_threads(threads)  # the shared count, which the workers' calls also set
+    return val, idx, torch.sort(torch.cat(missed)).values if missed else torch.zeros(0, dtype=torch.int64)
+
+
+def _workers(nq: int) -> int:
+    """Threads that take whole blocks of nq queries: torch's thread count, if each gets enough rows."""
+    return max(1, min(torch.get_num_threads(), nq // (2 * MIN_ROWS_PER_THREAD)))
 
 
 class Layout:
@@ -90,8 +126,8 @@ class Layout:
     """
 
     def __init__(self, item_vectors: torch.Tensor, item_bias: torch.Tensor | None):
-        self.items = item_vectors.float().contiguous()
-        self.bias = None if item_bias is None else item_bias.float().contiguous()
+        self.items = item_vectors.detach().float().contiguous()
+        self.bias = None if item_bias is None else item_bias.detach().float().contiguous()
         ni = self.ni = self.items.shape[0]
         self.sub_width = min(_round_up(SUB_TILE, GROUP), _round_up(ni, GROUP))
         n_chunks = -(-ni // self.sub_width)
@@ -113,9 +149,16 @@ class Layout:
             self.tail_bias = torch.full((w,), float("-inf"))
             self.tail_bias[:c] = 0.0 if self.bias is None else self.bias[tail:]
 
-    def rows_per_block(self, nq: int, n: int) -> int:
-        """Query rows per block: the first step's scores and the candidate lists each fit BLOCK_ENTRIES."""
-        return max(1, min(nq, BLOCK_ENTRIES // self.step_width, BLOCK_ENTRIES // (CANDIDATES * n + K.LANE)))
+    def rows_per_block(self, nq: int, n: int, workers: int = 1) -> int:
+        """Query rows per block: each worker's first-step scores and candidate lists fit its share of BLOCK_ENTRIES."""
+        share = BLOCK_ENTRIES // workers
+        return max(1, min(-(-nq // workers), share // self.step_width, share // (CANDIDATES * n + K.SPAN)))
+
+    def buffer_bytes(self, nq: int, n: int) -> int:
+        """The memory a search of nq queries for n items each takes for its buffers, all workers together."""
+        workers = _workers(nq)
+        rows = self.rows_per_block(nq, n, workers)
+        return workers * rows * (self.sub_tiles * self.sub_width * 4 + (CANDIDATES * n + K.SPAN) * (4 + 8))
 
     def tile(self, start: int) -> tuple[torch.Tensor, torch.Tensor | None]:
         """Item vectors (sub_width, k) and bias (or None) of the chunk starting at item `start`."""
@@ -128,14 +171,14 @@ class Layout:
 class Workspace:
     """The reusable buffers of one search: the first step's scores and each row's candidates."""
 
-    def __init__(self, layout: Layout, rows: int, n: int):
+    def __init__(self, layout: Layout, rows: int, n: int, threads: int):
         self.rows = rows  # query rows per block
         self.scores = torch.empty(layout.sub_tiles, rows, layout.sub_width)
-        cap = CANDIDATES * n + K.LANE
+        cap = CANDIDATES * n + K.SPAN  # room for a whole span after the n best are kept
         self.cand_s = np.empty((rows, cap), np.float32)
         self.cand_i = np.empty((rows, cap), np.int64)
         # threads for the scan: torch's number (so `run.threads` holds here too), run by numba's pool
-        self.threads = max(1, min(torch.get_num_threads(), numba.config.NUMBA_NUM_THREADS))
+        self.threads = max(1, min(threads, numba.config.NUMBA_NUM_THREADS))
         if self.threads > 1:
             numba.set_num_threads(self.threads)
 

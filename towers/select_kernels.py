@@ -3,8 +3,8 @@
 Why compiled: selection must cost a small fraction of the matrix product that made the scores. In
 torch or numpy each step of it is a separate pass over memory plus a dispatch; here one pass over a
 tile does it. For each row, blocks of SPAN scores are first tested against the row's floor with one
-vectorised count (almost every block has no score at the floor, and is done); a block with some is
-tested in LANE-wide parts, and the parts with hits are appended without branches. When a row's
+vectorised count (almost every block has no score at the floor, and is done); in a block with some,
+the scores at the floor are appended one by one. When a row's
 candidate buffer fills, a three-way quickselect keeps its n best and the floor rises to the n-th
 of them, so the floor is always a lower bound on the row's final n-th best. Compiled once per
 machine and cached next to this file (numba's cache=True).
@@ -16,7 +16,10 @@ import numba
 import numpy as np
 
 SPAN = 64  # scores tested together first
-LANE = 16  # scores tested and appended together within a block that has hits
+# unsigned, as the tile indices are: unsigned index arithmetic must not meet signed numbers (numba
+# would make their sum a float)
+_U = np.uint64
+_U_SPAN = _U(SPAN)
 
 
 @numba.njit(boundscheck=False, cache=True, nogil=True)
@@ -72,48 +75,41 @@ def scan_rows(tile, r0, r1, first_item, n, floor, count, cand_s, cand_i):
     """Append every score of tile rows r0..r1 at or above the row's floor to its candidates.
 
     tile (rows, width) float32, column j is item first_item + j; floor (rows,) float32 and count
-    (rows,) int64 are updated in place; cand_s / cand_i (rows, cap) hold the candidates, cap >= n + LANE.
+    (rows,) int64 are updated in place; cand_s / cand_i (rows, cap) hold the candidates, cap >= n + SPAN.
+    Tile indices are unsigned: with signed ones numba must allow for negative (wrap-around) indices,
+    and the compiler then reads the tile with gathers instead of plain vector loads (twice as slow).
     """
-    w = tile.shape[1]
-    lanes = w // LANE
+    w = _U(tile.shape[1])
+    whole = w // _U_SPAN * _U_SPAN
     cap = cand_s.shape[1]
-    per_span = SPAN // LANE
+    first = _U(first_item)
     for i in range(r0, r1):
+        row = _U(i)
         f = floor[i]
         c = count[i]
         cs = cand_s[i]
         ci = cand_i[i]
-        skip = False
-        for b in range(lanes):
-            j0 = b * LANE
-            if b % per_span == 0:
-                if b + per_span <= lanes:
-                    hits = 0
-                    for j in range(SPAN):
-                        hits += tile[i, j0 + j] >= f
-                    skip = hits == 0
-                else:
-                    skip = False
-            if skip:
-                continue
+        for j0 in range(_U(0), whole, _U_SPAN):
             hits = 0
-            for j in range(LANE):
-                hits += tile[i, j0 + j] >= f
-            if hits:
-                if c + LANE > cap:
-                    c, f = _shrink(cs, ci, c, n, f)
-                for j in range(LANE):
-                    v = tile[i, j0 + j]
+            for j in range(_U_SPAN):  # vectorised: one count per span
+                hits += tile[row, j0 + j] >= f
+            if hits == 0:
+                continue  # the common case: nothing in this span reaches the floor
+            if c + hits > cap:  # room for the whole span first, so the loop below needs no check
+                c, f = _shrink(cs, ci, c, n, f)
+            for j in range(j0, j0 + _U_SPAN):
+                v = tile[row, j]
+                if v >= f:
                     cs[c] = v
-                    ci[c] = first_item + j0 + j
-                    c += v >= f
-        for j in range(lanes * LANE, w):  # the last scores of a width that is not a multiple of LANE
-            v = tile[i, j]
+                    ci[c] = np.int64(first + j)
+                    c += 1
+        for j in range(whole, w):  # the last scores of a width that is not a multiple of SPAN
+            v = tile[row, j]
             if v >= f:
                 if c == cap:
                     c, f = _shrink(cs, ci, c, n, f)
                 cs[c] = v
-                ci[c] = first_item + j
+                ci[c] = np.int64(first + j)
                 c += 1
         count[i] = c
         floor[i] = f
