@@ -515,6 +515,8 @@ def case_retrieval(size: dict, work: Path) -> dict:
     import torch
 
     from towers import retrieval as R
+    from towers import select_kernels as SK
+    from towers import tiles as T
 
     g = torch.Generator().manual_seed(9)
     nq, ni, top = size["queries"], size["items"], size["top"]
@@ -526,8 +528,8 @@ def case_retrieval(size: dict, work: Path) -> dict:
     ex_r = torch.arange(nq).repeat_interleave(20)  # 20 known items per query, excluded as recommend does
     ex_c = torch.randint(0, ni, (nq * 20,), generator=g)
 
-    layout = R.Layout(items, bias)
-    rows = layout.rows_per_block(nq, top)
+    layout = T.Layout(items, bias)
+    rows = layout.rows_per_block(nq, 1, R.CANDIDATES * top + SK.SPAN)
 
     def bare():
         """The same products as top_n in the same chunk order, with no selection: blocks of rows as a
@@ -539,9 +541,9 @@ def case_retrieval(size: dict, work: Path) -> dict:
             for step, starts in enumerate(layout.steps):
                 for t, a in enumerate(starts):
                     chunk, chunk_bias = layout.tile(a)
-                    R.score_tile(qb, chunk, chunk_bias, scores[t if step == 0 else 0, :len(qb)])
+                    T.score_tile(qb, chunk, chunk_bias, scores[t if step == 0 else 0, :len(qb)])
 
-    buffers_mb = layout.buffer_bytes(nq, top) / 2 ** 20
+    buffers_mb = R.buffer_bytes(layout, nq, top) / 2 ** 20
     result = {}
 
     def search():

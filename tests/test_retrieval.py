@@ -7,6 +7,7 @@ import pytest
 import torch
 
 import towers.retrieval as R
+import towers.tiles as T
 from towers.retrieval import top_n
 
 
@@ -43,9 +44,9 @@ def check_against_brute_force(q, items, n, bias=None, ex_r=None, ex_c=None, scal
 def tiles(request, monkeypatch):
     """The default tiles, and tiles small enough that the pruned merge runs over many steps."""
     entries, sub_tile, sub_tiles = request.param
-    monkeypatch.setattr(R, "BLOCK_ENTRIES", entries)
-    monkeypatch.setattr(R, "SUB_TILE", sub_tile)
-    monkeypatch.setattr(R, "SUB_TILES", sub_tiles)
+    monkeypatch.setattr(T, "BLOCK_ENTRIES", entries)
+    monkeypatch.setattr(T, "SUB_TILE", sub_tile)
+    monkeypatch.setattr(T, "SUB_TILES", sub_tiles)
 
 
 @pytest.mark.parametrize("seed", range(6))
@@ -97,7 +98,7 @@ def test_score_tile_matches_matmul():
     g = torch.Generator().manual_seed(14)
     q, items, bias = torch.randn(7, 5, generator=g), torch.randn(9, 5, generator=g), torch.randn(9, generator=g)
     out = torch.empty(7, 9)
-    R.score_tile(q, items, bias, out)
+    T.score_tile(q, items, bias, out)
     # reference: numpy matrix product plus the bias row
     np.testing.assert_allclose(out.numpy(), q.numpy() @ items.numpy().T + bias.numpy(), rtol=1e-5, atol=1e-5)
 
@@ -105,7 +106,7 @@ def test_score_tile_matches_matmul():
 def test_a_guess_that_proves_too_high_is_searched_again(monkeypatch):
     # a negative margin makes every guess far too high: the rows must be searched again from the safe
     # floor and still equal brute force
-    monkeypatch.setattr(R, "SUB_TILE", 64)
+    monkeypatch.setattr(T, "SUB_TILE", 64)
     monkeypatch.setattr(R, "GUESS_SIGMAS", -30.0)
     calls = []
     search = R._search
@@ -147,8 +148,8 @@ def test_blocks_on_worker_threads_equal_brute_force(tiles, two_threads, seed):
 
 def test_worker_threads_search_failed_guesses_again(two_threads, monkeypatch):
     # every guess far too high, on the worker-thread path: the rows of every block are searched again
-    monkeypatch.setattr(R, "SUB_TILE", 64)
-    monkeypatch.setattr(R, "BLOCK_ENTRIES", 1 << 14)
+    monkeypatch.setattr(T, "SUB_TILE", 64)
+    monkeypatch.setattr(T, "BLOCK_ENTRIES", 1 << 14)
     monkeypatch.setattr(R, "GUESS_SIGMAS", -30.0)
     g = torch.Generator().manual_seed(23)
     q, items = torch.randn(400, 6, generator=g), torch.randn(2000, 6, generator=g)

@@ -1,13 +1,9 @@
 """Blocked exact top-N retrieval: score tiles of queries x items, keep each query's best N.
 
-The full query x item score matrix is never built: one buffer of BLOCK_ENTRIES scores (and
-candidate lists of the same order) is reused for the whole search, so the extra memory is bounded
-by that buffer, not by the catalog.
-
-The catalog is cut into chunks of SUB_TILE items. For a block of queries each chunk is scored with
-one matrix product, and the compiled kernels of select_kernels keep each row's candidates at or
-above its floor while the tile is still in the cache; the floor rises to the n-th best kept
-whenever a row's candidates fill up.
+The full query x item score matrix is never built: tiles.py walks blocks of queries over chunks of
+the catalog in reused buffers, and for each tile the compiled kernels of select_kernels keep each
+row's candidates at or above its floor while the tile is still in the cache; the floor rises to the
+n-th best kept whenever a row's candidates fill up.
 
 The starting floor comes from the first step, SUB_TILES chunks spread over the catalog (a fair
 sample even when the catalog is ordered by popularity, say). The n-th best of its group maxima
@@ -22,22 +18,16 @@ result is exact either way.
 from __future__ import annotations
 
 import math
-import threading
-from concurrent.futures import ThreadPoolExecutor
 
 import numba
 import numpy as np
 import torch
 
 from . import select_kernels as K
+from . import tiles as T
 
-BLOCK_ENTRIES = 1 << 22  # scores in the reusable buffer (16 MB of float32): the extra memory of a search
-SUB_TILE = 2048  # items per chunk, one matrix product each (rounded up to whole groups)
-SUB_TILES = 4  # chunks in the first step, the sample for the starting floor
-GROUP = 16  # items per group maximum in the first step
 CANDIDATES = 4  # candidate room per row, in multiples of n (when full, the n best are kept)
 GUESS_SIGMAS = 3.0  # how far below the expected count a guess may fall before it fails (common practice)
-MIN_ROWS_PER_THREAD = 64  # fewer rows than this per thread are scanned on one thread
 LOWEST = torch.finfo(torch.float32).min
 
 
@@ -57,7 +47,7 @@ def top_n(query_vectors: torch.Tensor, item_vectors: torch.Tensor, n: int, item_
     queries = query_vectors.detach().float()
     if scale != 1.0:
         queries = queries * scale  # folded into the queries: one pass over q, not over every score
-    layout = Layout(item_vectors, item_bias)
+    layout = T.Layout(item_vectors, item_bias)
     val, idx, missed = _search(queries, n_eff, layout, exclude_rows, exclude_cols, guess=True)
     if len(missed):  # a guessed floor was too high for these rows: search them again from safe floors
         ex_r, ex_c = _rows_of_exclusions(exclude_rows, exclude_cols, missed, nq)
@@ -66,112 +56,41 @@ def top_n(query_vectors: torch.Tensor, item_vectors: torch.Tensor, n: int, item_
     return idx, val  # _best_first already gave -inf scores the index -1
 
 
-def _search(queries: torch.Tensor, n: int, layout: Layout, exclude_rows, exclude_cols,
+def _search(queries: torch.Tensor, n: int, layout: T.Layout, exclude_rows, exclude_cols,
             guess: bool) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
-    """Top-n (values, indices) of every query, block by block, and the rows whose guessed floor failed.
-
-    With several threads and enough queries, each thread takes whole blocks and does their matrix
-    products (on one core) and their scans itself: a tile is scanned in the cache of the core that
-    wrote it, and no thread waits for another between chunks. Otherwise blocks go one by one, each
-    product and scan spread over all threads.
-    """
+    """Top-n (values, indices) of every query, block by block, and the rows whose guessed floor failed."""
     nq = queries.shape[0]
-    threads = torch.get_num_threads()
-    workers = _workers(nq)
-    rows = layout.rows_per_block(nq, n, workers)
+    workers = T.workers_for(nq)
+    rows = layout.rows_per_block(nq, workers, CANDIDATES * n + K.SPAN)
     val = torch.empty((nq, n), dtype=torch.float32)
     idx = torch.empty((nq, n), dtype=torch.int64)
     missed = []
-    has_ex = exclude_rows is not None and len(exclude_rows) > 0
-    blocks = iter(range(0, nq, rows))
-    lock = threading.Lock()
 
-    def run(work: Workspace) -> None:
-        while True:
-            with lock:
-                lo = next(blocks, None)
-            if lo is None:
-                return
-            hi = min(nq, lo + rows)
-            ex = _block_exclusions(exclude_rows, exclude_cols, lo, hi, layout) if has_ex else None
+    def start_worker(threads: int):
+        work = Workspace(layout, rows, n, threads)
+
+        def do_block(lo: int, hi: int) -> None:
+            ex = T.block_exclusions(exclude_rows, exclude_cols, lo, hi, layout)
             val[lo:hi], idx[lo:hi], block_missed = _search_block(queries[lo:hi], n, layout, work, ex, guess)
             missed.append(block_missed + lo)
+        return do_block
 
-    if workers <= 1:
-        run(Workspace(layout, rows, n, threads))
-    else:
-        def one_core() -> None:
-            torch.set_num_threads(1)  # this thread's products on its own core (OpenMP and MKL settings are per thread)
-            run(Workspace(layout, rows, n, 1))
-
-        try:
-            with ThreadPoolExecutor(workers) as pool:
-                for done in [pool.submit(one_core) for _ in range(workers)]:
-                    done.result()
-        finally:
-            torch.set_num_threads(threads)  # the shared count, which the workers' calls also set
+    T.run_blocks(nq, rows, workers, start_worker)
     return val, idx, torch.sort(torch.cat(missed)).values if missed else torch.zeros(0, dtype=torch.int64)
 
 
-def _workers(nq: int) -> int:
-    """Threads that take whole blocks of nq queries: torch's thread count, if each gets enough rows."""
-    return max(1, min(torch.get_num_threads(), nq // (2 * MIN_ROWS_PER_THREAD)))
-
-
-class Layout:
-    """How a catalog is cut: chunks of `sub_width` items, SUB_TILES chunks a step, the first step spread out.
-
-    Every chunk is a full `sub_width` wide: the last, partial one is scored from a zero-padded copy
-    whose padding items have bias -inf, so padding never enters a result.
-    """
-
-    def __init__(self, item_vectors: torch.Tensor, item_bias: torch.Tensor | None):
-        self.items = item_vectors.detach().float().contiguous()
-        self.bias = None if item_bias is None else item_bias.detach().float().contiguous()
-        ni = self.ni = self.items.shape[0]
-        self.sub_width = min(_round_up(SUB_TILE, GROUP), _round_up(ni, GROUP))
-        n_chunks = -(-ni // self.sub_width)
-        self.sub_tiles = max(1, min(SUB_TILES, n_chunks))
-        self.step_width = self.sub_width * self.sub_tiles
-        starts = [c * self.sub_width for c in range(n_chunks)]
-        # the first step takes chunks spread evenly over the catalog, so that its scores are a fair
-        # sample for the guessed floor even when the catalog is ordered (by popularity, say)
-        first = sorted({starts[(c * n_chunks) // self.sub_tiles] for c in range(self.sub_tiles)})
-        taken = set(first)
-        rest = [a for a in starts if a not in taken]
-        self.steps = [first] + [rest[i:i + self.sub_tiles] for i in range(0, len(rest), self.sub_tiles)]
-        tail = starts[-1]
-        self.tail_start = tail if ni - tail < self.sub_width else None
-        if self.tail_start is not None:  # the partial last chunk, padded to full width
-            w, c = self.sub_width, ni - tail
-            self.tail_items = torch.zeros(w, self.items.shape[1])
-            self.tail_items[:c] = self.items[tail:]
-            self.tail_bias = torch.full((w,), float("-inf"))
-            self.tail_bias[:c] = 0.0 if self.bias is None else self.bias[tail:]
-
-    def rows_per_block(self, nq: int, n: int, workers: int = 1) -> int:
-        """Query rows per block: each worker's first-step scores and candidate lists fit its share of BLOCK_ENTRIES."""
-        share = BLOCK_ENTRIES // workers
-        return max(1, min(-(-nq // workers), share // self.step_width, share // (CANDIDATES * n + K.SPAN)))
-
-    def buffer_bytes(self, nq: int, n: int) -> int:
-        """The memory a search of nq queries for n items each takes for its buffers, all workers together."""
-        workers = _workers(nq)
-        rows = self.rows_per_block(nq, n, workers)
-        return workers * rows * (self.sub_tiles * self.sub_width * 4 + (CANDIDATES * n + K.SPAN) * (4 + 8))
-
-    def tile(self, start: int) -> tuple[torch.Tensor, torch.Tensor | None]:
-        """Item vectors (sub_width, k) and bias (or None) of the chunk starting at item `start`."""
-        if start == self.tail_start:
-            return self.tail_items, self.tail_bias
-        stop = start + self.sub_width
-        return self.items[start:stop], None if self.bias is None else self.bias[start:stop]
+def buffer_bytes(layout: T.Layout, nq: int, n: int) -> int:
+    """The memory a search of nq queries for n items each takes for its buffers, all workers together."""
+    workers = T.workers_for(nq)
+    cap = CANDIDATES * n + K.SPAN
+    rows = layout.rows_per_block(nq, workers, cap)
+    return workers * rows * (layout.sub_tiles * layout.sub_width * 4 + cap * (4 + 8))
 
 
 class Workspace:
     """The reusable buffers of one search: the first step's scores and each row's candidates."""
 
-    def __init__(self, layout: Layout, rows: int, n: int, threads: int):
+    def __init__(self, layout: T.Layout, rows: int, n: int, threads: int):
         self.rows = rows  # query rows per block
         self.scores = torch.empty(layout.sub_tiles, rows, layout.sub_width)
         cap = CANDIDATES * n + K.SPAN  # room for a whole span after the n best are kept
@@ -187,41 +106,11 @@ class Workspace:
 
         The rows are split over the threads; below MIN_ROWS_PER_THREAD rows a thread is not worth starting.
         """
-        parts = min(self.threads, tile.shape[0] // MIN_ROWS_PER_THREAD)
+        parts = min(self.threads, tile.shape[0] // T.MIN_ROWS_PER_THREAD)
         if parts > 1:
             K.scan_tile_parallel(tile, first_item, n, floor, count, self.cand_s, self.cand_i, parts)
         else:
             K.scan_rows(tile, 0, tile.shape[0], first_item, n, floor, count, self.cand_s, self.cand_i)
-
-
-def _round_up(x: int, multiple: int) -> int:
-    return -(-x // multiple) * multiple
-
-
-class _Exclusions:
-    """One block's excluded (row, item) pairs, sorted by item, as flat offsets into a chunk's tile.
-
-    starts[a] / ends[a]: the range of pairs inside the chunk starting at item a, found with one
-    searchsorted for the whole block rather than two per chunk.
-    """
-
-    def __init__(self, rows: torch.Tensor, cols: torch.Tensor, layout: Layout):
-        w = layout.sub_width
-        self.flat = rows * w + cols % w  # chunks start at multiples of w
-        first = sorted(a for step in layout.steps for a in step)
-        edges = torch.searchsorted(cols, torch.tensor(first + [layout.ni], dtype=cols.dtype)).tolist()
-        self.starts = dict(zip(first, edges[:-1]))
-        self.ends = dict(zip(first, edges[1:]))
-
-
-def _block_exclusions(rows: torch.Tensor, cols: torch.Tensor, lo: int, hi: int, layout: Layout):
-    """The exclusions of query rows lo..hi as _Exclusions (local rows), or None."""
-    a, b = int(torch.searchsorted(rows, lo)), int(torch.searchsorted(rows, hi))
-    if b <= a:
-        return None
-    r, c = rows[a:b] - lo, cols[a:b]
-    order = torch.argsort(c)
-    return _Exclusions(r.index_select(0, order), c.index_select(0, order), layout)
 
 
 def _rows_of_exclusions(rows: torch.Tensor | None, cols: torch.Tensor | None, keep: torch.Tensor, nq: int):
@@ -235,14 +124,7 @@ def _rows_of_exclusions(rows: torch.Tensor | None, cols: torch.Tensor | None, ke
     return mapped[mine], cols[mine]  # still sorted by row: the renumbering keeps the order
 
 
-def score_tile(queries: torch.Tensor, items: torch.Tensor, bias: torch.Tensor | None, out: torch.Tensor) -> torch.Tensor:
-    """out = queries @ items.T (+ bias per item), written into the given buffer."""
-    if bias is None:
-        return torch.mm(queries, items.T, out=out)
-    return torch.addmm(bias, queries, items.T, out=out)
-
-
-def _search_block(q: torch.Tensor, n: int, layout: Layout, work: Workspace, ex, guess: bool):
+def _search_block(q: torch.Tensor, n: int, layout: T.Layout, work: Workspace, ex: T.Exclusions | None, guess: bool):
     """Top-n (values, indices) over all items for one block of queries, and the rows not proven exact.
 
     guess: start from a guessed floor; a row whose n-th best found score ends below its guess is
@@ -256,11 +138,7 @@ def _search_block(q: torch.Tensor, n: int, layout: Layout, work: Workspace, ex, 
     seen = 0
     for step, starts in enumerate(layout.steps):
         for t, a in enumerate(starts):
-            s = work.scores[t if step == 0 else 0, :r]
-            items, bias = layout.tile(a)
-            score_tile(q, items, bias, s)
-            if ex is not None and ex.ends[a] > ex.starts[a]:
-                s.view(-1).index_fill_(0, ex.flat[ex.starts[a]:ex.ends[a]], float("-inf"))
+            s = T.scored_chunk(q, layout, a, ex, work.scores[t if step == 0 else 0, :r])
             if step:  # scanned at once, while the tile is in the cache
                 work.scan(s.numpy(), a, n, floor, count)
         if step == 0:  # the first step sets the floor before any of it is scanned
@@ -283,9 +161,9 @@ def _start_floor(sample: torch.Tensor, n: int, guess_rank: int | None, floor: np
     guess_rank below n, the guess_rank-th best (at least as high) is used and returned.
     """
     t_n, r, w = sample.shape
-    if t_n * (w // GROUP) < n:
+    if t_n * (w // T.GROUP) < n:
         return None  # fewer than n groups in the first step (a tiny catalog): start from the lowest floor
-    maxima = torch.amax(sample.view(t_n, r, GROUP, w // GROUP), 2).permute(1, 0, 2).reshape(r, -1)
+    maxima = torch.amax(sample.view(t_n, r, T.GROUP, w // T.GROUP), 2).permute(1, 0, 2).reshape(r, -1)
     ranked = np.sort(maxima.numpy(), axis=1)  # numpy's sort is many times faster than torch.topk here
     np.maximum(floor, ranked[:, -n], out=floor)
     if guess_rank is None or guess_rank >= n:
