@@ -7,6 +7,7 @@ import pytest
 import torch
 
 import towers.retrieval as R
+import towers.screen as S
 import towers.tiles as T
 from towers.retrieval import top_n
 
@@ -39,9 +40,16 @@ def check_against_brute_force(q, items, n, bias=None, ex_r=None, ex_c=None, scal
     return idx, val
 
 
+@pytest.fixture(params=["never", "always"], ids=["float32", "bf16-screen"])
+def screening(request, monkeypatch):
+    """Both ways of scoring chunks after the first step: float32 products, and the bfloat16 screen
+    with float32 rescoring (used where bfloat16 products are fast; forced here on any processor)."""
+    monkeypatch.setattr(S, "MODE", request.param)
+
+
 @pytest.fixture(params=[(1 << 22, 2048, 4), (1 << 10, 64, 2), (1 << 12, 48, 3), (1 << 9, 32, 1)],
                 ids=["default", "tiny-tiles", "odd-tiles", "one-group-tiles"])
-def tiles(request, monkeypatch):
+def tiles(request, monkeypatch, screening):
     """The default tiles, and tiles small enough that the pruned merge runs over many steps."""
     entries, sub_tile, sub_tiles = request.param
     monkeypatch.setattr(T, "BLOCK_ENTRIES", entries)
@@ -103,7 +111,7 @@ def test_score_tile_matches_matmul():
     np.testing.assert_allclose(out.numpy(), q.numpy() @ items.numpy().T + bias.numpy(), rtol=1e-5, atol=1e-5)
 
 
-def test_a_guess_that_proves_too_high_is_searched_again(monkeypatch):
+def test_a_guess_that_proves_too_high_is_searched_again(screening, monkeypatch):
     # a negative margin makes every guess far too high: the rows must be searched again from the safe
     # floor and still equal brute force
     monkeypatch.setattr(T, "SUB_TILE", 64)
@@ -111,9 +119,9 @@ def test_a_guess_that_proves_too_high_is_searched_again(monkeypatch):
     calls = []
     search = R._search
 
-    def spy(queries, n, layout, ex_r, ex_c, guess):
+    def spy(queries, n, layout, screened, ex_r, ex_c, guess):
         calls.append((guess, queries.shape[0]))
-        return search(queries, n, layout, ex_r, ex_c, guess)
+        return search(queries, n, layout, screened, ex_r, ex_c, guess)
 
     monkeypatch.setattr(R, "_search", spy)
     g = torch.Generator().manual_seed(21)
@@ -146,7 +154,7 @@ def test_blocks_on_worker_threads_equal_brute_force(tiles, two_threads, seed):
     assert torch.get_num_threads() == 2
 
 
-def test_worker_threads_search_failed_guesses_again(two_threads, monkeypatch):
+def test_worker_threads_search_failed_guesses_again(two_threads, screening, monkeypatch):
     # every guess far too high, on the worker-thread path: the rows of every block are searched again
     monkeypatch.setattr(T, "SUB_TILE", 64)
     monkeypatch.setattr(T, "BLOCK_ENTRIES", 1 << 14)
@@ -156,7 +164,7 @@ def test_worker_threads_search_failed_guesses_again(two_threads, monkeypatch):
     check_against_brute_force(q, items, 12, torch.randn(2000, generator=g))
 
 
-def test_same_answer_on_one_thread_and_on_two(two_threads):
+def test_same_answer_on_one_thread_and_on_two(two_threads, screening):
     g = torch.Generator().manual_seed(24)
     q, items = torch.randn(500, 8, generator=g), torch.randn(5000, 8, generator=g)
     two = top_n(q, items, 30)

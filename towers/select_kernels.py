@@ -121,3 +121,99 @@ def scan_tile_parallel(tile, first_item, n, floor, count, cand_s, cand_i, parts)
     r = tile.shape[0]
     for p in numba.prange(parts):
         scan_rows(tile, r * p // parts, r * (p + 1) // parts, first_item, n, floor, count, cand_s, cand_i)
+
+
+# ---- screened scan: bfloat16 tiles, float32 rescoring (see screen.py for the bound) ----------------
+
+@numba.njit(boundscheck=False, cache=True, nogil=True)
+def _bf16_at_most(x, scratch_f, scratch_u):
+    """The largest bfloat16 <= x as (is_positive, signed bits, unsigned bits) for the span tests.
+
+    bfloat16 bits are the high half of float32 bits: truncation rounds toward zero, so a negative x
+    with nonzero low bits takes the next bfloat16 away from zero. Below the lowest finite bfloat16 the
+    threshold stays at it, so -inf (an excluded item) never passes while every finite score does. Above zero, bfloat16 order is the
+    order of the bits as int16; at or below zero, a score passes when its bits as uint16 are at most
+    the threshold's (every non-negative score has bits below 0x8000, and more negative means larger).
+    """
+    scratch_f[0] = x
+    b = scratch_u[0]
+    hi = b >> np.uint32(16)
+    if (b >> np.uint32(31)) == 1 and (b & np.uint32(0xFFFF)) != 0:
+        hi += np.uint32(1)
+    if hi == 0:
+        hi = np.uint32(0x8000)  # +0 as -0: every non-negative score passes, as it must
+    elif hi >= 0xFF80:
+        hi = np.uint32(0xFF7F)  # at most the lowest finite value: -inf marks excluded items, which never pass
+    return hi < 0x8000, np.int16(np.uint16(hi)), np.uint16(hi)
+
+
+@numba.njit(boundscheck=False, cache=True, nogil=True, inline="always")
+def _reaches(v_s, v_u, up, ts, tu):
+    """Whether a bfloat16 score (bits v_s as int16, v_u as uint16) is at least the threshold of _bf16_at_most."""
+    return v_s >= ts if up else v_u <= tu
+
+
+@numba.njit(boundscheck=False, cache=True, nogil=True)
+def scan_screened_rows(t_s, t_u, r0, r1, real, q, items, bias, row_err, item_norm, first_item, n, floor,
+                       count, cand_s, cand_i):
+    """Rows r0..r1 of a bfloat16 tile: items whose screened score reaches floor - bound are rescored
+    in float32 and appended to the row's candidates when the exact score is at the floor.
+
+    t_s / t_u: the tile's bits as int16 and as uint16 (two views of one buffer); only its first
+    `real` columns are items. q (rows, k) and items (width, k) float32 with bias (width,): the exact
+    score. row_err[i] * item_norm bounds |screened - exact| for every item of the chunk.
+    """
+    w = _U(real)
+    whole = w // _U_SPAN * _U_SPAN
+    cap = cand_s.shape[1]
+    k = q.shape[1]
+    first = _U(first_item)
+    scratch_f = np.empty(1, np.float32)
+    scratch_u = scratch_f.view(np.uint32)
+    for i in range(r0, r1):
+        row = _U(i)
+        f = floor[i]
+        c = count[i]
+        cs = cand_s[i]
+        ci = cand_i[i]
+        margin = row_err[i] * item_norm
+        up, ts, tu = _bf16_at_most(f - margin, scratch_f, scratch_u)
+        for j0 in range(_U(0), w, _U_SPAN):
+            j1 = min(j0 + _U_SPAN, w)
+            hit = np.int16(0)
+            if j1 - j0 == _U_SPAN:  # vectorised: one any() per span
+                if up:
+                    for j in range(_U_SPAN):
+                        hit |= np.int16(t_s[row, j0 + j] >= ts)
+                else:
+                    for j in range(_U_SPAN):
+                        hit |= np.int16(t_u[row, j0 + j] <= tu)
+            else:
+                hit = np.int16(1)  # the last, partial span is tested item by item below
+            if hit == 0:
+                continue  # the common case
+            if c + SPAN > cap:  # room for the whole span first
+                c, f = _shrink(cs, ci, c, n, f)
+                up, ts, tu = _bf16_at_most(f - margin, scratch_f, scratch_u)
+            for j in range(j0, j1):
+                if _reaches(t_s[row, j], t_u[row, j], up, ts, tu):
+                    s = np.float32(0.0)
+                    for d in range(k):
+                        s += q[i, d] * items[j, d]
+                    s += bias[j]
+                    if s >= f:
+                        cs[c] = s
+                        ci[c] = np.int64(first + j)
+                        c += 1
+        count[i] = c
+        floor[i] = f
+
+
+@numba.njit(boundscheck=False, cache=True, parallel=True)
+def scan_screened_parallel(t_s, t_u, real, q, items, bias, row_err, item_norm, first_item, n, floor, count,
+                           cand_s, cand_i, parts):
+    """scan_screened_rows over all rows, cut into `parts` ranges run on numba's threads."""
+    r = t_s.shape[0]
+    for p in numba.prange(parts):
+        scan_screened_rows(t_s, t_u, r * p // parts, r * (p + 1) // parts, real, q, items, bias, row_err,
+                           item_norm, first_item, n, floor, count, cand_s, cand_i)
