@@ -13,9 +13,8 @@ import numpy as np
 import torch
 
 from . import metrics as M
+from . import rank_counts as RC
 from .dataset import Pairs
-
-SCORE_BUDGET = 1 << 23  # score-matrix entries per block: bounds evaluation memory (~50 MB)
 
 
 @dataclass
@@ -105,7 +104,8 @@ def ranking_metrics(scorer: Scorer, test: Pairs, known: Pairs, candidate_mask: t
 
     candidate_mask: bool (n_items,) items that compete in the ranking. known: the pairs whose items
     are excluded from each query's ranking (its training positives). Test pairs that are also known,
-    or whose item is not a candidate, are dropped.
+    or whose item is not a candidate, are dropped. Ranks are counted tile by tile (rank_counts.py),
+    from the float32 scores Scorer.block gives, without building the query x item score matrix.
     """
     n_items = len(candidate_mask)
     test = test.positives()
@@ -136,50 +136,24 @@ def ranking_metrics(scorer: Scorer, test: Pairs, known: Pairs, candidate_mask: t
     n_cols = len(cand_rows)
     tie_break = torch.rand(n_cols, generator=torch.Generator().manual_seed(tie_seed))
 
-    # known pairs of the test queries, sorted by query, for per-block exclusion
+    # excluded (query row, column) pairs: the test queries' known pairs and, for item-item data, each
+    # query item itself
     kq = torch.from_numpy(known_keys // n_items)
     kc = torch.from_numpy(known_keys % n_items)
     kcol = col_of[kc]
     relevant = (kcol >= 0) & torch.isin(kq, queries)
-    kq, kcol = kq[relevant], kcol[relevant]  # sorted by query, since keys are sorted
+    ex_rows, ex_cols = torch.searchsorted(queries, kq[relevant]), kcol[relevant]
+    if exclude_self:
+        own = col_of[queries]
+        has = torch.nonzero(own >= 0).flatten()
+        ex_rows, ex_cols = torch.cat([ex_rows, has]), torch.cat([ex_cols, own[has]])
 
-    pos_per_query = torch.bincount(q_index, minlength=len(queries))
-    pair_start = torch.cat([torch.zeros(1, dtype=torch.int64), pos_per_query.cumsum(0)])
-    # blocks of consecutive queries so that rows * columns and pairs * columns stay within budget
-    per_block = max(1, SCORE_BUDGET // max(1, n_cols))
-    bounds = _blocks(pos_per_query, per_block)
-    results: dict[str, list] = {}
-    for lo, hi in bounds:
-        qs = queries[lo:hi]
-        scores = over.block(qs).float()
-        k_lo, k_hi = torch.searchsorted(kq, qs[0]), torch.searchsorted(kq, qs[-1], right=True)
-        if k_hi > k_lo:
-            local = torch.searchsorted(qs, kq[k_lo:k_hi])
-            scores[local, kcol[k_lo:k_hi]] = float("-inf")
-        if exclude_self:
-            own = col_of[qs]
-            has = own >= 0
-            scores[torch.nonzero(has).flatten(), own[has]] = float("-inf")
-        p_lo, p_hi = pair_start[lo], pair_start[hi]
-        rows = q_index[p_lo:p_hi] - lo
-        ranks = M.ranks_of_positives(scores, rows, col_of[pc[p_lo:p_hi]], tie_break)
-        per_q = M.per_query_ranking(ranks, rows, hi - lo, M.candidates_per_row(scores), ks)
-        for name, v in per_q.items():
-            results.setdefault(name, []).append(v)
-    out = M.mean_over_queries({k: torch.cat(v) for k, v in results.items()})
+    qb = None if over.query_bias is None else over.query_bias.index_select(0, queries)
+    ranks, n_candidates = RC.rank_counts(over.query_vectors.index_select(0, queries), over.item_vectors, q_index,
+                                         col_of[pc], tie_break, over.item_bias, qb, over.global_bias, over.scale,
+                                         ex_rows, ex_cols)
+    per_q = M.per_query_ranking(ranks, q_index, len(queries), n_candidates, ks)
+    out = M.mean_over_queries(per_q)
     out["queries"] = int(len(queries))
     return out
 
-
-def _blocks(pos_per_query: torch.Tensor, rows_per_block: int) -> list[tuple[int, int]]:
-    """Group consecutive queries so that each block holds at most rows_per_block queries and positives."""
-    n = len(pos_per_query)
-    cum = pos_per_query.cumsum(0)
-    bounds, lo = [], 0
-    while lo < n:
-        base = int(cum[lo - 1]) if lo else 0
-        by_pairs = int(torch.searchsorted(cum, base + rows_per_block, right=True))
-        hi = min(n, lo + rows_per_block, max(lo + 1, by_pairs))
-        bounds.append((lo, hi))
-        lo = hi
-    return bounds
