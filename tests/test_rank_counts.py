@@ -87,15 +87,6 @@ def tiles(request, monkeypatch):
     monkeypatch.setattr(T, "SUB_TILE", sub_tile)
 
 
-@pytest.fixture
-def two_threads():
-    """torch set to two threads (blocks then run on two worker threads), restored after."""
-    before = torch.get_num_threads()
-    torch.set_num_threads(2)
-    yield
-    torch.set_num_threads(before)
-
-
 @pytest.mark.parametrize("seed", range(4))
 def test_ranks_equal_numpy_and_dense_reference(tiles, seed):
     # ties everywhere (integer products, half-integer biases), exclusions, a padded last chunk

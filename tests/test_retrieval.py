@@ -132,15 +132,6 @@ def test_a_guess_that_proves_too_high_is_searched_again(screening, monkeypatch):
     assert calls[0] == (True, 40) and calls[1][0] is False and calls[1][1] > 0
 
 
-@pytest.fixture
-def two_threads():
-    """torch set to two threads (the search then runs blocks on two worker threads), restored after."""
-    before = torch.get_num_threads()
-    torch.set_num_threads(2)
-    yield
-    torch.set_num_threads(before)
-
-
 @pytest.mark.parametrize("seed", range(3))
 def test_blocks_on_worker_threads_equal_brute_force(tiles, two_threads, seed):
     # enough queries that each of two threads takes whole blocks, does their products on one core
