@@ -8,6 +8,7 @@ import torch
 
 import towers.screen as S
 import towers.select_kernels as K
+import towers.tiles as T
 from towers.retrieval import top_n
 
 # every bfloat16 bit pattern and its value (the high half of a float32), numpy's own conversion
@@ -113,13 +114,33 @@ def test_screened_and_float32_searches_agree(monkeypatch):
 
 
 def test_the_screen_is_used_only_where_it_can_help(monkeypatch):
-    q, items = torch.randn(4, 8), torch.randn(10, 8)
     monkeypatch.setattr(S, "MODE", "auto")
-    assert not S.wanted(4, 10, q, items, None)  # too small to be worth it
+    assert not S.wanted(4, 10)  # too small to be worth it
     monkeypatch.setattr(S, "MODE", "always")
-    assert S.wanted(4, 10, q, items, None)
-    items[3, 2] = float("nan")  # the bound needs finite inputs
-    assert not S.wanted(4, 10, q, items, None)
-    assert not S.wanted(4, 10, q, torch.randn(10, 8), torch.tensor([0.0] * 9 + [float("inf")]))
+    assert S.wanted(4, 10)
     monkeypatch.setattr(S, "MODE", "never")
-    assert not S.wanted(4, 10, q, torch.randn(10, 8), None)
+    assert not S.wanted(4000, 100000)
+    items = torch.randn(100, 8)
+    assert S.ScreenedCatalog(T.Layout(items, None)).usable
+    items[3, 2] = float("nan")  # the bound needs finite inputs
+    assert not S.ScreenedCatalog(T.Layout(items, None)).usable
+    assert not S.ScreenedCatalog(T.Layout(torch.randn(100, 8), torch.tensor([0.0] * 99 + [float("inf")]))).usable
+
+
+@pytest.mark.parametrize("bad", [float("nan"), float("inf")])
+def test_queries_and_items_that_are_not_finite_give_the_float32_answer(monkeypatch, bad):
+    g = torch.Generator().manual_seed(10)
+    q, items, bias = torch.randn(30, 6, generator=g), torch.randn(500, 6, generator=g), torch.randn(500, generator=g)
+    q[4, 1] = bad  # one query row the bound cannot cover
+    answers = {}
+    for mode in ("never", "always"):
+        monkeypatch.setattr(S, "MODE", mode)
+        answers[mode] = top_n(q, items, 7, bias)
+    torch.testing.assert_close(answers["always"][1], answers["never"][1], equal_nan=True)
+    np.testing.assert_array_equal(answers["always"][0][np.arange(30) != 4], answers["never"][0][np.arange(30) != 4])
+    items[17, 0] = bad  # a catalog the bound cannot cover is searched in float32 throughout
+    monkeypatch.setattr(S, "MODE", "always")
+    i16, v16 = top_n(q, items, 7, bias)
+    monkeypatch.setattr(S, "MODE", "never")
+    i32, v32 = top_n(q, items, 7, bias)
+    assert torch.equal(i16, i32)

@@ -53,7 +53,9 @@ def top_n(query_vectors: torch.Tensor, item_vectors: torch.Tensor, n: int, item_
     if scale != 1.0:
         queries = queries * scale  # folded into the queries: one pass over q, not over every score
     layout = T.Layout(item_vectors, item_bias)
-    screened = S.ScreenedCatalog(layout) if S.wanted(nq, ni, queries, layout.items, layout.bias) else None
+    screened = S.ScreenedCatalog(layout) if S.wanted(nq, ni) else None
+    if screened is not None and not screened.usable:
+        screened = None
     val, idx, missed = _search(queries, n_eff, layout, screened, exclude_rows, exclude_cols, guess=True)
     if len(missed):  # a guessed floor was too high for these rows: search them again from safe floors
         ex_r, ex_c = _rows_of_exclusions(exclude_rows, exclude_cols, missed, nq)

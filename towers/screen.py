@@ -37,13 +37,9 @@ MIN_SPEEDUP = 1.5  # bfloat16 products must be this much faster than float32 one
 _measured: dict[str, bool] = {}
 
 
-def wanted(n_queries: int, n_items: int, queries: torch.Tensor, items: torch.Tensor,
-           bias: torch.Tensor | None) -> bool:
-    """Whether a search of this size should screen in bfloat16 (finite inputs only: the bound needs them)."""
+def wanted(n_queries: int, n_items: int) -> bool:
+    """Whether a search of this size should screen in bfloat16 here (MODE, size, measured speed)."""
     if MODE == "never" or (MODE == "auto" and n_queries * n_items < MIN_SCORES):
-        return False
-    # a float64 sum is finite only if every value is (inf and NaN carry through); no temporary copies
-    if not all(math.isfinite(float(t.sum(dtype=torch.float64))) for t in (queries, items, bias) if t is not None):
         return False
     return MODE == "always" or bf16_products_are_fast()
 
@@ -87,29 +83,43 @@ def augment(vectors: torch.Tensor, extra: torch.Tensor | float | None, width: in
 
 
 class ScreenedCatalog:
-    """Per chunk of a tiles.Layout: what the screened scan needs besides the tile.
+    """What the screened scan needs besides the tile, for every chunk of a tiles.Layout.
 
-    chunks[a] = (bfloat16 x' of the chunk (sub_width rows, padding rows zero), the largest |x'|
-    of its real items, the number of real items, float32 item vectors and bias for rescoring).
+    chunks[a] = (bfloat16 x' of the chunk's sub_width items (padding rows zero), the largest |x'| of
+    its real items, the number of real items, float32 item vectors and bias for rescoring).
+    usable is False when an item vector or bias is not finite: the bound needs finite values, and
+    such a catalog is searched in float32 throughout.
     """
 
     def __init__(self, layout):
         self.has_bias = layout.bias is not None
-        k = layout.items.shape[1]
+        ni, k = layout.items.shape
         self.width = padded_width(k, self.has_bias)
-        zero_bias = np.zeros(layout.sub_width, np.float32)
+        aug = torch.zeros(layout.padded, self.width, dtype=torch.bfloat16)
+        aug[:ni, :k] = layout.items  # rounded to bfloat16 on the copy: no float32 copy of the catalog
+        sq_norm = torch.linalg.vector_norm(layout.items, dim=1) ** 2
+        bias = np.zeros(layout.padded, np.float32)
+        if self.has_bias:
+            aug[:ni, k] = layout.bias
+            sq_norm += layout.bias ** 2
+            bias[:ni] = layout.bias.numpy()
+        norm = torch.zeros(layout.padded)
+        norm[:ni] = sq_norm.sqrt()  # norms of the float32 x', not of its rounding: the bound is about x'
+        w = layout.sub_width
+        chunk_norm = norm.view(-1, w).amax(1).tolist()
+        self.usable = all(math.isfinite(v) for v in chunk_norm)
         self.chunks = {}
         for step in layout.steps:
             for a in step:
-                items, bias = layout.tile(a)  # the last chunk comes padded; only its real items are scanned
-                real = min(layout.sub_width, layout.ni - a)
-                aug = torch.zeros(layout.sub_width, self.width)
-                aug[:real] = augment(items[:real], bias[:real] if self.has_bias else None, self.width)
-                norm = float(torch.linalg.vector_norm(aug[:real], dim=1).max())
-                rescore_bias = bias.numpy() if self.has_bias else zero_bias
-                self.chunks[a] = (aug.to(torch.bfloat16), norm, real, items.numpy(), rescore_bias)
+                real = min(w, ni - a)  # the last chunk's padding is never scanned
+                self.chunks[a] = (aug[a:a + w], chunk_norm[a // w], real, layout.tile(a)[0].numpy(), bias[a:a + w])
 
     def queries(self, q: torch.Tensor) -> tuple[torch.Tensor, np.ndarray]:
-        """A block's q' in bfloat16, and ERROR_BOUND * |q'| per row (float32): the row's part of the bound."""
+        """A block's q' in bfloat16, and ERROR_BOUND * |q'| per row (float32): the row's part of the bound.
+
+        A row with a value that is not finite gets an infinite margin: every finite screened score
+        then passes, and its exact float32 scores decide, as in a float32 search.
+        """
         aug = augment(q, 1.0 if self.has_bias else None, self.width)
-        return aug.to(torch.bfloat16), (torch.linalg.vector_norm(aug, dim=1) * ERROR_BOUND).numpy()
+        err = torch.linalg.vector_norm(aug, dim=1) * ERROR_BOUND
+        return aug.to(torch.bfloat16), torch.nan_to_num(err, nan=math.inf).numpy()

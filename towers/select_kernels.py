@@ -135,7 +135,7 @@ def _bf16_at_most(x, scratch_f, scratch_u):
     order of the bits as int16; at or below zero, a score passes when its bits as uint16 are at most
     the threshold's (every non-negative score has bits below 0x8000, and more negative means larger).
     """
-    scratch_f[0] = x
+    scratch_f[0] = x if x == x else -np.inf  # NaN (an unbounded margin): every finite score passes
     b = scratch_u[0]
     hi = b >> np.uint32(16)
     if (b >> np.uint32(31)) == 1 and (b & np.uint32(0xFFFF)) != 0:
