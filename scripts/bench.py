@@ -560,7 +560,7 @@ def case_retrieval(size: dict, work: Path) -> dict:
 
     bare()  # warm-up: first touch of the buffers
     R.top_n(q[:8], items[:5000], top)  # loads (or compiles) the selection kernels before memory is measured
-    screened = S.wanted(nq, ni, q, items, bias)  # also measures, once, whether bfloat16 products are fast here
+    screened = S.wanted(nq, ni)  # also measures, once, whether bfloat16 products are fast here
     rss_before = status_bytes("VmRSS")
     peak_ok = reset_peak_rss()
     t_search = [best_time(search, 1)]
