@@ -24,7 +24,8 @@ def rounded_down(x) -> np.float32:
 
 
 def bf16_product_error(q: torch.Tensor, x: torch.Tensor, bias: torch.Tensor | None):
-    """(|screened - exact|, ERROR_BOUND * |q'| * |x'|) for every pair, the exact score in float64."""
+    """(|screened - exact|, ERROR_BOUND * |q'| * |x'|, the absolute term for flushed values) for every
+    pair, the exact score in float64."""
     width = S.padded_width(q.shape[1], bias is not None)
     qa = S.augment(q, 1.0 if bias is not None else None, width)
     xa = S.augment(x, bias, width)
@@ -32,8 +33,9 @@ def bf16_product_error(q: torch.Tensor, x: torch.Tensor, bias: torch.Tensor | No
     exact = q.double().numpy() @ x.double().numpy().T  # reference: numpy float64 product
     if bias is not None:
         exact = exact + bias.double().numpy()
-    bound = S.ERROR_BOUND * np.outer(qa.double().norm(dim=1).numpy(), xa.double().norm(dim=1).numpy())
-    return np.abs(screened - exact), bound
+    qn, xn = qa.double().norm(dim=1).numpy(), xa.double().norm(dim=1).numpy()
+    flushed = 2 * S.FLUSHED * (np.sqrt(width) * (qn[:, None] + xn[None, :]) + 1)
+    return np.abs(screened - exact), S.ERROR_BOUND * np.outer(qn, xn), flushed
 
 
 @pytest.mark.parametrize("k", [1, 7, 64, 65, 256])
@@ -46,10 +48,28 @@ def test_screened_scores_stay_within_the_bound(k, with_bias):
     x[:50] = 1.0 + 3 * 2.0 ** -10  # halfway between bfloat16 neighbours of 1: rounds by the full half step
     q[:5] = 1.0 + 3 * 2.0 ** -10
     bias = torch.randn(300, generator=g) * 100 if with_bias else None
-    err, bound = bf16_product_error(q, x, bias)
+    err, bound, _ = bf16_product_error(q, x, bias)
     assert (err <= bound).all()
     # the bound is not vacuous: the rounding really moves scores by a sizeable share of it
     assert (err / bound).max() > 0.05
+
+
+def test_values_below_the_normal_range_are_covered_by_the_absolute_term(monkeypatch):
+    # queries whose every coordinate is below 2^-126 (subnormal), items near 1e30: bfloat16 rounds
+    # such values with an absolute, not a relative, error, so the relative bound alone fails
+    g = torch.Generator().manual_seed(4)
+    q = torch.randn(50, 8, generator=g) * 1e-39
+    x = torch.randn(200, 8, generator=g) * 1e30
+    err, bound, flushed = bf16_product_error(q, x, None)
+    assert (err > bound).any()  # the relative bound alone is not enough here
+    assert (err <= bound + flushed).all()
+    # and through the search: the same answer as numpy float64 brute force
+    monkeypatch.setattr(S, "MODE", "always")
+    idx, val = top_n(q, x, 10)
+    full = q.double().numpy() @ x.double().numpy().T  # reference: numpy float64
+    expect = -np.sort(-full, axis=1)[:, :10]
+    np.testing.assert_allclose(val.numpy(), expect, rtol=1e-5)
+    np.testing.assert_allclose(np.take_along_axis(full, idx.numpy(), 1), expect, rtol=1e-5)
 
 
 def test_rounding_is_the_largest_bfloat16_at_most_the_threshold():

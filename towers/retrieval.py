@@ -129,7 +129,7 @@ class Workspace:
         else:
             K.scan_rows(tile, 0, tile.shape[0], first_item, n, floor, count, self.cand_s, self.cand_i)
 
-    def scan_screened(self, q: np.ndarray, q16: torch.Tensor, row_err: np.ndarray, first_item: int, n: int,
+    def scan_screened(self, q: np.ndarray, q16: torch.Tensor, row_bound: np.ndarray, first_item: int, n: int,
                       floor: np.ndarray, count: np.ndarray, ex: T.Exclusions | None) -> None:
         """Score the chunk at first_item in bfloat16 (exclusions at -inf) and scan it, rescoring in float32."""
         r = q.shape[0]
@@ -141,10 +141,10 @@ class Workspace:
         t_s, t_u = self.bits_s[:r], self.bits_u[:r]
         parts = self._parts(r)
         if parts > 1:
-            K.scan_screened_parallel(t_s, t_u, real, q, items, bias, row_err, item_norm, first_item, n, floor,
+            K.scan_screened_parallel(t_s, t_u, real, q, items, bias, row_bound, item_norm, first_item, n, floor,
                                      count, self.cand_s, self.cand_i, parts)
         else:
-            K.scan_screened_rows(t_s, t_u, 0, r, real, q, items, bias, row_err, item_norm, first_item, n, floor,
+            K.scan_screened_rows(t_s, t_u, 0, r, real, q, items, bias, row_bound, item_norm, first_item, n, floor,
                                  count, self.cand_s, self.cand_i)
 
     def _parts(self, rows: int) -> int:
@@ -175,12 +175,12 @@ def _search_block(q: torch.Tensor, n: int, layout: T.Layout, work: Workspace, ex
     refine_at = layout.ni // 4  # items seen when the guess is made again from the candidates
     seen = 0
     if work.screened is not None:
-        q16, row_err = work.screened.queries(q)
+        q16, row_bound = work.screened.queries(q)
         q32 = q.numpy()
     for step, starts in enumerate(layout.steps):
         for t, a in enumerate(starts):
             if step and work.screened is not None:
-                work.scan_screened(q32, q16, row_err, a, n, floor, count, ex)
+                work.scan_screened(q32, q16, row_bound, a, n, floor, count, ex)
                 continue
             s = T.scored_chunk(q, layout, a, ex, work.scores[t if step == 0 else 0, :r])
             if step:  # scanned at once, while the tile is in the cache

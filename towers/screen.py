@@ -15,9 +15,12 @@ rounding the result to bfloat16 adds u |s|. With sum |q'_i x'_i| <= |q'| |x'| (C
     |screened score - q.x - b| <= ERROR_BOUND * |q'| * |x'|
 
 with ERROR_BOUND = 2u + u^2 + u (1 + u)^3 + 2^-12 (the last term covers the accumulation for
-k up to 4096, with room to spare). An item can reach the floor f only if its screened score is
-at least f - ERROR_BOUND * |q'| * max|x'| over its chunk, so screening with that threshold drops
-no item that the float32 search would keep.
+k up to 4096, with room to spare). bfloat16 instructions may also flush values below 2^-126 to
+zero, inputs and result alike: each flushed product term is below 2^-126 times a coordinate of
+the other vector, so an absolute term 2^-126 (sqrt(k') (|q'| + |x'|) + 1) covers them, doubled
+for the float32 rounding of the margin itself. An item can reach the floor f only if its
+screened score is at least f - (ERROR_BOUND |q'| max|x'| + that term), the maximum over its chunk,
+so screening with that threshold drops no item that the float32 search would keep.
 """
 
 from __future__ import annotations
@@ -30,6 +33,7 @@ import torch
 
 _U = 2.0 ** -8  # unit roundoff of bfloat16 (8 significant bits)
 ERROR_BOUND = 2 * _U + _U ** 2 + _U * (1 + _U) ** 3 + 2.0 ** -12
+FLUSHED = 2.0 ** -126  # below this, bfloat16 instructions may read or write zero
 MODE = "auto"  # "auto": screen when bfloat16 products prove fast here; "always" / "never" (tests)
 MIN_SCORES = 1 << 22  # searches with fewer query x item scores than this are not worth a screen
 MIN_SPEEDUP = 1.5  # bfloat16 products must be this much faster than float32 ones to be used
@@ -108,6 +112,7 @@ class ScreenedCatalog:
         w = layout.sub_width
         chunk_norm = norm.view(-1, w).amax(1).tolist()
         self.usable = all(math.isfinite(v) for v in chunk_norm)
+        self.largest_norm = max(chunk_norm)
         self.chunks = {}
         for step in layout.steps:
             for a in step:
@@ -115,11 +120,14 @@ class ScreenedCatalog:
                 self.chunks[a] = (aug[a:a + w], chunk_norm[a // w], real, layout.tile(a)[0].numpy(), bias[a:a + w])
 
     def queries(self, q: torch.Tensor) -> tuple[torch.Tensor, np.ndarray]:
-        """A block's q' in bfloat16, and ERROR_BOUND * |q'| per row (float32): the row's part of the bound.
+        """A block's q' in bfloat16, and its rows' parts of the bound (rows, 2) float32: the margin
+        of row i in a chunk whose largest |x'| is m is bound[i, 0] * m + bound[i, 1].
 
         A row with a value that is not finite gets an infinite margin: every finite screened score
         then passes, and its exact float32 scores decide, as in a float32 search.
         """
         aug = augment(q, 1.0 if self.has_bias else None, self.width)
-        err = torch.linalg.vector_norm(aug, dim=1) * ERROR_BOUND
-        return aug.to(torch.bfloat16), torch.nan_to_num(err, nan=math.inf).numpy()
+        norm = torch.linalg.vector_norm(aug.double(), dim=1)
+        bound = torch.stack([norm * ERROR_BOUND,
+                             2 * FLUSHED * (math.sqrt(self.width) * (norm + self.largest_norm) + 1)], 1)
+        return aug.to(torch.bfloat16), torch.nan_to_num(bound, nan=math.inf).float().numpy()

@@ -154,14 +154,15 @@ def _reaches(v_s, v_u, up, ts, tu):
 
 
 @numba.njit(boundscheck=False, cache=True, nogil=True)
-def scan_screened_rows(t_s, t_u, r0, r1, real, q, items, bias, row_err, item_norm, first_item, n, floor,
+def scan_screened_rows(t_s, t_u, r0, r1, real, q, items, bias, row_bound, item_norm, first_item, n, floor,
                        count, cand_s, cand_i):
     """Rows r0..r1 of a bfloat16 tile: items whose screened score reaches floor - bound are rescored
     in float32 and appended to the row's candidates when the exact score is at the floor.
 
     t_s / t_u: the tile's bits as int16 and as uint16 (two views of one buffer); only its first
     `real` columns are items. q (rows, k) and items (width, k) float32 with bias (width,): the exact
-    score. row_err[i] * item_norm bounds |screened - exact| for every item of the chunk.
+    score. row_bound[i, 0] * item_norm + row_bound[i, 1] bounds |screened - exact| for every item
+    of the chunk (screen.py).
     """
     w = _U(real)
     whole = w // _U_SPAN * _U_SPAN
@@ -176,7 +177,7 @@ def scan_screened_rows(t_s, t_u, r0, r1, real, q, items, bias, row_err, item_nor
         c = count[i]
         cs = cand_s[i]
         ci = cand_i[i]
-        margin = row_err[i] * item_norm
+        margin = row_bound[i, 0] * item_norm + row_bound[i, 1]
         up, ts, tu = _bf16_at_most(f - margin, scratch_f, scratch_u)
         for j0 in range(_U(0), w, _U_SPAN):
             j1 = min(j0 + _U_SPAN, w)
@@ -210,10 +211,10 @@ def scan_screened_rows(t_s, t_u, r0, r1, real, q, items, bias, row_err, item_nor
 
 
 @numba.njit(boundscheck=False, cache=True, parallel=True)
-def scan_screened_parallel(t_s, t_u, real, q, items, bias, row_err, item_norm, first_item, n, floor, count,
+def scan_screened_parallel(t_s, t_u, real, q, items, bias, row_bound, item_norm, first_item, n, floor, count,
                            cand_s, cand_i, parts):
     """scan_screened_rows over all rows, cut into `parts` ranges run on numba's threads."""
     r = t_s.shape[0]
     for p in numba.prange(parts):
-        scan_screened_rows(t_s, t_u, r * p // parts, r * (p + 1) // parts, real, q, items, bias, row_err,
+        scan_screened_rows(t_s, t_u, r * p // parts, r * (p + 1) // parts, real, q, items, bias, row_bound,
                            item_norm, first_item, n, floor, count, cand_s, cand_i)
