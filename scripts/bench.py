@@ -544,7 +544,6 @@ def case_retrieval(size: dict, work: Path) -> dict:
                     chunk, chunk_bias = layout.tile(a)
                     T.score_tile(qb, chunk, chunk_bias, scores[t if step == 0 else 0, :len(qb)])
 
-    buffers_mb = R.buffer_bytes(layout, nq, top) / 2 ** 20
     result = {}
 
     def search():
@@ -561,6 +560,7 @@ def case_retrieval(size: dict, work: Path) -> dict:
     bare()  # warm-up: first touch of the buffers
     R.top_n(q[:8], items[:5000], top)  # loads (or compiles) the selection kernels before memory is measured
     screened = S.wanted(nq, ni)  # also measures, once, whether bfloat16 products are fast here
+    buffers_mb = R.buffer_bytes(layout, nq, top, screened) / 2 ** 20
     rss_before = status_bytes("VmRSS")
     peak_ok = reset_peak_rss()
     t_search = [best_time(search, 1)]

@@ -53,9 +53,7 @@ def top_n(query_vectors: torch.Tensor, item_vectors: torch.Tensor, n: int, item_
     if scale != 1.0:
         queries = queries * scale  # folded into the queries: one pass over q, not over every score
     layout = T.Layout(item_vectors, item_bias)
-    screened = S.ScreenedCatalog(layout) if S.wanted(nq, ni) else None
-    if screened is not None and not screened.usable:
-        screened = None
+    screened = S.catalog_for(layout, nq)
     val, idx, missed = _search(queries, n_eff, layout, screened, exclude_rows, exclude_cols, guess=True)
     if len(missed):  # a guessed floor was too high for these rows: search them again from safe floors
         ex_r, ex_c = _rows_of_exclusions(exclude_rows, exclude_cols, missed, nq)
@@ -91,12 +89,14 @@ def _search(queries: torch.Tensor, n: int, layout: T.Layout, screened: S.Screene
     return val, idx, torch.sort(torch.cat(missed)).values if missed else torch.zeros(0, dtype=torch.int64)
 
 
-def buffer_bytes(layout: T.Layout, nq: int, n: int) -> int:
-    """The memory a search of nq queries for n items each takes for its buffers, all workers together."""
+def buffer_bytes(layout: T.Layout, nq: int, n: int, screened: bool) -> int:
+    """The memory a search of nq queries for n items each takes for its buffers, all workers together
+    (with the screen: its bfloat16 tiles, not the bfloat16 copy of the catalog)."""
     workers = T.workers_for(nq)
     cap = CANDIDATES * n + K.SPAN
     rows = layout.rows_per_block(nq, workers, cap)
-    return workers * rows * (layout.sub_tiles * layout.sub_width * 4 + cap * (4 + 8))
+    tiles = layout.sub_tiles * layout.sub_width * 4 + (layout.sub_width * 2 if screened else 0)
+    return workers * rows * (tiles + cap * (4 + 8))
 
 
 class Workspace:

@@ -41,6 +41,14 @@ MIN_SPEEDUP = 1.5  # bfloat16 products must be this much faster than float32 one
 _measured: dict[str, bool] = {}
 
 
+def catalog_for(layout, n_queries: int) -> ScreenedCatalog | None:
+    """The screened catalog for a search of n_queries over layout's items, or None to stay in float32."""
+    if not wanted(n_queries, layout.ni):
+        return None
+    catalog = ScreenedCatalog(layout)
+    return catalog if catalog.usable else None
+
+
 def wanted(n_queries: int, n_items: int) -> bool:
     """Whether a search of this size should screen in bfloat16 here (MODE, size, measured speed)."""
     if MODE == "never" or (MODE == "auto" and n_queries * n_items < MIN_SCORES):
