@@ -46,7 +46,7 @@ def make_case(seed: int, nq: int, ni: int, pos_per_row: int = 3, ex_per_row: int
 
 
 def dense_scores(case) -> np.ndarray:
-    """The float32 score matrix, finished in Scorer.block's order of roundings, exclusions at -inf."""
+    """The float32 score matrix, finished in rank_counts' order of roundings, exclusions at -inf."""
     prod = (case["query_vectors"].double() @ case["item_vectors"].double().T).numpy().astype(np.float32)
     s = prod * np.float32(case["scale"])
     if case["item_bias"] is not None:
@@ -177,10 +177,22 @@ def test_excluded_positive_is_refused():
         RC.rank_counts(**case)
 
 
+def dense_block(scorer: Scorer, q_rows: torch.Tensor, item_rows: torch.Tensor) -> torch.Tensor:
+    """The dense score block ranking_metrics used to build: scale * q.x, then item, query and global bias."""
+    s = scorer.query_vectors.index_select(0, q_rows) @ scorer.item_vectors.index_select(0, item_rows).T
+    if scorer.scale != 1.0:
+        s = s * scorer.scale
+    if scorer.item_bias is not None:
+        s = s + scorer.item_bias.index_select(0, item_rows)
+    if scorer.query_bias is not None:
+        s = s + scorer.query_bias.index_select(0, q_rows).unsqueeze(1)
+    return s + scorer.global_bias if scorer.global_bias else s
+
+
 def dense_ranking_metrics(scorer: Scorer, test: Pairs, known: Pairs, mask: torch.Tensor, ks, tie_seed: int,
                           exclude_self: bool) -> dict:
     """Reference: the dense path ranking_metrics took before rank_counts, written per query: the full
-    Scorer.block matrix, exclusions at -inf, metrics.ranks_of_positives, per_query_ranking."""
+    dense_block matrix, exclusions at -inf, metrics.ranks_of_positives, per_query_ranking."""
     n_items = len(mask)
     cols = torch.nonzero(mask).flatten()
     col_of = {int(c): j for j, c in enumerate(cols)}
@@ -192,7 +204,7 @@ def dense_ranking_metrics(scorer: Scorer, test: Pairs, known: Pairs, mask: torch
         if mask[c] and (u, c) not in known_set and not (exclude_self and u == c):
             by_query.setdefault(u, set()).add(c)
     queries = sorted(by_query)
-    scores = scorer.block(torch.tensor(queries), cols).float()
+    scores = dense_block(scorer, torch.tensor(queries), cols).float()
     rows, items = [], []
     for r, u in enumerate(queries):
         for c in range(n_items):

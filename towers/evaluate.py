@@ -28,18 +28,6 @@ class Scorer:
     global_bias: float = 0.0
     scale: float = 1.0
 
-    def block(self, q_rows: torch.Tensor, item_rows: torch.Tensor | None = None) -> torch.Tensor:
-        """Scores (len(q_rows), n) of queries against the given item rows (default: all)."""
-        items = self.item_vectors if item_rows is None else self.item_vectors.index_select(0, item_rows)
-        s = self.query_vectors.index_select(0, q_rows) @ items.T
-        if self.scale != 1.0:
-            s = _add_or_mul(s, self.scale, multiply=True)
-        if self.item_bias is not None:
-            s = _add_or_mul(s, self.item_bias if item_rows is None else self.item_bias.index_select(0, item_rows))
-        if self.query_bias is not None:
-            s = _add_or_mul(s, self.query_bias.index_select(0, q_rows).unsqueeze(1))
-        return _add_or_mul(s, self.global_bias) if self.global_bias else s
-
     def over_items(self, item_rows: torch.Tensor) -> "Scorer":
         """The same model restricted to some items (column j is item_rows[j]): selected once, not per block."""
         bias = None if self.item_bias is None else self.item_bias.index_select(0, item_rows)
@@ -59,14 +47,6 @@ class Scorer:
         if self.query_bias is not None:
             s = s + self.query_bias.index_select(0, q)
         return s + self.global_bias
-
-
-def _add_or_mul(s: torch.Tensor, other, multiply: bool = False) -> torch.Tensor:
-    """s + other (or s * other), in place when that gives the same dtype: the same values as the
-    out-of-place operation, without a fresh block-sized tensor for every term."""
-    if torch.result_type(s, other) == s.dtype:
-        return s.mul_(other) if multiply else s.add_(other)
-    return s * other if multiply else s + other
 
 
 def popularity_scorer(train: Pairs, n_queries: int, n_items: int, explicit: bool, item_item: bool = False) -> Scorer:
@@ -105,7 +85,7 @@ def ranking_metrics(scorer: Scorer, test: Pairs, known: Pairs, candidate_mask: t
     candidate_mask: bool (n_items,) items that compete in the ranking. known: the pairs whose items
     are excluded from each query's ranking (its training positives). Test pairs that are also known,
     or whose item is not a candidate, are dropped. Ranks are counted tile by tile (rank_counts.py),
-    from the float32 scores Scorer.block gives, without building the query x item score matrix.
+    from float32 scores ((scale q.x + item bias) + query bias) + global bias, without building the query x item score matrix.
     """
     n_items = len(candidate_mask)
     test = test.positives()

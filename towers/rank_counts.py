@@ -5,7 +5,7 @@ the same score and a smaller tie-break priority; excluded candidates (-inf) neve
 count metrics.ranks_of_positives makes on a whole block of scores in plain tensors. Here tiles.py
 walks blocks of queries over chunks of the catalog, and a compiled (numba) kernel counts each
 chunk's tile while it is still in the cache. One vectorised pass per row finishes the scores
-(scale and biases, in Scorer.block's order), counts the row's candidates and the scores that reach
+(scale, then item, query and global bias, each rounded in float32), counts the row's candidates and the scores that reach
 its lowest positive; when none do, the row is done. Otherwise each positive, lowest first, takes
 one vectorised pass (two compares a score) until one is out of reach. A row with many positives
 instead searches each column that reaches its lowest positive among its sorted positives, when
@@ -41,7 +41,7 @@ _ONE, _ZERO = np.float32(1.0), np.float32(0.0)
 
 @numba.njit(boundscheck=False, cache=True, nogil=True)
 def _score(v, scale, item_bias, query_bias, global_bias):
-    """A raw product v finished as Scorer.block finishes it: float32 steps, rounded in the same order."""
+    """A raw product v finished as an evaluation score: scale, then each bias, rounded in float32 in that order."""
     return ((v * scale + item_bias) + query_bias) + global_bias
 
 
@@ -161,7 +161,7 @@ def rank_counts(query_vectors: torch.Tensor, item_vectors: torch.Tensor, rows: t
     """0-based rank of each positive (rows[p], items[p]) among its row's candidates, and candidates per row.
 
     score(q, i) = ((scale * query_vectors[q] . item_vectors[i] + item_bias[i]) + query_bias[q]) + global_bias,
-    in float32 and rounded in that order, as Scorer.block computes it. Pairs (exclude_rows,
+    in float32 and rounded in that order. Pairs (exclude_rows,
     exclude_cols) are no candidates. Among equal scores the smaller tie_break (n_items,) ranks first.
     Returns int64 ranks (P,), the number of candidates ranked before each positive (other positives
     included), and int64 candidates (n_queries,): the scores above -inf in each row. Every positive
@@ -181,7 +181,7 @@ def rank_counts(query_vectors: torch.Tensor, item_vectors: torch.Tensor, rows: t
         return torch.from_numpy(ranks), torch.from_numpy(candidates)
 
     queries = query_vectors.detach().float().contiguous()
-    # item biases are added in the kernel, after the scale, as Scorer.block adds them (an addmm would
+    # item biases are added in the kernel, after the scale, as the score is defined (an addmm would
     # add them before): the layout gets none, and only its padding items have bias -inf
     layout = T.Layout(item_vectors, None)
     w = layout.sub_width

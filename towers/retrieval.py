@@ -134,10 +134,7 @@ class Workspace:
         """Score the chunk at first_item in bfloat16 (exclusions at -inf) and scan it, rescoring in float32."""
         r = q.shape[0]
         items16, item_norm, real, items, bias = self.screened.chunks[first_item]
-        tile = self.tile16[:r]
-        torch.mm(q16, items16.T, out=tile)
-        if ex is not None:
-            ex.apply(first_item, tile)
+        T.score_excluded(q16, items16, None, first_item, ex, self.tile16[:r])
         t_s, t_u = self.bits_s[:r], self.bits_u[:r]
         parts = self._parts(r)
         if parts > 1:

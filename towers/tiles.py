@@ -122,6 +122,12 @@ def block_exclusions(rows: torch.Tensor | None, cols: torch.Tensor | None, lo: i
 def scored_chunk(q: torch.Tensor, layout: Layout, start: int, ex: Exclusions | None, out: torch.Tensor) -> torch.Tensor:
     """The tile of block queries q against the chunk starting at item `start`, exclusions at -inf."""
     items, bias = layout.tile(start)
+    return score_excluded(q, items, bias, start, ex, out)
+
+
+def score_excluded(q: torch.Tensor, items: torch.Tensor, bias: torch.Tensor | None, start: int,
+                   ex: Exclusions | None, out: torch.Tensor) -> torch.Tensor:
+    """score_tile of the chunk starting at item `start` given as `items` (any dtype), exclusions at -inf."""
     score_tile(q, items, bias, out)
     if ex is not None:
         ex.apply(start, out)
