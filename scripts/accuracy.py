@@ -30,11 +30,12 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-import towers  # noqa: E402
 from accuracy_ratios import ratio  # noqa: E402
+
+import towers  # noqa: E402
 from towers.atomic import write_text_atomic  # noqa: E402
-from towers.bundle import load_payload  # noqa: E402
-from towers.planted import generate_explicit, generate_implicit  # noqa: E402
+from towers.model.bundle import load_payload  # noqa: E402
+from towers.synthetic.planted import generate_explicit, generate_implicit  # noqa: E402
 
 # The targets of the full benchmark (tests/test_accuracy.py asserts looser ones on smaller data).
 RMSE_OVER_SIGMA_MAX = 1.05    # linear factor and towers, held-out ratings

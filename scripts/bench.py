@@ -175,8 +175,9 @@ def case_id_training(size: dict, work: Path) -> dict:
     import torch
 
     from towers import config as C
-    from towers.dataset import prepare
-    from towers.training import Trainer, build_model
+    from towers.data.prepare import prepare
+    from towers.model.build import build_model
+    from towers.training.loop import Trainer
 
     log_path = work / "ids.parquet"
     write_id_log(log_path, size["pairs"], size["users"], size["items"], seed=3)
@@ -367,8 +368,9 @@ def case_tower_flops(size: dict, work: Path) -> dict:
     import torch
 
     from towers import config as C
-    from towers.dataset import prepare
-    from towers.training import Trainer, build_model
+    from towers.data.prepare import prepare
+    from towers.model.build import build_model
+    from towers.training.loop import Trainer
 
     rng = np.random.default_rng(4)
     n_users = size["users"]
@@ -412,8 +414,8 @@ def case_als(size: dict, work: Path) -> dict:
     import numpy as np
     import torch
 
-    from towers import als
     from towers.config import SCHEMA
+    from towers.training import als
 
     rng = np.random.default_rng(7)
     nu, ni, n = size["users"], size["items"], size["ratings"]
@@ -514,10 +516,10 @@ def case_retrieval(size: dict, work: Path) -> dict:
     import numpy as np
     import torch
 
-    from towers import retrieval as R
-    from towers import screen as S
-    from towers import select_kernels as SK
-    from towers import tiles as T
+    from towers.search import kernels as SK
+    from towers.search import retrieval as R
+    from towers.search import screen as S
+    from towers.search import tiles as T
 
     g = torch.Generator().manual_seed(9)
     nq, ni, top = size["queries"], size["items"], size["top"]
@@ -619,8 +621,9 @@ def case_scale_run(size: dict, work: Path, tag: str) -> dict:
     import torch
 
     from towers import config as C
-    from towers.dataset import prepare
-    from towers.training import Trainer, build_model
+    from towers.data.prepare import prepare
+    from towers.model.build import build_model
+    from towers.training.loop import Trainer
 
     t = time.perf_counter()
     cfg = C.resolve(scale_config(work, tag), work)
@@ -637,8 +640,9 @@ def case_scale_run(size: dict, work: Path, tag: str) -> dict:
 
 def case_embed_setup(size: dict, work: Path) -> dict:
     """A small trained run with item features, and a table of unseen items to embed."""
-    from towers.runner import train_run
     import yaml
+
+    from towers.runs.train import train_run
 
     write_item_table(work / "items.parquet", 5_000, seed=12)
     write_shop_log(work / "log.parquet", 50_000, 2_000, 5_000, seed=13)

@@ -18,9 +18,9 @@ import pyarrow.parquet as pq
 import pytest
 
 import towers
-from towers.bundle import load_payload
 from towers.errors import TowersError
-from towers.planted import generate_explicit, generate_implicit
+from towers.model.bundle import load_payload
+from towers.synthetic.planted import generate_explicit, generate_implicit
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT / "scripts"))

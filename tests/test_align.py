@@ -24,10 +24,9 @@ from scipy.linalg import orthogonal_procrustes
 from scipy.stats import ortho_group
 
 import towers
-from towers.align import align_run
 from towers.cli import main as cli
-from towers.demo_store import generate_store
-from towers.errors import TowersError
+from towers.runs.align import align_run
+from towers.synthetic.demo_store import generate_store
 
 ROOT = Path(__file__).resolve().parents[1]
 K = 8

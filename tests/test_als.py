@@ -15,11 +15,20 @@ import yaml
 from sklearn.linear_model import Ridge
 
 from towers import config as C
-from towers.als import Cells, Factors, als_sweep, cells_of, fit_als, half_step, objective
-from towers.dataset import prepare
+from towers.data.prepare import prepare
 from towers.errors import TowersError
-from towers.runner import apply_threads, baseline_model
-from towers.training import Trainer, fit
+from towers.model.build import baseline_model
+from towers.runs.train import apply_threads
+from towers.training.als import (
+    Cells,
+    Factors,
+    als_sweep,
+    cells_of,
+    fit_als,
+    half_step,
+    objective,
+)
+from towers.training.loop import Trainer, fit
 
 F64 = torch.float64
 

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import errno
+import os
 
 import numpy as np
 import pyarrow.parquet as pq
@@ -10,8 +11,8 @@ import pytest
 import torch
 
 from towers import atomic
+from towers.data.embeddings_file import write_embeddings
 from towers.errors import TowersError
-from towers.export import write_embeddings
 
 
 def _export(path, value: float):
@@ -47,10 +48,12 @@ def test_write_killed_half_way_never_replaces_the_target(tmp_path):
     assert [p.name for p in tmp_path.iterdir()] == ["notes.txt"]
 
 
-def test_written_files_get_the_usual_permissions(tmp_path):
-    path = atomic.write_text_atomic(tmp_path / "a.txt", "x")
-    import os
-
-    umask = os.umask(0)
-    os.umask(umask)
-    assert path.stat().st_mode & 0o777 == 0o666 & ~umask
+def test_written_files_and_created_folders_are_owner_only(tmp_path):
+    # run outputs hold personal data: files 0600 and folders 0700 whatever the umask (README "Personal data")
+    old = os.umask(0o022)
+    try:
+        path = atomic.write_text_atomic(tmp_path / "new" / "deeper" / "a.txt", "x")
+    finally:
+        os.umask(old)
+    assert path.stat().st_mode & 0o777 == 0o600
+    assert path.parent.stat().st_mode & 0o777 == 0o700

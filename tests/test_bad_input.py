@@ -27,7 +27,7 @@ import torch
 import yaml
 
 from towers.cli import main as cli
-from towers.demo_store import generate_store
+from towers.synthetic.demo_store import generate_store
 
 # ---------------------------------------------------------------- shared data and helpers
 

@@ -15,8 +15,10 @@ import torch
 import torch.nn.functional as F
 
 from towers import config as C
-from towers.dataset import prepare
-from towers.training import NegativeSampler, Trainer, build_model
+from towers.data.prepare import prepare
+from towers.model.build import build_model
+from towers.training.loop import Trainer
+from towers.training.negatives import NegativeSampler
 
 
 def _data(tmp_path, hidden, features: bool, sampling: str = "popularity"):
@@ -153,7 +155,7 @@ def test_closed_form_id_row_objective_equals_the_general_path(tmp_path, loss, ne
 
 def test_closed_form_id_row_gradient_passes_gradcheck():
     # reference: torch.autograd.gradcheck, central finite differences in float64
-    from towers.training import _IdRowObjective
+    from towers.training.objectives import IdRowObjective as _IdRowObjective
 
     g = torch.Generator().manual_seed(6)
     b, k, n_neg = 5, 3, 2

@@ -19,11 +19,12 @@ import torch
 import yaml
 
 from towers import config as C
-from towers.als import Cells, Factors, als_sweep, cells_of, fit_als
-from towers.certificate import certificate, certify, describe, spectral_norm
-from towers.dataset import prepare
-from towers.runner import apply_threads, baseline_model, train_run
-from towers.training import fit
+from towers.data.prepare import prepare
+from towers.model.build import baseline_model
+from towers.runs.train import apply_threads, train_run
+from towers.training.als import Cells, Factors, als_sweep, cells_of, fit_als
+from towers.training.certificate import certificate, certify, describe, spectral_norm
+from towers.training.loop import fit
 
 F64 = torch.float64
 

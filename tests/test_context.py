@@ -16,11 +16,11 @@ import yaml
 
 from towers import cli
 from towers.api import load
-from towers.context import event_pairs
-from towers.dataset import Pairs
-from towers.evaluate import ranking_metrics
-from towers.losses import in_batch_softmax_loss
-from towers.runner import train_run
+from towers.data.context import event_pairs
+from towers.data.pairs import Pairs
+from towers.evaluation.protocol import ranking_metrics
+from towers.model.losses import in_batch_softmax_loss
+from towers.runs.train import train_run
 
 
 def test_softmax_loss_equals_cross_entropy_without_duplicates():

@@ -8,8 +8,8 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from towers.demo_store import STORE_NAME, generate_store, main
 from towers.errors import TowersError
+from towers.synthetic.demo_store import STORE_NAME, generate_store, main
 
 SMALL = dict(n_items=300, n_customers=400, n_new_items=60)
 RANK, DESC = 8, 16

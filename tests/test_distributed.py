@@ -14,7 +14,7 @@ import sys
 import pytest
 import yaml
 
-from towers.demo_store import generate_store
+from towers.synthetic.demo_store import generate_store
 
 
 @pytest.fixture(scope="module")

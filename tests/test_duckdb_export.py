@@ -16,7 +16,7 @@ import torch
 import yaml
 
 import towers
-from towers.demo_store import generate_store
+from towers.synthetic.demo_store import generate_store
 
 ROOT = Path(__file__).resolve().parents[1]
 TOP = 10

@@ -16,9 +16,9 @@ import torch
 from sklearn.preprocessing import StandardScaler
 
 from towers import config as C
-from towers import encoders as E
+from towers.data import encoders as E
+from towers.data.tables import read_table
 from towers.errors import TowersError
-from towers.tables import read_table
 
 P = "items.csv"
 
@@ -149,7 +149,7 @@ def test_categorical_hashing_range_and_missing():
 HASH_SCRIPT = """
 import json, sys
 import pandas as pd
-from towers.encoders import CategoricalEncoder, TokenEncoder
+from towers.data.encoders import CategoricalEncoder, TokenEncoder
 c = CategoricalEncoder("c", hash_buckets=1000).transform(pd.Series(["apple", "pear", "7", None]), "f")
 t = TokenEncoder("t", hash_buckets=1000, max_tokens=3).transform(pd.Series(["apple|pear", "kiwi"]), "f")
 print(json.dumps([c.tolist(), t.tolist()]))

@@ -17,10 +17,11 @@ import torch.nn.functional as F
 import yaml
 
 from towers import config as C
-from towers.dataset import prepare
-from towers.losses import logistic_loss
-from towers.runner import apply_threads, baseline_model
-from towers.training import Trainer, fit
+from towers.data.prepare import prepare
+from towers.model.build import baseline_model
+from towers.model.losses import logistic_loss
+from towers.runs.train import apply_threads
+from towers.training.loop import Trainer, fit
 
 N_ROWS, N_COLS = 30, 20
 N_PAIRS = N_ROWS * N_COLS

@@ -1,27 +1,16 @@
-import importlib.util
 import math
-import pathlib
 
 import numpy as np
 import pytest
 import torch
-from sklearn.metrics import mean_absolute_error, mean_squared_error, ndcg_score, roc_auc_score
+from sklearn.metrics import (
+    mean_absolute_error,
+    mean_squared_error,
+    ndcg_score,
+    roc_auc_score,
+)
 
-
-def _load(name):
-    # The package __init__ is written separately; fall back to loading this
-    # module by path so these tests exercise metrics.py on its own.
-    try:
-        return importlib.import_module(f"towers.{name}")
-    except Exception:
-        path = pathlib.Path(__file__).resolve().parents[1] / "towers" / f"{name}.py"
-        spec = importlib.util.spec_from_file_location(f"_towers_{name}", path)
-        module = importlib.util.module_from_spec(spec)
-        spec.loader.exec_module(module)
-        return module
-
-
-metrics = _load("metrics")
+from towers.evaluation import metrics as metrics
 
 KS = (1, 3, 5, 10, 100)
 NAMES = [f"{m}@{k}" for m in ("recall", "ndcg") for k in KS] + ["mrr", "auc"]

@@ -14,10 +14,11 @@ from sklearn.datasets import load_digits
 from sklearn.decomposition import NMF
 
 from towers import config as C
-from towers.als import Cells, Factors, als_sweep, fit_als, half_step
-from towers.certificate import certify
-from towers.dataset import prepare
-from towers.runner import apply_threads, baseline_model
+from towers.data.prepare import prepare
+from towers.model.build import baseline_model
+from towers.runs.train import apply_threads
+from towers.training.als import Cells, Factors, als_sweep, fit_als, half_step
+from towers.training.certificate import certify
 
 F64 = torch.float64
 

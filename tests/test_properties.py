@@ -23,10 +23,10 @@ import torch
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from towers import encoders as E
-from towers import metrics as M
+from towers.data import encoders as E
+from towers.data.tables import read_table
 from towers.errors import TowersError
-from towers.tables import read_table
+from towers.evaluation import metrics as M
 
 FAST = settings(max_examples=40, deadline=None)
 P = "items.csv"

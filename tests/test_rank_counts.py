@@ -8,11 +8,12 @@ import pytest
 import torch
 from sklearn.metrics import ndcg_score
 
-import towers.rank_counts as RC
-import towers.tiles as T
-from towers import metrics as M
-from towers.dataset import Pairs
-from towers.evaluate import Scorer, ranking_metrics
+import towers.search.rank_counts as RC
+import towers.search.tiles as T
+from towers.data.pairs import Pairs
+from towers.evaluation import metrics as M
+from towers.evaluation.protocol import ranking_metrics
+from towers.search.scorer import Scorer
 
 
 def make_case(seed: int, nq: int, ni: int, pos_per_row: int = 3, ex_per_row: int = 4, many_rows: int = 0,

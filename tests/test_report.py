@@ -20,9 +20,9 @@ from PIL import Image
 import towers
 from towers import config as C
 from towers.cli import main as cli
-from towers.demo_store import generate_store
 from towers.errors import TowersError
-from towers.report import effective_rank, energy_rank, pca_2d, singular_values
+from towers.runs.report import effective_rank, energy_rank, pca_2d, singular_values
+from towers.synthetic.demo_store import generate_store
 
 ROOT = Path(__file__).resolve().parents[1]
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # reference: PNG specification (ISO/IEC 15948), section 5.2

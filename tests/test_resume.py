@@ -16,7 +16,7 @@ import pytest
 import torch
 import yaml
 
-from towers.demo_store import generate_store
+from towers.synthetic.demo_store import generate_store
 
 ROOT = Path(__file__).resolve().parents[1]
 

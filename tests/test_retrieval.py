@@ -6,10 +6,10 @@ import numpy as np
 import pytest
 import torch
 
-import towers.retrieval as R
-import towers.screen as S
-import towers.tiles as T
-from towers.retrieval import top_n
+import towers.search.retrieval as R
+import towers.search.screen as S
+import towers.search.tiles as T
+from towers.search.retrieval import top_n
 
 
 def brute_force(q, items, bias, ex_r, ex_c, scale):
@@ -203,7 +203,7 @@ def test_keys_sort_as_scores_then_items():
 
 @pytest.mark.parametrize("seed", range(4))
 def test_kernel_keeps_the_n_largest(seed):
-    from towers import select_kernels as K
+    from towers.search import kernels as K
 
     rng = np.random.default_rng(24 + seed)
     c, n = 400, [1, 37, 100, 399][seed]

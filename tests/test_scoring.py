@@ -11,13 +11,14 @@ import pytest
 import torch
 
 from towers import config as C
-from towers.bundle import load_payload
-from towers.dataset import Pairs
+from towers.data.embeddings_file import read_embeddings, write_embeddings
+from towers.data.pairs import Pairs
 from towers.errors import TowersError
-from towers.evaluate import Scorer, ranking_metrics
-from towers.export import read_embeddings, write_embeddings
-from towers.model import TwoTowerModel
-from towers.retrieval import top_n
+from towers.evaluation.protocol import ranking_metrics
+from towers.model.bundle import load_payload
+from towers.model.towers import TwoTowerModel
+from towers.search.retrieval import top_n
+from towers.search.scorer import Scorer
 
 
 def _model_cfg(**changes) -> dict:

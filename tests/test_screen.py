@@ -6,10 +6,10 @@ import numpy as np
 import pytest
 import torch
 
-import towers.screen as S
-import towers.select_kernels as K
-import towers.tiles as T
-from towers.retrieval import top_n
+import towers.search.kernels as K
+import towers.search.screen as S
+import towers.search.tiles as T
+from towers.search.retrieval import top_n
 
 # every bfloat16 bit pattern and its value (the high half of a float32), numpy's own conversion
 ALL_BITS = np.arange(1 << 16, dtype=np.uint32)

@@ -17,10 +17,10 @@ import pytest
 import yaml
 
 import towers
-import towers.api as api
-from towers.demo_store import generate_store
+import towers.runs.run as run_module
+from towers.data.tables import read_table, read_table_chunks
 from towers.errors import TowersError
-from towers.tables import read_table, read_table_chunks
+from towers.synthetic.demo_store import generate_store
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -63,7 +63,7 @@ def test_embed_file_in_pieces_equals_embedding_the_whole_frame(run, tmp_path, mo
     r, base = run
     path = base / "data" / "new_items.parquet"
     whole = r.embed_items(pd.read_parquet(path), str(path))  # reference: the frame read whole by pandas
-    monkeypatch.setattr(api, "EMBED_CHUNK", 23)
+    monkeypatch.setattr(run_module, "EMBED_CHUNK", 23)
     out = tmp_path / "vectors.parquet"
     assert r.embed_file(path, out, "items") == len(whole)
     got = pq.read_table(out)
@@ -80,7 +80,7 @@ def test_unseen_values_are_counted_over_all_pieces(run, tmp_path, monkeypatch):
     frame["brand"] = [f"never-seen-{i % 3}" if i % 2 else b for i, b in enumerate(frame["brand"])]
     path = tmp_path / "odd_brands.parquet"
     frame.to_parquet(path)
-    monkeypatch.setattr(api, "EMBED_CHUNK", 10)
+    monkeypatch.setattr(run_module, "EMBED_CHUNK", 10)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         r.embed_file(path, tmp_path / "v.parquet", "items")
@@ -96,7 +96,7 @@ def test_an_error_in_a_later_piece_names_the_row_of_the_file(run, tmp_path, monk
     frame["description_vector"] = vectors
     path = tmp_path / "bad_vector.parquet"
     frame.to_parquet(path)
-    monkeypatch.setattr(api, "EMBED_CHUNK", 25)
+    monkeypatch.setattr(run_module, "EMBED_CHUNK", 25)
     out = tmp_path / "never.parquet"
     with pytest.raises(TowersError, match=r"column 'description_vector', row 102: vector of length 2"):
         r.embed_file(path, out, "items")

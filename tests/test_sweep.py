@@ -13,9 +13,9 @@ import yaml
 
 from towers import config as C
 from towers.cli import main as cli
-from towers.demo_store import generate_store
 from towers.errors import TowersError
-from towers.sweep import cell_name, knee_index, run_sweep
+from towers.runs.sweep import cell_name, knee_index, run_sweep
+from towers.synthetic.demo_store import generate_store
 
 ROOT = Path(__file__).resolve().parents[1]
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # reference: PNG specification (ISO/IEC 15948), section 5.2

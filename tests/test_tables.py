@@ -10,7 +10,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from towers import tables as T
+from towers.data import tables as T
 from towers.errors import TowersError
 
 

@@ -17,8 +17,8 @@ import yaml
 
 from towers import cli
 from towers.api import load
-from towers.demo_store import generate_store
-from towers.runner import train_run
+from towers.runs.train import train_run
+from towers.synthetic.demo_store import generate_store
 
 HELD_CUSTOMERS = 60
 HELD_ITEMS = 40
@@ -87,9 +87,11 @@ def test_encoders_extend_without_renumbering(runs):
 def test_grown_model_starts_where_the_earlier_run_ended(runs):
     folder, first, _, _ = runs
     from towers import config as C
-    from towers.dataset import prepare
-    from towers.training import build_model, embed_all
-    from towers.warm_start import grow_weights, load_previous
+    from towers.data.prepare import prepare
+    from towers.model.build import build_model
+    from towers.model.embed import embed_all
+    from towers.model.grow import grow_weights
+    from towers.runs.train import load_previous
 
     previous = load_previous(first["out"])
     cfg = C.load(_config(folder, folder / "full.parquet", 1))

@@ -1,7 +1,7 @@
 """towers: train two-tower embedding models on a laptop CPU, from interaction logs and feature tables."""
 
-from .api import Run, load, train
-from .errors import TowersError
+from towers.api import Run, load, train
+from towers.errors import TowersError
 
 __all__ = ["Run", "TowersError", "load", "train"]
 __version__ = "0.1.0"

@@ -1,6 +1,8 @@
-"""Atomic file writes: write to a temporary name in the same folder, then rename over the target.
+"""Atomic, owner-only file writes: write to a temporary name in the same folder, then rename over the target.
 
 A killed process or a full disk leaves either the previous file or the new one, never a torn file.
+What towers writes comes from user logs (personal data), so files are owner-only (0600, as mkstemp
+creates them) and the folders towers creates are owner-only too (0700).
 """
 
 from __future__ import annotations
@@ -11,7 +13,7 @@ import tempfile
 from pathlib import Path
 from typing import Callable
 
-from .errors import TowersError
+from towers.errors import TowersError
 
 _NO_ROOM = {errno.ENOSPC, errno.EDQUOT, errno.EROFS, errno.EACCES, errno.EPERM}
 
@@ -20,15 +22,12 @@ def write_atomic(path: str | Path, write: Callable[[Path], None]) -> Path:
     """Call write(tmp_path), fsync it, then rename tmp_path to path."""
     path = Path(path)
     try:
-        path.parent.mkdir(parents=True, exist_ok=True)
+        make_private_dir(path.parent)
         fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     except OSError as exc:
         raise _write_error(path, exc) from None
     os.close(fd)
     tmp_path = Path(tmp)
-    umask = os.umask(0)
-    os.umask(umask)
-    os.chmod(tmp_path, 0o666 & ~umask)  # mkstemp makes files owner-only; give them the usual mode
     try:
         write(tmp_path)
         with open(tmp_path, "rb+") as fh:
@@ -39,6 +38,15 @@ def write_atomic(path: str | Path, write: Callable[[Path], None]) -> Path:
         if isinstance(exc, OSError) and exc.errno in _NO_ROOM:
             raise _write_error(path, exc) from None
         raise
+    return path
+
+
+def make_private_dir(path: str | Path) -> Path:
+    """Create a folder (and missing parents) readable by its owner only; an existing folder is left as it is."""
+    path = Path(path)
+    if not path.is_dir():
+        path.mkdir(mode=0o700, parents=True, exist_ok=True)
+        os.chmod(path, 0o700)  # mkdir's mode is masked by the umask; the folder must not depend on it
     return path
 
 

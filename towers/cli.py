@@ -9,7 +9,7 @@ import sys
 import warnings
 from pathlib import Path
 
-from .errors import TowersError
+from towers.errors import TowersError
 
 
 class _OneLineParser(argparse.ArgumentParser):
@@ -93,7 +93,7 @@ def _check_frame_out(out: str) -> None:
 
 
 def _write_frame(df, out: str) -> None:
-    from .atomic import write_atomic
+    from towers.atomic import write_atomic
 
     _check_frame_out(out)
     path = Path(out)
@@ -124,10 +124,10 @@ def _show_warning(message, category, filename, lineno, file=None, line=None) -> 
 
 def run(args: argparse.Namespace) -> int:
     if args.command == "train":
-        from .runner import train_run
+        from towers.runs.train import train_run
 
         if args.workers != 1 and "WORLD_SIZE" not in os.environ:
-            from .distributed import launch_workers
+            from towers.training.distributed import launch_workers
 
             argv = ["train", args.config, "--out", args.out] + ["--overwrite"] * args.overwrite + \
                 ["--resume"] * args.resume + (["--init-from", args.init_from] if args.init_from else [])
@@ -138,7 +138,7 @@ def run(args: argparse.Namespace) -> int:
             print(f"run folder: {result['out']}")
         return 0
     if args.command == "demo-data":
-        from .demo_store import generate_store
+        from towers.synthetic.demo_store import generate_store
 
         files = generate_store(args.out, seed=args.seed)
         for name, path in files.items():
@@ -146,7 +146,7 @@ def run(args: argparse.Namespace) -> int:
         return 0
 
     if args.command == "sweep":
-        from .sweep import run_sweep
+        from towers.runs.sweep import run_sweep
 
         result = run_sweep(args.config, args.out, args.dims, args.penalties, args.penalty_key, args.jobs, args.baseline)
         print(result["table"], end="")
@@ -155,25 +155,25 @@ def run(args: argparse.Namespace) -> int:
               f"config: {result['files']['best_config.yaml']}")
         return 0
     if args.command == "report":
-        from .report import write_report
+        from towers.runs.report import write_report
 
         print(f"wrote {write_report(args.run_dir)}")
         return 0
     if args.command == "align":
-        from .align import align_run, format_drift
+        from towers.runs.align import align_run, format_drift
 
         record = align_run(args.run_dir, args.reference, args.out, overwrite=args.overwrite)
         print(format_drift(record), end="")
         print(f"aligned run: {args.out}")
         return 0
 
-    from .api import load
+    from towers.api import load
 
     if args.command in ("recommend", "similar") and args.out:
         _check_frame_out(args.out)
     run_ = load(args.run_dir)
     if args.command == "evaluate":
-        from .runner import format_table
+        from towers.evaluation.protocol import format_table
 
         result = run_.evaluate(args.interactions)
         for note in result["notes"]:

@@ -16,7 +16,7 @@ from typing import Any
 
 import yaml
 
-from .errors import TowersError
+from towers.errors import TowersError
 
 
 @dataclass(frozen=True)

@@ -1,0 +1,54 @@
+"""Interaction pairs as catalog-row index tensors: the unit every split, trainer and metric works on."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import torch
+
+from towers.data.features import FeatureBlock, take
+
+
+@dataclass
+class Pairs:
+    """Interaction pairs as catalog-row index tensors, with optional target, weight and time."""
+
+    query: torch.Tensor  # int64 rows into the query catalog
+    candidate: torch.Tensor  # int64 rows into the candidate catalog
+    target: torch.Tensor | None = None  # float32
+    weight: torch.Tensor | None = None  # float32
+    time: torch.Tensor | None = None  # int64
+    context: FeatureBlock | None = None  # encoded context columns, one row per pair
+
+    def __len__(self) -> int:
+        return len(self.query)
+
+    def subset(self, idx) -> "Pairs":
+        idx = torch.as_tensor(idx, dtype=torch.int64)
+        pick = lambda t: None if t is None else t.index_select(0, idx)  # noqa: E731
+        return Pairs(pick(self.query), pick(self.candidate), pick(self.target), pick(self.weight), pick(self.time),
+                     None if self.context is None else take(self.context, idx))
+
+    def positives(self) -> "Pairs":
+        """Rows that count as positive events (target > 0, or every row when there is no target)."""
+        if self.target is None:
+            return self
+        return self.subset(torch.nonzero(self.target > 0).flatten())
+
+
+@dataclass
+class SplitPairs:
+    """The split a run is trained and judged on: pairs per slice, and which items are warm or cold."""
+
+    train: Pairs
+    valid: Pairs
+    test: Pairs
+    cold_test: Pairs
+    warm_items: torch.Tensor  # bool (n_items,): items with training pairs
+    cold_items: torch.Tensor  # bool (n_items,): items held out whole for the cold slice
+    item_item: bool
+
+    def known(self) -> Pairs:
+        """Positives a query is known to have (training and validation): excluded from its test ranking."""
+        tr, va = self.train.positives(), self.valid.positives()
+        return Pairs(torch.cat([tr.query, va.query]), torch.cat([tr.candidate, va.candidate]))

@@ -1,0 +1,267 @@
+"""From config to tensors: read the log and feature tables, split, fit encoders, encode.
+
+Everything here runs before any training starts, so a bad input costs seconds, not an hour.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+import torch
+
+from towers.data.context import ContextEncoders
+from towers.data.embeddings_file import TrueVectors, true_vectors
+from towers.data.encoders import make_encoder
+from towers.data.features import FeatureBlock, SideEncoders, SideTable
+from towers.data.pairs import Pairs, SplitPairs
+from towers.data.splits import Split, make_split
+from towers.data.tables import (
+    align_id_types,
+    factorize_ids,
+    numeric_column,
+    read_table,
+    time_column,
+)
+from towers.data.vocabulary import extend_context, extend_side
+from towers.errors import TowersError, where
+
+
+@dataclass
+class Side:
+    """One side's catalog: ids, encoders and the encoded feature block of every entity."""
+
+    ids: np.ndarray
+    encoders: SideEncoders
+    block: FeatureBlock
+    has_features: bool
+    unknown_counts: dict = field(default_factory=dict)
+
+
+@dataclass
+class Prepared:
+    """All tensors a run needs: both sides, the split pairs and the cold items."""
+
+    queries: Side
+    candidates: Side
+    train: Pairs
+    valid: Pairs
+    test: Pairs
+    cold_test: Pairs
+    cold_items: torch.Tensor  # bool (n_candidates,)
+    warm_items: torch.Tensor  # bool (n_candidates,): candidates with training pairs
+    item_item: bool
+    notes: list[str]
+    oracle: TrueVectors | None = None  # the planted truth, when the config names oracle files
+    context: ContextEncoders | None = None  # encoders of interactions.context, fitted on training events
+    started_from: dict | None = None  # warm start: ids and values added to the earlier run's encoders
+
+    @property
+    def split(self) -> SplitPairs:
+        return SplitPairs(self.train, self.valid, self.test, self.cold_test, self.warm_items, self.cold_items,
+                          self.item_item)
+
+
+@dataclass
+class IdColumn:
+    """A log's id column as codes into its distinct ids (ids == uniques[codes]): memory-light for text ids."""
+
+    codes: np.ndarray  # int64, one per row
+    uniques: np.ndarray  # int64 or str objects, in order of first appearance
+
+    def values(self) -> np.ndarray:
+        return self.uniques[self.codes]
+
+
+@dataclass
+class Log:
+    """The interaction log's columns, validated: ids, optional target / weight / time, context frame."""
+
+    query_ids: IdColumn
+    candidate_ids: IdColumn
+    target: np.ndarray | None
+    weight: np.ndarray | None
+    time: np.ndarray | None
+    context: pd.DataFrame | None
+
+    @property
+    def query(self) -> np.ndarray:
+        """The query ids, one per row."""
+        return self.query_ids.values()
+
+    @property
+    def candidate(self) -> np.ndarray:
+        """The candidate ids, one per row."""
+        return self.candidate_ids.values()
+
+
+def read_interactions(cfg: dict) -> Log:
+    """The log's id arrays, optional target / weight / time arrays and context columns, validated."""
+    ic = cfg["interactions"]
+    path = ic["path"]
+    cols = [ic["query_column"], ic["candidate_column"]] + [ic[k] for k in ("target_column", "weight_column", "time_column") if ic[k]]
+    context_cols = [f["name"] for f in ic["context"]]
+    df = read_table(path, columns=list(dict.fromkeys(cols + context_cols)))
+    q = IdColumn(*factorize_ids(df[ic["query_column"]], path, ic["query_column"]))
+    c = IdColumn(*factorize_ids(df[ic["candidate_column"]], path, ic["candidate_column"]))
+    target = weight = when = None
+    if ic["target_column"]:
+        target = numeric_column(df[ic["target_column"]], path, ic["target_column"], allow_missing=False)
+        if cfg["training"]["loss"] != "squared":
+            out = (target < 0) | (target > 1)
+            if out.any():
+                row = int(np.flatnonzero(out)[0])
+                raise TowersError(f"{where(path, ic['target_column'], row + 1)}: {cfg['training']['loss']} targets must lie in [0, 1], got "
+                                  f"{target[row]!r}; use loss: squared for ratings, or move counts to weight_column")
+    if ic["weight_column"]:
+        weight = numeric_column(df[ic["weight_column"]], path, ic["weight_column"], allow_missing=False)
+        neg = weight < 0
+        if neg.any():
+            row = int(np.flatnonzero(neg)[0])
+            raise TowersError(f"{where(path, ic['weight_column'], row + 1)}: negative weight {weight[row]!r}; weights must be >= 0")
+    if ic["time_column"]:
+        when = time_column(df[ic["time_column"]], path, ic["time_column"])
+    context = None
+    if context_cols:
+        context = df[context_cols].reset_index(drop=True)
+        for spec in ic["context"]:  # every value checked in file order, so an error names the log's row
+            make_encoder(spec).validate(context[spec["name"]], path)
+    return Log(q, c, target, weight, when, context)
+
+
+def _as_pairs(qr, cr, target, weight, when) -> Pairs:
+    f32 = lambda a: None if a is None else torch.from_numpy(np.asarray(a, dtype=np.float32))  # noqa: E731
+    return Pairs(torch.from_numpy(qr.astype(np.int64)), torch.from_numpy(cr.astype(np.int64)), f32(target), f32(weight),
+                 None if when is None else torch.from_numpy(when.astype(np.int64)))
+
+
+def _train_entities(ids: np.ndarray, rows: np.ndarray) -> np.ndarray:
+    """The catalog ids that have rows among `rows`, in catalog order (a bincount: linear, not a sort)."""
+    return ids[np.flatnonzero(np.bincount(rows, minlength=len(ids)))]
+
+
+def _joint_ids(a: IdColumn, b: IdColumn) -> IdColumn:
+    """Both columns one after another as one IdColumn (item_item mode), distinct ids in order of first appearance."""
+    ua, ub = a.uniques, b.uniques
+    if ua.dtype != ub.dtype:  # an integer column and a text column: compare as text
+        ua, ub = ua.astype(str).astype(object), ub.astype(str).astype(object)
+    inverse, uniques = pd.factorize(np.concatenate([ua, ub]))
+    codes = np.concatenate([inverse[:len(ua)][a.codes], inverse[len(ua):][b.codes]]).astype(np.int64)
+    return IdColumn(codes, np.asarray(uniques, dtype=ua.dtype))
+
+
+def _catalog_rows(ids: IdColumn, catalog_ids: np.ndarray) -> np.ndarray:
+    """Each row's position in the catalog (-1 where absent), matched once per distinct id."""
+    return pd.Index(catalog_ids).get_indexer(align_id_types(ids.uniques, catalog_ids))[ids.codes]
+
+
+def prepare(cfg: dict, previous=None) -> Prepared:
+    """Read, validate, split and encode everything the config names.
+
+    previous: an earlier run's LoadedBundle to warm-start from; its encoders are extended, never
+    renumbered (warm_start.py), and `started_from` records what was added.
+    """
+    ic = cfg["interactions"]
+    item_item = cfg["run"]["mode"] == "item_item"
+    log = read_interactions(cfg)
+    q_log, c_log, target, weight, when = log.query_ids, log.candidate_ids, log.target, log.weight, log.time
+    notes: list[str] = []
+
+    item_side = SideTable(cfg["items"]["path"], cfg["items"]["id_column"], cfg["items"]["features"], cfg["items"]["missing_rows"])
+    # ids are matched once per distinct id and mapped to rows through the codes (see IdColumn)
+    if item_item:
+        both = _joint_ids(q_log, c_log)
+        c_ids, c_table, keep_both = item_side.catalog(both.uniques, ic["path"], (ic["query_column"], ic["candidate_column"]),
+                                                      codes=both.codes)
+        n = len(q_log.codes)
+        keep = keep_both[:n] & keep_both[n:]
+        q_ids, q_table = c_ids, c_table
+        rows_both = _catalog_rows(both, c_ids)
+        q_rows, c_rows = rows_both[:n][keep], rows_both[n:][keep]
+    else:
+        user_side = SideTable(cfg["users"]["path"], cfg["users"]["id_column"], cfg["users"]["features"], cfg["users"]["missing_rows"])
+        q_ids, q_table, keep_q = user_side.catalog(q_log.uniques, ic["path"], ic["query_column"], codes=q_log.codes)
+        c_ids, c_table, keep_c = item_side.catalog(c_log.uniques, ic["path"], ic["candidate_column"], codes=c_log.codes)
+        keep = keep_q & keep_c
+        q_rows, c_rows = _catalog_rows(q_log, q_ids)[keep], _catalog_rows(c_log, c_ids)[keep]
+    dropped = int((~keep).sum())
+    if dropped:
+        notes.append(f"dropped {dropped} interaction rows whose ids have no feature row (missing_rows: drop)")
+    sel = lambda a: None if a is None else a[keep]  # noqa: E731
+    pairs = _as_pairs(q_rows, c_rows, sel(target), sel(weight), sel(when))
+    if len(pairs) == 0:
+        raise TowersError(f"{ic['path']}: no interaction rows are left after matching ids to the feature tables; check the id columns")
+
+    has_item_features = bool(cfg["items"]["features"])
+    item_has_row = np.ones(len(c_ids), bool)
+    if item_side.has_table:
+        item_has_row = pd.Index(item_side.ids).get_indexer(c_ids) >= 0
+    split: Split = make_split(pairs, len(c_ids), cfg["evaluation"], cfg["run"]["seed"],
+                              cold_eligible=torch.from_numpy(item_has_row) if has_item_features else None,
+                              item_item=item_item)
+    if len(split.train) == 0:
+        raise TowersError(f"{ic['path']}: the split leaves no training pairs; lower evaluation fractions or add data")
+    context_encoders = None
+    if log.context is not None:
+        frame = log.context.iloc[np.flatnonzero(keep)].reset_index(drop=True)
+        context_encoders = ContextEncoders.fit(frame, ic["context"], np.asarray(split.train), ic["path"])
+        pairs.context = context_encoders.encode(frame, ic["path"])
+    train = pairs.subset(split.train)
+
+    tq, tc = train.query.numpy(), train.candidate.numpy()
+    if item_item:
+        c_train_ids = _train_entities(c_ids, np.concatenate([tq, tc]))
+        c_enc = SideEncoders.fit(c_table, cfg["items"]["path"], cfg["items"]["id_column"], cfg["items"]["features"], c_train_ids)
+        q_enc = c_enc
+    else:
+        q_enc = SideEncoders.fit(q_table, cfg["users"]["path"], cfg["users"]["id_column"], cfg["users"]["features"],
+                                 _train_entities(q_ids, tq))
+        c_enc = SideEncoders.fit(c_table, cfg["items"]["path"], cfg["items"]["id_column"], cfg["items"]["features"],
+                                 _train_entities(c_ids, tc))
+    started_from = None
+    if previous is not None:
+        started_from = {}
+        c_enc, started_from["items"] = extend_side(c_enc, previous.candidate_encoders, "item")
+        if item_item:
+            q_enc = c_enc
+        else:
+            q_enc, started_from["users"] = extend_side(q_enc, previous.query_encoders, "user")
+        context_encoders, started_from["context"] = extend_context(context_encoders, previous.extra.get("context"))
+        if context_encoders is not None:
+            pairs.context = context_encoders.encode(frame, ic["path"])
+            train = pairs.subset(split.train)
+    c_block = c_enc.encode(c_ids, c_table, cfg["items"]["path"])
+    c_side = Side(c_ids, c_enc, c_block, has_item_features)
+    if item_item:
+        q_side = c_side
+    else:
+        q_block = q_enc.encode(q_ids, q_table, cfg["users"]["path"])
+        q_side = Side(q_ids, q_enc, q_block, bool(cfg["users"]["features"]))
+
+    warm = torch.zeros(len(c_ids), dtype=torch.bool)
+    warm[train.candidate] = True
+    if item_item:
+        warm[train.query] = True
+    _warn_small_data(cfg, train, len(q_ids), len(c_ids), notes)
+    prepared = Prepared(q_side, c_side, train, pairs.subset(split.valid), pairs.subset(split.test),
+                        pairs.subset(split.cold_test), split.cold_items, warm, item_item, notes, context=context_encoders,
+                        started_from=started_from)
+    _check_oracles(cfg, prepared)
+    return prepared
+
+
+def _check_oracles(cfg: dict, data: Prepared) -> None:
+    """Read the oracle files now, so a missing or incomplete one fails before training, not after it."""
+    data.oracle = true_vectors(cfg, data.queries.ids, data.candidates.ids, item_item=data.item_item)
+
+
+def _warn_small_data(cfg: dict, train: Pairs, n_queries: int, n_items: int, notes: list[str]) -> None:
+    """k beyond what the data can identify: more factors than the smaller side has entities."""
+    k = cfg["model"]["dim"]
+    limit = min(n_queries, n_items, max(1, len(train) // max(1, n_queries + n_items)))
+    if k > min(n_queries, n_items):
+        notes.append(f"warning: model.dim = {k} exceeds min(#queries, #items) = {min(n_queries, n_items)}; "
+                     "extra dimensions cannot be identified from this data")
+    elif k > 4 * limit and limit < 8:
+        notes.append(f"warning: model.dim = {k} is large for about {limit} training pairs per entity; consider a smaller k")

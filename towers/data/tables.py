@@ -1,0 +1,262 @@
+"""Reading and validating the input tables: interaction logs and feature tables.
+
+CSV or parquet is chosen by the file extension. Every problem is reported as one TowersError line
+naming the file, the column and (where it applies) the row, plus the fix.
+"""
+
+from __future__ import annotations
+
+import difflib
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from towers.errors import TowersError, where
+
+READABLE = (".csv", ".parquet", ".pq", ".tsv")
+
+
+def read_table(path: str | Path, columns: list[str] | None = None) -> pd.DataFrame:
+    """Read a CSV (or TSV) or parquet file into a DataFrame, with clear errors.
+
+    CSV handling: a UTF-8 byte-order mark, quoted delimiters and Windows line ends are read correctly.
+    """
+    path = Path(path)
+    suffix = _check_file(path)
+    try:
+        if suffix in (".parquet", ".pq"):
+            import pyarrow.parquet as pq
+
+            schema_names = pq.read_schema(path).names
+            if columns is not None:
+                require_columns(schema_names, columns, path)
+            df = _plain_frame(pq.read_table(path, columns=columns).to_pandas())
+        else:
+            df = pd.read_csv(path, sep="\t" if suffix == ".tsv" else ",", encoding="utf-8-sig",
+                             skipinitialspace=False, low_memory=False)
+            if not isinstance(df.index, pd.RangeIndex):
+                # pandas silently takes the first field as an index when the rows have more fields than the
+                # header, shifting every column one place; refuse rather than read the wrong values
+                raise TowersError(f"{where(path, row=1)}: the data rows have more fields than the header row "
+                                  f"({len(df.columns)} names); add the missing column names or remove trailing "
+                                  "delimiters")
+    except TowersError:
+        raise
+    except (pd.errors.EmptyDataError,):
+        raise TowersError(f"{path}: the file is empty; it needs a header row and at least one data row") from None
+    except (pd.errors.ParserError, UnicodeDecodeError, ValueError, OSError) as exc:
+        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise TowersError(f"{path}: cannot be read as {suffix[1:]} ({first}); check the file is a valid {suffix[1:]} table") from None
+    except Exception as exc:  # pyarrow raises its own ArrowInvalid family
+        _raise_if_arrow(exc, path)
+        raise
+    df.columns = [str(c).strip() for c in df.columns]
+    repeated = df.columns[df.columns.duplicated()]
+    if len(repeated):
+        raise TowersError(f"{where(path, shown(repeated[0]))}: the header names this column twice; rename one of them")
+    if columns is not None:
+        require_columns(df.columns, columns, path)
+    if len(df) == 0:
+        raise TowersError(f"{path}: the table has a header but no rows; export the data rows too")
+    return df
+
+
+def _check_file(path: Path) -> str:
+    """The table's suffix, after checking that it is an existing file of a readable format."""
+    if not path.exists():
+        raise TowersError(f"{path}: file not found; check the path in the config (relative paths start at the config file)")
+    if path.is_dir():
+        raise TowersError(f"{path}: is a folder, not a table; give a .csv or .parquet file")
+    suffix = path.suffix.lower()
+    if suffix not in READABLE:
+        raise TowersError(f"{path}: unsupported format '{suffix or '(none)'}'; save the table as .csv or .parquet")
+    return suffix
+
+
+def _plain_frame(df: pd.DataFrame) -> pd.DataFrame:
+    """A frame read from parquet with a plain 0..n-1 index."""
+    # a frame saved with its id as the index (df.set_index("id").to_parquet()): the id is a column here
+    named = [n for n in df.index.names if n is not None]
+    if named:
+        df = df.reset_index(level=named)
+    if not isinstance(df.index, pd.RangeIndex):
+        df = df.reset_index(drop=True)
+    return df
+
+
+def _raise_if_arrow(exc: Exception, path: Path) -> None:
+    if type(exc).__module__.startswith("pyarrow"):
+        first = str(exc).strip().splitlines()[0]
+        raise TowersError(f"{path}: cannot be read as parquet ({first}); re-export the table") from None
+
+
+def read_table_chunks(path: str | Path, columns: list[str], rows: int):
+    """Yield (first row, DataFrame of `columns`) pieces of a table, `rows` rows at a time.
+
+    Parquet is read one batch at a time, so only one piece is in memory; a CSV file is read whole
+    and yielded as one piece. The checks and messages are read_table's; an empty table yields nothing.
+    """
+    path = Path(path)
+    suffix = _check_file(path)
+    if suffix not in (".parquet", ".pq"):
+        df = read_table(path, columns=columns)
+        yield 0, df[columns]
+        return
+    import pyarrow.parquet as pq
+
+    try:
+        parquet = pq.ParquetFile(path)
+        require_columns(parquet.schema_arrow.names, columns, path)
+        batches = parquet.iter_batches(batch_size=rows, columns=columns)
+    except TowersError:
+        raise
+    except (ValueError, OSError) as exc:
+        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise TowersError(f"{path}: cannot be read as {suffix[1:]} ({first}); check the file is a valid {suffix[1:]} table") from None
+    except Exception as exc:
+        _raise_if_arrow(exc, path)
+        raise
+    start = 0
+    while True:
+        try:
+            batch = next(batches, None)
+        except Exception as exc:
+            _raise_if_arrow(exc, path)
+            raise
+        if batch is None:
+            return
+        df = _plain_frame(batch.to_pandas())
+        df.columns = [str(c).strip() for c in df.columns]
+        yield start, df[[str(c).strip() for c in columns]]
+        start += len(df)
+
+
+def shown(name: str) -> str:
+    """A column name fit for a one-line message: line breaks and other control characters escaped."""
+    return name if name.isprintable() else repr(name)[1:-1]
+
+
+def require_columns(present, wanted, path) -> None:
+    """Raise naming the first missing column and the closest existing names."""
+    present = [str(c) for c in present]
+    for col in wanted:
+        if col not in present:
+            close = difflib.get_close_matches(col, present, n=3, cutoff=0.5)
+            hint = (f"did you mean {', '.join(repr(c) for c in close)}?" if close
+                    else f"columns present: {', '.join(shown(c) for c in present[:12])}")
+            raise TowersError(f"{where(path, shown(str(col)))}: no such column; {hint} (fix the config or the file)")
+
+
+def normalise_ids(series: pd.Series, path, column) -> np.ndarray:
+    """Return ids as an int64 or a str object array; reject missing or mixed-type ids."""
+    missing = series.isna().to_numpy()
+    if missing.any():
+        row = int(np.flatnonzero(missing)[0])
+        raise TowersError(f"{where(path, column, row + 1)}: missing id; every row needs an id (drop or fill such rows)")
+    if pd.api.types.is_bool_dtype(series):
+        raise TowersError(f"{where(path, column)}: ids are true/false values; use a column of codes or names")
+    if pd.api.types.is_integer_dtype(series):
+        return series.to_numpy(dtype=np.int64)
+    if pd.api.types.is_float_dtype(series):
+        values = series.to_numpy(dtype=np.float64)
+        # infinite or beyond int64 ids would wrap silently in the cast below
+        frac = ~np.isfinite(values) | (values != np.round(values)) | (np.abs(values) >= 2.0 ** 63)
+        if frac.any():
+            row = int(np.flatnonzero(frac)[0])
+            raise TowersError(f"{where(path, column, row + 1)}: id {float(values[row])!r} is not a whole 64-bit number; "
+                              "ids must be integers or strings")
+        return values.astype(np.int64)
+    values = series.to_numpy(dtype=object)
+    kinds = pd.Series(values).map(type)
+    non_str = (kinds != str).to_numpy()
+    if non_str.any() and not non_str.all():
+        row = int(np.flatnonzero(non_str)[0])
+        raise TowersError(f"{where(path, column, row + 1)}: mixed id types (found {type(values[row]).__name__} among strings); "
+                          "store every id as text or every id as a number")
+    return np.asarray(values.astype(str), dtype=object)
+
+
+def factorize_ids(series: pd.Series, path, column) -> tuple[np.ndarray, np.ndarray]:
+    """normalise_ids for a long column, as (codes, distinct ids): ids == uniques[codes].
+
+    The distinct ids come in order of first appearance, as int64 or a str object array. Text columns
+    read from parquet or CSV are factorized by arrow without one Python string per row, so a log of
+    millions of rows costs its codes plus one string per distinct id. Checks and errors are
+    normalise_ids' own (the same first bad row).
+    """
+    missing = series.isna().to_numpy()
+    if missing.any() or pd.api.types.is_bool_dtype(series) or pd.api.types.is_numeric_dtype(series) \
+            or not pd.api.types.is_string_dtype(series) or series.dtype == object:
+        values = normalise_ids(series, path, column)
+        codes, uniques = pd.factorize(values)
+        return codes.astype(np.int64, copy=False), np.asarray(uniques, dtype=values.dtype)
+    codes, uniques = pd.factorize(series)  # a string dtype: every value is a str, as normalise_ids requires
+    return codes.astype(np.int64, copy=False), np.asarray(uniques.to_numpy(dtype=object), dtype=object)
+
+
+def align_id_types(ids: np.ndarray, reference: np.ndarray) -> np.ndarray:
+    """Make `ids` comparable with `reference` ids (an integer log against a text table, say)."""
+    if ids.dtype == reference.dtype:
+        return ids
+    if reference.dtype == object:
+        return ids.astype(str).astype(object)
+    # reference integers, ids text: parse where possible; unparsable text stays unmatched.
+    text = pd.Series(ids, dtype=object).astype(str).str.strip()
+    out = np.full(len(ids), np.iinfo(np.int64).min, dtype=np.int64)
+    digits = text.str.fullmatch(r"[+-]?\d{1,18}").to_numpy(dtype=bool)  # parsed exactly, no float rounding
+    out[digits] = text[digits].astype(np.int64).to_numpy()
+    rest = np.flatnonzero(~digits)
+    parsed = pd.to_numeric(text.iloc[rest], errors="coerce").to_numpy(dtype=np.float64)
+    with np.errstate(invalid="ignore"):
+        # '17.0' matches id 17; '1.5' must not be truncated onto id 1
+        ok = np.isfinite(parsed) & (parsed == np.round(parsed)) & (np.abs(parsed) < 2.0 ** 63)
+    out[rest[ok]] = parsed[ok].astype(np.int64)
+    return out
+
+
+def check_unique_ids(ids: np.ndarray, path, column) -> None:
+    dup = pd.Series(ids).duplicated().to_numpy()
+    if dup.any():
+        row = int(np.flatnonzero(dup)[0])
+        raise TowersError(f"{where(path, column, row + 1)}: duplicate id {ids[row:row + 1].tolist()[0]!r}; a feature table needs one row per id "
+                          "(deduplicate it)")
+
+
+def numeric_column(series: pd.Series, path, column, allow_missing: bool = True) -> np.ndarray:
+    """A float64 view of a column, with errors for text, infinities and (optionally) missing values."""
+    if pd.api.types.is_bool_dtype(series):
+        values = series.astype(float).to_numpy(dtype=np.float64, na_value=np.nan)
+    else:
+        values = pd.to_numeric(series, errors="coerce").to_numpy(dtype=np.float64, na_value=np.nan)
+        bad_text = np.isnan(values) & series.notna().to_numpy()
+        if bad_text.any():
+            row = int(np.flatnonzero(bad_text)[0])
+            raise TowersError(f"{where(path, column, row + 1)}: {series.iloc[row]!r} is not a number; "
+                              "fix the value or declare the column as categorical")
+    inf = np.isinf(values)
+    if inf.any():
+        row = int(np.flatnonzero(inf)[0])
+        raise TowersError(f"{where(path, column, row + 1)}: infinite value; replace it with a finite number or leave it empty")
+    if not allow_missing and np.isnan(values).any():
+        row = int(np.flatnonzero(np.isnan(values))[0])
+        raise TowersError(f"{where(path, column, row + 1)}: missing value; every row needs a number here")
+    return values
+
+
+def time_column(series: pd.Series, path, column) -> np.ndarray:
+    """Event times as int64 nanoseconds since the epoch; numbers are taken as given (any unit)."""
+    if pd.api.types.is_numeric_dtype(series) and not pd.api.types.is_bool_dtype(series):
+        return numeric_column(series, path, column, allow_missing=False).astype(np.int64)
+    if pd.api.types.is_datetime64_any_dtype(series):
+        parsed = series
+    else:
+        parsed = pd.to_datetime(series, errors="coerce", utc=True, format="mixed")
+    bad = parsed.isna().to_numpy()
+    if bad.any():
+        row = int(np.flatnonzero(bad)[0])
+        raise TowersError(f"{where(path, column, row + 1)}: {series.iloc[row]!r} is not a date or time; "
+                          "use ISO 8601 text such as 2026-03-14 09:30:00, or numbers")
+    if getattr(parsed.dt, "tz", None) is not None:
+        parsed = parsed.dt.tz_convert("UTC").dt.tz_localize(None)
+    return parsed.to_numpy(dtype="datetime64[ns]").astype(np.int64)

@@ -1,0 +1,49 @@
+"""Trained towers as vectors: every catalog entity embedded in chunks, wrapped as the shared Scorer.
+"""
+
+from __future__ import annotations
+
+import torch
+
+from towers.data.context import averaged_vectors, sample_contexts
+from towers.data.features import FeatureBlock, block_len, slice_block
+from towers.data.prepare import Prepared
+from towers.model.towers import Tower, TwoTowerModel
+from towers.search.scorer import Scorer
+
+EMBED_CHUNK = 65536
+
+
+@torch.no_grad()
+def embed_all(tower: Tower, block: FeatureBlock) -> torch.Tensor:
+    """Embeddings of every entity in a block, computed in chunks with the tower in eval mode."""
+    was = tower.training
+    tower.eval()
+    n = block_len(block)
+    out = torch.cat([tower(slice_block(block, i, min(n, i + EMBED_CHUNK))) for i in range(0, n, EMBED_CHUNK)]) \
+        if n else torch.zeros(0, tower.mlp[-1].out_features if len(tower.mlp) else tower.ids.embedding_dim)
+    tower.train(was)
+    return out
+
+
+@torch.no_grad()
+def model_scorer(model: TwoTowerModel, data: Prepared) -> Scorer:
+    """The trained model as vectors over both catalogs.
+
+    A query tower that reads context columns gives each query its vector averaged over a fixed sample
+    of training contexts (context.sample_contexts): its expected scores over the usual context mix.
+    """
+    if reads_context(model.query_tower, data):
+        qv = averaged_vectors(model.query_tower, data.queries.block, sample_contexts(data.train.context))
+    else:
+        qv = embed_all(model.query_tower, data.queries.block)
+    cv = qv if (model.shared and data.queries is data.candidates) else embed_all(model.candidate_tower, data.candidates.block)
+    qb = model.query_bias_of(data.queries.block["id"]) if model.use_biases else None
+    cb = model.candidate_bias_of(data.candidates.block["id"]) if model.use_biases else None
+    g = float(model.global_bias) if model.use_biases else 0.0
+    return Scorer(qv, cv, qb, cb, g, 1.0 / model.temperature)
+
+
+def reads_context(tower: Tower, data: Prepared) -> bool:
+    """Whether a query tower takes the data's context columns as inputs."""
+    return data.context is not None and any(i["name"] in data.context.names for i in tower.inputs)

@@ -1,0 +1,418 @@
+"""A trained run folder in use: embed unseen entities, recommend, find similar items, re-evaluate."""
+
+from __future__ import annotations
+
+import re
+import warnings
+import zipfile
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import torch
+
+from towers import config as C
+from towers.atomic import write_atomic
+from towers.data.context import (
+    AveragedOverContexts,
+    ContextEncoders,
+    vectors_with_context,
+)
+from towers.data.embeddings_file import (
+    embeddings_table,
+    read_embeddings,
+    true_vectors,
+    write_embeddings,
+)
+from towers.data.features import SideEncoders
+from towers.data.pairs import Pairs
+from towers.data.prepare import read_interactions
+from towers.data.tables import (
+    align_id_types,
+    normalise_ids,
+    read_table,
+    read_table_chunks,
+    require_columns,
+)
+from towers.errors import TowersError
+from towers.evaluation.protocol import evaluate_slices, oracle_scorer, popularity_scorer
+from towers.model.bundle import load_bundle
+from towers.model.embed import EMBED_CHUNK
+from towers.runs.folder import EMBEDDINGS, SUBFOLDER_MODELS, TOWERS, RunFolder
+from towers.search.retrieval import top_n
+from towers.search.scorer import Scorer
+
+_NO_MATCH = np.iinfo(np.int64).min  # what align_id_types gives text that is not a whole number
+
+
+def _rows_in_file(exc: TowersError, source, start: int) -> TowersError:
+    """An error about row r of a piece that starts at row `start` of the file, renumbered to the file's row."""
+    if not start:
+        return exc
+    text = str(exc)
+    pattern = re.compile(re.escape(str(source)) + r"(, column '.*?')?, row (\d+)")
+    found = pattern.match(text)
+    if not found:
+        return exc
+    head = text[:found.start(2)]
+    return TowersError(f"{head}{int(found.group(2)) + start}{text[found.end(2):]}")
+
+
+def _check_archive(path: Path, kind: str) -> None:
+    """torch.save writes a zip archive; anything else (garbage, a cut-off copy) is damaged, not unsafe."""
+    if path.is_file() and not zipfile.is_zipfile(path):
+        raise TowersError(f"{path}: {kind} is corrupt or truncated (not a torch archive); retrain or restore the file")
+
+
+class Run:
+    """A trained run folder: its model bundle, exported embeddings and split pairs."""
+
+    def __init__(self, run_dir: str | Path):
+        self.folder = RunFolder(run_dir)
+        self.dir = self.folder.path
+        model_file = self.folder.model_file()
+        if not model_file.is_file():
+            raise TowersError(f"{self.dir}: not a run folder (no {model_file.name}); give the --out folder of "
+                              "`towers train`")
+        _check_archive(model_file, "model bundle")
+        self.bundle = load_bundle(model_file)
+        self.config = self.folder.read_config() if self.folder.has_config() else None
+        self.item_item = self.bundle.item_item
+        self._pairs = None
+        self._emb = {}
+
+    # ---- saved state -------------------------------------------------------------------------
+    @property
+    def pairs(self) -> dict:
+        if self._pairs is None:
+            _check_archive(self.folder.file(RunFolder.PAIRS), "pairs file")
+            self._pairs = self.folder.read_pairs_payload()
+        return self._pairs
+
+    def embeddings(self, side: str, model: str = TOWERS) -> tuple[np.ndarray, torch.Tensor, torch.Tensor | None, dict]:
+        """(ids, vectors, bias, metadata) of an exported embeddings file: side 'item', 'user' or 'query'."""
+        key = (side, model)
+        if key not in self._emb:
+            self._emb[key] = read_embeddings(self.folder.embeddings_file(side, model))
+        return self._emb[key]
+
+    def _query_side(self) -> str:
+        return "query" if self.item_item else "user"
+
+    # ---- embedding unseen entities ----------------------------------------------------------------
+    def _embed(self, df: pd.DataFrame, encoders: SideEncoders, tower, bias_table, source: str) -> pd.DataFrame:
+        self._check_embeddable(encoders, source)
+        require_columns(df.columns, [encoders.id_column] + [e.name for e in encoders.encoders], source)
+        if len(df) == 0:
+            raise TowersError(f"{source}: no rows to embed")
+        ids, lookup = self._embed_ids(df[encoders.id_column], encoders, source)
+        frame = df.reset_index(drop=True)
+        pieces = ((i, frame.iloc[i:i + EMBED_CHUNK]) for i in range(0, len(frame), EMBED_CHUNK))
+        parts = list(self._embed_pieces(pieces, lookup, encoders, tower, bias_table, source))
+        vecs = torch.cat([v for _, v, _ in parts])
+        bias = torch.cat([b for _, _, b in parts]) if bias_table is not None else None
+        out = pd.DataFrame({"id": ids, "embedding": list(vecs.numpy())})
+        if bias is not None:
+            out["bias"] = bias.numpy()
+        out.attrs["vectors"], out.attrs["bias"] = vecs, bias
+        return out
+
+    @staticmethod
+    def _check_embeddable(encoders: SideEncoders, source) -> None:
+        if encoders.id_column is None:
+            raise TowersError(f"{source}: this run has no feature table for that side, so new entities cannot be "
+                              "embedded from features; train with a feature table")
+
+    @staticmethod
+    def _embed_ids(column: pd.Series, encoders: SideEncoders, source) -> tuple[np.ndarray, np.ndarray]:
+        """(ids as they are written out, ids as the run's id encoder looks them up) for a whole id column."""
+        ids = normalise_ids(column, source, encoders.id_column)
+        lookup = align_id_types(ids, encoders.id_encoder.ids) if len(encoders.id_encoder.ids) else ids
+        if lookup.dtype == ids.dtype or not (lookup == _NO_MATCH).any():
+            ids = lookup  # the run's id type, where every id converts
+        # else: text ids that are no whole numbers are new entities; they keep their own text as id
+        return ids, lookup
+
+    @staticmethod
+    def _embed_pieces(pieces, lookup: np.ndarray, encoders: SideEncoders, tower, bias_table, source):
+        """Yield (first row, vectors, bias or None) for each (first row, feature frame) piece of a table.
+
+        Pieces are encoded and embedded one at a time, so memory holds one piece's encoded block,
+        whatever the table's length. Counts of values unseen in training are summed over the pieces
+        and reported in one warning at the end.
+        """
+        unknown: dict[str, int] = {}
+        tower.eval()
+        for start, frame in pieces:
+            try:
+                block = encoders.encode(lookup[start:start + len(frame)], frame.reset_index(drop=True), source)
+            except TowersError as exc:
+                raise _rows_in_file(exc, source, start) from None
+            for name, count in encoders.unknown_counts().items():
+                unknown[name] = unknown.get(name, 0) + count
+            with torch.no_grad():
+                vecs = tower(block)
+                bias = bias_table(block["id"]).squeeze(1) if bias_table is not None else None
+            yield start, vecs, bias
+        if unknown:
+            listed = ", ".join(f"{k}: {v}" for k, v in unknown.items())
+            warnings.warn(f"{source}: values unseen in training were mapped to the unknown bucket ({listed})", stacklevel=4)
+
+    def _side_parts(self, side: str):
+        """(encoders, tower, bias table) that embed new rows of one side: 'items' or 'users'."""
+        m = self.bundle.model
+        if side == "items":
+            return self.bundle.candidate_encoders, m.candidate_tower, m.candidate_bias if m.use_biases else None
+        if self.item_item:
+            raise TowersError("this run is item_item: it has no user tower; use embed_items")
+        tower = m.query_tower
+        if self.context is not None:
+            tower = AveragedOverContexts(m.query_tower, self.bundle.extra["context_sample"])
+        return self.bundle.query_encoders, tower, m.query_bias if m.use_biases else None
+
+    def embed_file(self, source: str | Path, out: str | Path, side: str = "items") -> int:
+        """Embed every row of a feature table file into an embeddings parquet; returns the row count.
+
+        A parquet table is read, encoded, embedded and written EMBED_CHUNK rows at a time, so memory
+        stays bounded however many rows it has (a CSV table is read whole first). The output is
+        written atomically, in the format of the run's own embeddings files. `side`: items or users.
+        """
+        import pyarrow.parquet as pq
+
+
+        encoders, tower, bias_table = self._side_parts(side)
+        self._check_embeddable(encoders, source)
+        names = [e.name for e in encoders.encoders]
+        meta = dict(self.embeddings("item")[3], side="item" if side == "items" else "user", source=str(source))
+        if Path(source).suffix.lower() not in (".parquet", ".pq"):
+            df = read_table(source)
+            result = self._embed(df, encoders, tower, bias_table, source)
+            write_embeddings(out, result["id"].to_numpy(), result.attrs["vectors"], result.attrs["bias"], meta)
+            return len(result)
+        ids, lookup = self._embed_ids(read_table(source, columns=[encoders.id_column])[encoders.id_column],
+                                      encoders, source)
+        n = len(ids)
+        if names:
+            pieces = read_table_chunks(source, names, EMBED_CHUNK)
+        else:
+            pieces = ((i, pd.DataFrame(index=pd.RangeIndex(min(n, i + EMBED_CHUNK) - i))) for i in range(0, n, EMBED_CHUNK))
+
+        def write(path: Path) -> None:
+            writer = None
+            try:
+                for start, vecs, bias in self._embed_pieces(pieces, lookup, encoders, tower, bias_table, source):
+                    table = embeddings_table(ids[start:start + len(vecs)], vecs, bias, meta)
+                    if writer is None:
+                        writer = pq.ParquetWriter(path, table.schema)
+                    writer.write_table(table)
+            finally:
+                if writer is not None:
+                    writer.close()
+
+        write_atomic(out, write)
+        return n
+
+    def embed_items(self, df: pd.DataFrame, source: str = "items") -> pd.DataFrame:
+        """Embed item rows (id column plus feature columns) with the candidate tower."""
+        return self._embed(df, *self._side_parts("items"), source)
+
+    def embed_users(self, df: pd.DataFrame, source: str = "users") -> pd.DataFrame:
+        """Embed user rows (id column plus feature columns) with the query tower.
+
+        A run with context columns gives each user's vector averaged over the training context sample
+        saved in its bundle, as user_embeddings.parquet does.
+        """
+        return self._embed(df, *self._side_parts("users"), source)
+
+    # ---- context ----------------------------------------------------------------------------------
+    @property
+    def context(self) -> ContextEncoders | None:
+        """Encoders of the run's context columns, or None when its query tower reads none."""
+        state = self.bundle.extra.get("context")
+        return ContextEncoders.from_state(state) if state else None
+
+    def _user_block(self, rows: torch.Tensor) -> dict:
+        """Encoded features of catalog users (rows), read from the run's user feature table."""
+        enc = self.bundle.query_encoders
+        ids = self.embeddings(self._query_side())[0][rows.numpy()]
+        if not enc.encoders:
+            return {"id": enc.id_encoder.transform(ids)}
+        ucfg = self.config["users"]
+        table = read_table(ucfg["path"])
+        require_columns(table.columns, [ucfg["id_column"]] + [e.name for e in enc.encoders], ucfg["path"])
+        t_ids = align_id_types(normalise_ids(table[ucfg["id_column"]], ucfg["path"], ucfg["id_column"]), ids)
+        at = pd.Index(t_ids).get_indexer(ids)
+        if (at < 0).any():
+            bad = ids[np.flatnonzero(at < 0)[0]]
+            raise TowersError(f"{ucfg['path']}, column '{ucfg['id_column']}': user {bad!r} has no row any more; "
+                              "restore the user feature table the run was trained with")
+        rows_df = table.iloc[at].reset_index(drop=True)
+        return enc.encode(ids, rows_df, ucfg["path"])
+
+    def _context_block(self, context: dict, n: int) -> dict:
+        """One context (column -> value) encoded n times; columns not given count as missing."""
+        enc = self.context
+        unknown = [k for k in context if k not in enc.names]
+        if unknown:
+            raise TowersError(f"{self.dir}: unknown context column {unknown[0]!r}; this run's context columns are "
+                              f"{', '.join(enc.names)}")
+        frame = pd.DataFrame({name: pd.Series([context.get(name)] * n, dtype=object) for name in enc.names})
+        return enc.encode(frame, "--context")
+
+    # ---- retrieval ------------------------------------------------------------------------------
+    def _rows(self, ids_all: np.ndarray, wanted, what: str) -> torch.Tensor:
+        """Catalog rows of requested ids, parsed the same way as log ids are matched to tables."""
+        values = list(wanted)
+        if all(isinstance(v, (int, np.integer)) and not isinstance(v, bool) for v in values):
+            given = np.asarray(values, dtype=np.int64)
+        else:
+            given = np.asarray([str(v) for v in values], dtype=object)
+        wanted = align_id_types(given, ids_all)
+        if ids_all.dtype.kind in "iu":
+            unparsed = wanted == np.iinfo(np.int64).min  # align_id_types' mark for text that is no whole number
+            if unparsed.any():
+                bad = given[np.flatnonzero(unparsed)[0]]
+                raise TowersError(f"{self.dir}: {what} id {bad!r} is not a number, but this run's {what} ids are "
+                                  "numbers; give the id as a whole number")
+        rows = pd.Index(ids_all).get_indexer(wanted)
+        if (rows < 0).any():
+            bad = wanted[np.flatnonzero(rows < 0)[0]]
+            bad = bad.item() if isinstance(bad, np.generic) else bad
+            raise TowersError(f"{self.dir}: unknown {what} id {bad!r}: not in this run's catalog ({len(ids_all)} {what}s); "
+                              "check the id, or retrain with this entity in the feature table")
+        return torch.from_numpy(rows.astype(np.int64))
+
+    def _ranked_frame(self, query_ids, idx, scores, item_ids) -> pd.DataFrame:
+        q, n = idx.shape
+        valid = (idx >= 0).numpy().reshape(-1)
+        flat = idx.numpy().reshape(-1)
+        return pd.DataFrame({
+            "query_id": np.repeat(np.asarray(query_ids, dtype=object), n)[valid],
+            "rank": np.tile(np.arange(1, n + 1), q)[valid],
+            "item_id": item_ids[flat[valid]],
+            "score": scores.numpy().reshape(-1)[valid],
+        })
+
+    def recommend(self, user_ids, top: int = 10, exclude_known: bool = True, context: dict | None = None) -> pd.DataFrame:
+        """Top items per user (query_id, rank, item_id, score); known training positives excluded.
+
+        context: {column: value} for runs with context columns; without it the users' exported
+        vectors (averaged over the training context mix) are used.
+        """
+        if top <= 0:
+            raise TowersError(f"{self.dir}: --top must be a positive whole number, got {top}; ask for at least 1 item")
+        if context and self.context is None:
+            raise TowersError(f"{self.dir}: this run was trained without context columns; drop --context")
+        q_ids, q_vec, q_bias, meta = self.embeddings(self._query_side())
+        i_ids, i_vec, i_bias, _ = self.embeddings("item")
+        rows = self._rows(q_ids, pd.unique(np.asarray(list(user_ids), dtype=object)), "query" if self.item_item else "user")
+        if context:
+            tower = self.bundle.model.query_tower
+            with torch.no_grad():
+                q_vec = torch.zeros(len(q_ids), q_vec.shape[1])
+                q_vec[rows] = tower(self._user_block(rows) | self._context_block(context, len(rows)))
+        scale = 1.0 / float(meta.get("temperature", 1.0))
+        ex_r = ex_c = None
+        if exclude_known:
+            tr = self.pairs["train"]
+            va = self.pairs["valid"]
+            kq = torch.cat([tr["query"], va["query"]])
+            kc = torch.cat([tr["candidate"], va["candidate"]])
+            # map known pairs onto the requested rows (each requested row may appear once)
+            lookup = torch.full((len(q_ids),), -1, dtype=torch.int64)
+            lookup[rows] = torch.arange(len(rows))
+            local = lookup[kq]
+            keep = local >= 0
+            local, kc = local[keep], kc[keep]
+            if self.item_item:
+                local = torch.cat([local, torch.arange(len(rows))])
+                kc = torch.cat([kc, rows])
+            order = torch.argsort(local, stable=True)
+            ex_r, ex_c = local[order], kc[order]
+        idx, scores = top_n(q_vec.index_select(0, rows), i_vec, top, i_bias, ex_r, ex_c, scale)
+        extra = float(meta.get("global_bias", 0.0))
+        if q_bias is not None:
+            scores = scores + q_bias.index_select(0, rows).unsqueeze(1) + extra
+        return self._ranked_frame(q_ids[rows.numpy()], idx, scores, i_ids)
+
+    def similar(self, item_ids, top: int = 10) -> pd.DataFrame:
+        """Most similar items (query_id, rank, item_id, score), the item itself excluded.
+
+        user_item runs: cosine similarity of item embeddings. item_item runs: the trained pair score.
+        """
+        if top <= 0:
+            raise TowersError(f"{self.dir}: --top must be a positive whole number, got {top}; ask for at least 1 item")
+        i_ids, i_vec, i_bias, meta = self.embeddings("item")
+        rows = self._rows(i_ids, item_ids, "item")
+        self_rows = torch.arange(len(rows))
+        if self.item_item:
+            q_ids, q_vec, q_bias, _ = self.embeddings("query")
+            scale = 1.0 / float(meta.get("temperature", 1.0))
+            idx, scores = top_n(q_vec.index_select(0, rows), i_vec, top, i_bias, self_rows, rows, scale)
+            if q_bias is not None:
+                scores = scores + q_bias.index_select(0, rows).unsqueeze(1) + float(meta.get("global_bias", 0.0))
+        else:
+            unit = torch.nn.functional.normalize(i_vec, dim=1)
+            idx, scores = top_n(unit.index_select(0, rows), unit, top, None, self_rows, rows)
+        return self._ranked_frame(i_ids[rows.numpy()], idx, scores, i_ids)
+
+    # ---- evaluation -----------------------------------------------------------------------------
+    def _scorer(self, model: str) -> Scorer:
+        q_ids, qv, qb, meta = self.embeddings(self._query_side(), model)
+        _, cv, cb, _ = self.embeddings("item", model)
+        return Scorer(qv, cv, qb, cb, float(meta.get("global_bias", 0.0)), 1.0 / float(meta.get("temperature", 1.0)))
+
+    def evaluate(self, interactions: str | Path | None = None) -> dict:
+        """Re-score the run on its held-out pairs, or on a new interaction file with the config's columns."""
+        _check_archive(self.folder.file(RunFolder.PAIRS), "pairs file")
+        saved = self.folder.read_pairs()
+        query_ids, item_ids, split = saved.query_ids, saved.item_ids, saved.split
+        if self.config is None:
+            raise TowersError(f"{self.dir}: config.yaml is missing; the run folder is incomplete")
+        cfg = self.config
+        notes = []
+        if interactions is not None:
+            cfg = C.resolve({**{k: dict(v) for k, v in cfg.items()}, "interactions": {**cfg["interactions"], "path": str(interactions)}},
+                            Path.cwd())
+            log = read_interactions(cfg)
+            q, c, target, weight = log.query, log.candidate, log.target, log.weight
+            qr = pd.Index(query_ids).get_indexer(align_id_types(q, query_ids))
+            cr = pd.Index(item_ids).get_indexer(align_id_types(c, item_ids))
+            ok = (qr >= 0) & (cr >= 0)
+            if (~ok).sum():
+                notes.append(f"{interactions}: skipped {int((~ok).sum())} rows whose ids are not in this run's catalog")
+            if not ok.any():
+                raise TowersError(f"{interactions}: no row matches this run's users and items; check the id columns")
+            f32 = lambda a: None if a is None else torch.from_numpy(a[ok].astype(np.float32))  # noqa: E731
+            new = Pairs(torch.from_numpy(qr[ok].astype(np.int64)), torch.from_numpy(cr[ok].astype(np.int64)),
+                        f32(target), f32(weight))
+            if log.context is not None and self.context is not None:
+                new.context = self.context.encode(log.context.iloc[np.flatnonzero(ok)], interactions)
+            warm = split.warm_items[new.candidate]
+            split.test = new.subset(torch.nonzero(warm).flatten())
+            split.cold_test = new.subset(torch.nonzero(~warm).flatten())
+            split.cold_items = ~split.warm_items
+        explicit = cfg["training"]["loss"] == "squared"
+        scorers = {"popularity": popularity_scorer(split.train, len(query_ids), len(item_ids), explicit, split.item_item)}
+        for name in SUBFOLDER_MODELS:
+            if self.folder.file(EMBEDDINGS["item"], name).is_file():
+                scorers[name] = self._scorer(name)
+        scorers[TOWERS] = self._scorer(TOWERS)
+        try:
+            truth = true_vectors(cfg, query_ids, item_ids, split.item_item)
+        except TowersError as exc:
+            notes.append(f"oracle skipped: {exc}")
+            truth = None
+        if truth is not None:
+            scorers["oracle"] = oracle_scorer(truth)
+        event_vectors = {}
+        if self.context is not None:
+            block = self._user_block(torch.arange(len(query_ids)))
+            towers = {"towers": self.bundle.model.query_tower}
+            if "bilinear" in scorers:
+                towers["bilinear"] = self.folder.load_bundle("bilinear").model.query_tower
+            for name, tower in towers.items():
+                event_vectors[name] = (lambda t: lambda p: vectors_with_context(t, block, p.query, p.context))(tower)
+        return {"metrics": evaluate_slices(scorers, split, cfg, event_vectors), "notes": notes}
+
+

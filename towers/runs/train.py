@@ -1,0 +1,226 @@
+"""`towers train` end to end: prepare, train towers and the baseline, evaluate, export, save.
+
+Everything is written into RUN_DIR.partial first and renamed to RUN_DIR at the end, so a failed or
+killed run never leaves a half-written run folder under the requested name.
+"""
+
+from __future__ import annotations
+
+import shutil
+import tempfile
+import time
+from pathlib import Path
+
+import torch
+
+from towers import config as C
+from towers.data.context import sample_contexts, vectors_with_context
+from towers.data.embeddings_file import write_embeddings
+from towers.data.prepare import Prepared, prepare
+from towers.errors import TowersError
+from towers.evaluation.protocol import (
+    evaluate_slices,
+    format_table,
+    oracle_scorer,
+    popularity_scorer,
+)
+from towers.model.build import baseline_model, build_model
+from towers.model.bundle import LoadedBundle, save_bundle
+from towers.model.embed import model_scorer, reads_context
+from towers.model.grow import grow_weights
+from towers.model.towers import TwoTowerModel
+from towers.runs.folder import BILINEAR, EMBEDDINGS, LINEAR_FACTOR, TOWERS, RunFolder
+from towers.runs.report import write_report
+from towers.search.scorer import Scorer
+from towers.training import distributed
+from towers.training.als import fit_als
+from towers.training.certificate import certify
+from towers.training.certificate import describe as describe_certificate
+from towers.training.loop import fit
+from towers.training.progress import log
+from towers.training.stopping import TrainingDiverged, TrainingInterrupted
+
+
+def apply_threads(cfg: dict) -> None:
+    if cfg["run"]["threads"]:
+        torch.set_num_threads(cfg["run"]["threads"])
+
+
+def export_run(folder: RunFolder, model: TwoTowerModel, data: Prepared, cfg: dict, label: str,
+               scorer: Scorer | None = None) -> dict[str, str]:
+    """Write the embeddings of every catalog entity for one model; returns file names by side.
+
+    scorer: the model's vectors when the caller already has them (they are not computed twice).
+    """
+    s = scorer if scorer is not None else model_scorer(model, data)
+    meta = {"normalized": str(bool(cfg["model"]["normalize"])).lower(),
+            "temperature": cfg["model"]["temperature"],
+            "score": s.formula(model.use_biases),
+            "global_bias": s.global_bias, "model": label}
+    sides = [("item", data.candidates.ids, s.item_vectors, s.item_bias, "item")]
+    if not data.item_item:
+        sides.append(("user", data.queries.ids, s.query_vectors, s.query_bias, "user"))
+    elif not model.shared:
+        sides.append(("query", data.queries.ids, s.query_vectors, s.query_bias, "query item"))
+    files = {}
+    for side, ids, vectors, bias, written_as in sides:
+        path = folder.model_dir(label) / EMBEDDINGS[side]
+        write_embeddings(path, ids, vectors, bias, meta | {"side": written_as})
+        files[{"item": "items", "user": "users", "query": "queries"}[side]] = path.name
+    return files
+
+
+def _save_model(folder: RunFolder, label: str, model: TwoTowerModel, model_cfg: dict, data: Prepared) -> None:
+    """The bundle: weights, the towers' input descriptions, and every encoder's plain state."""
+    extra = {}
+    if reads_context(model.query_tower, data):
+        extra["context"] = data.context.state()
+        extra["context_sample"] = sample_contexts(data.train.context)
+    save_bundle(folder.model_file(label), model, model_cfg, model.query_tower.inputs, model.candidate_tower.inputs,
+                data.queries.encoders, data.candidates.encoders, data.item_item, extra)
+
+
+def _resumable(partial: RunFolder, cfg: dict) -> bool:
+    """Whether an interrupted run can continue here, checking the config has not changed."""
+    if not partial.has_config():
+        return False
+    if not partial.same_config(cfg):
+        raise TowersError(f"{partial.path / RunFolder.CONFIG}: the config differs from the interrupted run's; resume "
+                          "with the same config, or drop --resume to start over")
+    return True
+
+
+def load_previous(run_dir: str | Path, model: str = TOWERS) -> LoadedBundle:
+    """The earlier run's bundle for --init-from (its towers, or a reference model's subfolder)."""
+    folder = RunFolder(run_dir)
+    if not folder.has_model(model):
+        rel = folder.model_file(model).relative_to(folder.path)
+        raise TowersError(f"{folder.path}: --init-from needs a finished run folder (no {rel} there); give the --out "
+                          "folder of an earlier `towers train`")
+    return folder.load_bundle(model)
+
+
+def _reference_model(name: str, data: Prepared, cfg: dict) -> tuple[TwoTowerModel, dict]:
+    """A reference model trained beside the towers: the linear factor model or the bilinear model."""
+    if name == LINEAR_FACTOR:
+        return baseline_model(data, cfg)
+    preset = C.bilinear_preset(cfg)
+    return build_model(data, preset), preset
+
+
+def _train_reference(name: str, data: Prepared, cfg: dict, partial: RunFolder, init_from: str | Path | None,
+                     resuming: bool, started_from: dict | None):
+    """Train, save and export one reference model; returns (model, scorer, history)."""
+    torch.manual_seed(cfg["run"]["seed"])
+    model, preset = _reference_model(name, data, cfg)
+    if init_from and RunFolder(init_from).has_model(name):
+        earlier = load_previous(init_from, name)
+        started_from[name] = grow_weights(model, earlier.model.state_dict(), earlier.path)
+    solver = fit_als if name == LINEAR_FACTOR and preset["evaluation"]["baseline_solver"] != "gradient" else fit
+    result = solver(model, data, preset, partial.checkpoints(name), name, resume=resuming)
+    if name == LINEAR_FACTOR and cfg["training"]["loss"] == "squared":  # is it the global optimum? (certificate.py)
+        cert = certify(model, data, preset)
+        partial.write_json(RunFolder.CERTIFICATE, cert, name)
+        log(describe_certificate(cert))
+    scorer = model_scorer(model, data)
+    _save_model(partial, name, model, preset["model"], data)
+    export_run(partial, model, data, preset, name, scorer)
+    return model, scorer, result.history
+
+
+def train_run(config_path: str | Path, out_dir: str | Path, overwrite: bool = False, resume: bool = False,
+              init_from: str | Path | None = None) -> dict:
+    """Train, evaluate and export one run; returns {'metrics': ..., 'out': path, 'table': text}.
+
+    resume=True continues an interrupted run from RUN_DIR.partial (exactly: the same weights as an
+    uninterrupted run with the same seed); with nothing to resume it starts afresh. init_from starts
+    every model from an earlier run's weights, grown for new users, items and values (model/grow.py).
+    """
+    started = time.perf_counter()
+    cfg = C.load(config_path)
+    out = RunFolder(out_dir)
+    partial = out.partial
+    resuming = resume and _resumable(partial, cfg)
+    if resume and not resuming and out.path.is_dir() and out.file(RunFolder.METRICS).is_file() \
+            and not partial.path.exists():
+        raise TowersError(f"{out.path}: this run already finished; nothing to resume (use --overwrite to train it again)")
+    if not resuming:
+        out.check_new(overwrite)
+    distributed.start()
+    primary = distributed.is_primary()
+    scratch = None
+    if not primary:  # the other processes train alongside and write only into a private scratch folder
+        scratch = Path(tempfile.mkdtemp(prefix="towers-process-"))
+        if resuming:
+            shutil.copytree(partial.path, scratch / partial.path.name)
+        partial = RunFolder(scratch / partial.path.name)
+    if distributed.rank_and_size()[1] > 1:
+        cfg["run"]["threads"] = distributed.threads_per_process(cfg["run"]["threads"])
+    apply_threads(cfg)
+    torch.manual_seed(cfg["run"]["seed"])
+    previous = load_previous(init_from) if init_from else None
+    data = prepare(cfg, previous)
+    started_from = None if previous is None else {"run": str(Path(init_from).resolve()), "encoders": data.started_from}
+    for note in data.notes:
+        log(note)
+    log(f"data: {len(data.train):,} training, {len(data.valid):,} validation, {len(data.test):,} test, "
+        f"{len(data.cold_test):,} cold-start pairs; {len(data.queries.ids):,} queries, {len(data.candidates.ids):,} items")
+
+    model = build_model(data, cfg)
+    if previous is not None:  # before anything is written, so a mismatch leaves no folder behind
+        started_from[TOWERS] = grow_weights(model, previous.model.state_dict(), previous.path)
+    if not resuming:
+        partial.remove()
+        partial.make(TOWERS, checkpoints=True)
+        partial.write_config(cfg)
+    references = [name for name, on in ((LINEAR_FACTOR, cfg["evaluation"]["baseline"]),
+                                        (BILINEAR, cfg["evaluation"]["bilinear"])) if on]
+    for name in references:
+        partial.make(name, checkpoints=True)
+    resume_hint = f"resume with: towers train {config_path} --out {out.path} --resume"
+    try:
+        result = fit(model, data, cfg, partial.checkpoints(), TOWERS, resume=resuming)
+        scorers: dict[str, Scorer] = {
+            "popularity": popularity_scorer(data.train, len(data.queries.ids), len(data.candidates.ids),
+                                            cfg["training"]["loss"] == "squared", data.item_item),
+            TOWERS: model_scorer(model, data),
+        }
+        histories = {TOWERS: result.history}
+        context_models = {TOWERS: model}
+        for name in references:
+            ref, scorers[name], histories[name] = _train_reference(name, data, cfg, partial, init_from, resuming,
+                                                                   started_from)
+            if name == BILINEAR:
+                context_models[name] = ref
+    except TrainingInterrupted as stop:
+        raise TrainingInterrupted(f"{stop}; {resume_hint}") from None
+    except TrainingDiverged:
+        partial.remove()  # a diverged run leaves nothing behind
+        raise
+    if not primary:
+        shutil.rmtree(scratch, ignore_errors=True)
+        return {"metrics": None, "out": out.path, "table": ""}
+    if data.oracle is not None:
+        scorers["oracle"] = oracle_scorer(data.oracle)
+    event_vectors = {name: _event_vectors(m.query_tower, data) for name, m in context_models.items()
+                     if reads_context(m.query_tower, data)}
+    metrics = evaluate_slices(scorers, data.split, cfg, event_vectors)
+    _save_model(partial, TOWERS, model, cfg["model"], data)
+    files = export_run(partial, model, data, cfg, TOWERS, scorers[TOWERS])
+    partial.write_pairs(data.queries.ids, data.candidates.ids, data.split)
+    partial.write_json(RunFolder.METRICS, metrics)
+    if started_from is not None:
+        partial.write_json(RunFolder.STARTED_FROM, started_from)
+    partial.write_json(RunFolder.HISTORY,
+                       {"stop_metric": result.stop_metric, "best_epoch": result.best_epoch, "epochs": histories})
+    if cfg["report"]["enabled"]:
+        write_report(partial.path)  # report.html, read back from the finished files
+    partial.publish(out)
+    table = format_table(metrics)
+    log(f"run written to {out.path} in {time.perf_counter() - started:.1f} s ({', '.join(files.values())})")
+    return {"metrics": metrics, "out": out.path, "table": table}
+
+
+def _event_vectors(tower, data: Prepared):
+    """A function giving a context-aware query tower's vectors for a slice's events."""
+    return lambda p: vectors_with_context(tower, data.queries.block, p.query, p.context)

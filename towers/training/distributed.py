@@ -1,0 +1,98 @@
+"""Data-parallel training on torch.distributed (gloo, CPU): started by torchrun or `towers train --workers N`.
+
+Every process reads the same log and tables and builds the same catalogs, encoders and split from the
+same seed, so ids and vocabularies agree without any exchange. Each epoch's shuffled order is the same
+on every process; each takes every N-th pair of each global batch, and DistributedDataParallel
+averages the gradients (sparse id-table gradients included), so the processes step in lockstep with
+the single-process batch size. Only process 0 writes files.
+"""
+
+from __future__ import annotations
+
+import datetime
+import os
+import subprocess
+import sys
+
+import torch
+import torch.distributed as dist
+import torch.nn as nn
+from torch.nn.parallel import DistributedDataParallel
+
+from towers.errors import TowersError
+
+TIMEOUT = datetime.timedelta(minutes=30)  # a peer silent this long counts as gone
+
+
+def start() -> bool:
+    """Join the process group when launched by torchrun (WORLD_SIZE > 1); returns whether distributed."""
+    if int(os.environ.get("WORLD_SIZE", "1")) <= 1:
+        return False
+    if not dist.is_initialized():
+        dist.init_process_group("gloo", timeout=TIMEOUT)
+    return True
+
+
+def stop() -> None:
+    if dist.is_initialized():
+        dist.destroy_process_group()
+
+
+def rank_and_size() -> tuple[int, int]:
+    if dist.is_initialized():
+        return dist.get_rank(), dist.get_world_size()
+    return 0, 1
+
+
+def is_primary() -> bool:
+    return rank_and_size()[0] == 0
+
+
+def mean_over_processes(value: float) -> float:
+    """The mean of a number over all processes (the epoch loss each one saw on its shard)."""
+    if not dist.is_initialized():
+        return value
+    t = torch.tensor([value], dtype=torch.float64)
+    dist.all_reduce(t)
+    return float(t) / dist.get_world_size()
+
+
+def threads_per_process(configured: int) -> int:
+    """torch threads for each of N processes on this machine: the cores shared out, unless configured."""
+    if configured:
+        return configured
+    world = int(os.environ.get("LOCAL_WORLD_SIZE", os.environ.get("WORLD_SIZE", "1")))
+    return max(1, (os.cpu_count() or 1) // max(1, world))
+
+
+class BatchLoss(nn.Module):
+    """The trainer's minibatch objective as a module, so DistributedDataParallel can hook its gradients."""
+
+    def __init__(self, trainer):
+        super().__init__()
+        self.model = trainer.model
+        self._trainer = [trainer]  # a list: keep the trainer out of the module tree
+
+    def forward(self, idx: torch.Tensor) -> torch.Tensor:
+        return self._trainer[0].batch_loss(idx)
+
+
+def wrap(trainer) -> DistributedDataParallel:
+    # under softmax the query and global biases cancel and get no gradient; elsewhere every weight does
+    return DistributedDataParallel(BatchLoss(trainer), find_unused_parameters=trainer.softmax)
+
+
+def peer_failure(exc: BaseException) -> TowersError:
+    rank, size = rank_and_size()
+    return TowersError(f"training process {rank} of {size}: another process stopped ({str(exc).splitlines()[0][:160]}); "
+                       "no run was written; see that process's error above, fix it and start again")
+
+
+def launch_workers(n: int, argv: list[str]) -> int:
+    """Run `towers train` in n local processes through torchrun (torch.distributed.run); returns its exit code."""
+    if n < 1:
+        raise TowersError(f"--workers {n}: give 1 or more processes")
+    cmd = [sys.executable, "-m", "torch.distributed.run", "--standalone", f"--nproc-per-node={n}", "-m", "towers", *argv]
+    env = dict(os.environ)
+    env.setdefault("OMP_NUM_THREADS", str(max(1, (os.cpu_count() or 1) // n)))  # the cores shared out
+    return subprocess.run(cmd, env=env).returncode

@@ -1,0 +1,355 @@
+"""The gradient training loop: vectorised minibatches, sampled negatives, sparse id updates.
+
+Objective (per training pair, averaged):
+    J = 1/N sum_p w_p [ l(s_p, y_p) + sum_j l(s_pj, 0) ]
+        + lambda/(2N) sum_e (||e_e||^2 + b_e^2) + (wd/2) ||theta||^2
+The id-row penalty is spread over a row's pairs (1/n_e per pair), so each minibatch is an unbiased
+estimate of J and full-batch training minimises it exactly. Under loss: softmax the bracket is the
+in-batch sampled softmax of model/losses.in_batch_softmax_loss (the batch's other items as negatives).
+Validation, early stopping and Ctrl-C are training/stopping.py's, shared with ALS.
+"""
+
+from __future__ import annotations
+
+import math
+import sys
+import time
+from pathlib import Path
+
+import torch
+from tqdm import tqdm
+
+from towers.atomic import write_atomic
+from towers.config import default_stop_metric
+from towers.data.features import block_len, take
+from towers.data.prepare import Prepared
+from towers.errors import TowersError
+from towers.model.bundle import load_payload
+from towers.model.losses import in_batch_softmax_loss, logistic_loss, squared_loss
+from towers.model.towers import Tower, TwoTowerModel
+from towers.training.distributed import (
+    mean_over_processes,
+    peer_failure,
+    rank_and_size,
+    wrap,
+)
+from towers.training.memory import reuse_freed_memory
+from towers.training.negatives import NegativeSampler, log_batch_share
+from towers.training.objectives import (
+    IdRowObjective,
+    SquaredNorms,
+    id_counts,
+    output_is_id_row,
+)
+from towers.training.optimizers import make_optimizers
+from towers.training.progress import log, show_bar
+from towers.training.stopping import (
+    EarlyStopping,
+    StopRequest,
+    TrainingDiverged,
+    TrainingInterrupted,
+    TrainResult,
+    clone_state,
+)
+
+
+class Trainer:
+    """Runs epochs over the training pairs of a Prepared dataset for one model."""
+
+    def __init__(self, model: TwoTowerModel, data: Prepared, cfg: dict, label: str = "towers"):
+        self.model, self.data, self.cfg, self.label = model, data, cfg, label
+        self.tcfg = cfg["training"]
+        if cfg["run"]["reuse_memory"]:
+            reuse_freed_memory()
+        self.generator = torch.Generator().manual_seed(cfg["run"]["seed"])
+        self.optimizers = make_optimizers(model, self.tcfg)
+        self.rank, self.world = rank_and_size()
+        # one process: negatives come from the shuffling generator, as always; several: each process
+        # draws its own negatives, while the shared shuffle keeps every process on the same order
+        self.negative_generator = self.generator if self.world == 1 else \
+            torch.Generator().manual_seed(cfg["run"]["seed"] + 1 + self.rank)
+        self.logistic = self.tcfg["loss"] == "logistic"
+        self.softmax = self.tcfg["loss"] == "softmax"
+        self.n_neg = self.tcfg["negatives"] if self.logistic else 0
+        # both towers output their id rows (the linear factor model): the closed-form objective node
+        self.id_rows_only = output_is_id_row(model.query_tower) and output_is_id_row(model.candidate_tower)
+        if self.id_rows_only:  # each pair's id-table rows, looked up once instead of twice per step
+            self.pair_q_ids = data.queries.block["id"].index_select(0, data.train.query)
+            self.pair_c_ids = data.candidates.block["id"].index_select(0, data.train.candidate)
+        train = data.train
+        self.log_q = log_batch_share(train.candidate, block_len(data.candidates.block)) \
+            if self.softmax and self.tcfg["logq_correction"] else None
+        if self.tcfg["loss"] == "squared" and train.target is None:
+            raise TowersError("config key 'training.loss': squared loss needs interactions.target_column (ratings); "
+                              "use loss: logistic for events without a target")
+        self.sampler = NegativeSampler(train, block_len(data.candidates.block), data.warm_items, self.tcfg,
+                                       self.negative_generator) if self.n_neg else None
+        q_ids = data.queries.block["id"][train.query]
+        c_ids = data.candidates.block["id"][train.candidate]
+        if model.shared:
+            both = torch.cat([q_ids, c_ids])
+            self.q_inv = self.c_inv = id_counts(both, data.candidates.encoders.id_encoder.size)
+        else:
+            self.q_inv = id_counts(q_ids, data.queries.encoders.id_encoder.size)
+            self.c_inv = id_counts(c_ids, data.candidates.encoders.id_encoder.size)
+        self.lam = self.tcfg["id_l2"]
+        self.stop = StopRequest(self.world)
+        self.step_loss = self.batch_loss if self.world == 1 else wrap(self)
+
+    def _penalty(self, tower: Tower, bias, ids: torch.Tensor, inv: torch.Tensor, rows: torch.Tensor | None = None,
+                 bias_rows: torch.Tensor | None = None) -> torch.Tensor:
+        """lambda/2 * (||row||^2 + b^2) / n_row for each pair's id row (row 0, the unknown id, is free).
+
+        rows / bias_rows: the id rows and biases of `ids` when the caller has gathered them already (an
+        id-only tower's output is its id row), so the tables are not read twice and each table gets
+        one sparse gradient per step instead of two to be added together.
+        """
+        total = None
+        if tower.ids is not None:
+            total = SquaredNorms.apply(rows if rows is not None else tower.ids(ids))
+        if bias is not None:
+            b2 = (bias_rows if bias_rows is not None else bias(ids).squeeze(1)).pow(2)
+            total = b2 if total is None else total + b2
+        if total is None:
+            return torch.zeros(len(ids))
+        return (0.5 * self.lam) * total * inv.index_select(0, ids)
+
+    def in_batch_loss(self, idx: torch.Tensor) -> torch.Tensor:
+        """Sampled softmax over the batch: each pair's candidate against the batch's other candidates.
+
+        Query and global biases cancel inside a softmax over candidates, so only candidate biases enter.
+        """
+        m, d, train = self.model, self.data, self.data.train
+        q_rows, c_rows = train.query.index_select(0, idx), train.candidate.index_select(0, idx)
+        qb = self.query_batch(idx, q_rows)
+        q_ids = m.query_tower.id_rows(qb)
+        qe = m.query_tower(qb, q_ids)
+        cb = take(d.candidates.block, c_rows)
+        c_ids = m.candidate_tower.id_rows(cb)
+        ce = m.candidate_tower(cb, c_ids)
+        logits = (qe @ ce.T) / m.temperature + m.candidate_bias_of(c_ids).unsqueeze(0)
+        log_q = self.log_q.index_select(0, c_rows) if self.log_q is not None else None
+        loss = in_batch_softmax_loss(logits, c_rows, log_q)
+        if train.target is not None:  # a label in [0, 1] scales its row; label 0 rows teach nothing here
+            loss = loss * train.target.index_select(0, idx)
+        if train.weight is not None:
+            loss = loss * train.weight.index_select(0, idx)
+        if self.lam > 0:
+            loss = loss + self._penalty(m.query_tower, m.query_bias if m.use_biases else None, q_ids, self.q_inv)
+            loss = loss + self._penalty(m.candidate_tower, m.candidate_bias if m.use_biases else None, c_ids, self.c_inv)
+        return loss.mean()
+
+    def query_batch(self, idx: torch.Tensor, q_rows: torch.Tensor) -> dict:
+        """The query tower's input for pairs idx: the query entity's features, plus the pairs' context columns."""
+        qb = take(self.data.queries.block, q_rows)
+        if self.data.train.context is not None:
+            qb = qb | take(self.data.train.context, idx)
+        return qb
+
+    def batch_loss(self, idx: torch.Tensor) -> torch.Tensor:
+        """Mean objective over one minibatch of training pairs (see module docstring)."""
+        if self.softmax:
+            return self.in_batch_loss(idx)
+        if self.id_rows_only:
+            return self.id_row_loss(idx)
+        m, d, train = self.model, self.data, self.data.train
+        q_rows, c_rows = train.query.index_select(0, idx), train.candidate.index_select(0, idx)
+        qb = self.query_batch(idx, q_rows)
+        q_ids = m.query_tower.id_rows(qb)
+        qe = m.query_tower(qb, q_ids)
+        b = len(idx)
+        if self.n_neg:
+            c_rows = torch.cat([c_rows, self.sampler(b * self.n_neg)])
+        cb = take(d.candidates.block, c_rows)
+        c_ids = m.candidate_tower.id_rows(cb)
+        ce = m.candidate_tower(cb, c_ids)
+        scale = 1.0 / m.temperature
+        qbias = m.query_bias_of(q_ids)
+        cbias = m.candidate_bias_of(c_ids)
+        g = m.global_bias if m.use_biases else 0.0
+        # split, not slices: a slice's backward zero-fills a gradient of the whole tensor for each part
+        ce_pos, ce_neg = ce.split([b, len(ce) - b])
+        cbias_pos, cbias_neg = cbias.split([b, len(cbias) - b])
+        pos = (qe * ce_pos).sum(1) * scale + qbias + cbias_pos + g
+        y = train.target.index_select(0, idx) if train.target is not None else torch.ones(b)
+        if self.logistic:
+            loss = logistic_loss(pos, y)
+            if self.n_neg:
+                ne = ce_neg.view(b, self.n_neg, -1)
+                # elementwise, not bmm: b tiny (n_neg x k) products are slower as a batched matmul
+                neg = (ne * qe.unsqueeze(1)).sum(2) * scale + qbias.unsqueeze(1) + cbias_neg.view(b, -1) + g
+                loss = loss + logistic_loss(neg, torch.zeros_like(neg)).sum(1)
+        else:
+            loss = squared_loss(pos, y)
+        if train.weight is not None:
+            loss = loss * train.weight.index_select(0, idx)
+        if self.lam > 0:
+            qbias_t = m.query_bias if m.use_biases else None
+            cbias_t = m.candidate_bias if m.use_biases else None
+            q_rows_seen = qe if output_is_id_row(m.query_tower) else None
+            c_rows_seen = ce_pos if output_is_id_row(m.candidate_tower) else None
+            loss = loss + self._penalty(m.query_tower, qbias_t, q_ids, self.q_inv, q_rows_seen,
+                                        qbias if m.use_biases else None)
+            loss = loss + self._penalty(m.candidate_tower, cbias_t, c_ids[:b], self.c_inv, c_rows_seen,
+                                        cbias_pos if m.use_biases else None)
+        return loss.mean()
+
+    def id_row_loss(self, idx: torch.Tensor) -> torch.Tensor:
+        """batch_loss for a model whose towers both output their id rows, through IdRowObjective."""
+        m, d, train = self.model, self.data, self.data.train
+        b = len(idx)
+        c_codes = self.pair_c_ids.index_select(0, idx)
+        if self.n_neg:
+            c_codes = torch.cat([c_codes, d.candidates.block["id"].index_select(0, self.sampler(b * self.n_neg))])
+        q_ids = m.query_tower.id_rows({"id": self.pair_q_ids.index_select(0, idx)})
+        c_ids = m.candidate_tower.id_rows({"id": c_codes})
+        q, c = m.query_tower.ids(q_ids), m.candidate_tower.ids(c_ids)
+        g = m.global_bias if m.use_biases else torch.zeros(())
+        y = train.target.index_select(0, idx) if train.target is not None else None
+        w = train.weight.index_select(0, idx) if train.weight is not None else None
+        pq = pc = None
+        if self.lam > 0:
+            pq = self.lam * self.q_inv.index_select(0, q_ids)
+            pc = self.lam * self.c_inv.index_select(0, c_ids[:b])
+        loss = IdRowObjective.apply(q, c, m.query_bias_of(q_ids), m.candidate_bias_of(c_ids), g, y, w, pq, pc,
+                                     1.0 / m.temperature, self.n_neg, self.logistic)
+        return loss.mean()
+
+    def objective(self) -> float:
+        """The full objective J over all training pairs, without dropout (sampled negatives excluded)."""
+        keep_neg = self.n_neg
+        self.n_neg = 0
+        self.model.eval()
+        with torch.no_grad():
+            n = len(self.data.train)
+            step = self.tcfg["batch_size"] if self.softmax else 65536  # softmax: batches as in training
+            total = sum(float(self.batch_loss(torch.arange(i, min(n, i + step)))) * min(step, n - i)
+                        for i in range(0, n, step))
+            dense = sum(float(p.pow(2).sum()) for p in self.model.dense_parameters())
+        self.model.train()
+        self.n_neg = keep_neg
+        return total / n + 0.5 * self.tcfg["weight_decay"] * dense
+
+    def run_epoch(self, epoch: int, bar: bool, perm: torch.Tensor | None = None, start_step: int = 0,
+                  done_loss: float = 0.0) -> float:
+        """One pass over the shuffled training pairs; returns the mean batch loss.
+
+        perm/start_step/done_loss continue an epoch that was interrupted part-way. A stop request
+        (Ctrl-C) is honoured between steps, never inside one, so the saved state is consistent.
+        """
+        self.model.train()
+        n = len(self.data.train)
+        bs = self.tcfg["batch_size"]
+        if perm is None:
+            perm = torch.randperm(n, generator=self.generator)
+        steps = math.ceil(n / bs)
+        progress = tqdm(total=n, initial=min(n, start_step * bs), desc=f"{self.label} epoch {epoch}", unit="pairs",
+                        leave=False, file=sys.stderr, disable=not bar, mininterval=0.5)
+        start, total = time.perf_counter(), done_loss
+        for s in range(start_step, steps):
+            if self.stop.requested:
+                progress.close()
+                raise Interrupted(epoch, s, perm, total)
+            idx = perm[s * bs:(s + 1) * bs]
+            if self.world > 1:  # this process's share of the global batch (distributed.py)
+                idx = idx[self.rank::self.world]
+            loss = self.step_loss(idx)
+            if not torch.isfinite(loss):
+                progress.close()
+                raise TrainingDiverged(
+                    f"training diverged at {self.label} epoch {epoch}, step {s + 1} (loss {float(loss.detach())}); no model "
+                    "was written; lower training.learning_rate / id_learning_rate, or raise weight_decay / id_l2")
+            for opt in self.optimizers:
+                opt.zero_grad(set_to_none=True)
+            loss.backward()
+            for opt in self.optimizers:
+                opt.step()
+            total += float(loss.detach()) * len(idx)
+            progress.update(len(idx))
+            if bar and s % 20 == 0:
+                rate = (progress.n - progress.initial) / max(1e-9, time.perf_counter() - start)
+                progress.set_postfix(loss=f"{float(loss.detach()):.4f}", pairs_s=f"{rate:,.0f}")
+        progress.close()
+        self.last_rate = (n - min(n, start_step * bs)) / max(1e-9, time.perf_counter() - start)
+        if self.world > 1:
+            return mean_over_processes(total * self.world / n)
+        return total / n
+
+
+class Interrupted(Exception):
+    """Raised between steps after a stop request, carrying the position to resume from."""
+
+    def __init__(self, epoch: int, step: int, perm: torch.Tensor, loss_so_far: float):
+        super().__init__(f"interrupted at epoch {epoch}, step {step}")
+        self.epoch, self.step, self.perm, self.loss_so_far = epoch, step, perm, loss_so_far
+
+
+def fit(model: TwoTowerModel, data: Prepared, cfg: dict, checkpoint_dir: Path | None, label: str,
+        resume: bool = False) -> TrainResult:
+    """Train with validation every epoch, early stopping, and best/last checkpoints.
+
+    checkpoint_dir/last.pt holds everything needed to continue exactly (weights, optimiser state,
+    random-number state, position in the epoch); best.pt holds the best weights so far. With
+    resume=True an existing last.pt is continued, and a finished one is simply loaded.
+    """
+    trainer = Trainer(model, data, cfg, label)
+    tcfg = cfg["training"]
+    bar = show_bar(tcfg["progress"])
+    result = TrainResult(stop_metric=default_stop_metric(cfg))
+    stopping = EarlyStopping(result, tcfg["patience"], label, "epoch", tcfg["epochs"])
+    epoch, perm, start_step, done_loss = 1, None, 0, 0.0
+    last_path = checkpoint_dir / "last.pt" if checkpoint_dir is not None else None
+
+    def save(finished: bool, position: tuple | None = None) -> None:
+        if last_path is None:
+            return
+        ep, step, p, lsf = position if position else (epoch, 0, None, 0.0)
+        state = {"format": "towers-checkpoint", "version": 1, "label": label, "finished": finished,
+                 "epoch": ep, "step": step, "loss_so_far": lsf, "stale": stopping.stale,
+                 "best_value": result.best_value, "best_epoch": result.best_epoch, "history": result.history,
+                 "model": clone_state(model.state_dict()), "best_model": result.best_state,
+                 "optimizers": [o.state_dict() for o in trainer.optimizers],
+                 "generator": trainer.generator.get_state(), "global_rng": torch.get_rng_state()}
+        if p is not None:
+            state["perm"] = p
+        write_atomic(last_path, lambda f: torch.save(state, f))
+
+    if resume and last_path is not None and last_path.is_file():
+        st = load_payload(last_path, "checkpoint")
+        if st.get("format") != "towers-checkpoint" or st.get("label") != label:
+            raise TowersError(f"{last_path}: not a {label} checkpoint of this run; remove the .partial folder to start over")
+        model.load_state_dict(st["model"])
+        for opt, o_state in zip(trainer.optimizers, st["optimizers"]):
+            opt.load_state_dict(o_state)
+        trainer.generator.set_state(st["generator"])
+        torch.set_rng_state(st["global_rng"])
+        result.history, result.best_value, result.best_epoch = st["history"], st["best_value"], st["best_epoch"]
+        result.best_state, stopping.stale = st["best_model"], st["stale"]
+        epoch, start_step, perm, done_loss = st["epoch"], st["step"], st.get("perm"), st["loss_so_far"]
+        if st["finished"]:
+            stopping.restore_best(model)
+            log(f"{label}: already trained in the interrupted run; loaded its best weights")
+            return result
+        log(f"{label}: resuming at epoch {epoch}" + (f", step {start_step}" if start_step else ""))
+
+    with trainer.stop:
+        while epoch <= tcfg["epochs"]:
+            try:
+                loss = trainer.run_epoch(epoch, bar, perm, start_step, done_loss)
+            except RuntimeError as exc:  # a collective failed: a peer process is gone
+                if trainer.world > 1:
+                    raise peer_failure(exc) from None
+                raise
+            except Interrupted as stop:
+                save(False, (stop.epoch, stop.step, stop.perm, stop.loss_so_far))
+                raise TrainingInterrupted(f"{label} training interrupted at epoch {stop.epoch}, step {stop.step}; "
+                                          "checkpoint written") from None
+            perm, start_step, done_loss = None, 0, 0.0
+            finished = stopping.after_round(model, data, cfg, epoch, loss, trainer.last_rate, checkpoint_dir)
+            epoch += 1
+            if finished:
+                break
+            save(False)
+    stopping.restore_best(model)
+    save(True)
+    return result
