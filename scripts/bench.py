@@ -427,7 +427,7 @@ def case_als(size: dict, work: Path) -> dict:
     cells = als.Cells.build(torch.from_numpy(u + 1), torch.from_numpy(i + 1), torch.from_numpy(y).float(), None,
                             nu + 1, ni + 1)
     lam = SCHEMA["training"]["id_l2"].default
-    cg_steps = SCHEMA["evaluation"]["baseline_cg_steps"].default
+    cg_steps = SCHEMA["evaluation"]["baseline_row_steps"].default
     g = torch.Generator().manual_seed(8)
 
     def start() -> als.Factors:
@@ -600,7 +600,7 @@ def scale_config(work: Path, tag: str) -> dict:
         "interactions": {"path": str(work / f"log_{tag}.parquet"), "query_column": "customer", "candidate_column": "sku"},
         "items": {"path": str(work / "items.parquet"), "id_column": "item_id",
                   "features": [{"name": "category", "kind": "categorical"}, {"name": "price", "kind": "numeric"},
-                               {"name": "tags", "kind": "tokens", "max_tokens": 4}]},  # 2 tags per item here
+                               {"name": "tags", "kind": "tokens", "token_limit": 4}]},  # 2 tags per item here
         "model": {"dim": 32, "hidden": [64]},
         "training": {"loss": "logistic", "negatives": 1, "batch_size": 8192, "id_optimizer": "sgd",
                      "id_learning_rate": 5.0, "epochs": 1, "progress": "plain"},

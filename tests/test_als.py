@@ -251,7 +251,7 @@ def test_als_and_gradient_training_reach_the_same_objective(tmp_path):
 
     als_cfg = _write_config(tmp_path, df, {"loss": "squared", "id_l2": lam},
                             {"dim": k, "hidden": [], "biases": True},
-                            {"baseline_solver": "als", "baseline_sweeps": 100, "baseline_cg_steps": 0})
+                            {"baseline_solver": "als", "baseline_rounds": 100, "baseline_row_steps": 0})
     data, als_model, preset = _prepared(als_cfg)
     result = fit_als(als_model, data, preset, None, "linear_factor")
     assert len(result.history) == 100 and all(set(r) == {"epoch", "loss", "pairs_per_s"} for r in result.history)
@@ -272,7 +272,7 @@ def test_conjugate_gradient_sweeps_reach_the_cholesky_optimum(tmp_path):
     values = []
     for steps in (0, 3):
         cfg = _write_config(tmp_path, df, {"loss": "squared", "id_l2": 2.0}, {"dim": 5, "hidden": [], "biases": True},
-                            {"baseline_solver": "als", "baseline_sweeps": 100, "baseline_cg_steps": steps})
+                            {"baseline_solver": "als", "baseline_rounds": 100, "baseline_row_steps": steps})
         data, model, preset = _prepared(cfg)
         fit_als(model, data, preset, None, "linear_factor")
         values.append(_summed(model, data, 2.0))
@@ -288,8 +288,8 @@ def test_weighted_als_fits_through_the_run_path(tmp_path):
     raw = {"run": {"seed": 0, "threads": 1},
            "interactions": {"path": "events.csv", "query_column": "row_id", "candidate_column": "col_id"},
            "model": {"dim": 4, "hidden": []}, "training": {"loss": "logistic", "id_l2": 1.0, "progress": "plain"},
-           "evaluation": {"baseline_solver": "weighted_als", "baseline_sweeps": 6, "baseline_cg_steps": 2,
-                          "baseline_confidence": 5.0, "validation_fraction": 0.2, "test_fraction": 0.0,
+           "evaluation": {"baseline_solver": "weighted_als", "baseline_rounds": 6, "baseline_row_steps": 2,
+                          "baseline_event_weight": 5.0, "validation_fraction": 0.2, "test_fraction": 0.0,
                           "top_k": [5]},
            "report": {"enabled": False}}
     (tmp_path / "c.yaml").write_text(yaml.safe_dump(raw), encoding="utf-8")
@@ -312,7 +312,7 @@ def test_weighted_als_fits_through_the_run_path(tmp_path):
     ({"baseline_solver": "als"}, {"loss": "squared", "id_l2": 0.0}, "need lambda > 0"),
     ({"baseline_non_negative": True}, {"loss": "squared"}, "baseline_non_negative"),
     ({"baseline_non_negative": True, "baseline_solver": "weighted_als"}, {"loss": "logistic"}, "baseline_non_negative"),
-    ({"baseline_cg_steps": -1}, {}, "baseline_cg_steps"),
+    ({"baseline_row_steps": -1}, {}, "baseline_row_steps"),
     ({"baseline_solver": "lbfgs"}, {}, "one of gradient, als, weighted_als"),
 ])
 def test_solver_config_errors_are_one_clear_line(tmp_path, evaluation, training, message):

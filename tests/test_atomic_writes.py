@@ -57,3 +57,4 @@ def test_written_files_and_created_folders_are_owner_only(tmp_path):
         os.umask(old)
     assert path.stat().st_mode & 0o777 == 0o600
     assert path.parent.stat().st_mode & 0o777 == 0o700
+    assert (tmp_path / "new").stat().st_mode & 0o777 == 0o700  # created on the way: owner-only too

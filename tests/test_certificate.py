@@ -163,7 +163,7 @@ def _matrix_order(model, data, y):
 def test_stopped_early_fails_and_the_bound_covers_the_true_gap(tmp_path, how):
     y = _spectrum_matrix(30, 20, [10, 8, 6, 1, .9, .8, .7, .6, .5, .4])
     lam, k = 2.0, 6
-    evaluation = {"baseline_solver": "als", "baseline_sweeps": 1, "baseline_cg_steps": 0} if how == "als" else {}
+    evaluation = {"baseline_solver": "als", "baseline_rounds": 1, "baseline_row_steps": 0} if how == "als" else {}
     cfg = _write(tmp_path, _frame(y), {"id_l2": lam, "epochs": 2, "id_optimizer": "sgd", "id_learning_rate": 10.0,
                                        "batch_size": 600}, {"dim": k, "hidden": [], "biases": False}, evaluation)
     data, model, preset = _baseline(cfg)
@@ -223,7 +223,7 @@ def test_als_to_convergence_passes_with_biases_weights_and_missing_ratings(tmp_p
     weights = rng.uniform(0.5, 2.0, (n, m))
     lam = 1.5
     cfg = _write(tmp_path, _frame(y, observed, weights), {"id_l2": lam}, {"dim": 6, "hidden": [], "biases": True},
-                 {"baseline_solver": "als", "baseline_sweeps": 400, "baseline_cg_steps": 0}, weights=True)
+                 {"baseline_solver": "als", "baseline_rounds": 400, "baseline_row_steps": 0}, weights=True)
     data, model, preset = _baseline(cfg)
     fit_als(model, data, preset, None, "linear_factor")
     cert = certify(model, data, preset)
@@ -253,7 +253,7 @@ def test_training_run_writes_the_certificate(tmp_path, capfd):
     keep = rng.random(y.shape) < 0.8
     cfg = _write(tmp_path, _frame(y, keep), {"id_l2": 1.0, "epochs": 1},
                  {"dim": 4, "hidden": [8], "biases": True},
-                 {"baseline_solver": "als", "baseline_sweeps": 60, "baseline_cg_steps": 3,
+                 {"baseline_solver": "als", "baseline_rounds": 60, "baseline_row_steps": 3,
                   "validation_fraction": 0.1, "test_fraction": 0.1})
     out = tmp_path / "run"
     train_run(tmp_path / "config.yaml", out)

@@ -89,6 +89,25 @@ def test_unknown_key_suggests_the_closest_name(tmp_path):
     assert "did you mean 'epochs'?" in str(err.value)
 
 
+@pytest.mark.parametrize("section, old, new", [
+    ("evaluation", "baseline_sweeps", "baseline_rounds"),
+    ("evaluation", "baseline_cg_steps", "baseline_row_steps"),
+    ("evaluation", "baseline_confidence", "baseline_event_weight"),
+])
+def test_an_old_key_name_is_an_error_naming_the_new_one(tmp_path, section, old, new):
+    with pytest.raises(TowersError, match=rf"^config key '{section}\.{old}' has a new name: '{section}\.{new}'"):
+        C.resolve(minimal(**{section: {old: 3}}), tmp_path)
+
+
+@pytest.mark.parametrize("old, new", [("min_count", "rare_below"), ("hash_buckets", "hashed_rows"),
+                                      ("max_tokens", "token_limit")])
+def test_an_old_feature_key_name_is_an_error_naming_the_new_one(tmp_path, old, new):
+    items = {"path": "items.csv", "id_column": "item", "features": [{"name": "tags", "kind": "tokens", old: 2}]}
+    with pytest.raises(TowersError, match=rf"'items\.features\[0\]\.{old}' has a new name: "
+                                          rf"'items\.features\[0\]\.{new}'"):
+        C.resolve(minimal(items=items), tmp_path)
+
+
 def test_unknown_section_suggests_the_closest_name(tmp_path):
     with pytest.raises(TowersError, match=r"section 'trainig' is unknown; did you mean 'training'\?"):
         C.resolve(minimal() | {"trainig": {"epochs": 3}}, tmp_path)
@@ -188,8 +207,8 @@ def test_feature_defaults_are_filled(tmp_path):
     cfg = resolve_items(tmp_path, [{"name": "tags", "kind": "tokens"}, {"name": "emb", "kind": "vector", "length": 4}])
     tags, emb = cfg["items"]["features"]
     assert set(tags) == set(C.FEATURE_KEYS)
-    assert tags == {"name": "tags", "kind": "tokens", "min_count": 1, "hash_buckets": 0, "separator": "|",
-                    "max_tokens": 32, "length": None, "dim": None}
+    assert tags == {"name": "tags", "kind": "tokens", "rare_below": 1, "hashed_rows": 0, "separator": "|",
+                    "token_limit": 32, "length": None, "dim": None}
     assert emb["length"] == 4
 
 
@@ -201,8 +220,8 @@ def test_feature_defaults_are_filled(tmp_path):
     ({"name": "emb", "kind": "vector"}, r"'items\.features\[0\]\.length' is missing; a vector feature needs its fixed length"),
     ({"name": "emb", "kind": "vector", "length": 0}, r"'items\.features\[0\]\.length': got 0"),
     ({"name": "emb", "kind": "vector", "lenght": 4}, r"'items\.features\[0\]\.lenght' is unknown; did you mean 'length'\?"),
-    ({"name": "c", "kind": "categorical", "min_count": 0}, r"'items\.features\[0\]\.min_count': got 0"),
-    ({"name": "c", "kind": "categorical", "hash_buckets": -1}, r"'items\.features\[0\]\.hash_buckets': got -1"),
+    ({"name": "c", "kind": "categorical", "rare_below": 0}, r"'items\.features\[0\]\.rare_below': got 0"),
+    ({"name": "c", "kind": "categorical", "hashed_rows": -1}, r"'items\.features\[0\]\.hashed_rows': got -1"),
     ("price", r"'items\.features\[0\]': got 'price'; expected a mapping"),
 ])
 def test_bad_feature_specs(tmp_path, spec, pattern):
@@ -378,7 +397,7 @@ def test_top_level_list_file_is_rejected_even_with_overrides(tmp_path):
 def full_config(tmp_path) -> dict:
     return C.resolve(minimal(
         users={"path": "users.csv", "id_column": "user",
-               "features": [{"name": "age", "kind": "numeric"}, {"name": "city", "kind": "categorical", "min_count": 3}]},
+               "features": [{"name": "age", "kind": "numeric"}, {"name": "city", "kind": "categorical", "rare_below": 3}]},
         items=items_with_features(features=[{"name": "tags", "kind": "tokens", "separator": ","},
                                             {"name": "emb", "kind": "vector", "length": 8}]),
         model={"hidden": [64, 32], "id_dropout": 0.3, "normalize": True, "temperature": 0.1, "dropout": 0.2},

@@ -80,7 +80,7 @@ def test_numeric_rejects_text_naming_the_row():
 
 
 def test_categorical_vocabulary_and_rare_values():
-    enc = E.CategoricalEncoder("c", min_count=2).fit(pd.Series(["a", "b", "a", "c", "c", "d", None, None]), P)
+    enc = E.CategoricalEncoder("c", rare_below=2).fit(pd.Series(["a", "b", "a", "c", "c", "d", None, None]), P)
     assert enc.vocab == ["a", "c"]  # b, d seen once; missing never enters the vocabulary
     assert enc.size == 3
     got = codes(enc.transform(pd.Series(["a", "c", "b", "d", None, "a"]), P))
@@ -122,9 +122,9 @@ def test_categorical_hashing_sends_missing_to_zero(tmp_path):
     f = tmp_path / "items.csv"
     f.write_text("item,brand\n1,acme\n2,\n3,bolt\n", encoding="utf-8")
     column = read_table(f)["brand"]
-    got = codes(E.CategoricalEncoder("brand", hash_buckets=50).transform(column, f))
+    got = codes(E.CategoricalEncoder("brand", hashed_rows=50).transform(column, f))
     assert got[1] == 0 and got[0] >= 1 and got[2] >= 1
-    assert codes(E.CategoricalEncoder("c", hash_buckets=50).transform(pd.Series([1.5, np.nan]), P))[1] == 0
+    assert codes(E.CategoricalEncoder("c", hashed_rows=50).transform(pd.Series([1.5, np.nan]), P))[1] == 0
     assert E._as_text(np.array(["a", np.nan], dtype=object)).tolist() == ["a", None]
 
 
@@ -134,7 +134,7 @@ def test_categorical_booleans():
 
 
 def test_categorical_hashing_range_and_missing():
-    enc = E.CategoricalEncoder("c", hash_buckets=7).fit(pd.Series(["ignored"]), P)
+    enc = E.CategoricalEncoder("c", hashed_rows=7).fit(pd.Series(["ignored"]), P)
     assert enc.vocab == [] and enc.size == 8
     values = [f"v{i}" for i in range(300)]
     got = np.array(codes(enc.transform(pd.Series(values + [None]), P)))
@@ -150,16 +150,16 @@ HASH_SCRIPT = """
 import json, sys
 import pandas as pd
 from towers.data.encoders import CategoricalEncoder, TokenEncoder
-c = CategoricalEncoder("c", hash_buckets=1000).transform(pd.Series(["apple", "pear", "7", None]), "f")
-t = TokenEncoder("t", hash_buckets=1000, max_tokens=3).transform(pd.Series(["apple|pear", "kiwi"]), "f")
+c = CategoricalEncoder("c", hashed_rows=1000).transform(pd.Series(["apple", "pear", "7", None]), "f")
+t = TokenEncoder("t", hashed_rows=1000, token_limit=3).transform(pd.Series(["apple|pear", "kiwi"]), "f")
 print(json.dumps([c.tolist(), t.tolist()]))
 """
 
 
 def test_hashing_is_stable_across_processes_and_instances():
-    here = [E.CategoricalEncoder("c", hash_buckets=1000).transform(pd.Series(["apple", "pear", "7", None]), "f").tolist(),
-            E.TokenEncoder("t", hash_buckets=1000, max_tokens=3).transform(pd.Series(["apple|pear", "kiwi"]), "f").tolist()]
-    again = E.CategoricalEncoder("other", hash_buckets=1000).transform(pd.Series(["apple", "pear", "7", None]), "g")
+    here = [E.CategoricalEncoder("c", hashed_rows=1000).transform(pd.Series(["apple", "pear", "7", None]), "f").tolist(),
+            E.TokenEncoder("t", hashed_rows=1000, token_limit=3).transform(pd.Series(["apple|pear", "kiwi"]), "f").tolist()]
+    again = E.CategoricalEncoder("other", hashed_rows=1000).transform(pd.Series(["apple", "pear", "7", None]), "g")
     assert again.tolist() == here[0]
     # A different PYTHONHASHSEED would change Python's hash(); the bucket of each value must not change.
     env = {**os.environ, "PYTHONHASHSEED": "12345"}
@@ -182,7 +182,7 @@ def test_token_list_and_delimited_text_encode_identically():
 
 
 def test_token_padding_unknown_and_known_indices():
-    enc = E.TokenEncoder("t", max_tokens=4).fit(pd.Series(["a|b", "b|c"]), P)
+    enc = E.TokenEncoder("t", token_limit=4).fit(pd.Series(["a|b", "b|c"]), P)
     assert enc.size == 3 + 2
     out = codes(enc.transform(pd.Series(["a|zzz|c", "b"]), P))
     assert out[0][1] == 1  # unknown token
@@ -193,7 +193,7 @@ def test_token_padding_unknown_and_known_indices():
 
 
 def test_token_max_tokens_keeps_the_first_tokens():
-    enc = E.TokenEncoder("t", max_tokens=2).fit(pd.Series(["a|b|c|d"]), P)
+    enc = E.TokenEncoder("t", token_limit=2).fit(pd.Series(["a|b|c|d"]), P)
     out = codes(enc.transform(pd.Series(["d|c|b|a"]), P))
     assert out == [[enc.vocab.index("d") + 2, enc.vocab.index("c") + 2]]
 
@@ -201,7 +201,7 @@ def test_token_max_tokens_keeps_the_first_tokens():
 @pytest.mark.parametrize("row,other", [(None, "a"), (np.nan, "a"), ("", "a"), (" ", "a"), ("|", "a"), (" | ", "a"),
                                        ([], ["a"]), (None, ["a"]), ([""], ["a"]), ([None], ["a"])])
 def test_token_empty_rows_are_all_padding(row, other):
-    enc = E.TokenEncoder("t", max_tokens=3).fit(pd.Series(["a|b"]), P)
+    enc = E.TokenEncoder("t", token_limit=3).fit(pd.Series(["a|b"]), P)
     out = enc.transform(pd.Series([row, other], dtype=object), P)
     assert out.shape == (2, 3)
     assert out[0].tolist() == [0, 0, 0]
@@ -218,19 +218,19 @@ def test_token_whitespace_is_trimmed_and_separator_configurable():
 
 
 def test_token_empty_pieces_take_no_slots():
-    # Regression: 'a||b' used to give 'b' the third slot, so max_tokens=2 dropped it.
-    enc = E.TokenEncoder("t", max_tokens=2).fit(pd.Series(["a|b"]), P)
+    # Regression: 'a||b' used to give 'b' the third slot, so token_limit=2 dropped it.
+    enc = E.TokenEncoder("t", token_limit=2).fit(pd.Series(["a|b"]), P)
     assert codes(enc.transform(pd.Series(["a||b", "| |a", "a| |b|"]), P)) == [[2, 3], [2, 0], [2, 3]]
 
 
 def test_token_min_count():
-    enc = E.TokenEncoder("t", min_count=2).fit(pd.Series(["a|b", "a|c", "a"]), P)
+    enc = E.TokenEncoder("t", rare_below=2).fit(pd.Series(["a|b", "a|c", "a"]), P)
     assert enc.vocab == ["a"]
     assert codes(enc.transform(pd.Series(["b|a"]), P))[0][:2] == [1, 2]
 
 
 def test_token_hashing_range():
-    enc = E.TokenEncoder("t", hash_buckets=5, max_tokens=50).fit(pd.Series(["x"]), P)
+    enc = E.TokenEncoder("t", hashed_rows=5, token_limit=50).fit(pd.Series(["x"]), P)
     assert enc.vocab == [] and enc.size == 7
     out = np.array(codes(enc.transform(pd.Series(["|".join(f"t{i}" for i in range(50)), None]), P)))
     assert out[0].min() >= 2 and out[0].max() <= 6  # 0 pads, 1 is unknown, hashed tokens 2..buckets+1
@@ -356,11 +356,11 @@ def fitted_encoders():
     }
     encs = [
         E.NumericEncoder("price"),
-        E.CategoricalEncoder("brand", min_count=1),
+        E.CategoricalEncoder("brand", rare_below=1),
         E.CategoricalEncoder("code"),
-        E.CategoricalEncoder("hashed", hash_buckets=11),
-        E.TokenEncoder("tags", separator="|", max_tokens=2),
-        E.TokenEncoder("htags", hash_buckets=13, max_tokens=3),
+        E.CategoricalEncoder("hashed", hashed_rows=11),
+        E.TokenEncoder("tags", separator="|", token_limit=2),
+        E.TokenEncoder("htags", hashed_rows=13, token_limit=3),
         E.VectorEncoder("emb", 2),
     ]
     for enc in encs:
@@ -409,13 +409,20 @@ def test_make_encoder_builds_from_resolved_feature_specs(tmp_path):
         "interactions": {"path": "l.csv", "query_column": "u", "candidate_column": "i"},
         "items": {"path": "items.csv", "id_column": "i", "features": [
             {"name": "p", "kind": "numeric"},
-            {"name": "c", "kind": "categorical", "min_count": 3, "hash_buckets": 0},
-            {"name": "t", "kind": "tokens", "separator": ";", "max_tokens": 5, "hash_buckets": 9},
+            {"name": "c", "kind": "categorical", "rare_below": 3, "hashed_rows": 0},
+            {"name": "t", "kind": "tokens", "separator": ";", "token_limit": 5, "hashed_rows": 9},
             {"name": "v", "kind": "vector", "length": 4},
         ]},
     }, tmp_path)
     p, c, t, v = (E.make_encoder(s) for s in cfg["items"]["features"])
     assert isinstance(p, E.NumericEncoder) and p.name == "p"
-    assert isinstance(c, E.CategoricalEncoder) and c.min_count == 3 and c.hash_buckets == 0
-    assert isinstance(t, E.TokenEncoder) and (t.separator, t.max_tokens, t.hash_buckets) == (";", 5, 9)
+    assert isinstance(c, E.CategoricalEncoder) and c.rare_below == 3 and c.hashed_rows == 0
+    assert isinstance(t, E.TokenEncoder) and (t.separator, t.token_limit, t.hashed_rows) == (";", 5, 9)
     assert isinstance(v, E.VectorEncoder) and v.length == 4 and v.width == 4
+
+
+def test_state_saved_under_the_earlier_key_names_still_loads():
+    # bundles written before the feature options were renamed keep loading, with the same settings
+    enc = E.encoder_from_state({"kind": "tokens", "name": "t", "min_count": 2, "hash_buckets": 0, "separator": ";",
+                                "max_tokens": 5, "vocab": ["a", "b"]})
+    assert (enc.rare_below, enc.hashed_rows, enc.token_limit, enc.vocab) == (2, 0, 5, ["a", "b"])

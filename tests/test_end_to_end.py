@@ -55,6 +55,15 @@ def test_run_folder_has_every_output(basket_run):
     assert not (basket_run.parent / "baskets.partial").exists()
 
 
+def test_run_folder_is_owner_only(basket_run):
+    # a run folder holds personal data (README "Personal data"): folders 0700, files 0600, whatever the umask
+    entries = [basket_run, *basket_run.rglob("*")]
+    assert len(entries) > 10
+    for path in entries:
+        mode = path.stat().st_mode & 0o777
+        assert mode == (0o700 if path.is_dir() else 0o600), (path, oct(mode))
+
+
 def test_metrics_shape_and_towers_beat_popularity(basket_run):
     metrics = json.loads((basket_run / "metrics.json").read_text())
     assert set(metrics) == {"warm", "cold"}

@@ -69,7 +69,7 @@ def test_digits_nmf_within_five_percent_of_sklearn(tmp_path):
            "model": {"dim": 16, "hidden": [], "biases": False},
            "training": {"loss": "squared", "id_l2": 1e-3, "progress": "plain"},
            "evaluation": {"test_fraction": 0.0, "validation_fraction": 0.0, "baseline_solver": "als",
-                          "baseline_non_negative": True, "baseline_sweeps": 60},
+                          "baseline_non_negative": True, "baseline_rounds": 60},
            "report": {"enabled": False}}
     (tmp_path / "digits.yaml").write_text(yaml.safe_dump(raw), encoding="utf-8")
     cfg = C.load(tmp_path / "digits.yaml")

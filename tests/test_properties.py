@@ -84,12 +84,12 @@ def test_numeric_rows_are_encoded_independently_with_training_statistics(train, 
 
 @FAST
 @given(train=st.lists(maybe_words, min_size=1, max_size=30), serve=st.lists(maybe_words, min_size=1, max_size=20),
-       min_count=st.integers(1, 3))
-def test_categorical_unknown_values_always_map_to_the_unknown_bucket(train, serve, min_count):
-    enc = E.CategoricalEncoder("brand", min_count=min_count).fit(object_series(train), P)
+       rare_below=st.integers(1, 3))
+def test_categorical_unknown_values_always_map_to_the_unknown_bucket(train, serve, rare_below):
+    enc = E.CategoricalEncoder("brand", rare_below=rare_below).fit(object_series(train), P)
     full = assert_row_independent(enc, serve)
     counts = pd.Series([v for v in train if v is not None], dtype=object).value_counts()
-    kept = {v for v, c in counts.items() if c >= min_count}
+    kept = {v for v, c in counts.items() if c >= rare_below}
     assert set(enc.vocab) == kept
     for value, code in zip(serve, full.tolist()):
         if value is None or value not in kept:
@@ -103,7 +103,7 @@ def test_categorical_unknown_values_always_map_to_the_unknown_bucket(train, serv
 @given(train=st.lists(maybe_words, min_size=1, max_size=20), serve=st.lists(maybe_words, min_size=1, max_size=20),
        buckets=st.integers(1, 7))
 def test_categorical_hashing_is_stable_and_in_range(train, serve, buckets):
-    enc = E.CategoricalEncoder("brand", hash_buckets=buckets).fit(object_series(train), P)
+    enc = E.CategoricalEncoder("brand", hashed_rows=buckets).fit(object_series(train), P)
     full = assert_row_independent(enc, serve).tolist()
     for value, code in zip(serve, full):
         assert (code == 0) if value is None else (1 <= code <= buckets)
@@ -114,16 +114,16 @@ def test_categorical_hashing_is_stable_and_in_range(train, serve, buckets):
 
 @FAST
 @given(train=st.lists(token_lists, min_size=1, max_size=20), serve=st.lists(token_lists, min_size=1, max_size=15),
-       max_tokens=st.integers(1, 5))
-def test_token_rows_independent_and_unknown_tokens_map_to_the_unknown_slot(train, serve, max_tokens):
-    enc = E.TokenEncoder("tags", max_tokens=max_tokens).fit(object_series(train), P)
+       token_limit=st.integers(1, 5))
+def test_token_rows_independent_and_unknown_tokens_map_to_the_unknown_slot(train, serve, token_limit):
+    enc = E.TokenEncoder("tags", token_limit=token_limit).fit(object_series(train), P)
     full = assert_row_independent(enc, serve)
     seen = {t for row in train if row for t in row}
     assert set(enc.vocab) == seen
     for row, codes in zip(serve, full.tolist()):
-        tokens = (row or [])[:max_tokens]
+        tokens = (row or [])[:token_limit]
         want = [enc.vocab.index(t) + 2 if t in seen else 1 for t in tokens]  # 1: unknown, 0: padding
-        assert codes == want + [0] * (max_tokens - len(want))
+        assert codes == want + [0] * (token_limit - len(want))
     # delimited text encodes exactly like the same tokens as a list
     as_text = [None if row is None else "|".join(row) for row in serve]
     nonempty = [i for i, row in enumerate(serve) if row]

@@ -42,12 +42,19 @@ def write_atomic(path: str | Path, write: Callable[[Path], None]) -> Path:
 
 
 def make_private_dir(path: str | Path) -> Path:
-    """Create a folder (and missing parents) readable by its owner only; an existing folder is left as it is."""
+    """Create a folder, and each missing folder above it, readable by its owner only (0700).
+
+    Folders that exist already are left as they are.
+    """
     path = Path(path)
-    if not path.is_dir():
-        path.mkdir(mode=0o700, parents=True, exist_ok=True)
-        os.chmod(path, 0o700)  # mkdir's mode is masked by the umask; the folder must not depend on it
-    return path
+    missing = []
+    while not path.is_dir() and path != path.parent:
+        missing.append(path)
+        path = path.parent
+    for folder in reversed(missing):
+        folder.mkdir(mode=0o700, exist_ok=True)
+        os.chmod(folder, 0o700)  # mkdir's mode is masked by the umask; the folder must not depend on it
+    return Path(missing[0]) if missing else path
 
 
 def _write_error(path: Path, exc: OSError) -> TowersError:

@@ -38,10 +38,12 @@ FEATURE_KINDS = ("numeric", "categorical", "tokens", "vector")
 FEATURE_KEYS = {
     "name": Key("str", None, "column in the feature table"),
     "kind": Key("choice", None, "numeric, categorical, tokens or vector", choices=FEATURE_KINDS),
-    "min_count": Key("int", 1, "categorical/tokens: values seen fewer times in training go to the unknown bucket", low=1),
-    "hash_buckets": Key("int", 0, "categorical/tokens: >0 hashes values into this many buckets instead of a vocabulary", low=0),
+    "rare_below": Key("int", 1, "categorical/tokens: values seen fewer than this many times in training share the "
+                      "unknown row (1 keeps every value seen)", low=1),
+    "hashed_rows": Key("int", 0, "categorical/tokens: > 0 hashes values into this many table rows instead of "
+                       "learning a vocabulary (for huge or open-ended value sets)", low=0),
     "separator": Key("str", "|", "tokens: delimiter when the column is a string rather than a list"),
-    "max_tokens": Key("int", 32, "tokens: longer lists are truncated to this many tokens", low=1),
+    "token_limit": Key("int", 32, "tokens: longer lists keep their first this-many tokens", low=1),
     "length": Key("int", None, "vector: the fixed vector length", low=1, nullable=True),
     "dim": Key("int", None, "categorical/tokens: embedding size (default model.feature_dim)", low=1, nullable=True),
 }
@@ -131,10 +133,11 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "baseline_solver": Key("choice", "gradient", "how the linear factor model is trained: gradient (the same loop as "
                                "the towers), als (ratings, squared loss) or weighted_als (implicit events)",
                                choices=("gradient", "als", "weighted_als")),
-        "baseline_sweeps": Key("int", 15, "als / weighted_als: most sweeps (one sweep solves every user row, then every item row)", low=1),
-        "baseline_cg_steps": Key("int", 3, "als / weighted_als: conjugate-gradient steps per row solve in each sweep; "
+        "baseline_rounds": Key("int", 15, "als / weighted_als: most rounds (one round solves every user row, then every "
+                               "item row; early stopping may end sooner)", low=1),
+        "baseline_row_steps": Key("int", 3, "als / weighted_als: conjugate-gradient steps per row solve in each round; "
                                  "0 solves every row exactly by Cholesky", low=0),
-        "baseline_confidence": Key("float", 40.0, "weighted_als: alpha in the confidence 1 + alpha * r of an observed cell", low=0.0),
+        "baseline_event_weight": Key("float", 40.0, "weighted_als: alpha in the confidence 1 + alpha * r of an observed cell", low=0.0),
         "baseline_non_negative": Key("bool", False, "als: keep every factor entry >= 0 (non-negative matrix factorisation by HALS)"),
         "certificate_gap": Key("float", 0.001, "the linear factor certificate passes when its objective is within this share "
                                "of the global optimum (squared loss)", low=0.0, low_open=True),
@@ -151,6 +154,18 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "map_items": Key("int", 20000, "at most this many items are drawn on the item map (a seeded random subset)", low=1),
     },
 }
+
+
+RENAMED_KEYS = {
+    "evaluation.baseline_sweeps": "evaluation.baseline_rounds",
+    "evaluation.baseline_cg_steps": "evaluation.baseline_row_steps",
+    "evaluation.baseline_confidence": "evaluation.baseline_event_weight",
+}
+RENAMED_FEATURE_KEYS = {"min_count": "rare_below", "hash_buckets": "hashed_rows", "max_tokens": "token_limit"}
+
+
+def _renamed(label: str, new: str) -> TowersError:
+    return TowersError(f"config key '{label}' has a new name: '{new}'; rename it in the config (same meaning)")
 
 
 def _suggest(name: str, options) -> str:
@@ -228,6 +243,8 @@ def _check_feature(label: str, index: int, spec: Any, base_dir: Path) -> dict:
     if not isinstance(spec, dict):
         raise TowersError(f"config key '{here}': got {spec!r}; expected a mapping like {{name: price, kind: numeric}}")
     for k in spec:
+        if k in RENAMED_FEATURE_KEYS:
+            raise _renamed(f"{here}.{k}", f"{here}.{RENAMED_FEATURE_KEYS[k]}")
         if k not in FEATURE_KEYS:
             raise TowersError(f"config key '{here}.{k}' is unknown{_suggest(str(k), FEATURE_KEYS)}")
     for required in ("name", "kind"):
@@ -253,6 +270,8 @@ def resolve(raw: dict, base_dir: Path) -> dict:
         if not isinstance(given, dict):
             raise TowersError(f"config section '{section}': expected a mapping of keys, got {given!r}")
         for k in given:
+            if f"{section}.{k}" in RENAMED_KEYS:
+                raise _renamed(f"{section}.{k}", RENAMED_KEYS[f"{section}.{k}"])
             if k not in keys:
                 raise TowersError(f"config key '{section}.{k}' is unknown{_suggest(str(k), keys)}")
         out[section] = {k: _check_value(f"{section}.{k}", key, copy.deepcopy(given.get(k, key.default)), base_dir)

@@ -31,7 +31,7 @@ def _as_text(values: np.ndarray) -> np.ndarray:
                     dtype=object)
 
 
-def _hash_buckets(text: np.ndarray, buckets: int) -> np.ndarray:
+def _hash_rows(text: np.ndarray, buckets: int) -> np.ndarray:
     """Stable hashing (pandas' fixed-key SipHash) of strings into 1..buckets; None -> 0."""
     out = np.zeros(len(text), dtype=np.int64)
     present = np.array([v is not None for v in text], dtype=bool) if len(text) else np.zeros(0, bool)
@@ -41,9 +41,9 @@ def _hash_buckets(text: np.ndarray, buckets: int) -> np.ndarray:
     return out
 
 
-def _fit_vocab(text: np.ndarray, min_count: int) -> list[str]:
+def _fit_vocab(text: np.ndarray, rare_below: int) -> list[str]:
     counts = pd.Series(text, dtype=object).dropna().value_counts(sort=False)
-    kept = counts[counts >= min_count]
+    kept = counts[counts >= rare_below]
     return sorted(kept.index.astype(str).tolist())
 
 
@@ -82,12 +82,12 @@ class NumericEncoder:
 
 
 class CategoricalEncoder:
-    """Vocabulary of training values (seen at least min_count times) or hashing into buckets."""
+    """Vocabulary of training values (seen at least rare_below times) or hashing into buckets."""
 
     kind = "categorical"
 
-    def __init__(self, name: str, min_count: int = 1, hash_buckets: int = 0, vocab: list[str] | None = None):
-        self.name, self.min_count, self.hash_buckets = name, min_count, hash_buckets
+    def __init__(self, name: str, rare_below: int = 1, hashed_rows: int = 0, vocab: list[str] | None = None):
+        self.name, self.rare_below, self.hashed_rows = name, rare_below, hashed_rows
         self.vocab = vocab or []
         self._index = pd.Index(self.vocab, dtype=object)
         self.unknown_seen = 0
@@ -96,15 +96,15 @@ class CategoricalEncoder:
         """Any value is a category (unseen ones go to the unknown bucket): nothing to reject."""
 
     def fit(self, series: pd.Series, path) -> "CategoricalEncoder":
-        if not self.hash_buckets:
-            self.vocab = _fit_vocab(_as_text(series.to_numpy()), self.min_count)
+        if not self.hashed_rows:
+            self.vocab = _fit_vocab(_as_text(series.to_numpy()), self.rare_below)
             self._index = pd.Index(self.vocab, dtype=object)
         return self
 
     def transform(self, series: pd.Series, path) -> torch.Tensor:
         text = _as_text(series.to_numpy())
-        if self.hash_buckets:
-            return torch.from_numpy(_hash_buckets(text, self.hash_buckets))
+        if self.hashed_rows:
+            return torch.from_numpy(_hash_rows(text, self.hashed_rows))
         idx = self._index.get_indexer(pd.Index(text, dtype=object)) + 1  # -1 (unknown) -> 0
         present = pd.notna(pd.Series(text, dtype=object)).to_numpy()
         self.unknown_seen = int(((idx == 0) & present).sum())
@@ -112,11 +112,11 @@ class CategoricalEncoder:
 
     @property
     def size(self) -> int:
-        return (self.hash_buckets or len(self.vocab)) + 1
+        return (self.hashed_rows or len(self.vocab)) + 1
 
     def state(self) -> dict:
-        return {"kind": self.kind, "name": self.name, "min_count": self.min_count,
-                "hash_buckets": self.hash_buckets, "vocab": list(self.vocab)}
+        return {"kind": self.kind, "name": self.name, "rare_below": self.rare_below,
+                "hashed_rows": self.hashed_rows, "vocab": list(self.vocab)}
 
 
 class TokenEncoder:
@@ -127,10 +127,10 @@ class TokenEncoder:
 
     kind = "tokens"
 
-    def __init__(self, name: str, min_count: int = 1, hash_buckets: int = 0, separator: str = "|",
-                 max_tokens: int = 32, vocab: list[str] | None = None):
-        self.name, self.min_count, self.hash_buckets = name, min_count, hash_buckets
-        self.separator, self.max_tokens = separator, max_tokens
+    def __init__(self, name: str, rare_below: int = 1, hashed_rows: int = 0, separator: str = "|",
+                 token_limit: int = 32, vocab: list[str] | None = None):
+        self.name, self.rare_below, self.hashed_rows = name, rare_below, hashed_rows
+        self.separator, self.token_limit = separator, token_limit
         self.vocab = vocab or []
         self._index = pd.Index(self.vocab, dtype=object)
         self.unknown_seen = 0
@@ -181,41 +181,41 @@ class TokenEncoder:
         return text, offsets
 
     def fit(self, series: pd.Series, path) -> "TokenEncoder":
-        if not self.hash_buckets:
+        if not self.hashed_rows:
             text, _ = self._flat(series, path)
             text = text[pd.notna(pd.Series(text, dtype=object)).to_numpy()]
             text = text[text != ""]
-            self.vocab = _fit_vocab(text, self.min_count)
+            self.vocab = _fit_vocab(text, self.rare_below)
             self._index = pd.Index(self.vocab, dtype=object)
         return self
 
     def transform(self, series: pd.Series, path) -> torch.Tensor:
         text, offsets = self._flat(series, path)
         n = len(series)
-        if self.hash_buckets:
-            codes = _hash_buckets(text, self.hash_buckets) + 1
+        if self.hashed_rows:
+            codes = _hash_rows(text, self.hashed_rows) + 1
         else:
             codes = self._index.get_indexer(pd.Index(text, dtype=object)).astype(np.int64) + 2  # -1 + 2 = 1: unknown
         empty = pd.isna(pd.Series(text, dtype=object)).to_numpy() | (text == "")
-        if not self.hash_buckets:
+        if not self.hashed_rows:
             self.unknown_seen = int(((codes == 1) & ~empty).sum())
         # position of each non-empty token within its row, for the padded layout (empty tokens take no slot)
         row_of = np.repeat(np.arange(n), np.diff(offsets))[~empty]
         codes = codes[~empty]
         starts = np.concatenate([[0], np.cumsum(np.bincount(row_of, minlength=n))[:-1]]).astype(np.int64)
         pos = np.arange(len(codes)) - starts[row_of] if len(codes) else np.zeros(0, np.int64)
-        keep = pos < self.max_tokens
-        out = np.zeros((n, self.max_tokens), dtype=np.int64)
+        keep = pos < self.token_limit
+        out = np.zeros((n, self.token_limit), dtype=np.int64)
         out[row_of[keep], pos[keep]] = codes[keep]
         return torch.from_numpy(out)
 
     @property
     def size(self) -> int:
-        return (self.hash_buckets or len(self.vocab)) + 2
+        return (self.hashed_rows or len(self.vocab)) + 2
 
     def state(self) -> dict:
-        return {"kind": self.kind, "name": self.name, "min_count": self.min_count, "hash_buckets": self.hash_buckets,
-                "separator": self.separator, "max_tokens": self.max_tokens, "vocab": list(self.vocab)}
+        return {"kind": self.kind, "name": self.name, "rare_below": self.rare_below, "hashed_rows": self.hashed_rows,
+                "separator": self.separator, "token_limit": self.token_limit, "vocab": list(self.vocab)}
 
 
 class VectorEncoder:
@@ -345,15 +345,18 @@ def make_encoder(spec: dict):
     if kind == "numeric":
         return NumericEncoder(name)
     if kind == "categorical":
-        return CategoricalEncoder(name, spec["min_count"], spec["hash_buckets"])
+        return CategoricalEncoder(name, spec["rare_below"], spec["hashed_rows"])
     if kind == "tokens":
-        return TokenEncoder(name, spec["min_count"], spec["hash_buckets"], spec["separator"], spec["max_tokens"])
+        return TokenEncoder(name, spec["rare_below"], spec["hashed_rows"], spec["separator"], spec["token_limit"])
     return VectorEncoder(name, spec["length"])
 
 
+STATE_KEYS_BEFORE = {"min_count": "rare_below", "hash_buckets": "hashed_rows", "max_tokens": "token_limit"}
+
+
 def encoder_from_state(state: dict):
-    """Rebuild an encoder from its saved plain state."""
-    s = dict(state)
+    """Rebuild an encoder from its saved plain state (bundles saved under the earlier key names too)."""
+    s = {STATE_KEYS_BEFORE.get(k, k): v for k, v in state.items()}
     kind = s.pop("kind")
     if kind == "id":
         return IdEncoder(s["ids"], s["id_type"])

@@ -44,7 +44,7 @@ def extend_side(new: SideEncoders, old: SideEncoders, what: str) -> tuple[SideEn
     encoders, grown = [], {}
     for n_enc, o_enc in zip(new.encoders, old.encoders):
         state = o_enc.state()
-        if getattr(o_enc, "vocab", None) is not None and not state.get("hash_buckets"):
+        if getattr(o_enc, "vocab", None) is not None and not state.get("hashed_rows"):
             merged, added = _appended(list(o_enc.vocab), list(n_enc.vocab))
             state = dict(state, vocab=merged)
             if added:

@@ -446,8 +446,8 @@ def method_name(cfg: dict) -> str:
     ev = cfg["evaluation"]
     if ev["baseline_non_negative"]:
         return "non-negative ALS (HALS)"
-    solve = f"conjugate gradient, {ev['baseline_cg_steps']} steps" if ev["baseline_cg_steps"] else "Cholesky"
-    kind = f"weighted ALS (alpha {ev['baseline_confidence']:g})" if ev["baseline_solver"] == "weighted_als" else "ALS"
+    solve = f"conjugate gradient, {ev['baseline_row_steps']} steps" if ev["baseline_row_steps"] else "Cholesky"
+    kind = f"weighted ALS (alpha {ev['baseline_event_weight']:g})" if ev["baseline_solver"] == "weighted_als" else "ALS"
     return f"{kind}, {solve}"
 
 
@@ -461,10 +461,10 @@ def fit_als(model: TwoTowerModel, data: Prepared, cfg: dict, checkpoint_dir: Pat
     """
     ev, tcfg = cfg["evaluation"], cfg["training"]
     implicit = ev["baseline_solver"] == "weighted_als"
-    lam, sweeps, steps, non_negative = tcfg["id_l2"], ev["baseline_sweeps"], ev["baseline_cg_steps"], ev["baseline_non_negative"]
+    lam, sweeps, steps, non_negative = tcfg["id_l2"], ev["baseline_rounds"], ev["baseline_row_steps"], ev["baseline_non_negative"]
     if lam <= 0:
         raise TowersError("config key 'training.id_l2': ALS needs lambda > 0; raise it or use evaluation.baseline_solver: gradient")
-    cells = cells_of(data, implicit, ev["baseline_confidence"])
+    cells = cells_of(data, implicit, ev["baseline_event_weight"])
     f = Factors.of_model(model)
     if non_negative:
         f.query.abs_()  # a non-negative start: the magnitudes of the usual random initialisation
