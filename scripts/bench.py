@@ -660,7 +660,8 @@ def case_embed_run(size: dict, work: Path) -> dict:
     from towers.cli import main
 
     t = time.perf_counter()
-    code = main(["embed", str(work / "run"), "--items", str(work / "unseen.parquet"), "--out", str(work / "unseen_vectors.parquet")])
+    code = main(["embed", str(work / "run"), "--items", str(work / "unseen.parquet"),
+                 "--out", str(work / "unseen_vectors.parquet")])
     seconds = time.perf_counter() - t
     if code:
         raise SystemExit(f"towers embed failed with exit code {code}")

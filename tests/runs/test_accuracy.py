@@ -1,0 +1,230 @@
+"""Accuracy against the limit on planted data (towers/synthetic/planted.py), at test size.
+
+The full benchmark is scripts/accuracy (README "Accuracy against the limit"); these are the same
+checks on smaller data with looser bounds. Each bound names the full-benchmark target it loosens
+and the figure measured there. Training goes through towers.api.train, as a user's would.
+"""
+
+from __future__ import annotations
+
+import importlib.util
+import json
+import math
+import sys
+from pathlib import Path
+
+import numpy as np
+import pyarrow.parquet as pq
+import pytest
+
+import towers
+from towers.model.bundle import load_payload
+
+from ..sizes import PLANTED_EXPLICIT, PLANTED_IMPLICIT
+
+ROOT = Path(__file__).resolve().parents[2]
+sys.path.insert(0, str(ROOT / "scripts"))
+_spec = importlib.util.spec_from_file_location("accuracy_script", ROOT / "scripts" / "accuracy.py")
+acc = importlib.util.module_from_spec(_spec)
+_spec.loader.exec_module(acc)
+from accuracy_ratios import ratio_rows  # noqa: E402
+
+EXPLICIT, IMPLICIT = PLANTED_EXPLICIT, PLANTED_IMPLICIT  # the planted data of tests/conftest.py
+# one thread: on two cores shared with other jobs, two threads of one run mostly wait on each other
+ONE_THREAD = {"run": {"threads": 1}}
+
+
+# ---------------------------------------------------------------- helpers
+
+def _vectors(path: Path):
+    """(ids, vectors, bias) of an embeddings parquet, read with pyarrow alone."""
+    t = pq.read_table(path)
+    k = t.schema.field("embedding").type.list_size
+    vec = t.column("embedding").combine_chunks().flatten().to_numpy().reshape(-1, k).astype(np.float64)
+    bias = t.column("bias").to_numpy().astype(np.float64) if "bias" in t.column_names else np.zeros(len(vec))
+    return t.column("id").to_pylist(), vec, bias
+
+
+def _aligned(path: Path, ids: list):
+    """Vectors and biases of `path` in the order of `ids`."""
+    own, vec, bias = _vectors(path)
+    row = {v: i for i, v in enumerate(own)}
+    pick = np.array([row[i] for i in ids])
+    return vec[pick], bias[pick]
+
+
+def _pairs(run: Path) -> dict:
+    return load_payload(run / "pairs.pt", "pairs file")
+
+
+def _brute_recall(scores: np.ndarray, test_q, test_c, known_q, known_c, candidates: np.ndarray, k: int) -> float:
+    """recall@k by brute force with numpy: full score matrix, known pairs and non-candidates set to -inf,
+    each query's top k by argsort, hits / positives averaged over queries (README "Ranking metrics")."""
+    s = scores.copy()
+    s[:, ~candidates] = -np.inf
+    s[known_q, known_c] = -np.inf
+    test = {(q, c) for q, c in zip(test_q.tolist(), test_c.tolist()) if candidates[c]}
+    test -= set(zip(known_q.tolist(), known_c.tolist()))
+    pos = np.zeros(s.shape, dtype=bool)
+    for q, c in test:
+        pos[q, c] = True
+    queries = np.flatnonzero(pos.any(1))
+    top = np.argsort(-s[queries], axis=1, kind="stable")[:, :k]
+    hits = np.take_along_axis(pos[queries], top, axis=1).sum(1)
+    return float(np.mean(hits / pos[queries].sum(1)))
+
+
+# ---------------------------------------------------------------- fixtures
+
+@pytest.fixture(scope="module")
+def explicit(planted_explicit, tmp_path_factory):
+    out = tmp_path_factory.mktemp("accuracy_explicit")
+    # smaller batches than the benchmark's 4096: this log is a quarter the size, so 1024 keeps the steps per epoch
+    cfg = acc.planted_config("explicit", planted_explicit, out,
+                             {"model": {"dim": EXPLICIT["rank"]}, "training": {"batch_size": 1024, "epochs": 25}, **ONE_THREAD})
+    result = towers.train(cfg, out / "run")
+    info = json.loads((planted_explicit / "truth" / "planted.json").read_text())
+    return out, result["metrics"], info
+
+
+@pytest.fixture(scope="module")
+def implicit(planted_implicit, tmp_path_factory):
+    out = tmp_path_factory.mktemp("accuracy_implicit")
+    cfg = acc.planted_config("implicit", planted_implicit, out,
+                             {"model": {"dim": IMPLICIT["rank"]}, "training": {"epochs": 12}, **ONE_THREAD})
+    result = towers.train(cfg, out / "run")
+    return out, result["metrics"]
+
+
+# ---------------------------------------------------------------- ratings against the noise floor
+
+@pytest.mark.slow
+def test_oracle_lands_on_the_noise_floor(explicit, planted_explicit):
+    out, metrics, info = explicit
+    pairs = _pairs(out / "run")
+    test = pairs["test"]
+    n_test = len(test["query"])
+    u, bu = _aligned(planted_explicit / "truth" / "user_vectors.parquet", pairs["query_ids"])
+    v, bi = _aligned(planted_explicit / "truth" / "item_vectors.parquet", pairs["item_ids"])
+    q, c = test["query"].numpy(), test["candidate"].numpy()
+    rmse = math.sqrt(np.mean(((u[q] * v[c]).sum(1) + bu[q] + bi[c] - test["target"].numpy()) ** 2))
+    # reference: numpy brute force from the truth files gives the oracle row
+    assert metrics["warm"]["oracle"]["rmse"] == pytest.approx(rmse, rel=1e-5)
+    # the Bayes risk of squared loss is the noise variance (from memory): the true mean's held-out RMSE
+    # is sigma, within 4 standard errors sqrt(1/(2n)) (full benchmark: the same band)
+    band = acc.noise_band(info["noise"], n_test)
+    assert abs(rmse / info["noise"] - 1.0) < band
+
+
+@pytest.mark.slow
+def test_no_model_beats_the_noise(explicit):
+    out, metrics, info = explicit
+    band = acc.noise_band(info["noise"], len(_pairs(out / "run")["test"]["query"]))
+    for model, m in metrics["warm"].items():
+        # held-out RMSE below sigma (beyond sampling error) would mean test pairs leaked into training
+        assert m["rmse"] / info["noise"] > 1.0 - band, model
+
+
+@pytest.mark.slow
+def test_factor_model_and_towers_reach_the_floor(explicit):
+    out, metrics, info = explicit
+    # full benchmark target 1.05 sigma (measured there: linear_factor 1.037, towers 1.040); at this
+    # size (half the ratings per user) the bound is 1.08 sigma (measured here: 1.026 and 1.031)
+    for model in ("linear_factor", "towers"):
+        assert metrics["warm"][model]["rmse"] / info["noise"] <= 1.08, model
+    # and popularity (item means), which ignores the user, is far off: the signal u.v has sd ~1 = 2 sigma
+    assert metrics["warm"]["popularity"]["rmse"] / info["noise"] > 1.8
+
+
+@pytest.mark.slow
+def test_the_bound_catches_a_broken_model(explicit, planted_explicit, tmp_path):
+    _, _, info = explicit
+    cfg = acc.planted_config("explicit", planted_explicit, tmp_path,
+                             {"model": {"dim": EXPLICIT["rank"]}, "training": {"id_l2": 1e5, "epochs": 3},
+                              "evaluation": {"baseline": False}, **ONE_THREAD})
+    metrics = towers.train(cfg, tmp_path / "run")["metrics"]
+    rows, missed = acc.explicit_report(metrics, info, len(_pairs(tmp_path / "run")["test"]["query"]), max_ratio=1.08)
+    # id rows crushed to zero leave only the global mean plus feature effects: far above the floor
+    assert any(m.startswith("explicit towers") for m in missed), rows
+
+
+# ---------------------------------------------------------------- events against the oracle
+
+@pytest.mark.slow
+def test_recall_matches_numpy_brute_force(implicit, planted_implicit):
+    out, metrics = implicit
+    run, pairs = out / "run", _pairs(out / "run")
+    known_q = np.concatenate([pairs["train"]["query"].numpy(), pairs["valid"]["query"].numpy()])
+    known_c = np.concatenate([pairs["train"]["candidate"].numpy(), pairs["valid"]["candidate"].numpy()])
+    warm, cold = pairs["warm_items"].numpy(), pairs["cold_items"].numpy()
+    # towers: scores from the exported parquet files alone (README "Using the exported vectors elsewhere")
+    u, _ = _aligned(run / "user_embeddings.parquet", pairs["query_ids"])
+    v, bv = _aligned(run / "item_embeddings.parquet", pairs["item_ids"])
+    scores = u @ v.T + bv
+    # oracle: the true logits from the truth files
+    tu, _ = _aligned(planted_implicit / "truth" / "user_vectors.parquet", pairs["query_ids"])
+    tv, tb = _aligned(planted_implicit / "truth" / "item_vectors.parquet", pairs["item_ids"])
+    truth = tu @ tv.T + tb
+    t, ct = pairs["test"], pairs["cold_test"]
+    none = np.zeros(0, dtype=np.int64)
+    for model, s in (("towers", scores), ("oracle", truth)):
+        # reference: brute-force recall@20 in numpy (float scores: no ties at the cut, almost surely)
+        w = _brute_recall(s, t["query"].numpy(), t["candidate"].numpy(), known_q, known_c, warm, 20)
+        c = _brute_recall(s, ct["query"].numpy(), ct["candidate"].numpy(), none, none, cold, 20)
+        assert metrics["warm"][model]["recall@20"] == pytest.approx(w, abs=1e-6), model
+        assert metrics["cold"][model]["recall@20"] == pytest.approx(c, abs=1e-6), model
+
+
+@pytest.mark.slow
+def test_warm_recall_near_the_oracle(implicit):
+    _, metrics = implicit
+    w = metrics["warm"]
+    # the task is not trivial: the oracle itself misses most held-out positives in its top 20
+    assert w["oracle"]["recall@20"] < 0.6
+    # full benchmark target 0.9 x oracle (measured there: towers 0.94, linear_factor 0.94). This data has
+    # 3/5 of the events per user and 12 epochs: towers >= 0.85 (measured here 0.94); the linear factor
+    # model, with half the events per item and no features, >= 0.75 (measured here 0.81, its plateau)
+    assert w["towers"]["recall@20"] >= 0.85 * w["oracle"]["recall@20"]
+    assert w["linear_factor"]["recall@20"] >= 0.75 * w["oracle"]["recall@20"]
+    assert w["towers"]["recall@20"] <= 1.05 * w["oracle"]["recall@20"]  # the oracle is the limit
+
+
+@pytest.mark.slow
+def test_cold_items_ranked_from_features_alone(implicit):
+    out, metrics = implicit
+    c = metrics["cold"]
+    # full benchmark targets 0.8 x oracle (measured 0.91) and 2 x popularity (measured 6.2); here 0.75
+    # (measured 0.94) and 2 (measured 3.9: only 90 cold items, so chance is already 20/90)
+    assert c["towers"]["recall@20"] >= 0.75 * c["oracle"]["recall@20"]
+    assert c["towers"]["recall@20"] >= 2.0 * c["popularity"]["recall@20"]
+    # ids only: every cold item gets the same unknown row, so the linear factor model ties them all,
+    # exactly like popularity (no cold item has a training count) under the shared tie order
+    assert c["linear_factor"]["recall@20"] == c["popularity"]["recall@20"]
+    # and that tie order scores at chance: within 5 sd of the recall of random orders (numpy simulation)
+    pairs = _pairs(out / "run")
+    cold = np.flatnonzero(pairs["cold_items"].numpy())
+    q, it = pairs["cold_test"]["query"].numpy(), pairs["cold_test"]["candidate"].numpy()
+    rng = np.random.default_rng(0)
+    sims = []
+    for _ in range(200):
+        rank = np.empty(len(pairs["item_ids"]), dtype=np.int64)
+        rank[cold[rng.permutation(len(cold))]] = np.arange(len(cold))
+        hit = (rank[it] < 20).astype(float)
+        per_q = np.bincount(q, hit) / np.maximum(np.bincount(q), 1)
+        sims.append(per_q[np.bincount(q) > 0].mean())
+    assert abs(c["linear_factor"]["recall@20"] - np.mean(sims)) < 5 * np.std(sims)
+    assert np.mean(sims) == pytest.approx(20 / len(cold), rel=0.05)  # K / N for a random order (from memory)
+
+
+# ---------------------------------------------------------------- ratio rows
+
+def test_ratio_rows_by_hand():
+    metrics = {"warm": {"popularity": {"recall@20": 0.1}, "linear_factor": {"recall@20": 0.3},
+                        "towers": {"recall@20": 0.4}, "oracle": {"recall@20": 0.5}},
+               "cold": {"popularity": {"recall@20": 0.1}, "towers": {"recall@20": 0.25}}}
+    text = ratio_rows(metrics)
+    # hand-computed: 0.4/0.5, 0.4/0.1, 0.3/0.5; the cold slice has no oracle
+    assert "[warm] recall@20 ratios" in text
+    assert "towers/oracle         0.800" in text and "towers/popularity     4.000" in text
+    assert "linear_factor/oracle  0.600" in text
+    assert "towers/popularity     2.500" in text and "n/a" in text.split("[cold]")[1]
