@@ -86,7 +86,7 @@ def _config(folder, log, context: bool, loss: str) -> str:
                          if context else []},
         "model": {"dim": 8, "hidden": [32], "id_dropout": 0.0},
         "training": {"loss": loss, "epochs": 8, "batch_size": 256, "learning_rate": 0.01, "id_learning_rate": 0.03,
-                     "negatives": 4, "id_l2": 0.01, "patience": 8, "progress": "plain"},
+                     "id_l2": 0.01, "patience": 8, "progress": "plain", **({"negatives": 4} if loss == "logistic" else {})},
         "evaluation": {"top_k": [10], "baseline": False, "bilinear": context},
     }
     path = folder / f"cfg_{context}_{loss}.yaml"

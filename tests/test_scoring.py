@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import pickle
+from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
@@ -21,10 +22,9 @@ from towers.search.retrieval import top_n
 from towers.search.scorer import Scorer
 
 
-def _model_cfg(**changes) -> dict:
-    cfg = C.resolve({"interactions": {"path": "x.csv", "query_column": "u", "candidate_column": "i"}}, C.Path("."))["model"]
-    cfg.update(changes)
-    return cfg
+def _model_cfg(**changes) -> C.ModelSection:
+    cfg = C.resolve({"interactions": {"path": "x.csv", "query_column": "u", "candidate_column": "i"}}, Path("."))
+    return cfg.with_section("model", **changes).model
 
 
 def _block(n: int, generator: torch.Generator) -> dict:

@@ -16,6 +16,7 @@ import pyarrow.parquet as pq
 import torch
 
 from towers.atomic import write_atomic
+from towers.config import Config
 from towers.errors import TowersError
 
 
@@ -97,11 +98,11 @@ def _rows_of(path: str, ids: np.ndarray) -> tuple[torch.Tensor, torch.Tensor | N
     return vec.index_select(0, r), None if bias is None else bias.index_select(0, r)
 
 
-def true_vectors(cfg: dict, query_ids: np.ndarray, item_ids: np.ndarray, item_item: bool) -> TrueVectors | None:
+def true_vectors(cfg: Config, query_ids: np.ndarray, item_ids: np.ndarray, item_item: bool) -> TrueVectors | None:
     """The oracle files named by evaluation.oracle_users / oracle_items, mapped to the catalogs (user_item only)."""
-    ev = cfg["evaluation"]
-    if not ev["oracle_items"] or item_item:
+    ev = cfg.evaluation
+    if not ev.oracle_items or item_item:
         return None
-    qv, qb = _rows_of(ev["oracle_users"], query_ids)
-    cv, cb = _rows_of(ev["oracle_items"], item_ids)
+    qv, qb = _rows_of(ev.oracle_users, query_ids)
+    cv, cb = _rows_of(ev.oracle_items, item_ids)
     return TrueVectors(qv, cv, qb, cb)

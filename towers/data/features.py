@@ -103,7 +103,7 @@ class SideTable:
         self.table: pd.DataFrame | None = None
         self.ids: np.ndarray | None = None
         if path:
-            cols = [id_column] + [s["name"] for s in specs]
+            cols = [id_column] + [s.name for s in specs]
             self.table = read_table(path, columns=None)
             require_columns(self.table.columns, cols, path)
             self.table = self.table[list(dict.fromkeys(cols))].reset_index(drop=True)
@@ -112,7 +112,7 @@ class SideTable:
             # every feature value is checked here, in file order, so an error names the file's row
             # (encoders are later fitted on the training entities' rows only, a subset in another order)
             for spec in specs:
-                make_encoder(spec).validate(self.table[spec["name"]], path)
+                make_encoder(spec).validate(self.table[spec.name], path)
 
     @property
     def has_table(self) -> bool:

@@ -10,6 +10,7 @@ from __future__ import annotations
 import numpy as np
 import torch
 
+from towers.config import Config
 from towers.data.context import event_pairs, vectors_with_context
 from towers.data.embeddings_file import TrueVectors
 from towers.data.pairs import Pairs, SplitPairs
@@ -117,14 +118,14 @@ def oracle_scorer(truth: TrueVectors) -> Scorer:
     return Scorer(truth.query_vectors, truth.item_vectors, truth.query_bias, truth.item_bias)
 
 
-def evaluate_slices(scorers: dict[str, Scorer], data: SplitPairs, cfg: dict, event_vectors: dict | None = None) -> dict:
+def evaluate_slices(scorers: dict[str, Scorer], data: SplitPairs, cfg: Config, event_vectors: dict | None = None) -> dict:
     """{slice: {model: {metric: value}}} for the warm test pairs and, if any, the cold ones.
 
     With context columns each held-out event is its own query (context.py); event_vectors maps a
     model name to a function giving its query vectors for a slice's events (context-aware towers).
     """
-    explicit = cfg["training"]["loss"] == "squared"
-    ks, tie = cfg["evaluation"]["top_k"], cfg["run"]["seed"]
+    explicit = cfg.training.rating_loss
+    ks, tie = cfg.evaluation.top_k, cfg.run.seed
     empty = Pairs(torch.zeros(0, dtype=torch.int64), torch.zeros(0, dtype=torch.int64))
     slices = {"warm": (data.test, data.known(), data.warm_items)}
     if len(data.cold_test):
@@ -166,7 +167,7 @@ def format_table(metrics: dict) -> str:
     return "\n".join(lines).rstrip() + "\n"
 
 
-def validation_metrics(scorer: Scorer, data: Prepared, cfg: dict, pairs: Pairs,
+def validation_metrics(scorer: Scorer, data: Prepared, cfg: Config, pairs: Pairs,
                        model: TwoTowerModel | None = None) -> dict[str, float]:
     """Metrics of `pairs` (validation or test) in the warm setting.
 
@@ -180,8 +181,8 @@ def validation_metrics(scorer: Scorer, data: Prepared, cfg: dict, pairs: Pairs,
             vectors = vectors_with_context(model.query_tower, data.queries.block, pairs.query, pairs.context)
         pairs, known, users = event_pairs(pairs, known)
         scorer = scorer.for_events(users, vectors)
-    if cfg["training"]["loss"] == "squared":
+    if cfg.training.rating_loss:
         return rating_metrics(scorer, pairs)
-    return ranking_metrics(scorer, pairs, known, data.warm_items, cfg["evaluation"]["top_k"],
-                           tie_seed=cfg["run"]["seed"], max_queries=cfg["training"]["validate_queries"],
+    return ranking_metrics(scorer, pairs, known, data.warm_items, cfg.evaluation.top_k,
+                           tie_seed=cfg.run.seed, max_queries=cfg.training.validate_queries,
                            exclude_self=data.item_item)

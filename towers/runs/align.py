@@ -128,7 +128,7 @@ def rotate_bundle(payload: dict, path: Path, rotation: np.ndarray, reference: Pa
     written.
     """
     original = LoadedBundle(payload, path)
-    if original.model_cfg.get("non_negative"):
+    if original.model_cfg.non_negative:
         raise TowersError(f"{path}: this model has non_negative: true; a rotation would make entries negative, so "
                           "it cannot be aligned (retrain with non_negative: false to use align)")
     rotated = LoadedBundle(payload, path)  # a second, independent copy of the weights

@@ -11,7 +11,6 @@ import numpy as np
 import pandas as pd
 import torch
 
-from towers import config as C
 from towers.atomic import write_atomic
 from towers.data.context import (
     AveragedOverContexts,
@@ -237,17 +236,17 @@ class Run:
         ids = self.embeddings(self._query_side())[0][rows.numpy()]
         if not enc.encoders:
             return {"id": enc.id_encoder.transform(ids)}
-        ucfg = self.config["users"]
-        table = read_table(ucfg["path"])
-        require_columns(table.columns, [ucfg["id_column"]] + [e.name for e in enc.encoders], ucfg["path"])
-        t_ids = align_id_types(normalise_ids(table[ucfg["id_column"]], ucfg["path"], ucfg["id_column"]), ids)
+        ucfg = self.config.users
+        table = read_table(ucfg.path)
+        require_columns(table.columns, [ucfg.id_column] + [e.name for e in enc.encoders], ucfg.path)
+        t_ids = align_id_types(normalise_ids(table[ucfg.id_column], ucfg.path, ucfg.id_column), ids)
         at = pd.Index(t_ids).get_indexer(ids)
         if (at < 0).any():
             bad = ids[np.flatnonzero(at < 0)[0]]
-            raise TowersError(f"{ucfg['path']}, column '{ucfg['id_column']}': user {bad!r} has no row any more; "
+            raise TowersError(f"{ucfg.path}, column '{ucfg.id_column}': user {bad!r} has no row any more; "
                               "restore the user feature table the run was trained with")
         rows_df = table.iloc[at].reset_index(drop=True)
-        return enc.encode(ids, rows_df, ucfg["path"])
+        return enc.encode(ids, rows_df, ucfg.path)
 
     def _context_block(self, context: dict, n: int) -> dict:
         """One context (column -> value) encoded n times; columns not given count as missing."""
@@ -372,8 +371,7 @@ class Run:
         cfg = self.config
         notes = []
         if interactions is not None:
-            cfg = C.resolve({**{k: dict(v) for k, v in cfg.items()}, "interactions": {**cfg["interactions"], "path": str(interactions)}},
-                            Path.cwd())
+            cfg = cfg.with_section("interactions", path=str(Path(interactions).expanduser().resolve()))
             log = read_interactions(cfg)
             q, c, target, weight = log.query, log.candidate, log.target, log.weight
             qr = pd.Index(query_ids).get_indexer(align_id_types(q, query_ids))
@@ -392,7 +390,7 @@ class Run:
             split.test = new.subset(torch.nonzero(warm).flatten())
             split.cold_test = new.subset(torch.nonzero(~warm).flatten())
             split.cold_items = ~split.warm_items
-        explicit = cfg["training"]["loss"] == "squared"
+        explicit = cfg.training.rating_loss
         scorers = {"popularity": popularity_scorer(split.train, len(query_ids), len(item_ids), explicit, split.item_item)}
         for name in SUBFOLDER_MODELS:
             if self.folder.file(EMBEDDINGS["item"], name).is_file():

@@ -51,6 +51,7 @@ import math
 import numpy as np
 import torch
 
+from towers.config import Config
 from towers.data.prepare import Prepared
 from towers.model.towers import TwoTowerModel
 from towers.training.als import Cells, Factors, cell_scores, cells_of
@@ -115,20 +116,20 @@ def not_applicable(reason: str) -> dict:
     return {"applies": False, "reason": reason}
 
 
-def certify(model: TwoTowerModel, data: Prepared, cfg: dict) -> dict:
+def certify(model: TwoTowerModel, data: Prepared, cfg: Config) -> dict:
     """The certificate of a trained linear factor model (a dict for certificate.json)."""
-    tcfg, ev = cfg["training"], cfg["evaluation"]
-    if tcfg["loss"] != "squared":
-        return not_applicable(f"training.loss is {tcfg['loss']}; the certificate is for squared loss")
-    if tcfg["id_l2"] <= 0:
+    tcfg, ev = cfg.training, cfg.evaluation
+    if tcfg.loss != "squared":
+        return not_applicable(f"training.loss is {tcfg.loss}; the certificate is for squared loss")
+    if tcfg.id_l2 <= 0:
         return not_applicable("training.id_l2 is 0: without the trace-norm penalty there is no certificate")
-    if ev.get("baseline_non_negative"):
+    if ev.baseline_non_negative:
         return not_applicable("non-negative factors: the certificate covers unconstrained factors only")
     if model.shared:
         return not_applicable("a shared tower scores u_i . u_j, which is not a free product U V^T")
     cells = cells_of(data, dtype=torch.float64)
     factors = Factors.of_model(model, torch.float64)
-    return certificate(factors, cells, tcfg["id_l2"], ev["certificate_gap"])
+    return certificate(factors, cells, tcfg.id_l2, ev.certificate_gap)
 
 
 def certificate(f: Factors, cells: Cells, lam: float, tolerance: float = 1e-3) -> dict:
