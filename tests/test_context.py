@@ -112,7 +112,7 @@ def test_context_lifts_recall_where_the_channel_decides(context_runs):
     tr, va, te = (Pairs(p[k]["query"], p[k]["candidate"]) for k in ("train", "valid", "test"))
     known = Pairs(torch.cat([tr.query, va.query]), torch.cat([tr.candidate, va.candidate]))
     events, known_e, users = event_pairs(te, known)
-    plain = load(without["out"])._scorer("").for_events(users)
+    plain = load(without["out"])._scorer("towers").for_queries(users)
     r_without = ranking_metrics(plain, events, known_e, p["warm_items"], [10], tie_seed=1)["recall@10"]
     # planted: the channel rules out half the catalog; a model that cannot see it spends about half
     # of every top 10 on items the event's channel does not sell (measured here, softmax loss: 0.91 against 0.68)

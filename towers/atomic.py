@@ -57,6 +57,13 @@ def make_private_dir(path: str | Path) -> Path:
     return Path(missing[0]) if missing else path
 
 
+def open_private_log(path: str | Path):
+    """A text file opened for appending, created owner-only (0600): logs can carry ids from user data."""
+    path = Path(path)
+    make_private_dir(path.parent)
+    return os.fdopen(os.open(path, os.O_WRONLY | os.O_CREAT | os.O_APPEND, 0o600), "a", encoding="utf-8")
+
+
 def _write_error(path: Path, exc: OSError) -> TowersError:
     """Disk full, read-only or no permission: the previous file (if any) is untouched."""
     return TowersError(f"{path}: could not be written ({exc.strerror or exc}); the previous file, if any, is intact; "

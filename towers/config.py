@@ -227,8 +227,9 @@ class EvaluationSection:
                                   'als / weighted_als: conjugate-gradient steps per row solve in each round; 0 '
                                   'solves every row exactly by Cholesky',
                                   low=0)
-    baseline_event_weight: float = key('float', 40.0,
-                                       'weighted_als: alpha in the confidence 1 + alpha * r of an observed cell',
+    baseline_event_weight: float = key('float', 3.0,
+                                       'weighted_als: alpha in the confidence 1 + alpha * r of an observed cell '
+                                       '(3: the best worst-case value in scripts/measure_defaults.py)',
                                        low=0.0)
     baseline_non_negative: bool = key('bool', False,
                                       'als: keep every factor entry >= 0 (non-negative matrix factorisation by '

@@ -125,7 +125,7 @@ class SideTable:
         `log_column` names the log column the ids came from; a tuple of names means the ids are those
         columns one after another, equally long (item_item mode), so errors name the right column and row.
         With `codes`, interaction_ids are the log's distinct ids and row r of the log holds
-        interaction_ids[codes[r]] (dataset.IdColumn): every check runs once per distinct id.
+        interaction_ids[codes[r]] (data/prepare.IdColumn): every check runs once per distinct id.
         Returns (catalog ids, feature rows aligned with them or None, keep-mask over the log's rows).
         """
         columns = (log_column,) if isinstance(log_column, str) else tuple(log_column)

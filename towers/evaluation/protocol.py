@@ -19,7 +19,7 @@ from towers.evaluation import metrics as M
 from towers.model.embed import reads_context
 from towers.model.towers import TwoTowerModel
 from towers.search import rank_counts as RC
-from towers.search.scorer import Scorer
+from towers.search.scorer import Scorer, excluded_cells
 
 MODEL_ORDER = ("popularity", "linear_factor", "bilinear", "towers", "oracle")
 
@@ -91,17 +91,10 @@ def ranking_metrics(scorer: Scorer, test: Pairs, known: Pairs, candidate_mask: t
     n_cols = len(cand_rows)
     tie_break = torch.rand(n_cols, generator=torch.Generator().manual_seed(tie_seed))
 
-    # excluded (query row, column) pairs: the test queries' known pairs and, for item-item data, each
+    # excluded (query row, column) cells: the test queries' known pairs and, for item-item data, each
     # query item itself
-    kq = torch.from_numpy(known_keys // n_items)
-    kc = torch.from_numpy(known_keys % n_items)
-    kcol = col_of[kc]
-    relevant = (kcol >= 0) & torch.isin(kq, queries)
-    ex_rows, ex_cols = torch.searchsorted(queries, kq[relevant]), kcol[relevant]
-    if exclude_self:
-        own = col_of[queries]
-        has = torch.nonzero(own >= 0).flatten()
-        ex_rows, ex_cols = torch.cat([ex_rows, has]), torch.cat([ex_cols, own[has]])
+    ex_rows, ex_cols = excluded_cells(queries, torch.from_numpy(known_keys // n_items),
+                                      torch.from_numpy(known_keys % n_items), col_of, exclude_self)
 
     qb = None if over.query_bias is None else over.query_bias.index_select(0, queries)
     ranks, n_candidates = RC.rank_counts(over.query_vectors.index_select(0, queries), over.item_vectors, q_index,
@@ -142,7 +135,7 @@ def evaluate_slices(scorers: dict[str, Scorer], data: SplitPairs, cfg: Config, e
             s = scorers[name]
             if users is not None:
                 fn = (event_vectors or {}).get(name)
-                s = s.for_events(users, fn(raw) if fn else None)
+                s = s.for_queries(users, fn(raw) if fn else None)
             if explicit:
                 out[slice_name][name] = rating_metrics(s, pairs)
             else:
@@ -180,7 +173,7 @@ def validation_metrics(scorer: Scorer, data: Prepared, cfg: Config, pairs: Pairs
         if model is not None and reads_context(model.query_tower, data):
             vectors = vectors_with_context(model.query_tower, data.queries.block, pairs.query, pairs.context)
         pairs, known, users = event_pairs(pairs, known)
-        scorer = scorer.for_events(users, vectors)
+        scorer = scorer.for_queries(users, vectors)
     if cfg.training.rating_loss:
         return rating_metrics(scorer, pairs)
     return ranking_metrics(scorer, pairs, known, data.warm_items, cfg.evaluation.top_k,

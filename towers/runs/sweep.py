@@ -1,6 +1,6 @@
 """`towers sweep`: train a grid of k (model.dim) by one penalty and choose the cell by validation.
 
-Each cell is an ordinary run folder under SWEEP_DIR/cells/, trained by runner.train_run with the
+Each cell is an ordinary run folder under SWEEP_DIR/cells/, trained by runs/train.train_run with the
 cell's config (the user's config plus the cell's overrides, written beside the folder): in this
 process with --jobs 1, else in `python -m towers train` child processes. So a sweep is resumable the
 way a run is: finished cells are skipped, an interrupted cell continues from its RUN.partial checkpoint. The choice uses only the early-stopping metric on
@@ -27,7 +27,7 @@ import numpy as np
 import yaml
 
 from towers import config as C
-from towers.atomic import write_atomic, write_text_atomic
+from towers.atomic import open_private_log, write_atomic, write_text_atomic
 from towers.errors import TowersError
 from towers.runs.folder import LINEAR_FACTOR, TOWERS, RunFolder
 from towers.runs.train import train_run
@@ -263,7 +263,7 @@ def _train_here(todo: list[Cell], say, bar) -> bool:
     for cell in todo:
         say(f"cell {cell.name}: training (log: {cell.log_path})")
         started, code = time.perf_counter(), 0
-        with open(cell.log_path, "a", encoding="utf-8") as fh, contextlib.redirect_stderr(fh):
+        with open_private_log(cell.log_path) as fh, contextlib.redirect_stderr(fh):
             try:
                 train_run(cell.config_path, cell.folder, resume=True)
             except TrainingInterrupted as exc:
@@ -312,7 +312,7 @@ def _train_children(todo: list[Cell], workers: int, say, bar) -> bool:
 
 
 def _start(cell: Cell, env: dict) -> subprocess.Popen:
-    fh = open(cell.log_path, "a", encoding="utf-8")  # a stream of log lines, appended across resumes
+    fh = open_private_log(cell.log_path)  # a stream of log lines, appended across resumes
     try:
         return subprocess.Popen([sys.executable, "-m", "towers", "train", str(cell.config_path), "--out",
                                  str(cell.folder), "--resume"], stdout=fh, stderr=subprocess.STDOUT, env=env,

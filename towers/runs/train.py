@@ -147,13 +147,22 @@ def train_run(config_path: str | Path, out_dir: str | Path, overwrite: bool = Fa
     if not resuming:
         out.check_new(overwrite)
     distributed.start()
-    primary = distributed.is_primary()
-    scratch = None
-    if not primary:  # the other processes train alongside and write only into a private scratch folder
-        scratch = Path(tempfile.mkdtemp(prefix="towers-process-"))
+    if distributed.is_primary():
+        return _train_into(cfg, config_path, out, partial, resuming, init_from, started, primary=True)
+    # the other processes train alongside and write only into a private scratch folder, removed however they end
+    scratch = Path(tempfile.mkdtemp(prefix="towers-process-"))
+    try:
         if resuming:
             shutil.copytree(partial.path, scratch / partial.path.name)
-        partial = RunFolder(scratch / partial.path.name)
+        return _train_into(cfg, config_path, out, RunFolder(scratch / partial.path.name), resuming, init_from, started,
+                           primary=False)
+    finally:
+        shutil.rmtree(scratch, ignore_errors=True)
+
+
+def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, resuming: bool,
+                init_from: str | Path | None, started: float, primary: bool) -> dict:
+    """Everything after the output folders are settled: prepare, train, evaluate, write partial, publish to out."""
     if distributed.rank_and_size()[1] > 1:
         cfg = cfg.with_section("run", threads=distributed.threads_per_process(cfg.run.threads))
     apply_threads(cfg)
@@ -198,7 +207,6 @@ def train_run(config_path: str | Path, out_dir: str | Path, overwrite: bool = Fa
         partial.remove()  # a diverged run leaves nothing behind
         raise
     if not primary:
-        shutil.rmtree(scratch, ignore_errors=True)
         return {"metrics": None, "out": out.path, "table": ""}
     if data.oracle is not None:
         scorers["oracle"] = oracle_scorer(data.oracle)

@@ -1,7 +1,7 @@
 """Alternating least squares for the linear factor model: exact row solves of the training objective.
 
 The linear factor model scores a pair s = u_q . v_c + b_q + b_c + g. Under squared loss its summed
-training objective (N * J, see training.py) is
+training objective (N * J, see training/loop.py) is
 
     N J = sum_p 1/2 w_p (s_p - y_p)^2 + lambda/2 sum_e (||e_e||^2 + b_e^2)
 
@@ -446,7 +446,8 @@ def method_name(cfg: Config) -> str:
     ev = cfg.evaluation
     if ev.baseline_non_negative:
         return "non-negative ALS (HALS)"
-    solve = f"conjugate gradient, {ev.baseline_row_steps} steps" if ev.baseline_row_steps else "Cholesky"
+    steps = ev.baseline_row_steps
+    solve = f"conjugate gradient, {steps} step{'s' if steps > 1 else ''} per row" if steps else "Cholesky"
     kind = f"weighted ALS (alpha {ev.baseline_event_weight:g})" if ev.baseline_solver == "weighted_als" else "ALS"
     return f"{kind}, {solve}"
 

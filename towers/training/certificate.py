@@ -1,6 +1,6 @@
 """A global-optimality certificate for the linear factor model trained under squared loss.
 
-The objective. For the id-only model, N J (training.py) is, over the cells of the training pairs
+The objective. For the id-only model, N J (training/loop.py) is, over the cells of the training pairs
 (repeated pairs merged: weight omega = sum of their weights, target ybar = their weighted mean,
 C = the part of the loss no score can remove),
 
@@ -37,7 +37,7 @@ reach, in the units of N J. It is 0 exactly at a global optimum (t = 1 there). T
 passes when gap / F <= evaluation.certificate_gap.
 
 Reading a failing certificate: with a large gradient norm the model has not converged (train longer:
-more epochs or ALS sweeps); with a gradient norm near 0 and a ratio above 1 it sits at a stationary
+more epochs or ALS rounds); with a gradient norm near 0 and a ratio above 1 it sits at a stationary
 point of rank k that is not the global optimum, so k = model.dim is too small for this lambda.
 
 Spectral norms come from Golub-Kahan-Lanczos bidiagonalisation with full reorthogonalisation on
@@ -188,5 +188,5 @@ def describe(cert: dict, label: str = "linear_factor") -> str:
              f"objective within {cert['gap']:.3g} (relative {cert['relative_gap']:.2e}) of the global optimum")
     if cert["passed"]:
         return f"{label} certificate: passed; {facts}"
-    return (f"{label} certificate: not passed; {facts}; train longer (more epochs or ALS sweeps), and if the "
+    return (f"{label} certificate: not passed; {facts}; train longer (more epochs or ALS rounds), and if the "
             "gradient norm is already near 0, raise model.dim")
