@@ -234,8 +234,8 @@ class BareKernel:
         self.q_inv = 1.0 / torch.bincount(self.q, minlength=len(self.U)).clamp(min=1).float()
         self.c_inv = 1.0 / torch.bincount(self.c, minlength=len(self.V)).clamp(min=1).float()
         self.warm = torch.unique(self.c)
-        self.lr, self.lam = cfg["training"]["id_learning_rate"], cfg["training"]["id_l2"]
-        self.batch = cfg["training"]["batch_size"]
+        self.lr, self.lam = cfg.training.id_learning_rate, cfg.training.id_l2
+        self.batch = cfg.training.batch_size
         self.gen = torch.Generator().manual_seed(5)
         self.losses = []
 
@@ -397,7 +397,7 @@ def case_tower_flops(size: dict, work: Path) -> dict:
     model = build_model(data, cfg)
     trainer = Trainer(model, data, cfg)
     n = len(data.train)
-    _, step_flops = tower_flops_per_pair(model, cfg["training"]["negatives"])
+    _, step_flops = tower_flops_per_pair(model, cfg.training.sampled_negatives)
     peak = matmul_peak_flops()
     epochs = []
     seconds = best_time(lambda: epochs.append(trainer.run_epoch(len(epochs) + 1, False)), 2)

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import copy
+import dataclasses
 from pathlib import Path
 
 import pytest
@@ -35,48 +36,65 @@ def write(path: Path, text: str) -> Path:
 
 def test_every_schema_key_is_filled_with_its_default(tmp_path):
     cfg = C.resolve(minimal(), tmp_path)
-    assert list(cfg) == list(C.SCHEMA)
+    plain = cfg.to_dict()
+    assert list(plain) == list(C.SCHEMA)
     for section, keys in C.SCHEMA.items():
-        assert set(cfg[section]) == set(keys), section
+        assert set(plain[section]) == set(keys), section
         for name, key in keys.items():
             if section == "interactions" and name in ("path", "query_column", "candidate_column"):
                 continue
-            assert cfg[section][name] == key.default, f"{section}.{name}"
-    assert cfg["training"]["epochs"] == 20
-    assert cfg["model"]["hidden"] == [128]
-    assert cfg["users"]["features"] == []
+            assert getattr(getattr(cfg, section), name) == key.default, f"{section}.{name}"
+    assert cfg.training.epochs == 20
+    assert cfg.model.hidden == (128,)
+    assert cfg.users.features == ()
 
 
-def test_resolved_defaults_are_copies_not_the_schema_objects(tmp_path):
+def test_resolved_sections_are_frozen_and_changed_by_copy(tmp_path):
     cfg = C.resolve(minimal(), tmp_path)
-    cfg["model"]["hidden"].append(7)
-    cfg["evaluation"]["top_k"].append(5)
-    cfg["items"]["features"].append({"name": "x"})
-    assert C.SCHEMA["model"]["hidden"].default == [128]
-    assert C.SCHEMA["evaluation"]["top_k"].default == [20]
-    assert C.SCHEMA["items"]["features"].default == []
-    again = C.resolve(minimal(), tmp_path)
-    assert again["model"]["hidden"] == [128]
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        cfg.model.dim = 3
+    assert isinstance(cfg.model.hidden, tuple) and isinstance(cfg.evaluation.top_k, tuple)
+    changed = cfg.with_section("model", dim=4)
+    assert changed.model.dim == 4 and cfg.model.dim == 32
+    assert changed.training is cfg.training  # the other sections are shared, not copied
+
+
+def test_derived_facts_are_computed_once_in_the_config(tmp_path):
+    logistic = C.resolve(minimal(), tmp_path)
+    assert logistic.training.sampled_negatives == 4 and not logistic.training.rating_loss
+    assert C.resolve(minimal(training={"negatives": 7}), tmp_path).training.sampled_negatives == 7
+    for loss in ("softmax", "squared"):
+        cfg = C.resolve(minimal(training={"loss": loss}), tmp_path)
+        assert cfg.training.sampled_negatives == 0
+        assert cfg.training.rating_loss == (loss == "squared")
+    assert C.resolve(minimal(run={"mode": "item_item"}), tmp_path).query_side.features == ()
+
+
+@pytest.mark.parametrize("loss", ["softmax", "squared"])
+def test_negatives_with_a_loss_that_samples_none_is_an_error(tmp_path, loss):
+    with pytest.raises(TowersError, match=rf"^config key 'training\.negatives': got 3; .*training\.loss is {loss}"):
+        C.resolve(minimal(training={"loss": loss, "negatives": 3}), tmp_path)
+    assert C.resolve(minimal(training={"loss": loss, "negatives": 0}), tmp_path).training.sampled_negatives == 0
 
 
 def test_empty_sections_mean_all_defaults(tmp_path):
     cfg = C.resolve(minimal(model={}) | {"users": None}, tmp_path)
-    assert cfg["users"]["path"] is None and cfg["model"]["dim"] == 32
+    assert cfg.users.path is None and cfg.model.dim == 32
 
 
 def test_given_values_are_kept_and_coerced(tmp_path):
     cfg = C.resolve(minimal(model={"dim": 8.0, "hidden": [], "temperature": 1}, training={"epochs": 3}), tmp_path)
-    assert cfg["model"]["dim"] == 8 and isinstance(cfg["model"]["dim"], int)
-    assert cfg["model"]["temperature"] == 1.0 and isinstance(cfg["model"]["temperature"], float)
-    assert cfg["model"]["hidden"] == []
-    assert cfg["training"]["epochs"] == 3
+    assert cfg.model.dim == 8 and isinstance(cfg.model.dim, int)
+    assert cfg.model.temperature == 1.0 and isinstance(cfg.model.temperature, float)
+    assert cfg.model.hidden == ()
+    assert cfg.training.epochs == 3
 
 
 def test_integer_column_names_become_text(tmp_path):
     raw = minimal()
     raw["interactions"].update(query_column=0, candidate_column=1)
     cfg = C.resolve(raw, tmp_path)
-    assert cfg["interactions"]["query_column"] == "0" and cfg["interactions"]["candidate_column"] == "1"
+    assert cfg.interactions.query_column == "0" and cfg.interactions.candidate_column == "1"
 
 
 # ---------------------------------------------------------------- unknown names
@@ -193,7 +211,7 @@ def test_wrong_types_and_ranges_name_the_key_the_value_and_the_expectation(tmp_p
     ("evaluation", "test_fraction", 0.0),
 ])
 def test_boundary_values_are_accepted(tmp_path, section, key, value):
-    assert C.resolve(minimal(**{section: {key: value}}), tmp_path)[section][key] == value
+    assert getattr(getattr(C.resolve(minimal(**{section: {key: value}}), tmp_path), section), key) == value
 
 
 # ---------------------------------------------------------------- feature specs
@@ -205,11 +223,11 @@ def resolve_items(tmp_path, features, **extra):
 
 def test_feature_defaults_are_filled(tmp_path):
     cfg = resolve_items(tmp_path, [{"name": "tags", "kind": "tokens"}, {"name": "emb", "kind": "vector", "length": 4}])
-    tags, emb = cfg["items"]["features"]
-    assert set(tags) == set(C.FEATURE_KEYS)
-    assert tags == {"name": "tags", "kind": "tokens", "rare_below": 1, "hashed_rows": 0, "separator": "|",
-                    "token_limit": 32, "length": None, "dim": None}
-    assert emb["length"] == 4
+    tags, emb = cfg.items.features
+    assert set(C.plain(tags)) == set(C.FEATURE_KEYS)
+    assert C.plain(tags) == {"name": "tags", "kind": "tokens", "rare_below": 1, "hashed_rows": 0, "separator": "|",
+                             "token_limit": 32, "length": None, "dim": None}
+    assert emb.length == 4
 
 
 @pytest.mark.parametrize("spec,pattern", [
@@ -298,9 +316,9 @@ def test_interactions_needs_path_and_both_id_columns(tmp_path, missing):
 
 def test_default_stop_metric_and_direction(tmp_path):
     cfg = C.resolve(minimal(evaluation={"top_k": [10, 50]}), tmp_path)
-    assert C.default_stop_metric(cfg) == "recall@10"
+    assert cfg.stop_metric == "recall@10"
     cfg = C.resolve(minimal(training={"loss": "squared"}), tmp_path)
-    assert C.default_stop_metric(cfg) == "rmse"
+    assert cfg.stop_metric == "rmse"
     assert C.lower_is_better("rmse") and C.lower_is_better("mae")
     assert not C.lower_is_better("recall@10") and not C.lower_is_better("auc")
 
@@ -319,10 +337,10 @@ evaluation: {oracle_users: /abs/u.parquet, oracle_items: ~/i.parquet}
     monkeypatch.chdir(elsewhere)
     cfg = C.load(Path("..") / "project" / "configs" / "run.yaml")
     folder = cfg_file.resolve().parent
-    assert cfg["interactions"]["path"] == str(folder.parent / "data" / "log.csv")  # '..' is collapsed
-    assert cfg["items"]["path"] == str(folder / "items.parquet")
-    assert cfg["evaluation"]["oracle_users"] == str(Path("/abs/u.parquet"))
-    assert cfg["evaluation"]["oracle_items"] == str(Path("~/i.parquet").expanduser())
+    assert cfg.interactions.path == str(folder.parent / "data" / "log.csv")  # '..' is collapsed
+    assert cfg.items.path == str(folder / "items.parquet")
+    assert cfg.evaluation.oracle_users == str(Path("/abs/u.parquet"))
+    assert cfg.evaluation.oracle_items == str(Path("~/i.parquet").expanduser())
 
 
 def test_missing_config_file(tmp_path):
@@ -333,7 +351,7 @@ def test_missing_config_file(tmp_path):
 def test_config_with_byte_order_mark_loads(tmp_path):
     f = tmp_path / "bom.yaml"
     f.write_bytes("\ufeffinteractions: {path: a.csv, query_column: u, candidate_column: i}\n".encode("utf-8"))
-    assert C.load(f)["interactions"]["query_column"] == "u"
+    assert C.load(f).interactions.query_column == "u"
 
 
 def test_config_that_is_not_utf8_is_a_clear_error(tmp_path):
@@ -376,9 +394,9 @@ def test_overrides_apply_on_top_of_the_file(tmp_path):
     f = write(tmp_path / "c.yaml", "interactions: {path: a.csv, query_column: u, candidate_column: i}\n"
                                    "training: {epochs: 9, batch_size: 16}\nusers:\n")
     cfg = C.load(f, {"training": {"epochs": 2}, "users": {"missing_rows": "drop"}, "model": {"dim": 4}})
-    assert cfg["training"]["epochs"] == 2 and cfg["training"]["batch_size"] == 16
-    assert cfg["users"]["missing_rows"] == "drop"  # the empty 'users:' section accepts overrides
-    assert cfg["model"]["dim"] == 4
+    assert cfg.training.epochs == 2 and cfg.training.batch_size == 16
+    assert cfg.users.missing_rows == "drop"  # the empty 'users:' section accepts overrides
+    assert cfg.model.dim == 4
 
 
 def test_overrides_are_checked_like_file_values(tmp_path):
@@ -396,7 +414,7 @@ def test_top_level_list_file_is_rejected_even_with_overrides(tmp_path):
 # ---------------------------------------------------------------- presets and dump
 
 
-def full_config(tmp_path) -> dict:
+def full_config(tmp_path) -> C.Config:
     return C.resolve(minimal(
         users={"path": "users.csv", "id_column": "user",
                "features": [{"name": "age", "kind": "numeric"}, {"name": "city", "kind": "categorical", "rare_below": 3}]},
@@ -411,12 +429,12 @@ def test_linear_factor_preset(tmp_path):
     cfg = full_config(tmp_path)
     before = copy.deepcopy(cfg)
     preset = C.linear_factor_preset(cfg)
-    assert preset["model"]["hidden"] == []
-    assert preset["users"]["features"] == [] and preset["items"]["features"] == []
-    assert preset["model"]["id_dropout"] == 0.0
-    assert preset["model"]["use_ids"] is True
-    assert preset["model"]["normalize"] is False and preset["model"]["temperature"] == 1.0
-    assert preset["training"] == cfg["training"]  # training settings are shared
+    assert preset.model.hidden == ()
+    assert preset.users.features == () and preset.items.features == ()
+    assert preset.model.id_dropout == 0.0
+    assert preset.model.use_ids is True
+    assert preset.model.normalize is False and preset.model.temperature == 1.0
+    assert preset.training == cfg.training  # training settings are shared
     assert cfg == before  # the run's own config is untouched
 
 

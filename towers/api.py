@@ -1,18 +1,24 @@
-"""The Python API: train a run, load a run folder, align one run onto another.
+"""The Python API: every command of the `towers` CLI as a function, so both give the same results.
 
-The CLI calls exactly these functions, so both give the same results. A loaded `Run` embeds unseen
-entities, recommends, finds similar items and re-evaluates (towers/runs/run.py).
+train a run, load a run folder (a `Run` embeds unseen entities, recommends, finds similar items and
+re-evaluates: towers/runs/run.py), sweep a grid, write a report, align one run onto another, and
+generate the demo store; format_table and format_drift give the tables the CLI prints.
 """
 
 from __future__ import annotations
 
 from pathlib import Path
 
-from towers.runs.align import align_run
+from towers.evaluation.protocol import format_table
+from towers.runs.align import align_run, format_drift
+from towers.runs.report import write_report
 from towers.runs.run import Run
+from towers.runs.sweep import run_sweep
 from towers.runs.train import train_run
+from towers.synthetic.demo_store import generate_store
 
-__all__ = ["Run", "align_run", "load", "train"]
+__all__ = ["Run", "align_run", "format_drift", "format_table", "generate_store", "load", "run_sweep", "train",
+           "write_report"]
 
 
 def load(run_dir: str | Path) -> Run:

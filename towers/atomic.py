@@ -10,8 +10,8 @@ from __future__ import annotations
 import errno
 import os
 import tempfile
+from collections.abc import Callable
 from pathlib import Path
-from typing import Callable
 
 from towers.errors import TowersError
 
@@ -55,6 +55,13 @@ def make_private_dir(path: str | Path) -> Path:
         folder.mkdir(mode=0o700, exist_ok=True)
         os.chmod(folder, 0o700)  # mkdir's mode is masked by the umask; the folder must not depend on it
     return Path(missing[0]) if missing else path
+
+
+def open_private_log(path: str | Path):
+    """A text file opened for appending, created owner-only (0600): logs can carry ids from user data."""
+    path = Path(path)
+    make_private_dir(path.parent)
+    return os.fdopen(os.open(path, os.O_WRONLY | os.O_CREAT | os.O_APPEND, 0o600), "a", encoding="utf-8")
 
 
 def _write_error(path: Path, exc: OSError) -> TowersError:

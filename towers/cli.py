@@ -9,7 +9,10 @@ import sys
 import warnings
 from pathlib import Path
 
+from towers import api
+from towers.atomic import write_atomic
 from towers.errors import TowersError
+from towers.training.distributed import launch_workers
 
 
 class _OneLineParser(argparse.ArgumentParser):
@@ -93,8 +96,6 @@ def _check_frame_out(out: str) -> None:
 
 
 def _write_frame(df, out: str) -> None:
-    from towers.atomic import write_atomic
-
     _check_frame_out(out)
     path = Path(out)
     if path.suffix.lower() == ".csv":
@@ -124,61 +125,48 @@ def _show_warning(message, category, filename, lineno, file=None, line=None) -> 
 
 def run(args: argparse.Namespace) -> int:
     if args.command == "train":
-        from towers.runs.train import train_run
-
         if args.workers != 1 and "WORLD_SIZE" not in os.environ:
-            from towers.training.distributed import launch_workers
-
             argv = ["train", args.config, "--out", args.out] + ["--overwrite"] * args.overwrite + \
                 ["--resume"] * args.resume + (["--init-from", args.init_from] if args.init_from else [])
             return launch_workers(args.workers, argv)
-        result = train_run(args.config, args.out, overwrite=args.overwrite, resume=args.resume, init_from=args.init_from)
+        result = api.train(args.config, args.out, overwrite=args.overwrite, resume=args.resume, init_from=args.init_from)
         if result["metrics"] is not None:  # process 0 of a data-parallel run, or a plain run
             print(result["table"], end="")
             print(f"run folder: {result['out']}")
         return 0
     if args.command == "demo-data":
-        from towers.synthetic.demo_store import generate_store
-
-        files = generate_store(args.out, seed=args.seed)
+        files = api.generate_store(args.out, seed=args.seed)
         for name, path in files.items():
             print(f"{name}: {path}")
         return 0
 
     if args.command == "sweep":
-        from towers.runs.sweep import run_sweep
-
-        result = run_sweep(args.config, args.out, args.dims, args.penalties, args.penalty_key, args.jobs, args.baseline)
+        result = api.run_sweep(args.config, args.out, args.dims, args.penalties, args.penalty_key, args.jobs, args.baseline)
         print(result["table"], end="")
         best = result["best"]
         print(f"chosen: model.dim {best['dim']}, {args.penalty_key} {best['penalty']:g}; "
               f"config: {result['files']['best_config.yaml']}")
         return 0
     if args.command == "report":
-        from towers.runs.report import write_report
-
-        print(f"wrote {write_report(args.run_dir)}")
+        print(f"wrote {api.write_report(args.run_dir)}")
         return 0
     if args.command == "align":
-        from towers.runs.align import align_run, format_drift
-
-        record = align_run(args.run_dir, args.reference, args.out, overwrite=args.overwrite)
-        print(format_drift(record), end="")
+        record = api.align_run(args.run_dir, args.reference, args.out, overwrite=args.overwrite)
+        print(api.format_drift(record), end="")
         print(f"aligned run: {args.out}")
         return 0
 
-    from towers.api import load
-
     if args.command in ("recommend", "similar") and args.out:
         _check_frame_out(args.out)
-    run_ = load(args.run_dir)
+    run_ = api.load(args.run_dir)
     if args.command == "evaluate":
-        from towers.evaluation.protocol import format_table
-
         result = run_.evaluate(args.interactions)
         for note in result["notes"]:
             print(note, file=sys.stderr)
-        print(json.dumps(result["metrics"], indent=2) if args.json else format_table(result["metrics"]), end="\n" if args.json else "")
+        if args.json:
+            print(json.dumps(result["metrics"], indent=2))
+        else:
+            print(api.format_table(result["metrics"]), end="")
         return 0
     if args.command == "embed":
         source = args.items or args.users

@@ -1,16 +1,20 @@
-"""Run configuration: a declared schema, one validation routine, YAML in and out.
+"""Run configuration: every key declared once, one validation routine, typed sections, YAML in and out.
 
-Every key is declared once with its type, default, allowed range and meaning; the README's
-config table is written from the same declarations, and every error has one form:
-`config key 'section.key': got VALUE; expected ...`.
+Each section is a frozen dataclass whose fields declare their key (type, default, allowed range,
+meaning) in one place; `SCHEMA` and `FEATURE_KEYS` are views of those declarations, from which the
+README's config reference is generated. `resolve` checks a raw mapping against them (every error has
+one form: `config key 'section.key': got VALUE; expected ...`), applies the cross-key rules, and
+returns a `Config` of typed sections. Facts that follow from several keys (is this a rating loss?
+how many sampled negatives apply?) are properties computed here, once.
 """
 
 from __future__ import annotations
 
 import copy
+import dataclasses
 import difflib
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -33,127 +37,319 @@ class Key:
     nullable: bool = False
 
 
+def key(kind: str, default: Any, meaning: str, **constraints) -> Any:
+    """A dataclass field declaring one config key (its default is the field's default)."""
+    return field(default=default, metadata={"key": Key(kind, default, meaning, **constraints)})
+
+
 FEATURE_KINDS = ("numeric", "categorical", "tokens", "vector")
+CONTEXT_KINDS = ("numeric", "categorical")
+DEFAULT_NEGATIVES = 4  # sampled negatives per positive under the logistic loss when none are configured
 
-FEATURE_KEYS = {
-    "name": Key("str", None, "column in the feature table"),
-    "kind": Key("choice", None, "numeric, categorical, tokens or vector", choices=FEATURE_KINDS),
-    "rare_below": Key("int", 1, "categorical/tokens: values seen fewer than this many times in training share the "
-                      "unknown row (1 keeps every value seen)", low=1),
-    "hashed_rows": Key("int", 0, "categorical/tokens: > 0 hashes values into this many table rows instead of "
-                       "learning a vocabulary (for huge or open-ended value sets)", low=0),
-    "separator": Key("str", "|", "tokens: delimiter when the column is a string rather than a list"),
-    "token_limit": Key("int", 32, "tokens: longer lists keep their first this-many tokens", low=1),
-    "length": Key("int", None, "vector: the fixed vector length", low=1, nullable=True),
-    "dim": Key("int", None, "categorical/tokens: embedding size (default model.feature_dim)", low=1, nullable=True),
-}
 
-SIDE_KEYS = {
-    "path": Key("path", None, "feature table, CSV or parquet (relative to the config file)", nullable=True),
-    "id_column": Key("str", None, "column holding the entity id", nullable=True),
-    "features": Key("features", [], "list of features, each {name, kind, ...}"),
-    "missing_rows": Key(
-        "choice", "error",
-        "ids in the interactions with no feature row: error, drop (their interactions, with a count) or default (all-missing features)",
-        choices=("error", "drop", "default"),
-    ),
-}
+@dataclass(frozen=True)
+class FeatureSpec:
+    """One feature column of a feature table (or a context column of the log)."""
 
-SCHEMA: dict[str, dict[str, Key]] = {
-    "run": {
-        "mode": Key("choice", "user_item", "user_item (users -> items) or item_item (items -> items, one item table)",
-                    choices=("user_item", "item_item")),
-        "seed": Key("int", 0, "random seed: the same seed and data give the same run", low=0),
-        "threads": Key("int", 0, "torch CPU threads; 0 keeps torch's default", low=0),
-        "reuse_memory": Key("bool", True, "training keeps memory it frees for its next steps (glibc malloc settings) "
-                            "instead of handing it back to the system and faulting it in again each step"),
-    },
-    "interactions": {
-        "path": Key("path", None, "interaction log, CSV or parquet, one row per observed pair"),
-        "query_column": Key("str", None, "query-side id (a user, or the first item of a pair)"),
-        "candidate_column": Key("str", None, "candidate-side id (the item)"),
-        "target_column": Key("str", None, "rating, 0/1 label or count; absent means every row is a positive event", nullable=True),
-        "weight_column": Key("str", None, "non-negative weight of each row in the loss", nullable=True),
-        "time_column": Key("str", None, "event time; enables the time split", nullable=True),
-        "context": Key("features", [], "columns of the log describing each event (hour, channel, device ...), "
-                       "numeric or categorical, fed to the query tower beside the user's features"),
-    },
-    "users": SIDE_KEYS,
-    "items": SIDE_KEYS,
-    "model": {
-        "dim": Key("int", 32, "k, the embedding size", low=1),
-        "hidden": Key("int_list", [128], "hidden layer sizes of each tower's MLP; [] means a linear map"),
-        "activation": Key("choice", "relu", "hidden-layer activation", choices=("relu", "gelu", "tanh", "silu")),
-        "dropout": Key("float", 0.0, "dropout after each hidden layer", low=0.0, high=0.95),
-        "feature_dim": Key("int", 16, "embedding size of categorical and token features", low=1),
-        "use_ids": Key("bool", True, "learn a per-id embedding for entities seen in training"),
-        "id_dim": Key("int", None, "size of the id embedding feeding the MLP (default: dim)", low=1, nullable=True),
-        "id_dropout": Key("float", 0.1, "share of training rows whose id is replaced by the unknown row, so features learn to carry new entities (ignored for id-only towers)",
-                          low=0.0, high=1.0),
-        "normalize": Key("bool", False, "L2-normalise each tower's output"),
-        "temperature": Key("float", 1.0, "scores are divided by this (useful with normalize)", low=0.0, low_open=True),
-        "non_negative": Key("bool", False, "softplus on the output so every embedding entry is >= 0"),
-        "biases": Key("bool", True, "per-id biases on both sides plus a global bias"),
-        "shared_tower": Key("bool", False, "item_item mode: one tower embeds both sides"),
-    },
-    "training": {
-        "loss": Key("choice", "logistic", "squared (ratings), logistic (events with sampled negatives, or 0/1 targets) "
-                    "or softmax (events; each pair's item against the other items in its batch)",
-                    choices=("squared", "logistic", "softmax")),
-        "negatives": Key("int", 4, "logistic: sampled negatives per positive", low=0),
-        "negative_sampling": Key("choice", "popularity", "uniform over training items, or popularity^alpha",
-                                 choices=("uniform", "popularity")),
-        "popularity_exponent": Key("float", 0.75, "alpha in popularity^alpha", low=0.0, high=2.0),
-        "logq_correction": Key("bool", True, "softmax: subtract log of each item's share of training events from its "
-                               "in-batch logit, so popular items are not penalised for appearing often as negatives"),
-        "epochs": Key("int", 20, "maximum passes over the training pairs", low=1),
-        "batch_size": Key("int", 2048, "positive pairs per step", low=1),
-        "learning_rate": Key("float", 0.003, "Adam step size for network weights", low=0.0, low_open=True),
-        "id_learning_rate": Key("float", 0.01, "step size for id-embedding and bias tables", low=0.0, low_open=True),
-        "id_optimizer": Key("choice", "adam", "sparse optimiser for id tables: adam (SparseAdam), adagrad or sgd",
-                            choices=("adam", "adagrad", "sgd")),
-        "weight_decay": Key("float", 1e-5, "L2 penalty (wd/2)*||theta||^2 on network weights, per-pair objective", low=0.0),
-        "id_l2": Key("float", 0.1, "lambda: penalty (lambda/2)*(sum of squared id rows and biases), in the summed objective", low=0.0),
-        "patience": Key("int", 3, "stop after this many epochs without validation improvement", low=1),
-        "stop_metric": Key("str", None, "validation metric for early stopping (default rmse for squared, recall@K otherwise)", nullable=True),
-        "validate_queries": Key("int", 2000, "at most this many validation queries are ranked each epoch", low=1),
-        "progress": Key("choice", "auto", "progress bar: auto (only on a terminal), bar, or plain log lines",
-                        choices=("auto", "bar", "plain")),
-    },
-    "evaluation": {
-        "split": Key("choice", "random", "held-out split: random or time (needs interactions.time_column)",
-                     choices=("random", "time")),
-        "test_fraction": Key("float", 0.1, "share of pairs held out for the test slice", low=0.0, high=0.9),
-        "validation_fraction": Key("float", 0.1, "share of the remaining pairs held out for early stopping", low=0.0, high=0.9),
-        "cold_item_fraction": Key("float", 0.0, "share of items (with features) held out whole for the cold slice", low=0.0, high=0.9),
-        "top_k": Key("int_list", [20], "K values for recall@K and ndcg@K"),
-        "baseline": Key("bool", True, "also train the linear factor model (ids only, no hidden layer)"),
-        "bilinear": Key("bool", False, "also train the bilinear model (features and ids, linear towers: no hidden "
-                        "layer), to see what the towers' hidden layers add"),
-        "baseline_solver": Key("choice", "gradient", "how the linear factor model is trained: gradient (the same loop as "
-                               "the towers), als (ratings, squared loss) or weighted_als (implicit events)",
-                               choices=("gradient", "als", "weighted_als")),
-        "baseline_rounds": Key("int", 15, "als / weighted_als: most rounds (one round solves every user row, then every "
-                               "item row; early stopping may end sooner)", low=1),
-        "baseline_row_steps": Key("int", 3, "als / weighted_als: conjugate-gradient steps per row solve in each round; "
-                                 "0 solves every row exactly by Cholesky", low=0),
-        "baseline_event_weight": Key("float", 40.0, "weighted_als: alpha in the confidence 1 + alpha * r of an observed cell", low=0.0),
-        "baseline_non_negative": Key("bool", False, "als: keep every factor entry >= 0 (non-negative matrix factorisation by HALS)"),
-        "certificate_gap": Key("float", 0.001, "the linear factor certificate passes when its objective is within this share "
-                               "of the global optimum (squared loss)", low=0.0, low_open=True),
-        "oracle_users": Key("path", None, "parquet of true query vectors (id, embedding, bias), for an oracle row", nullable=True),
-        "oracle_items": Key("path", None, "parquet of true item vectors (id, embedding, bias), for an oracle row", nullable=True),
-    },
-    "report": {
-        "enabled": Key("bool", True, "write report.html into the run folder at the end of `towers train`"),
-        "color_feature": Key("str", None, "categorical item feature that colours the item map (default: the first one listed)",
-                             nullable=True),
-        "anchors": Key("int", 6, "how many of the most popular items get a neighbour list (when anchor_ids is empty)", low=0),
-        "anchor_ids": Key("str_or_int_list", [], "item ids to show neighbour lists for, instead of the most popular items"),
-        "neighbours": Key("int", 8, "neighbours listed per anchor item", low=1),
-        "map_items": Key("int", 20000, "at most this many items are drawn on the item map (a seeded random subset)", low=1),
-    },
-}
+    name: str | None = key('str', None, 'column in the feature table')
+    kind: str = key('choice', None,
+                    'numeric, categorical, tokens or vector',
+                    choices=('numeric', 'categorical', 'tokens', 'vector'))
+    rare_below: int = key('int', 1,
+                          'categorical/tokens: values seen fewer than this many times in training share the '
+                          'unknown row (1 keeps every value seen)',
+                          low=1)
+    hashed_rows: int = key('int', 0,
+                           'categorical/tokens: > 0 hashes values into this many table rows instead of learning'
+                           ' a vocabulary (for huge or open-ended value sets)',
+                           low=0)
+    separator: str = key('str', '|', 'tokens: delimiter when the column is a string rather than a list')
+    token_limit: int = key('int', 32, 'tokens: longer lists keep their first this-many tokens', low=1)
+    length: int | None = key('int', None, 'vector: the fixed vector length', low=1, nullable=True)
+    dim: int | None = key('int', None,
+                          'categorical/tokens: embedding size (default model.feature_dim)',
+                          low=1, nullable=True)
+
+
+@dataclass(frozen=True)
+class RunSection:
+    """run: what kind of run, its seed and threads."""
+
+    mode: str = key('choice', 'user_item',
+                    'user_item (users -> items) or item_item (items -> items, one item table)',
+                    choices=('user_item', 'item_item'))
+    seed: int = key('int', 0, 'random seed: the same seed and data give the same run', low=0)
+    threads: int = key('int', 0, "torch CPU threads; 0 keeps torch's default", low=0)
+    reuse_memory: bool = key('bool', True,
+                             'training keeps memory it frees for its next steps (glibc malloc settings) instead'
+                             ' of handing it back to the system and faulting it in again each step')
+
+
+@dataclass(frozen=True)
+class InteractionsSection:
+    """interactions: the log of observed pairs and its columns."""
+
+    path: str | None = key('path', None, 'interaction log, CSV or parquet, one row per observed pair')
+    query_column: str | None = key('str', None, 'query-side id (a user, or the first item of a pair)')
+    candidate_column: str | None = key('str', None, 'candidate-side id (the item)')
+    target_column: str | None = key('str', None,
+                                    'rating, 0/1 label or count; absent means every row is a positive event',
+                                    nullable=True)
+    weight_column: str | None = key('str', None, 'non-negative weight of each row in the loss', nullable=True)
+    time_column: str | None = key('str', None, 'event time; enables the time split', nullable=True)
+    context: tuple[FeatureSpec, ...] = key('features', (),
+                                           'columns of the log describing each event (hour, channel, device '
+                                           '...), numeric or categorical, fed to the query tower beside the '
+                                           "user's features")
+
+
+@dataclass(frozen=True)
+class SideSection:
+    """users or items: a feature table keyed by id."""
+
+    path: str | None = key('path', None, 'feature table, CSV or parquet (relative to the config file)', nullable=True)
+    id_column: str | None = key('str', None, 'column holding the entity id', nullable=True)
+    features: tuple[FeatureSpec, ...] = key('features', (), 'list of features, each {name, kind, ...}')
+    missing_rows: str = key('choice', 'error',
+                            'ids in the interactions with no feature row: error, drop (their interactions, with'
+                            ' a count) or default (all-missing features)',
+                            choices=('error', 'drop', 'default'))
+
+
+@dataclass(frozen=True)
+class ModelSection:
+    """model: the two towers."""
+
+    dim: int = key('int', 32, 'k, the embedding size', low=1)
+    hidden: tuple[int, ...] = key('int_list', (128,), "hidden layer sizes of each tower's MLP; [] means a linear map")
+    activation: str = key('choice', 'relu', 'hidden-layer activation', choices=('relu', 'gelu', 'tanh', 'silu'))
+    dropout: float = key('float', 0.0, 'dropout after each hidden layer', low=0.0, high=0.95)
+    feature_dim: int = key('int', 16, 'embedding size of categorical and token features', low=1)
+    use_ids: bool = key('bool', True, 'learn a per-id embedding for entities seen in training')
+    id_dim: int | None = key('int', None,
+                             'size of the id embedding feeding the MLP (default: dim)',
+                             low=1, nullable=True)
+    id_dropout: float = key('float', 0.1,
+                            'share of training rows whose id is replaced by the unknown row, so features learn '
+                            'to carry new entities (ignored for id-only towers)',
+                            low=0.0, high=1.0)
+    normalize: bool = key('bool', False, "L2-normalise each tower's output")
+    temperature: float = key('float', 1.0, 'scores are divided by this (useful with normalize)', low=0.0, low_open=True)
+    non_negative: bool = key('bool', False, 'softplus on the output so every embedding entry is >= 0')
+    biases: bool = key('bool', True, 'per-id biases on both sides plus a global bias')
+    shared_tower: bool = key('bool', False, 'item_item mode: one tower embeds both sides')
+
+
+@dataclass(frozen=True)
+class TrainingSection:
+    """training: the objective, the optimisers and early stopping."""
+
+    loss: str = key('choice', 'logistic',
+                    'squared (ratings), logistic (events with sampled negatives, or 0/1 targets) or softmax '
+                    "(events; each pair's item against the other items in its batch)",
+                    choices=('squared', 'logistic', 'softmax'))
+    negatives: int | None = key('int', None,
+                                'logistic: sampled negatives per positive (empty: 4); any other loss samples none, '
+                                'so a value above 0 there is an error',
+                                low=0, nullable=True)
+    negative_sampling: str = key('choice', 'popularity',
+                                 'uniform over training items, or popularity^alpha',
+                                 choices=('uniform', 'popularity'))
+    popularity_exponent: float = key('float', 0.75, 'alpha in popularity^alpha', low=0.0, high=2.0)
+    logq_correction: bool = key('bool', True,
+                                "softmax: subtract log of each item's share of training events from its in-"
+                                'batch logit, so popular items are not penalised for appearing often as '
+                                'negatives')
+    epochs: int = key('int', 20, 'maximum passes over the training pairs', low=1)
+    batch_size: int = key('int', 2048, 'positive pairs per step', low=1)
+    learning_rate: float = key('float', 0.003, 'Adam step size for network weights', low=0.0, low_open=True)
+    id_learning_rate: float = key('float', 0.01, 'step size for id-embedding and bias tables', low=0.0, low_open=True)
+    id_optimizer: str = key('choice', 'adam',
+                            'sparse optimiser for id tables: adam (SparseAdam), adagrad or sgd',
+                            choices=('adam', 'adagrad', 'sgd'))
+    weight_decay: float = key('float', 1e-05,
+                              'L2 penalty (wd/2)*||theta||^2 on network weights, per-pair objective',
+                              low=0.0)
+    id_l2: float = key('float', 0.1,
+                       'lambda: penalty (lambda/2)*(sum of squared id rows and biases), in the summed objective',
+                       low=0.0)
+    patience: int = key('int', 3, 'stop after this many epochs without validation improvement', low=1)
+    stop_metric: str | None = key('str', None,
+                                  'validation metric for early stopping (default rmse for squared, recall@K '
+                                  'otherwise)',
+                                  nullable=True)
+    validate_queries: int = key('int', 2000, 'at most this many validation queries are ranked each epoch', low=1)
+    progress: str = key('choice', 'auto',
+                        'progress bar: auto (only on a terminal), bar, or plain log lines',
+                        choices=('auto', 'bar', 'plain'))
+
+    @property
+    def rating_loss(self) -> bool:
+        """Squared loss: the model predicts ratings (judged by RMSE), not a ranking of events."""
+        return self.loss == "squared"
+
+    @property
+    def sampled_negatives(self) -> int:
+        """Negatives drawn per positive: the logistic loss's only (softmax uses the batch's other items)."""
+        if self.loss != "logistic":
+            return 0
+        return DEFAULT_NEGATIVES if self.negatives is None else self.negatives
+
+
+@dataclass(frozen=True)
+class EvaluationSection:
+    """evaluation: the held-out split, the reference models and the oracle."""
+
+    split: str = key('choice', 'random',
+                     'held-out split: random or time (needs interactions.time_column)',
+                     choices=('random', 'time'))
+    test_fraction: float = key('float', 0.1, 'share of pairs held out for the test slice', low=0.0, high=0.9)
+    validation_fraction: float = key('float', 0.1,
+                                     'share of the remaining pairs held out for early stopping',
+                                     low=0.0, high=0.9)
+    cold_item_fraction: float = key('float', 0.0,
+                                    'share of items (with features) held out whole for the cold slice',
+                                    low=0.0, high=0.9)
+    top_k: tuple[int, ...] = key('int_list', (20,), 'K values for recall@K and ndcg@K')
+    baseline: bool = key('bool', True, 'also train the linear factor model (ids only, no hidden layer)')
+    bilinear: bool = key('bool', False,
+                         'also train the bilinear model (features and ids, linear towers: no hidden layer), to '
+                         "see what the towers' hidden layers add")
+    baseline_solver: str = key('choice', 'gradient',
+                               'how the linear factor model is trained: gradient (the same loop as the towers),'
+                               ' als (ratings, squared loss) or weighted_als (implicit events)',
+                               choices=('gradient', 'als', 'weighted_als'))
+    baseline_rounds: int = key('int', 15,
+                               'als / weighted_als: most rounds (one round solves every user row, then every '
+                               'item row; early stopping may end sooner)',
+                               low=1)
+    baseline_row_steps: int = key('int', 3,
+                                  'als / weighted_als: conjugate-gradient steps per row solve in each round; 0 '
+                                  'solves every row exactly by Cholesky',
+                                  low=0)
+    baseline_event_weight: float = key('float', 3.0,
+                                       'weighted_als: alpha in the confidence 1 + alpha * r of an observed cell '
+                                       '(3: the best worst-case value in scripts/measure_defaults.py)',
+                                       low=0.0)
+    baseline_non_negative: bool = key('bool', False,
+                                      'als: keep every factor entry >= 0 (non-negative matrix factorisation by '
+                                      'HALS)')
+    certificate_gap: float = key('float', 0.001,
+                                 'the linear factor certificate passes when its objective is within this share '
+                                 'of the global optimum (squared loss)',
+                                 low=0.0, low_open=True)
+    oracle_users: str | None = key('path', None,
+                                   'parquet of true query vectors (id, embedding, bias), for an oracle row',
+                                   nullable=True)
+    oracle_items: str | None = key('path', None,
+                                   'parquet of true item vectors (id, embedding, bias), for an oracle row',
+                                   nullable=True)
+
+
+@dataclass(frozen=True)
+class ReportSection:
+    """report: report.html of a run folder."""
+
+    enabled: bool = key('bool', True, 'write report.html into the run folder at the end of `towers train`')
+    color_feature: str | None = key('str', None,
+                                    'categorical item feature that colours the item map (default: the first one'
+                                    ' listed)',
+                                    nullable=True)
+    anchors: int = key('int', 6,
+                       'how many of the most popular items get a neighbour list (when anchor_ids is empty)',
+                       low=0)
+    anchor_ids: tuple[str | int, ...] = key('str_or_int_list', (),
+                                            'item ids to show neighbour lists for, instead of the most popular '
+                                            'items')
+    neighbours: int = key('int', 8, 'neighbours listed per anchor item', low=1)
+    map_items: int = key('int', 20000,
+                         'at most this many items are drawn on the item map (a seeded random subset)',
+                         low=1)
+
+
+def keys_of(section_type) -> dict[str, Key]:
+    """The declared keys of a section dataclass, in declaration order."""
+    return {f.name: f.metadata["key"] for f in dataclasses.fields(section_type)}
+
+
+FEATURE_KEYS = keys_of(FeatureSpec)
+SIDE_KEYS = keys_of(SideSection)
+SECTION_TYPES = {"run": RunSection, "interactions": InteractionsSection, "users": SideSection, "items": SideSection,
+                 "model": ModelSection, "training": TrainingSection, "evaluation": EvaluationSection,
+                 "report": ReportSection}
+SCHEMA: dict[str, dict[str, Key]] = {name: keys_of(t) for name, t in SECTION_TYPES.items()}
+
+
+@dataclass(frozen=True)
+class Config:
+    """A resolved run config: one typed section per YAML section."""
+
+    run: RunSection
+    interactions: InteractionsSection
+    users: SideSection
+    items: SideSection
+    model: ModelSection
+    training: TrainingSection
+    evaluation: EvaluationSection
+    report: ReportSection
+
+    @property
+    def item_item(self) -> bool:
+        return self.run.mode == "item_item"
+
+    @property
+    def query_side(self) -> SideSection:
+        """The section whose table feeds the query tower: items in item_item runs, users otherwise."""
+        return self.items if self.item_item else self.users
+
+    @property
+    def stop_metric(self) -> str:
+        """The validation metric used for early stopping (configured, or rmse / recall@K by loss)."""
+        if self.training.stop_metric:
+            return self.training.stop_metric
+        return "rmse" if self.training.rating_loss else f"recall@{self.evaluation.top_k[0]}"
+
+    def with_section(self, name: str, **changes) -> "Config":
+        """A copy with some keys of one section changed (values as resolve would give them)."""
+        return dataclasses.replace(self, **{name: dataclasses.replace(getattr(self, name), **changes)})
+
+    def to_dict(self) -> dict:
+        """Plain data (lists, dicts, strings, numbers): what config.yaml and model bundles hold."""
+        return {name: _plain(dataclasses.asdict(getattr(self, name))) for name in SECTION_TYPES}
+
+
+def plain(section) -> dict:
+    """One typed section (or feature spec) as plain data."""
+    return _plain(dataclasses.asdict(section))
+
+
+def _plain(value):
+    if isinstance(value, dict):
+        return {k: _plain(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_plain(v) for v in value]
+    return value
+
+
+def _typed_value(kind: str, value):
+    if kind == "features":
+        return tuple(FeatureSpec(**f) for f in value)
+    if kind in ("int_list", "str_or_int_list"):
+        return tuple(value)
+    return value
+
+
+def section_of(name: str, values: dict):
+    """One typed section from checked plain values."""
+    t = SECTION_TYPES[name]
+    keys = SCHEMA[name]
+    return t(**{k: _typed_value(keys[k].kind, v) for k, v in values.items()})
+
+
+def model_section(values: dict) -> ModelSection:
+    """A ModelSection from a bundle's plain model settings (keys it lacks keep their defaults)."""
+    keys = SCHEMA["model"]
+    return ModelSection(**{k: _typed_value(keys[k].kind, v) for k, v in values.items() if k in keys})
 
 
 RENAMED_KEYS = {
@@ -216,6 +412,8 @@ def _check_value(label: str, key: Key, value: Any, base_dir: Path) -> Any:
             raise bad("a file path")
         p = Path(value).expanduser()
         return str(p if p.is_absolute() else (base_dir / p).resolve())
+    if isinstance(value, tuple):  # a declared default
+        value = list(value)
     if key.kind == "int_list":
         if not isinstance(value, list) or not all(isinstance(v, int) and not isinstance(v, bool) and v > 0 for v in value):
             raise bad("a list of positive whole numbers, e.g. [128, 64]")
@@ -249,15 +447,17 @@ def _check_feature(label: str, index: int, spec: Any, base_dir: Path) -> dict:
             raise TowersError(f"config key '{here}.{k}' is unknown{_suggest(str(k), FEATURE_KEYS)}")
     for required in ("name", "kind"):
         if spec.get(required) is None:
-            raise TowersError(f"config key '{here}.{required}' is missing; every feature needs a name and a kind ({', '.join(FEATURE_KINDS)})")
+            raise TowersError(f"config key '{here}.{required}' is missing; "
+                              f"every feature needs a name and a kind ({', '.join(FEATURE_KINDS)})")
     out = {k: _check_value(f"{here}.{k}", key, spec.get(k, key.default), base_dir) for k, key in FEATURE_KEYS.items()}
     if out["kind"] == "vector" and out["length"] is None:
         raise TowersError(f"config key '{here}.length' is missing; a vector feature needs its fixed length")
     return out
 
 
-def resolve(raw: dict, base_dir: Path) -> dict:
-    """Check a raw config mapping against SCHEMA and fill defaults; paths resolve against base_dir."""
+def resolve(raw: dict, base_dir: Path) -> Config:
+    """Check a raw config mapping against SCHEMA, fill defaults, apply the cross-key rules; paths resolve
+    against base_dir."""
     if not isinstance(raw, dict):
         raise TowersError(f"config: the top level must be a mapping of sections ({', '.join(SCHEMA)})")
     for section in raw:
@@ -277,7 +477,7 @@ def resolve(raw: dict, base_dir: Path) -> dict:
         out[section] = {k: _check_value(f"{section}.{k}", key, copy.deepcopy(given.get(k, key.default)), base_dir)
                         for k, key in keys.items()}
     _check_consistency(out)
-    return out
+    return Config(**{name: section_of(name, values) for name, values in out.items()})
 
 
 def _check_consistency(cfg: dict) -> None:
@@ -292,8 +492,9 @@ def _check_consistency(cfg: dict) -> None:
             raise TowersError(f"config key '{side}.id_column' is missing; name the id column of {s['path']}")
         if s["features"] and not s["path"]:
             raise TowersError(f"config key '{side}.path' is missing; features were listed but no feature table given")
-    if cfg["run"]["mode"] == "item_item" and any(v != SIDE_KEYS[k].default for k, v in cfg["users"].items()):
-        raise TowersError("config: item_item mode draws both sides from 'items'; remove the 'users' section or use mode user_item")
+    if cfg["run"]["mode"] == "item_item" and any(v != _plain(SIDE_KEYS[k].default) for k, v in cfg["users"].items()):
+        raise TowersError("config: item_item mode draws both sides from 'items'; "
+                          "remove the 'users' section or use mode user_item")
     if cfg["model"]["shared_tower"] and cfg["run"]["mode"] != "item_item":
         raise TowersError("config key 'model.shared_tower': only item_item mode can share one tower; set it false")
     _check_context(cfg)
@@ -304,7 +505,8 @@ def _check_consistency(cfg: dict) -> None:
     if ev["split"] == "time" and not cfg["interactions"]["time_column"]:
         raise TowersError("config key 'evaluation.split': 'time' needs interactions.time_column; set it or use split: random")
     if ev["test_fraction"] + ev["validation_fraction"] >= 0.95:
-        raise TowersError("config keys 'evaluation.test_fraction' + 'validation_fraction' leave almost no training data; lower them")
+        raise TowersError("config keys 'evaluation.test_fraction' + 'validation_fraction' leave almost no training data; "
+                          "lower them")
     if not ev["top_k"]:
         raise TowersError("config key 'evaluation.top_k': give at least one K, e.g. [20]")
     if (ev["oracle_users"] is None) != (ev["oracle_items"] is None) and cfg["run"]["mode"] == "user_item":
@@ -315,6 +517,11 @@ def _check_consistency(cfg: dict) -> None:
             f"{m}@{k}" for m in ("recall", "ndcg") for k in ev["top_k"]}
         if stop not in allowed:
             raise TowersError(f"config key 'training.stop_metric': got {stop!r}; expected one of {', '.join(sorted(allowed))}")
+    training = cfg["training"]
+    if training["negatives"] and training["loss"] != "logistic":
+        raise TowersError(f"config key 'training.negatives': got {training['negatives']}; expected empty or 0, since "
+                          f"training.loss is {training['loss']} (only the logistic loss samples negatives; "
+                          "remove the key or use loss: logistic)")
     _check_baseline_solver(cfg)
     colour = cfg["report"]["color_feature"]
     categorical = [f["name"] for f in cfg["items"]["features"] if f["kind"] == "categorical"]
@@ -346,9 +553,6 @@ def _check_baseline_solver(cfg: dict) -> None:
                           "evaluation.baseline_solver is als (non-negative factors are fitted by HALS under squared loss)")
 
 
-CONTEXT_KINDS = ("numeric", "categorical")
-
-
 def _check_context(cfg: dict) -> None:
     """Context columns feed the query tower; their names share its input namespace."""
     context = cfg["interactions"]["context"]
@@ -374,19 +578,12 @@ def _check_context(cfg: dict) -> None:
                           "belongs to the query side only; set model.shared_tower: false")
 
 
-def default_stop_metric(cfg: dict) -> str:
-    """The validation metric used for early stopping when none is configured."""
-    if cfg["training"]["stop_metric"]:
-        return cfg["training"]["stop_metric"]
-    return "rmse" if cfg["training"]["loss"] == "squared" else f"recall@{cfg['evaluation']['top_k'][0]}"
-
-
 def lower_is_better(metric: str) -> bool:
     return metric in ("rmse", "mae")
 
 
-def load(path: str | Path, overrides: dict | None = None) -> dict:
-    """Read a YAML config with yaml.safe_load, resolve it, and return the full mapping."""
+def load(path: str | Path, overrides: dict | None = None) -> Config:
+    """Read a YAML config with yaml.safe_load and resolve it."""
     path = Path(path)
     if not path.is_file():
         raise TowersError(f"{path}: config file not found; give the path to a YAML config (see configs/)")
@@ -412,23 +609,18 @@ def load(path: str | Path, overrides: dict | None = None) -> dict:
         raise TowersError(f"{path}: {exc}") from None
 
 
-def dump(cfg: dict) -> str:
+def dump(cfg: Config) -> str:
     """The resolved config as YAML text (absolute paths, every default filled in)."""
-    return yaml.safe_dump(cfg, sort_keys=False)
+    return yaml.safe_dump(cfg.to_dict(), sort_keys=False)
 
 
-def bilinear_preset(cfg: dict) -> dict:
+def bilinear_preset(cfg: Config) -> Config:
     """The bilinear model: each tower a linear map of its features and id row (no hidden layer)."""
-    base = copy.deepcopy(cfg)
-    base["model"].update(hidden=[], dropout=0.0)
-    return base
+    return cfg.with_section("model", hidden=(), dropout=0.0)
 
 
-def linear_factor_preset(cfg: dict) -> dict:
+def linear_factor_preset(cfg: Config) -> Config:
     """The linear factor model (matrix factorisation with biases) as a preset of the same towers."""
-    base = copy.deepcopy(cfg)
-    base["model"].update(hidden=[], use_ids=True, id_dropout=0.0, normalize=False, temperature=1.0,
-                         non_negative=False, dropout=0.0, shared_tower=False, id_dim=None)
-    base["users"]["features"] = []
-    base["items"]["features"] = []
-    return base
+    base = cfg.with_section("model", hidden=(), use_ids=True, id_dropout=0.0, normalize=False, temperature=1.0,
+                            non_negative=False, dropout=0.0, id_dim=None)
+    return base.with_section("users", features=()).with_section("items", features=())

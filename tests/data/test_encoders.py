@@ -415,7 +415,7 @@ def test_make_encoder_builds_from_resolved_feature_specs(tmp_path):
             {"name": "v", "kind": "vector", "length": 4},
         ]},
     }, tmp_path)
-    p, c, t, v = (E.make_encoder(s) for s in cfg["items"]["features"])
+    p, c, t, v = (E.make_encoder(s) for s in cfg.items.features)
     assert isinstance(p, E.NumericEncoder) and p.name == "p"
     assert isinstance(c, E.CategoricalEncoder) and c.rare_below == 3 and c.hashed_rows == 0
     assert isinstance(t, E.TokenEncoder) and (t.separator, t.token_limit, t.hashed_rows) == (";", 5, 9)

@@ -94,7 +94,7 @@ def _trained(files: Path, kind: str):
     """(model, prepared data, the config it was built with, its label in a run folder), after one epoch."""
     data_kind, family, model_settings = KINDS[kind]
     cfg = _config(files, data_kind, model_settings)
-    torch.manual_seed(cfg["run"]["seed"])
+    torch.manual_seed(cfg.run.seed)
     data = prepare(cfg)
     if family == "linear_factor":
         model, preset = baseline_model(data, cfg)

@@ -2,16 +2,17 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import torch
 
 from towers import config as C
 from towers.model.towers import TwoTowerModel
 
 
-def _model_cfg(**changes) -> dict:
-    cfg = C.resolve({"interactions": {"path": "x.csv", "query_column": "u", "candidate_column": "i"}}, C.Path("."))["model"]
-    cfg.update(changes)
-    return cfg
+def _model_cfg(**changes) -> C.ModelSection:
+    cfg = C.resolve({"interactions": {"path": "x.csv", "query_column": "u", "candidate_column": "i"}}, Path("."))
+    return cfg.with_section("model", **changes).model
 
 
 def _block(n: int, generator: torch.Generator) -> dict:

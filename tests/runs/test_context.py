@@ -51,7 +51,7 @@ def _config(folder, log, context: bool, loss: str) -> str:
                          if context else []},
         "model": {"dim": 8, "hidden": [32], "id_dropout": 0.0},
         "training": {"loss": loss, "epochs": 8, "batch_size": 256, "learning_rate": 0.01, "id_learning_rate": 0.03,
-                     "negatives": 4, "id_l2": 0.01, "patience": 8, "progress": "plain"},
+                     "id_l2": 0.01, "patience": 8, "progress": "plain", **({"negatives": 4} if loss == "logistic" else {})},
         "evaluation": {"top_k": [10], "baseline": False, "bilinear": context},
     }
     path = folder / f"cfg_{context}_{loss}.yaml"
@@ -77,7 +77,7 @@ def test_context_lifts_recall_where_the_channel_decides(context_runs):
     tr, va, te = (Pairs(p[k]["query"], p[k]["candidate"]) for k in ("train", "valid", "test"))
     known = Pairs(torch.cat([tr.query, va.query]), torch.cat([tr.candidate, va.candidate]))
     events, known_e, users = event_pairs(te, known)
-    plain = load(without["out"])._scorer("").for_events(users)
+    plain = load(without["out"])._scorer("towers").for_queries(users)
     r_without = ranking_metrics(plain, events, known_e, p["warm_items"], [10], tie_seed=1)["recall@10"]
     # planted: the channel rules out half the catalog; a model that cannot see it spends about half
     # of every top 10 on items the event's channel does not sell (measured here, softmax loss: 0.91 against 0.68)

@@ -81,12 +81,12 @@ def test_chosen_cell_is_the_best_validation_value_and_best_config_trains_it(swee
     chosen = [r for r in rows if r["chosen"] == "1"]
     assert [r["cell"] for r in chosen] == [argmax] == [result["best"]["cell"]]
     best = C.load(out / "best_config.yaml")  # loads from the sweep folder: its paths were made absolute
-    assert best["model"]["dim"] == int(chosen[0]["dim"])
-    assert best["training"]["weight_decay"] == float(chosen[0]["penalty"])
+    assert best.model.dim == int(chosen[0]["dim"])
+    assert best.training.weight_decay == float(chosen[0]["penalty"])
     original = C.load(config)
-    assert best["interactions"]["path"] == original["interactions"]["path"]
-    assert best["evaluation"]["baseline"] is True  # the user's own setting, not the cells' override
-    assert best["training"]["epochs"] == original["training"]["epochs"]
+    assert best.interactions.path == original.interactions.path
+    assert best.evaluation.baseline is True  # the user's own setting, not the cells' override
+    assert best.training.epochs == original.training.epochs
 
 
 @pytest.mark.slow

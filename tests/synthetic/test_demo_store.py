@@ -9,6 +9,7 @@ import pyarrow.parquet as pq
 import pytest
 
 from towers.errors import TowersError
+from towers.search.scorer import FORMULA
 from towers.synthetic.demo_store import STORE_NAME, generate_store, main
 
 SMALL = dict(n_items=300, n_customers=400, n_new_items=60)
@@ -196,7 +197,8 @@ def test_truth_files_layout_and_coverage(tables):
             ("id", id_type), ("embedding", pa.list_(pa.float32(), RANK)),
             ("bias", pa.float32())])
         assert t.schema.metadata[b"k"] == str(RANK).encode()
-        assert t.schema.metadata[b"score"] == b"dot"
+        # the same layout and score metadata as a run's exported embeddings, so the oracle reads them alike
+        assert t.schema.metadata[b"score"] == FORMULA.encode() and t.schema.metadata[b"model"] == b"planted truth"
         assert set(t["id"].to_pylist()) == ids and t.num_rows == len(ids)
         _, emb, bias = _vectors(t)
         assert np.isfinite(emb).all() and np.isfinite(bias).all()

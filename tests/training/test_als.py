@@ -211,9 +211,9 @@ def _write_config(tmp_path, df: pd.DataFrame, training: dict, model: dict, evalu
     return C.load(tmp_path / "config.yaml")
 
 
-def _prepared(cfg: dict):
+def _prepared(cfg: C.Config):
     apply_threads(cfg)
-    torch.manual_seed(cfg["run"]["seed"])
+    torch.manual_seed(cfg.run.seed)
     data = prepare(cfg)
     model, preset = baseline_model(data, cfg)
     return data, model, preset

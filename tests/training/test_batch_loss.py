@@ -100,7 +100,7 @@ def test_uniform_sampler_draws_warm_items_uniformly(tmp_path):
     cfg, data = _data(tmp_path, [], False, sampling="uniform")
     warm = torch.zeros(30, dtype=torch.bool)
     warm[torch.arange(0, 30, 3)] = True
-    sampler = NegativeSampler(data.train, 30, warm, cfg["training"], torch.Generator().manual_seed(2))
+    sampler = NegativeSampler(data.train, 30, warm, cfg.training, torch.Generator().manual_seed(2))
     draws = sampler(200_000)
     counts = torch.bincount(draws, minlength=30).double()
     assert counts[~warm].sum() == 0

@@ -137,9 +137,9 @@ def _frame(y: np.ndarray, keep: np.ndarray | None = None, weights: np.ndarray | 
     return df
 
 
-def _baseline(cfg: dict):
+def _baseline(cfg: C.Config):
     apply_threads(cfg)
-    torch.manual_seed(cfg["run"]["seed"])
+    torch.manual_seed(cfg.run.seed)
     data = prepare(cfg)
     model, preset = baseline_model(data, cfg)
     return data, model, preset
@@ -258,5 +258,5 @@ def test_training_run_writes_the_certificate(tmp_path, capfd):
     history = json.loads((out / "history.json").read_text(encoding="utf-8"))["epochs"]["linear_factor"]
     assert history and all(set(r) == {"epoch", "loss", "pairs_per_s", "valid_rmse"} for r in history)
     err = capfd.readouterr().err
-    assert "linear_factor certificate:" in err and "linear_factor sweep 1/60" in err
-    assert cfg["evaluation"]["baseline_solver"] == "als"
+    assert "linear_factor certificate:" in err and "linear_factor round 1/60" in err
+    assert cfg.evaluation.baseline_solver == "als"

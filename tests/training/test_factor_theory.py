@@ -70,9 +70,9 @@ def _write_run(tmp_path, y: np.ndarray, training: dict, model: dict, seed: int =
     return resolved
 
 
-def _prepared_baseline(cfg: dict):
+def _prepared_baseline(cfg: C.Config):
     apply_threads(cfg)
-    torch.manual_seed(cfg["run"]["seed"])
+    torch.manual_seed(cfg.run.seed)
     data = prepare(cfg)
     assert len(data.train) == N_PAIRS and len(data.valid) == 0 and len(data.test) == 0
     model, preset = baseline_model(data, cfg)
@@ -116,7 +116,7 @@ def test_unregularised_rank3_factors_reach_truncated_svd_residual(tmp_path):
                      {"dim": k, "hidden": [], "biases": False})
     data, model, preset = _prepared_baseline(cfg)
     result = fit(model, data, preset, None, "linear_factor")
-    assert len(result.history) == cfg["training"]["epochs"]
+    assert len(result.history) == cfg.training.epochs
 
     u, v = _factors(model, data)
     _check_mapping(model, data, y, u, v)
@@ -182,7 +182,7 @@ def test_logistic_loss_is_torch_bce_on_a_training_batch(tmp_path):
                                    "id_optimizer": "adam", "id_learning_rate": 0.05, "batch_size": 64},
                      {"dim": 4, "hidden": [], "biases": True}, seed=3)
     apply_threads(cfg)
-    torch.manual_seed(cfg["run"]["seed"])
+    torch.manual_seed(cfg.run.seed)
     data = prepare(cfg)
     model, preset = baseline_model(data, cfg)
     trainer = Trainer(model, data, preset, "linear_factor")

@@ -16,6 +16,7 @@ import pyarrow.parquet as pq
 import torch
 
 from towers.atomic import write_atomic
+from towers.config import Config
 from towers.errors import TowersError
 
 
@@ -66,7 +67,10 @@ def read_embeddings(path: str | Path) -> tuple[np.ndarray, torch.Tensor, torch.T
         flat = emb.flatten().to_numpy(zero_copy_only=False)
     vectors = torch.from_numpy(np.asarray(flat, dtype=np.float32).reshape(-1, k).copy())
     ids_col = table.column("id").to_pandas()
-    ids = ids_col.to_numpy(dtype=np.int64) if pd.api.types.is_integer_dtype(ids_col) else ids_col.astype(str).to_numpy(dtype=object)
+    if pd.api.types.is_integer_dtype(ids_col):
+        ids = ids_col.to_numpy(dtype=np.int64)
+    else:
+        ids = ids_col.astype(str).to_numpy(dtype=object)
     bias = None
     if "bias" in table.column_names:
         bias = torch.from_numpy(table.column("bias").to_numpy().astype(np.float32))
@@ -97,11 +101,11 @@ def _rows_of(path: str, ids: np.ndarray) -> tuple[torch.Tensor, torch.Tensor | N
     return vec.index_select(0, r), None if bias is None else bias.index_select(0, r)
 
 
-def true_vectors(cfg: dict, query_ids: np.ndarray, item_ids: np.ndarray, item_item: bool) -> TrueVectors | None:
+def true_vectors(cfg: Config, query_ids: np.ndarray, item_ids: np.ndarray, item_item: bool) -> TrueVectors | None:
     """The oracle files named by evaluation.oracle_users / oracle_items, mapped to the catalogs (user_item only)."""
-    ev = cfg["evaluation"]
-    if not ev["oracle_items"] or item_item:
+    ev = cfg.evaluation
+    if not ev.oracle_items or item_item:
         return None
-    qv, qb = _rows_of(ev["oracle_users"], query_ids)
-    cv, cb = _rows_of(ev["oracle_items"], item_ids)
+    qv, qb = _rows_of(ev.oracle_users, query_ids)
+    cv, cb = _rows_of(ev.oracle_items, item_ids)
     return TrueVectors(qv, cv, qb, cb)

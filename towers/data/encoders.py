@@ -12,6 +12,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import torch
 
+from towers.config import FeatureSpec
 from towers.data.tables import numeric_column
 from towers.errors import TowersError, where
 
@@ -339,16 +340,16 @@ class IdEncoder:
 ENCODERS = {c.kind: c for c in (NumericEncoder, CategoricalEncoder, TokenEncoder, VectorEncoder)}
 
 
-def make_encoder(spec: dict):
+def make_encoder(spec: FeatureSpec):
     """A fresh (unfitted) encoder for one feature spec from the config."""
-    name, kind = spec["name"], spec["kind"]
+    name, kind = spec.name, spec.kind
     if kind == "numeric":
         return NumericEncoder(name)
     if kind == "categorical":
-        return CategoricalEncoder(name, spec["rare_below"], spec["hashed_rows"])
+        return CategoricalEncoder(name, spec.rare_below, spec.hashed_rows)
     if kind == "tokens":
-        return TokenEncoder(name, spec["rare_below"], spec["hashed_rows"], spec["separator"], spec["token_limit"])
-    return VectorEncoder(name, spec["length"])
+        return TokenEncoder(name, spec.rare_below, spec.hashed_rows, spec.separator, spec.token_limit)
+    return VectorEncoder(name, spec.length)
 
 
 STATE_KEYS_BEFORE = {"min_count": "rare_below", "hash_buckets": "hashed_rows", "max_tokens": "token_limit"}

@@ -103,7 +103,7 @@ class SideTable:
         self.table: pd.DataFrame | None = None
         self.ids: np.ndarray | None = None
         if path:
-            cols = [id_column] + [s["name"] for s in specs]
+            cols = [id_column] + [s.name for s in specs]
             self.table = read_table(path, columns=None)
             require_columns(self.table.columns, cols, path)
             self.table = self.table[list(dict.fromkeys(cols))].reset_index(drop=True)
@@ -112,7 +112,7 @@ class SideTable:
             # every feature value is checked here, in file order, so an error names the file's row
             # (encoders are later fitted on the training entities' rows only, a subset in another order)
             for spec in specs:
-                make_encoder(spec).validate(self.table[spec["name"]], path)
+                make_encoder(spec).validate(self.table[spec.name], path)
 
     @property
     def has_table(self) -> bool:
@@ -125,7 +125,7 @@ class SideTable:
         `log_column` names the log column the ids came from; a tuple of names means the ids are those
         columns one after another, equally long (item_item mode), so errors name the right column and row.
         With `codes`, interaction_ids are the log's distinct ids and row r of the log holds
-        interaction_ids[codes[r]] (dataset.IdColumn): every check runs once per distinct id.
+        interaction_ids[codes[r]] (data/prepare.IdColumn): every check runs once per distinct id.
         Returns (catalog ids, feature rows aligned with them or None, keep-mask over the log's rows).
         """
         columns = (log_column,) if isinstance(log_column, str) else tuple(log_column)

@@ -11,6 +11,7 @@ import numpy as np
 import pandas as pd
 import torch
 
+from towers.config import Config
 from towers.data.context import ContextEncoders
 from towers.data.embeddings_file import TrueVectors, true_vectors
 from towers.data.encoders import make_encoder
@@ -96,37 +97,39 @@ class Log:
         return self.candidate_ids.values()
 
 
-def read_interactions(cfg: dict) -> Log:
+def read_interactions(cfg: Config) -> Log:
     """The log's id arrays, optional target / weight / time arrays and context columns, validated."""
-    ic = cfg["interactions"]
-    path = ic["path"]
-    cols = [ic["query_column"], ic["candidate_column"]] + [ic[k] for k in ("target_column", "weight_column", "time_column") if ic[k]]
-    context_cols = [f["name"] for f in ic["context"]]
+    ic = cfg.interactions
+    path = ic.path
+    optional = [ic.target_column, ic.weight_column, ic.time_column]
+    cols = [ic.query_column, ic.candidate_column] + [c for c in optional if c]
+    context_cols = [f.name for f in ic.context]
     df = read_table(path, columns=list(dict.fromkeys(cols + context_cols)))
-    q = IdColumn(*factorize_ids(df[ic["query_column"]], path, ic["query_column"]))
-    c = IdColumn(*factorize_ids(df[ic["candidate_column"]], path, ic["candidate_column"]))
+    q = IdColumn(*factorize_ids(df[ic.query_column], path, ic.query_column))
+    c = IdColumn(*factorize_ids(df[ic.candidate_column], path, ic.candidate_column))
     target = weight = when = None
-    if ic["target_column"]:
-        target = numeric_column(df[ic["target_column"]], path, ic["target_column"], allow_missing=False)
-        if cfg["training"]["loss"] != "squared":
+    if ic.target_column:
+        target = numeric_column(df[ic.target_column], path, ic.target_column, allow_missing=False)
+        if not cfg.training.rating_loss:
             out = (target < 0) | (target > 1)
             if out.any():
                 row = int(np.flatnonzero(out)[0])
-                raise TowersError(f"{where(path, ic['target_column'], row + 1)}: {cfg['training']['loss']} targets must lie in [0, 1], got "
+                raise TowersError(f"{where(path, ic.target_column, row + 1)}: {cfg.training.loss} targets must lie in [0, 1], "
+                                  f"got "
                                   f"{target[row]!r}; use loss: squared for ratings, or move counts to weight_column")
-    if ic["weight_column"]:
-        weight = numeric_column(df[ic["weight_column"]], path, ic["weight_column"], allow_missing=False)
+    if ic.weight_column:
+        weight = numeric_column(df[ic.weight_column], path, ic.weight_column, allow_missing=False)
         neg = weight < 0
         if neg.any():
             row = int(np.flatnonzero(neg)[0])
-            raise TowersError(f"{where(path, ic['weight_column'], row + 1)}: negative weight {weight[row]!r}; weights must be >= 0")
-    if ic["time_column"]:
-        when = time_column(df[ic["time_column"]], path, ic["time_column"])
+            raise TowersError(f"{where(path, ic.weight_column, row + 1)}: negative weight {weight[row]!r}; weights must be >= 0")
+    if ic.time_column:
+        when = time_column(df[ic.time_column], path, ic.time_column)
     context = None
     if context_cols:
         context = df[context_cols].reset_index(drop=True)
-        for spec in ic["context"]:  # every value checked in file order, so an error names the log's row
-            make_encoder(spec).validate(context[spec["name"]], path)
+        for spec in ic.context:  # every value checked in file order, so an error names the log's row
+            make_encoder(spec).validate(context[spec.name], path)
     return Log(q, c, target, weight, when, context)
 
 
@@ -156,23 +159,23 @@ def _catalog_rows(ids: IdColumn, catalog_ids: np.ndarray) -> np.ndarray:
     return pd.Index(catalog_ids).get_indexer(align_id_types(ids.uniques, catalog_ids))[ids.codes]
 
 
-def prepare(cfg: dict, previous=None) -> Prepared:
+def prepare(cfg: Config, previous=None) -> Prepared:
     """Read, validate, split and encode everything the config names.
 
     previous: an earlier run's LoadedBundle to warm-start from; its encoders are extended, never
     renumbered (warm_start.py), and `started_from` records what was added.
     """
-    ic = cfg["interactions"]
-    item_item = cfg["run"]["mode"] == "item_item"
+    ic = cfg.interactions
+    item_item = cfg.item_item
     log = read_interactions(cfg)
     q_log, c_log, target, weight, when = log.query_ids, log.candidate_ids, log.target, log.weight, log.time
     notes: list[str] = []
 
-    item_side = SideTable(cfg["items"]["path"], cfg["items"]["id_column"], cfg["items"]["features"], cfg["items"]["missing_rows"])
+    item_side = SideTable(cfg.items.path, cfg.items.id_column, cfg.items.features, cfg.items.missing_rows)
     # ids are matched once per distinct id and mapped to rows through the codes (see IdColumn)
     if item_item:
         both = _joint_ids(q_log, c_log)
-        c_ids, c_table, keep_both = item_side.catalog(both.uniques, ic["path"], (ic["query_column"], ic["candidate_column"]),
+        c_ids, c_table, keep_both = item_side.catalog(both.uniques, ic.path, (ic.query_column, ic.candidate_column),
                                                       codes=both.codes)
         n = len(q_log.codes)
         keep = keep_both[:n] & keep_both[n:]
@@ -180,9 +183,9 @@ def prepare(cfg: dict, previous=None) -> Prepared:
         rows_both = _catalog_rows(both, c_ids)
         q_rows, c_rows = rows_both[:n][keep], rows_both[n:][keep]
     else:
-        user_side = SideTable(cfg["users"]["path"], cfg["users"]["id_column"], cfg["users"]["features"], cfg["users"]["missing_rows"])
-        q_ids, q_table, keep_q = user_side.catalog(q_log.uniques, ic["path"], ic["query_column"], codes=q_log.codes)
-        c_ids, c_table, keep_c = item_side.catalog(c_log.uniques, ic["path"], ic["candidate_column"], codes=c_log.codes)
+        user_side = SideTable(cfg.users.path, cfg.users.id_column, cfg.users.features, cfg.users.missing_rows)
+        q_ids, q_table, keep_q = user_side.catalog(q_log.uniques, ic.path, ic.query_column, codes=q_log.codes)
+        c_ids, c_table, keep_c = item_side.catalog(c_log.uniques, ic.path, ic.candidate_column, codes=c_log.codes)
         keep = keep_q & keep_c
         q_rows, c_rows = _catalog_rows(q_log, q_ids)[keep], _catalog_rows(c_log, c_ids)[keep]
     dropped = int((~keep).sum())
@@ -191,33 +194,34 @@ def prepare(cfg: dict, previous=None) -> Prepared:
     sel = lambda a: None if a is None else a[keep]  # noqa: E731
     pairs = _as_pairs(q_rows, c_rows, sel(target), sel(weight), sel(when))
     if len(pairs) == 0:
-        raise TowersError(f"{ic['path']}: no interaction rows are left after matching ids to the feature tables; check the id columns")
+        raise TowersError(f"{ic.path}: no interaction rows are left after matching ids to the feature tables; "
+                          f"check the id columns")
 
-    has_item_features = bool(cfg["items"]["features"])
+    has_item_features = bool(cfg.items.features)
     item_has_row = np.ones(len(c_ids), bool)
     if item_side.has_table:
         item_has_row = pd.Index(item_side.ids).get_indexer(c_ids) >= 0
-    split: Split = make_split(pairs, len(c_ids), cfg["evaluation"], cfg["run"]["seed"],
+    split: Split = make_split(pairs, len(c_ids), cfg.evaluation, cfg.run.seed,
                               cold_eligible=torch.from_numpy(item_has_row) if has_item_features else None,
                               item_item=item_item)
     if len(split.train) == 0:
-        raise TowersError(f"{ic['path']}: the split leaves no training pairs; lower evaluation fractions or add data")
+        raise TowersError(f"{ic.path}: the split leaves no training pairs; lower evaluation fractions or add data")
     context_encoders = None
     if log.context is not None:
         frame = log.context.iloc[np.flatnonzero(keep)].reset_index(drop=True)
-        context_encoders = ContextEncoders.fit(frame, ic["context"], np.asarray(split.train), ic["path"])
-        pairs.context = context_encoders.encode(frame, ic["path"])
+        context_encoders = ContextEncoders.fit(frame, ic.context, np.asarray(split.train), ic.path)
+        pairs.context = context_encoders.encode(frame, ic.path)
     train = pairs.subset(split.train)
 
     tq, tc = train.query.numpy(), train.candidate.numpy()
     if item_item:
         c_train_ids = _train_entities(c_ids, np.concatenate([tq, tc]))
-        c_enc = SideEncoders.fit(c_table, cfg["items"]["path"], cfg["items"]["id_column"], cfg["items"]["features"], c_train_ids)
+        c_enc = SideEncoders.fit(c_table, cfg.items.path, cfg.items.id_column, cfg.items.features, c_train_ids)
         q_enc = c_enc
     else:
-        q_enc = SideEncoders.fit(q_table, cfg["users"]["path"], cfg["users"]["id_column"], cfg["users"]["features"],
+        q_enc = SideEncoders.fit(q_table, cfg.users.path, cfg.users.id_column, cfg.users.features,
                                  _train_entities(q_ids, tq))
-        c_enc = SideEncoders.fit(c_table, cfg["items"]["path"], cfg["items"]["id_column"], cfg["items"]["features"],
+        c_enc = SideEncoders.fit(c_table, cfg.items.path, cfg.items.id_column, cfg.items.features,
                                  _train_entities(c_ids, tc))
     started_from = None
     if previous is not None:
@@ -229,15 +233,15 @@ def prepare(cfg: dict, previous=None) -> Prepared:
             q_enc, started_from["users"] = extend_side(q_enc, previous.query_encoders, "user")
         context_encoders, started_from["context"] = extend_context(context_encoders, previous.extra.get("context"))
         if context_encoders is not None:
-            pairs.context = context_encoders.encode(frame, ic["path"])
+            pairs.context = context_encoders.encode(frame, ic.path)
             train = pairs.subset(split.train)
-    c_block = c_enc.encode(c_ids, c_table, cfg["items"]["path"])
+    c_block = c_enc.encode(c_ids, c_table, cfg.items.path)
     c_side = Side(c_ids, c_enc, c_block, has_item_features)
     if item_item:
         q_side = c_side
     else:
-        q_block = q_enc.encode(q_ids, q_table, cfg["users"]["path"])
-        q_side = Side(q_ids, q_enc, q_block, bool(cfg["users"]["features"]))
+        q_block = q_enc.encode(q_ids, q_table, cfg.users.path)
+        q_side = Side(q_ids, q_enc, q_block, bool(cfg.users.features))
 
     warm = torch.zeros(len(c_ids), dtype=torch.bool)
     warm[train.candidate] = True
@@ -251,14 +255,14 @@ def prepare(cfg: dict, previous=None) -> Prepared:
     return prepared
 
 
-def _check_oracles(cfg: dict, data: Prepared) -> None:
+def _check_oracles(cfg: Config, data: Prepared) -> None:
     """Read the oracle files now, so a missing or incomplete one fails before training, not after it."""
     data.oracle = true_vectors(cfg, data.queries.ids, data.candidates.ids, item_item=data.item_item)
 
 
-def _warn_small_data(cfg: dict, train: Pairs, n_queries: int, n_items: int, notes: list[str]) -> None:
+def _warn_small_data(cfg: Config, train: Pairs, n_queries: int, n_items: int, notes: list[str]) -> None:
     """k beyond what the data can identify: more factors than the smaller side has entities."""
-    k = cfg["model"]["dim"]
+    k = cfg.model.dim
     limit = min(n_queries, n_items, max(1, len(train) // max(1, n_queries + n_items)))
     if k > min(n_queries, n_items):
         notes.append(f"warning: model.dim = {k} exceeds min(#queries, #items) = {min(n_queries, n_items)}; "

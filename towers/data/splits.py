@@ -7,6 +7,8 @@ from dataclasses import dataclass
 import numpy as np
 import torch
 
+from towers.config import EvaluationSection
+
 
 @dataclass
 class Split:
@@ -19,30 +21,31 @@ class Split:
     cold_items: torch.Tensor  # bool (n_items,)
 
 
-def make_split(pairs, n_items: int, ev: dict, seed: int, cold_eligible: torch.Tensor | None, item_item: bool) -> Split:
+def make_split(pairs, n_items: int, ev: EvaluationSection, seed: int, cold_eligible: torch.Tensor | None,
+               item_item: bool) -> Split:
     """Split pairs per the evaluation config; the same seed always gives the same split."""
     rng = np.random.default_rng(seed + 1)
     q = pairs.query.numpy()
     c = pairs.candidate.numpy()
     cold_items = np.zeros(n_items, dtype=bool)
-    if ev["cold_item_fraction"] > 0 and cold_eligible is not None:
+    if ev.cold_item_fraction > 0 and cold_eligible is not None:
         seen = np.zeros(n_items, dtype=bool)
         seen[c] = True
         if item_item:
             seen[q] = True
         candidates = np.flatnonzero(seen & cold_eligible.numpy())
-        n_cold = int(round(ev["cold_item_fraction"] * len(candidates)))
+        n_cold = int(round(ev.cold_item_fraction * len(candidates)))
         cold_items[rng.choice(candidates, size=n_cold, replace=False)] = True
     touches_cold = cold_items[c] | (cold_items[q] if item_item else False)
     cold_test = np.flatnonzero(cold_items[c] & ~(cold_items[q] if item_item else False))
     rest = np.flatnonzero(~touches_cold)
-    if ev["split"] == "time" and pairs.time is not None:
+    if ev.split == "time" and pairs.time is not None:
         order = rest[np.argsort(pairs.time.numpy()[rest], kind="stable")]
     else:
         order = rest[rng.permutation(len(rest))]
-    n_test = int(round(ev["test_fraction"] * len(order)))
-    n_valid = int(round(ev["validation_fraction"] * (len(order) - n_test)))
-    if ev["split"] == "time":
+    n_test = int(round(ev.test_fraction * len(order)))
+    n_valid = int(round(ev.validation_fraction * (len(order) - n_test)))
+    if ev.split == "time":
         test = order[len(order) - n_test:]
         valid = order[len(order) - n_test - n_valid:len(order) - n_test]
         train = order[:len(order) - n_test - n_valid]

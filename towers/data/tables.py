@@ -43,11 +43,12 @@ def read_table(path: str | Path, columns: list[str] | None = None) -> pd.DataFra
                                   "delimiters")
     except TowersError:
         raise
-    except (pd.errors.EmptyDataError,):
+    except pd.errors.EmptyDataError:
         raise TowersError(f"{path}: the file is empty; it needs a header row and at least one data row") from None
     except (pd.errors.ParserError, UnicodeDecodeError, ValueError, OSError) as exc:
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-        raise TowersError(f"{path}: cannot be read as {suffix[1:]} ({first}); check the file is a valid {suffix[1:]} table") from None
+        raise TowersError(f"{path}: cannot be read as {suffix[1:]} ({first}); "
+                          f"check the file is a valid {suffix[1:]} table") from None
     except Exception as exc:  # pyarrow raises its own ArrowInvalid family
         _raise_if_arrow(exc, path)
         raise
@@ -113,7 +114,8 @@ def read_table_chunks(path: str | Path, columns: list[str], rows: int):
         raise
     except (ValueError, OSError) as exc:
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-        raise TowersError(f"{path}: cannot be read as {suffix[1:]} ({first}); check the file is a valid {suffix[1:]} table") from None
+        raise TowersError(f"{path}: cannot be read as {suffix[1:]} ({first}); "
+                          f"check the file is a valid {suffix[1:]} table") from None
     except Exception as exc:
         _raise_if_arrow(exc, path)
         raise
@@ -169,7 +171,7 @@ def normalise_ids(series: pd.Series, path, column) -> np.ndarray:
         return values.astype(np.int64)
     values = series.to_numpy(dtype=object)
     kinds = pd.Series(values).map(type)
-    non_str = (kinds != str).to_numpy()
+    non_str = (~kinds.map(lambda t: t is str)).to_numpy()
     if non_str.any() and not non_str.all():
         row = int(np.flatnonzero(non_str)[0])
         raise TowersError(f"{where(path, column, row + 1)}: mixed id types (found {type(values[row]).__name__} among strings); "
@@ -219,7 +221,8 @@ def check_unique_ids(ids: np.ndarray, path, column) -> None:
     dup = pd.Series(ids).duplicated().to_numpy()
     if dup.any():
         row = int(np.flatnonzero(dup)[0])
-        raise TowersError(f"{where(path, column, row + 1)}: duplicate id {ids[row:row + 1].tolist()[0]!r}; a feature table needs one row per id "
+        raise TowersError(f"{where(path, column, row + 1)}: duplicate id {ids[row:row + 1].tolist()[0]!r}; "
+                          f"a feature table needs one row per id "
                           "(deduplicate it)")
 
 

@@ -1,16 +1,16 @@
-"""Full-catalog ranking metrics and rating errors.
+"""Full-catalog ranking metrics and rating errors, as pure functions of tensors.
 
-Ranking metrics are computed from one number per held-out positive: its
-0-based rank among the query's non-excluded candidates. The evaluator scores
-queries against the whole catalog in blocks, sets each query's excluded
-entries (its training positives) to -inf, and passes the block here.
-Everything is vectorised over queries and positives.
+Ranking metrics are computed from one number per held-out positive: its 0-based rank among the
+query's non-excluded candidates. The evaluation protocol counts those ranks tile by tile
+(search/rank_counts.py) and passes them to `per_query_ranking`. `ranks_of_positives` computes the
+same ranks from a dense score block with excluded entries set to -inf: the reference the tests hold
+the tiled counts to. Everything is vectorised over queries and positives.
 """
 
 from __future__ import annotations
 
 import math
-from typing import Iterable, Mapping
+from collections.abc import Iterable, Mapping
 
 import torch
 

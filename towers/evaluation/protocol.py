@@ -10,6 +10,7 @@ from __future__ import annotations
 import numpy as np
 import torch
 
+from towers.config import Config
 from towers.data.context import event_pairs, vectors_with_context
 from towers.data.embeddings_file import TrueVectors
 from towers.data.pairs import Pairs, SplitPairs
@@ -18,7 +19,7 @@ from towers.evaluation import metrics as M
 from towers.model.embed import reads_context
 from towers.model.towers import TwoTowerModel
 from towers.search import rank_counts as RC
-from towers.search.scorer import Scorer
+from towers.search.scorer import Scorer, excluded_cells
 
 MODEL_ORDER = ("popularity", "linear_factor", "bilinear", "towers", "oracle")
 
@@ -90,17 +91,10 @@ def ranking_metrics(scorer: Scorer, test: Pairs, known: Pairs, candidate_mask: t
     n_cols = len(cand_rows)
     tie_break = torch.rand(n_cols, generator=torch.Generator().manual_seed(tie_seed))
 
-    # excluded (query row, column) pairs: the test queries' known pairs and, for item-item data, each
+    # excluded (query row, column) cells: the test queries' known pairs and, for item-item data, each
     # query item itself
-    kq = torch.from_numpy(known_keys // n_items)
-    kc = torch.from_numpy(known_keys % n_items)
-    kcol = col_of[kc]
-    relevant = (kcol >= 0) & torch.isin(kq, queries)
-    ex_rows, ex_cols = torch.searchsorted(queries, kq[relevant]), kcol[relevant]
-    if exclude_self:
-        own = col_of[queries]
-        has = torch.nonzero(own >= 0).flatten()
-        ex_rows, ex_cols = torch.cat([ex_rows, has]), torch.cat([ex_cols, own[has]])
+    ex_rows, ex_cols = excluded_cells(queries, torch.from_numpy(known_keys // n_items),
+                                      torch.from_numpy(known_keys % n_items), col_of, exclude_self)
 
     qb = None if over.query_bias is None else over.query_bias.index_select(0, queries)
     ranks, n_candidates = RC.rank_counts(over.query_vectors.index_select(0, queries), over.item_vectors, q_index,
@@ -117,14 +111,14 @@ def oracle_scorer(truth: TrueVectors) -> Scorer:
     return Scorer(truth.query_vectors, truth.item_vectors, truth.query_bias, truth.item_bias)
 
 
-def evaluate_slices(scorers: dict[str, Scorer], data: SplitPairs, cfg: dict, event_vectors: dict | None = None) -> dict:
+def evaluate_slices(scorers: dict[str, Scorer], data: SplitPairs, cfg: Config, event_vectors: dict | None = None) -> dict:
     """{slice: {model: {metric: value}}} for the warm test pairs and, if any, the cold ones.
 
     With context columns each held-out event is its own query (context.py); event_vectors maps a
     model name to a function giving its query vectors for a slice's events (context-aware towers).
     """
-    explicit = cfg["training"]["loss"] == "squared"
-    ks, tie = cfg["evaluation"]["top_k"], cfg["run"]["seed"]
+    explicit = cfg.training.rating_loss
+    ks, tie = cfg.evaluation.top_k, cfg.run.seed
     empty = Pairs(torch.zeros(0, dtype=torch.int64), torch.zeros(0, dtype=torch.int64))
     slices = {"warm": (data.test, data.known(), data.warm_items)}
     if len(data.cold_test):
@@ -141,7 +135,7 @@ def evaluate_slices(scorers: dict[str, Scorer], data: SplitPairs, cfg: dict, eve
             s = scorers[name]
             if users is not None:
                 fn = (event_vectors or {}).get(name)
-                s = s.for_events(users, fn(raw) if fn else None)
+                s = s.for_queries(users, fn(raw) if fn else None)
             if explicit:
                 out[slice_name][name] = rating_metrics(s, pairs)
             else:
@@ -158,7 +152,8 @@ def format_table(metrics: dict) -> str:
             continue
         cols = [c for c in next(iter(models[n] for n in names)) if c != "queries"]
         width = max(len(n) for n in names) + 2
-        lines.append(f"[{slice_name}]" + (f"  ({models[names[0]].get('queries')} queries)" if "queries" in models[names[0]] else ""))
+        first = models[names[0]]
+        lines.append(f"[{slice_name}]" + (f"  ({first['queries']} queries)" if "queries" in first else ""))
         lines.append("model".ljust(width) + "".join(c.rjust(11) for c in cols))
         for n in names:
             lines.append(n.ljust(width) + "".join(f"{models[n].get(c, float('nan')):11.4f}" for c in cols))
@@ -166,7 +161,7 @@ def format_table(metrics: dict) -> str:
     return "\n".join(lines).rstrip() + "\n"
 
 
-def validation_metrics(scorer: Scorer, data: Prepared, cfg: dict, pairs: Pairs,
+def validation_metrics(scorer: Scorer, data: Prepared, cfg: Config, pairs: Pairs,
                        model: TwoTowerModel | None = None) -> dict[str, float]:
     """Metrics of `pairs` (validation or test) in the warm setting.
 
@@ -179,9 +174,9 @@ def validation_metrics(scorer: Scorer, data: Prepared, cfg: dict, pairs: Pairs,
         if model is not None and reads_context(model.query_tower, data):
             vectors = vectors_with_context(model.query_tower, data.queries.block, pairs.query, pairs.context)
         pairs, known, users = event_pairs(pairs, known)
-        scorer = scorer.for_events(users, vectors)
-    if cfg["training"]["loss"] == "squared":
+        scorer = scorer.for_queries(users, vectors)
+    if cfg.training.rating_loss:
         return rating_metrics(scorer, pairs)
-    return ranking_metrics(scorer, pairs, known, data.warm_items, cfg["evaluation"]["top_k"],
-                           tie_seed=cfg["run"]["seed"], max_queries=cfg["training"]["validate_queries"],
+    return ranking_metrics(scorer, pairs, known, data.warm_items, cfg.evaluation.top_k,
+                           tie_seed=cfg.run.seed, max_queries=cfg.training.validate_queries,
                            exclude_self=data.item_item)

@@ -11,6 +11,7 @@ from pathlib import Path
 import torch
 
 from towers.atomic import write_atomic
+from towers.config import ModelSection, model_section, plain
 from towers.data.features import SideEncoders
 from towers.errors import TowersError
 from towers.model.towers import TwoTowerModel
@@ -19,13 +20,13 @@ BUNDLE_FORMAT = "towers-model"
 BUNDLE_VERSION = 1
 
 
-def save_bundle(path: str | Path, model: TwoTowerModel, model_cfg: dict, query_inputs: list[dict],
+def save_bundle(path: str | Path, model: TwoTowerModel, model_cfg: ModelSection, query_inputs: list[dict],
                 candidate_inputs: list[dict], query_enc: SideEncoders, candidate_enc: SideEncoders,
                 item_item: bool, extra: dict | None = None) -> Path:
     """Write a bundle atomically."""
     payload = {
         "format": BUNDLE_FORMAT, "version": BUNDLE_VERSION,
-        "model_config": model_cfg, "item_item": item_item, "shared": model.shared,
+        "model_config": plain(model_cfg), "item_item": item_item, "shared": model.shared,
         "query_inputs": query_inputs, "candidate_inputs": candidate_inputs,
         "query_encoders": query_enc.state(), "candidate_encoders": candidate_enc.state(),
         "state_dict": {k: v.detach().clone() for k, v in model.state_dict().items()},
@@ -63,7 +64,7 @@ class LoadedBundle:
             raise TowersError(f"{path}: bundle version {payload.get('version')} is not supported by this towers "
                               f"(reads version {BUNDLE_VERSION}); retrain with this version")
         self.path = path
-        self.model_cfg = payload["model_config"]
+        self.model_cfg = model_section(payload["model_config"])
         self.item_item = payload["item_item"]
         self.query_encoders = SideEncoders.from_state(payload["query_encoders"])
         self.candidate_encoders = SideEncoders.from_state(payload["candidate_encoders"])

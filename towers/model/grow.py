@@ -2,8 +2,8 @@
 
 The encoders grow first (data/vocabulary.py), keeping every earlier index. Tables grow: old rows
 are copied; a new user's or item's id row starts as the earlier run's unknown row, so the tower
-first embeds it from its features alone (what the earlier run did for a cold entity). Id-only tables (the linear factor model) have no features to start from: new rows keep
-their fresh random start.
+first embeds it from its features alone (what the earlier run did for a cold entity). Id-only tables
+(the linear factor model) have no features to start from: new rows keep their fresh random start.
 """
 
 from __future__ import annotations

@@ -10,6 +10,8 @@ import torch
 import torch.nn as nn
 import torch.nn.functional as F
 
+from towers.config import ModelSection
+
 ACTIVATIONS = {"relu": nn.ReLU, "gelu": nn.GELU, "tanh": nn.Tanh, "silu": nn.SiLU}
 ID_INIT_STD = 0.1  # common practice for factor tables (no source)
 
@@ -26,26 +28,26 @@ def _sparse_table(rows: int, dim: int, std: float) -> nn.Embedding:
 class Tower(nn.Module):
     """Maps one side's encoded features (a FeatureBlock batch) to k-dim embeddings."""
 
-    def __init__(self, inputs: list[dict], id_rows: int, model_cfg: dict):
+    def __init__(self, inputs: list[dict], id_rows: int, model_cfg: ModelSection):
         super().__init__()
-        dim = model_cfg["dim"]
+        dim = model_cfg.dim
         self.inputs = inputs
-        self.normalize = model_cfg["normalize"]
-        self.non_negative = model_cfg["non_negative"]
-        self.id_dropout = model_cfg["id_dropout"]
-        self.use_ids = model_cfg["use_ids"]
-        hidden = model_cfg["hidden"]
+        self.normalize = model_cfg.normalize
+        self.non_negative = model_cfg.non_negative
+        self.id_dropout = model_cfg.id_dropout
+        self.use_ids = model_cfg.use_ids
+        hidden = model_cfg.hidden
         # ids only and no hidden layer: the id row is the embedding (plain matrix factorisation)
         self.direct = self.use_ids and not inputs and not hidden
         if self.direct:
             self.id_dropout = 0.0
-        id_dim = dim if self.direct else (model_cfg["id_dim"] or dim)
+        id_dim = dim if self.direct else (model_cfg.id_dim or dim)
         self.ids = _sparse_table(id_rows, id_dim, ID_INIT_STD) if self.use_ids else None
         self.tables = nn.ModuleDict()
         width = id_dim if self.use_ids else 0
         # tables are keyed by position: column names may hold characters torch refuses in module names
         for pos, spec in enumerate(inputs):
-            d = spec.get("dim") or model_cfg["feature_dim"]
+            d = spec.get("dim") or model_cfg.feature_dim
             if spec["kind"] == "categorical":
                 self.tables[f"f{pos}"] = nn.Embedding(spec["size"], d)
                 width += d
@@ -59,9 +61,9 @@ class Tower(nn.Module):
         layers: list[nn.Module] = []
         if not self.direct:
             for h in hidden:
-                layers += [nn.Linear(width, h), ACTIVATIONS[model_cfg["activation"]]()]
-                if model_cfg["dropout"] > 0:
-                    layers.append(nn.Dropout(model_cfg["dropout"]))
+                layers += [nn.Linear(width, h), ACTIVATIONS[model_cfg.activation]()]
+                if model_cfg.dropout > 0:
+                    layers.append(nn.Dropout(model_cfg.dropout))
                 width = h
             layers.append(nn.Linear(width, dim))
         self.mlp = nn.Sequential(*layers)
@@ -97,13 +99,13 @@ class TwoTowerModel(nn.Module):
     """Query and candidate towers, optional per-id and global biases; score = q.c / temperature + biases."""
 
     def __init__(self, query_inputs: list[dict], query_ids: int, cand_inputs: list[dict], cand_ids: int,
-                 model_cfg: dict, shared: bool = False):
+                 model_cfg: ModelSection, shared: bool = False):
         super().__init__()
-        self.temperature = model_cfg["temperature"]
+        self.temperature = model_cfg.temperature
         self.candidate_tower = Tower(cand_inputs, cand_ids, model_cfg)
         self.shared = shared
         self.query_tower = self.candidate_tower if shared else Tower(query_inputs, query_ids, model_cfg)
-        self.use_biases = model_cfg["biases"]
+        self.use_biases = model_cfg.biases
         if self.use_biases:
             self.candidate_bias = _sparse_table(cand_ids, 1, 0.0)
             self.query_bias = self.candidate_bias if shared else _sparse_table(query_ids, 1, 0.0)

@@ -29,10 +29,14 @@ from towers.data.embeddings_file import read_embeddings, write_embeddings
 from towers.data.tables import align_id_types
 from towers.errors import TowersError
 from towers.model.bundle import LoadedBundle, load_payload
-from towers.runs.folder import EMBEDDINGS, LINEAR_FACTOR, RunFolder
+from towers.runs.folder import (
+    EMBEDDINGS,
+    SUBFOLDER_MODELS,
+    TOWERS,
+    RunFolder,
+)
 
 RECORD = RunFolder.ALIGNMENT
-BASELINE = LINEAR_FACTOR
 SIDE_FILES = {"items": EMBEDDINGS["item"], "users": EMBEDDINGS["user"], "query items": EMBEDDINGS["query"]}
 LEFT_OUT = RunFolder.CHECKPOINTS  # training state of the unrotated weights (see align_run)
 MODEL = RunFolder.MODEL
@@ -128,7 +132,7 @@ def rotate_bundle(payload: dict, path: Path, rotation: np.ndarray, reference: Pa
     written.
     """
     original = LoadedBundle(payload, path)
-    if original.model_cfg.get("non_negative"):
+    if original.model_cfg.non_negative:
         raise TowersError(f"{path}: this model has non_negative: true; a rotation would make entries negative, so "
                           "it cannot be aligned (retrain with non_negative: false to use align)")
     rotated = LoadedBundle(payload, path)  # a second, independent copy of the weights
@@ -220,15 +224,17 @@ def align_run(run_dir: str | Path, reference: str | Path, out_dir: str | Path, o
     plans = {"": _plan(new, ref, ref_label)}
     record = _record(plans[""], ref_label)
     notes = list(plans[""]["notes"])
-    if (new / BASELINE / MODEL).is_file():
-        if (ref / BASELINE / SIDE_FILES["items"]).is_file():
-            plans[BASELINE] = _plan(new / BASELINE, ref / BASELINE, ref_label / BASELINE)
-            record[BASELINE] = _record(plans[BASELINE], ref_label / BASELINE)
-            notes += plans[BASELINE]["notes"]
+    for name in SUBFOLDER_MODELS:  # each reference model is aligned on its own against the reference's
+        if not (new / name / MODEL).is_file():
+            continue
+        if (ref / name / SIDE_FILES["items"]).is_file():
+            plans[name] = _plan(new / name, ref / name, ref_label / name)
+            record[name] = _record(plans[name], ref_label / name)
+            notes += plans[name]["notes"]
         else:
-            reason = f"the reference has no {BASELINE}/ to align against; copied unrotated"
-            record[BASELINE] = {"aligned": False, "reason": reason}
-            notes.append(f"{new / BASELINE}: {reason}")
+            reason = f"the reference has no {name}/ to align against; copied unrotated"
+            record[name] = {"aligned": False, "reason": reason}
+            notes.append(f"{new / name}: {reason}")
     for note in notes:
         warnings.warn(note, stacklevel=2)
 
@@ -266,7 +272,7 @@ def format_drift(record: dict) -> str:
     """The drift figures of an alignment record as a plain text table, one line per model and side."""
     cols = ("shared", "mean before", "mean after", "max before", "max after", "rel before", "rel after")
     lines = ["model".ljust(15) + "side".ljust(13) + "".join(c.rjust(12) for c in cols)]
-    for model, rec in (("towers", record), (BASELINE, record.get(BASELINE))):
+    for model, rec in ((TOWERS, record), *((name, record.get(name)) for name in SUBFOLDER_MODELS)):
         if not rec or "drift" not in rec:
             continue
         for side, d in rec["drift"].items():

@@ -153,13 +153,13 @@ class RunFolder:
             raise TowersError(f"{path}: missing; the run folder is incomplete (retrain the run)")
         return json.loads(path.read_text(encoding="utf-8"))
 
-    def write_config(self, cfg: dict) -> Path:
+    def write_config(self, cfg: C.Config) -> Path:
         return write_text_atomic(self.path / self.CONFIG, C.dump(cfg))
 
     def has_config(self) -> bool:
         return (self.path / self.CONFIG).is_file()
 
-    def read_config(self) -> dict:
+    def read_config(self) -> C.Config:
         """The run's saved config, resolved again (paths in it are absolute)."""
         cfg_path = self.path / self.CONFIG
         fix = "restore config.yaml from a backup or retrain the run"
@@ -168,12 +168,15 @@ class RunFolder:
         except (yaml.YAMLError, UnicodeDecodeError) as exc:
             problem = getattr(exc, "problem", None) or type(exc).__name__
             raise TowersError(f"{cfg_path}: not valid YAML ({problem}); the run folder is damaged; {fix}") from None
+        training = raw.get("training") if isinstance(raw, dict) else None
+        if isinstance(training, dict) and training.get("loss") != "logistic" and training.get("negatives") == 4:
+            training["negatives"] = None  # saved before negatives became empty by default: 4 was the unused default
         try:
             return C.resolve(raw, self.path)
         except TowersError as exc:
             raise TowersError(f"{cfg_path}: {exc} (in the run's saved config; {fix})") from None
 
-    def same_config(self, cfg: dict) -> bool:
+    def same_config(self, cfg: C.Config) -> bool:
         """Whether the saved config equals cfg (as YAML values)."""
         saved = yaml.safe_load((self.path / self.CONFIG).read_text(encoding="utf-8"))
         return saved == yaml.safe_load(C.dump(cfg))

@@ -108,7 +108,7 @@ class _Page:
     def __init__(self, run):
         self.run = run
         self.cfg = run.config
-        self.rcfg = run.config["report"]
+        self.rcfg = run.config.report
         self.notes: list[str] = []
         self.metrics = run.folder.read_json(RunFolder.METRICS)
         self.history = run.folder.read_json(RunFolder.HISTORY)
@@ -125,20 +125,20 @@ class _Page:
     # ---- inputs ----
     def _attributes(self) -> pd.DataFrame | None:
         """The raw item feature table, one row per catalog item (missing rows empty), vector columns dropped."""
-        items = self.cfg["items"]
-        if not items["path"]:
+        items = self.cfg.items
+        if not items.path:
             return None
         try:
-            table = read_table(items["path"])
+            table = read_table(items.path)
         except TowersError as exc:
             self.note(f"item attributes left out: {exc}")
             return None
-        if items["id_column"] not in table.columns:
-            self.note(f"item attributes left out: {items['path']} has no column '{items['id_column']}'")
+        if items.id_column not in table.columns:
+            self.note(f"item attributes left out: {items.path} has no column '{items.id_column}'")
             return None
-        ids = align_id_types(normalise_ids(table[items["id_column"]], items["path"], items["id_column"]), self.item_ids)
+        ids = align_id_types(normalise_ids(table[items.id_column], items.path, items.id_column), self.item_ids)
         rows = pd.Index(ids).get_indexer(self.item_ids)
-        keep = [c for c in table.columns if c != items["id_column"] and not _is_vector_column(table[c])]
+        keep = [c for c in table.columns if c != items.id_column and not _is_vector_column(table[c])]
         out = table[keep].iloc[np.where(rows >= 0, rows, 0)].reset_index(drop=True)
         if (rows < 0).any():  # catalog items without a table row (missing_rows: default) show empty cells
             out = out.astype(object)
@@ -146,19 +146,19 @@ class _Page:
         return out
 
     def _colour_feature(self) -> str | None:
-        named = self.rcfg["color_feature"]
+        named = self.rcfg.color_feature
         if named:
             return named
-        for f in self.cfg["items"]["features"]:
-            if f["kind"] == "categorical":
-                return f["name"]
+        for f in self.cfg.items.features:
+            if f.kind == "categorical":
+                return f.name
         return None
 
     def anchors(self) -> list:
         """The anchor item ids: report.anchor_ids (unknown ones noted and skipped), or the most popular items."""
-        wanted = self.rcfg["anchor_ids"]
+        wanted = self.rcfg.anchor_ids
         if not wanted:
-            rows = popular_items(self.run.pairs, self.rcfg["anchors"])
+            rows = popular_items(self.run.pairs, self.rcfg.anchors)
             return [_plain(v) for v in self.item_ids[rows]]
         found = []
         for a in pd.unique(pd.Series(wanted, dtype=object)):
@@ -188,13 +188,13 @@ class _Page:
     def _summary(self) -> str:
         c, p = self.cfg, self.run.pairs
         towers_hist = self.history["epochs"].get("towers", [])
-        loss = c["training"]["loss"]
+        loss = c.training.loss
         rows = [
-            ("mode", c["run"]["mode"]),
-            ("loss", loss + (f", {c['training']['negatives']} negatives per positive" if loss == "logistic" else "")),
-            ("k (model.dim)", c["model"]["dim"]),
-            ("hidden layers", c["model"]["hidden"] or "none (linear map)"),
-            ("training.weight_decay / training.id_l2", f"{c['training']['weight_decay']:g} / {c['training']['id_l2']:g}"),
+            ("mode", c.run.mode),
+            ("loss", loss + (f", {c.training.sampled_negatives} negatives per positive" if loss == "logistic" else "")),
+            ("k (model.dim)", c.model.dim),
+            ("hidden layers", list(c.model.hidden) or "none (linear map)"),
+            ("training.weight_decay / training.id_l2", f"{c.training.weight_decay:g} / {c.training.id_l2:g}"),
             ("epochs run (best)", f"{len(towers_hist)} ({self.history.get('best_epoch')}) by validation "
                                   f"{self.history.get('stop_metric')}"),
             ("items / queries", f"{len(p['item_ids']):,} / {len(p['query_ids']):,}"),
@@ -312,9 +312,9 @@ class _Page:
         n = len(self.item_ids)
         coords, shares = pca_2d(self.item_vectors)
         show = np.arange(n)
-        if n > self.rcfg["map_items"]:
-            g = torch.Generator().manual_seed(self.cfg["run"]["seed"])
-            show = torch.randperm(n, generator=g)[: self.rcfg["map_items"]].sort().values.numpy()
+        if n > self.rcfg.map_items:
+            g = torch.Generator().manual_seed(self.cfg.run.seed)
+            show = torch.randperm(n, generator=g)[: self.rcfg.map_items].sort().values.numpy()
         xy = coords.numpy()[show]
         cold = ~self.run.pairs["warm_items"].numpy()[show]
         feature = self._colour_feature()
@@ -356,12 +356,12 @@ class _Page:
 
     def _neighbours_section(self) -> str:
         anchors = self.anchors()
-        top = self.rcfg["neighbours"]
+        top = self.rcfg.neighbours
         kind = ("the trained pair score (this is an item_item run: the &ldquo;bought together&rdquo; list)"
                 if self.run.item_item else "the cosine similarity of the item vectors (biases left out)")
         how = (f"<p class=\"how\">For each anchor item, the {top} items with the highest score by {kind}, exactly as "
                f"<code>towers similar</code> lists them, with the columns of the item table (vector columns left "
-               "out). Anchors are " + ("the ids in <code>report.anchor_ids</code>." if self.rcfg["anchor_ids"] else
+               "out). Anchors are " + ("the ids in <code>report.anchor_ids</code>." if self.rcfg.anchor_ids else
                                         "the items with the most training pairs.")
                + " Neighbours that share the anchor's kind of use make sense; a list of unrelated best-sellers "
                "suggests the vectors carry mostly popularity.</p>")

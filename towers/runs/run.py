@@ -11,7 +11,6 @@ import numpy as np
 import pandas as pd
 import torch
 
-from towers import config as C
 from towers.atomic import write_atomic
 from towers.data.context import (
     AveragedOverContexts,
@@ -39,8 +38,7 @@ from towers.evaluation.protocol import evaluate_slices, oracle_scorer, popularit
 from towers.model.bundle import load_bundle
 from towers.model.embed import EMBED_CHUNK
 from towers.runs.folder import EMBEDDINGS, SUBFOLDER_MODELS, TOWERS, RunFolder
-from towers.search.retrieval import top_n
-from towers.search.scorer import Scorer
+from towers.search.scorer import Scorer, excluded_cells
 
 _NO_MATCH = np.iinfo(np.int64).min  # what align_id_types gives text that is not a whole number
 
@@ -237,17 +235,17 @@ class Run:
         ids = self.embeddings(self._query_side())[0][rows.numpy()]
         if not enc.encoders:
             return {"id": enc.id_encoder.transform(ids)}
-        ucfg = self.config["users"]
-        table = read_table(ucfg["path"])
-        require_columns(table.columns, [ucfg["id_column"]] + [e.name for e in enc.encoders], ucfg["path"])
-        t_ids = align_id_types(normalise_ids(table[ucfg["id_column"]], ucfg["path"], ucfg["id_column"]), ids)
+        ucfg = self.config.users
+        table = read_table(ucfg.path)
+        require_columns(table.columns, [ucfg.id_column] + [e.name for e in enc.encoders], ucfg.path)
+        t_ids = align_id_types(normalise_ids(table[ucfg.id_column], ucfg.path, ucfg.id_column), ids)
         at = pd.Index(t_ids).get_indexer(ids)
         if (at < 0).any():
             bad = ids[np.flatnonzero(at < 0)[0]]
-            raise TowersError(f"{ucfg['path']}, column '{ucfg['id_column']}': user {bad!r} has no row any more; "
+            raise TowersError(f"{ucfg.path}, column '{ucfg.id_column}': user {bad!r} has no row any more; "
                               "restore the user feature table the run was trained with")
         rows_df = table.iloc[at].reset_index(drop=True)
-        return enc.encode(ids, rows_df, ucfg["path"])
+        return enc.encode(ids, rows_df, ucfg.path)
 
     def _context_block(self, context: dict, n: int) -> dict:
         """One context (column -> value) encoded n times; columns not given count as missing."""
@@ -294,7 +292,7 @@ class Run:
         })
 
     def recommend(self, user_ids, top: int = 10, exclude_known: bool = True, context: dict | None = None) -> pd.DataFrame:
-        """Top items per user (query_id, rank, item_id, score); known training positives excluded.
+        """Top items per user (query_id, rank, item_id, score); the user's training and validation pairs excluded.
 
         context: {column: value} for runs with context columns; without it the users' exported
         vectors (averaged over the training context mix) are used.
@@ -303,36 +301,19 @@ class Run:
             raise TowersError(f"{self.dir}: --top must be a positive whole number, got {top}; ask for at least 1 item")
         if context and self.context is None:
             raise TowersError(f"{self.dir}: this run was trained without context columns; drop --context")
-        q_ids, q_vec, q_bias, meta = self.embeddings(self._query_side())
-        i_ids, i_vec, i_bias, _ = self.embeddings("item")
+        q_ids = self.embeddings(self._query_side())[0]
+        i_ids = self.embeddings("item")[0]
         rows = self._rows(q_ids, pd.unique(np.asarray(list(user_ids), dtype=object)), "query" if self.item_item else "user")
+        vectors = None
         if context:
-            tower = self.bundle.model.query_tower
             with torch.no_grad():
-                q_vec = torch.zeros(len(q_ids), q_vec.shape[1])
-                q_vec[rows] = tower(self._user_block(rows) | self._context_block(context, len(rows)))
-        scale = 1.0 / float(meta.get("temperature", 1.0))
+                vectors = self.bundle.model.query_tower(self._user_block(rows) | self._context_block(context, len(rows)))
         ex_r = ex_c = None
-        if exclude_known:
-            tr = self.pairs["train"]
-            va = self.pairs["valid"]
-            kq = torch.cat([tr["query"], va["query"]])
-            kc = torch.cat([tr["candidate"], va["candidate"]])
-            # map known pairs onto the requested rows (each requested row may appear once)
-            lookup = torch.full((len(q_ids),), -1, dtype=torch.int64)
-            lookup[rows] = torch.arange(len(rows))
-            local = lookup[kq]
-            keep = local >= 0
-            local, kc = local[keep], kc[keep]
-            if self.item_item:
-                local = torch.cat([local, torch.arange(len(rows))])
-                kc = torch.cat([kc, rows])
-            order = torch.argsort(local, stable=True)
-            ex_r, ex_c = local[order], kc[order]
-        idx, scores = top_n(q_vec.index_select(0, rows), i_vec, top, i_bias, ex_r, ex_c, scale)
-        extra = float(meta.get("global_bias", 0.0))
-        if q_bias is not None:
-            scores = scores + q_bias.index_select(0, rows).unsqueeze(1) + extra
+        if exclude_known:  # every training and validation pair of the requested queries, and in item_item runs the item itself
+            tr, va = self.pairs["train"], self.pairs["valid"]
+            ex_r, ex_c = excluded_cells(rows, torch.cat([tr["query"], va["query"]]),
+                                        torch.cat([tr["candidate"], va["candidate"]]), exclude_self=self.item_item)
+        idx, scores = self._scorer(TOWERS).for_queries(rows, vectors).top(top, ex_r, ex_c)
         return self._ranked_frame(q_ids[rows.numpy()], idx, scores, i_ids)
 
     def similar(self, item_ids, top: int = 10) -> pd.DataFrame:
@@ -342,18 +323,15 @@ class Run:
         """
         if top <= 0:
             raise TowersError(f"{self.dir}: --top must be a positive whole number, got {top}; ask for at least 1 item")
-        i_ids, i_vec, i_bias, meta = self.embeddings("item")
+        i_ids, i_vec = self.embeddings("item")[:2]
         rows = self._rows(i_ids, item_ids, "item")
         self_rows = torch.arange(len(rows))
         if self.item_item:
-            q_ids, q_vec, q_bias, _ = self.embeddings("query")
-            scale = 1.0 / float(meta.get("temperature", 1.0))
-            idx, scores = top_n(q_vec.index_select(0, rows), i_vec, top, i_bias, self_rows, rows, scale)
-            if q_bias is not None:
-                scores = scores + q_bias.index_select(0, rows).unsqueeze(1) + float(meta.get("global_bias", 0.0))
+            scorer = self._scorer(TOWERS)
         else:
             unit = torch.nn.functional.normalize(i_vec, dim=1)
-            idx, scores = top_n(unit.index_select(0, rows), unit, top, None, self_rows, rows)
+            scorer = Scorer(unit, unit)
+        idx, scores = scorer.for_queries(rows).top(top, self_rows, rows)
         return self._ranked_frame(i_ids[rows.numpy()], idx, scores, i_ids)
 
     # ---- evaluation -----------------------------------------------------------------------------
@@ -372,8 +350,7 @@ class Run:
         cfg = self.config
         notes = []
         if interactions is not None:
-            cfg = C.resolve({**{k: dict(v) for k, v in cfg.items()}, "interactions": {**cfg["interactions"], "path": str(interactions)}},
-                            Path.cwd())
+            cfg = cfg.with_section("interactions", path=str(Path(interactions).expanduser().resolve()))
             log = read_interactions(cfg)
             q, c, target, weight = log.query, log.candidate, log.target, log.weight
             qr = pd.Index(query_ids).get_indexer(align_id_types(q, query_ids))
@@ -392,7 +369,7 @@ class Run:
             split.test = new.subset(torch.nonzero(warm).flatten())
             split.cold_test = new.subset(torch.nonzero(~warm).flatten())
             split.cold_items = ~split.warm_items
-        explicit = cfg["training"]["loss"] == "squared"
+        explicit = cfg.training.rating_loss
         scorers = {"popularity": popularity_scorer(split.train, len(query_ids), len(item_ids), explicit, split.item_item)}
         for name in SUBFOLDER_MODELS:
             if self.folder.file(EMBEDDINGS["item"], name).is_file():

@@ -1,10 +1,11 @@
 """`towers sweep`: train a grid of k (model.dim) by one penalty and choose the cell by validation.
 
-Each cell is an ordinary run folder under SWEEP_DIR/cells/, trained by runner.train_run with the
+Each cell is an ordinary run folder under SWEEP_DIR/cells/, trained by runs/train.train_run with the
 cell's config (the user's config plus the cell's overrides, written beside the folder): in this
 process with --jobs 1, else in `python -m towers train` child processes. So a sweep is resumable the
-way a run is: finished cells are skipped, an interrupted cell continues from its RUN.partial checkpoint. The choice uses only the early-stopping metric on
-the validation pairs (history.json), never the test slice; the test metrics are reported beside it.
+way a run is: finished cells are skipped, an interrupted cell continues from its RUN.partial
+checkpoint. The choice uses only the early-stopping metric on the validation pairs (history.json),
+never the test slice; the test metrics are reported beside it.
 """
 
 from __future__ import annotations
@@ -20,14 +21,14 @@ import signal
 import subprocess
 import sys
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 import yaml
 
 from towers import config as C
-from towers.atomic import write_atomic, write_text_atomic
+from towers.atomic import open_private_log, write_atomic, write_text_atomic
 from towers.errors import TowersError
 from towers.runs.folder import LINEAR_FACTOR, TOWERS, RunFolder
 from towers.runs.train import train_run
@@ -50,7 +51,7 @@ class Cell:
     folder: Path
     config_path: Path
     log_path: Path
-    config: dict = field(default_factory=dict)
+    config: C.Config | None = None
     status: str = "pending"  # pending, done, skipped, failed
     message: str = ""
 
@@ -93,9 +94,9 @@ def _cores() -> int:
     return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
 
 
-def _comparable(cfg: dict) -> dict:
+def _comparable(cfg: C.Config | dict) -> dict:
     """A config (as YAML would give it back) without the keys that change how fast, not what, a cell trains."""
-    out = yaml.safe_load(C.dump(cfg))
+    out = yaml.safe_load(C.dump(cfg)) if isinstance(cfg, C.Config) else yaml.safe_load(yaml.safe_dump(cfg))
     for section, key in IGNORED_WHEN_COMPARING:
         out.get(section, {}).pop(key, None)
     out.pop(REPORT_SECTION, None)
@@ -123,7 +124,7 @@ def _check_grid(dims, penalties, penalty_key: str, jobs: int) -> tuple[list[int]
                           "every penalty must be a finite number >= 0")
     if jobs < 1:
         raise TowersError(f"--jobs: got {jobs}; give 1 or more parallel cells")
-    return sorted(set(int(d) for d in dims)), sorted(set(float(p) for p in penalties))
+    return sorted({int(d) for d in dims}), sorted({float(p) for p in penalties})
 
 
 def run_sweep(config_path: str | Path, out_dir: str | Path, dims, penalties,
@@ -136,12 +137,12 @@ def run_sweep(config_path: str | Path, out_dir: str | Path, dims, penalties,
     dims, penalties = _check_grid(dims, penalties, penalty_key, jobs)
     config_path, out = Path(config_path), Path(out_dir)
     base = C.load(config_path)
-    if base["evaluation"]["validation_fraction"] <= 0:
+    if base.evaluation.validation_fraction <= 0:
         raise TowersError(f"{config_path}: config key 'evaluation.validation_fraction': got 0; a sweep chooses by "
                           "the validation metric, so hold out some validation pairs (e.g. 0.1)")
     if out.exists() and not out.is_dir():
         raise TowersError(f"{out}: exists and is not a folder; choose another --out")
-    metric = C.default_stop_metric(base)
+    metric = base.stop_metric
     section, key = penalty_key.split(".")
     cells_dir = out / "cells"
     cells = []
@@ -160,8 +161,8 @@ def run_sweep(config_path: str | Path, out_dir: str | Path, dims, penalties,
     workers = max(1, min(jobs, len(todo)))
     cores = _cores()
     threads = max(1, cores // workers)
-    if base["run"]["threads"]:
-        threads = min(threads, base["run"]["threads"])
+    if base.run.threads:
+        threads = min(threads, base.run.threads)
     log(f"sweep: {len(cells)} cells ({len(dims)} k x {len(penalties)} {penalty_key}), {len(cells) - len(todo)} "
         f"finished earlier, {len(todo)} to train with {workers} job(s) x {threads} thread(s) on {cores} cores")
     if jobs > cores:
@@ -210,15 +211,15 @@ def _finished(cell: Cell) -> bool:
 
 def _prepare_cell(cell: Cell, threads: int) -> None:
     """Write the cell's config; an interrupted cell with the same config resumes, any other leftover restarts."""
-    cfg = cell.config
-    cfg["run"]["threads"] = threads
+    cfg = cell.config.with_section("run", threads=threads)
     partial = RunFolder(cell.folder).partial.path
     saved = partial / RunFolder.CONFIG
     if saved.is_file():
         then = yaml.safe_load(saved.read_text(encoding="utf-8"))
         if isinstance(then, dict) and _comparable(then) == _comparable(cfg):
-            cfg["run"]["threads"] = then["run"]["threads"]  # the checkpoint resumes exactly with its own settings
-            cfg["training"]["progress"] = then["training"]["progress"]
+            # the checkpoint resumes exactly with its own settings
+            cfg = cfg.with_section("run", threads=then["run"]["threads"])
+            cfg = cfg.with_section("training", progress=then["training"]["progress"])
             log(f"cell {cell.name}: resuming the interrupted cell")
         else:
             shutil.rmtree(partial)
@@ -230,6 +231,7 @@ def _prepare_cell(cell: Cell, threads: int) -> None:
     text = C.dump(cfg)
     if not cell.config_path.is_file() or cell.config_path.read_text(encoding="utf-8") != text:
         write_text_atomic(cell.config_path, text)
+    cell.config = cfg
 
 
 def _train_cells(todo: list[Cell], workers: int, out: Path) -> None:
@@ -262,7 +264,7 @@ def _train_here(todo: list[Cell], say, bar) -> bool:
     for cell in todo:
         say(f"cell {cell.name}: training (log: {cell.log_path})")
         started, code = time.perf_counter(), 0
-        with open(cell.log_path, "a", encoding="utf-8") as fh, contextlib.redirect_stderr(fh):
+        with open_private_log(cell.log_path) as fh, contextlib.redirect_stderr(fh):
             try:
                 train_run(cell.config_path, cell.folder, resume=True)
             except TrainingInterrupted as exc:
@@ -303,7 +305,7 @@ def _train_children(todo: list[Cell], workers: int, say, bar) -> bool:
             time.sleep(POLL_S)
         except KeyboardInterrupt:
             interrupted = True
-            for cell, proc, _ in running.values():
+            for _cell, proc, _ in running.values():
                 if proc.poll() is None:
                     proc.send_signal(signal.SIGINT)  # a second Ctrl-C passes a second one on: abort at once
             say("sweep: stopping; each running cell writes a checkpoint first")
@@ -311,7 +313,7 @@ def _train_children(todo: list[Cell], workers: int, say, bar) -> bool:
 
 
 def _start(cell: Cell, env: dict) -> subprocess.Popen:
-    fh = open(cell.log_path, "a", encoding="utf-8")  # a stream of log lines, appended across resumes
+    fh = open_private_log(cell.log_path)  # a stream of log lines, appended across resumes
     try:
         return subprocess.Popen([sys.executable, "-m", "towers", "train", str(cell.config_path), "--out",
                                  str(cell.folder), "--resume"], stdout=fh, stderr=subprocess.STDOUT, env=env,
@@ -466,7 +468,7 @@ def _plot_elbow(path: Path, rows, penalties, penalty_key, metric, best) -> Path:
 
 
 # ---- best_config.yaml ------------------------------------------------------------------------------
-def _write_best_config(path: Path, config_path: Path, base: dict, best: dict, penalty_key: str, metric: str) -> Path:
+def _write_best_config(path: Path, config_path: Path, base: C.Config, best: dict, penalty_key: str, metric: str) -> Path:
     """The user's own config with the chosen k and penalty; relative paths made absolute so it runs from here."""
     raw = yaml.safe_load(config_path.read_text(encoding="utf-8-sig")) or {}
     for section, keys in C.SCHEMA.items():
@@ -475,7 +477,7 @@ def _write_best_config(path: Path, config_path: Path, base: dict, best: dict, pe
             continue
         for k, spec in keys.items():
             if spec.kind == "path" and given.get(k) is not None:
-                given[k] = base[section][k]
+                given[k] = getattr(getattr(base, section), k)
     section, key = penalty_key.split(".")
     for s, k, v in (("model", "dim", best["dim"]), (section, key, best["penalty"])):
         if not isinstance(raw.get(s), dict):

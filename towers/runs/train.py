@@ -41,20 +41,20 @@ from towers.training.progress import log
 from towers.training.stopping import TrainingDiverged, TrainingInterrupted
 
 
-def apply_threads(cfg: dict) -> None:
-    if cfg["run"]["threads"]:
-        torch.set_num_threads(cfg["run"]["threads"])
+def apply_threads(cfg: C.Config) -> None:
+    if cfg.run.threads:
+        torch.set_num_threads(cfg.run.threads)
 
 
-def export_run(folder: RunFolder, model: TwoTowerModel, data: Prepared, cfg: dict, label: str,
+def export_run(folder: RunFolder, model: TwoTowerModel, data: Prepared, cfg: C.Config, label: str,
                scorer: Scorer | None = None) -> dict[str, str]:
     """Write the embeddings of every catalog entity for one model; returns file names by side.
 
     scorer: the model's vectors when the caller already has them (they are not computed twice).
     """
     s = scorer if scorer is not None else model_scorer(model, data)
-    meta = {"normalized": str(bool(cfg["model"]["normalize"])).lower(),
-            "temperature": cfg["model"]["temperature"],
+    meta = {"normalized": str(bool(cfg.model.normalize)).lower(),
+            "temperature": cfg.model.temperature,
             "score": s.formula(model.use_biases),
             "global_bias": s.global_bias, "model": label}
     sides = [("item", data.candidates.ids, s.item_vectors, s.item_bias, "item")]
@@ -70,7 +70,7 @@ def export_run(folder: RunFolder, model: TwoTowerModel, data: Prepared, cfg: dic
     return files
 
 
-def _save_model(folder: RunFolder, label: str, model: TwoTowerModel, model_cfg: dict, data: Prepared) -> None:
+def _save_model(folder: RunFolder, label: str, model: TwoTowerModel, model_cfg: C.ModelSection, data: Prepared) -> None:
     """The bundle: weights, the towers' input descriptions, and every encoder's plain state."""
     extra = {}
     if reads_context(model.query_tower, data):
@@ -80,7 +80,7 @@ def _save_model(folder: RunFolder, label: str, model: TwoTowerModel, model_cfg: 
                 data.queries.encoders, data.candidates.encoders, data.item_item, extra)
 
 
-def _resumable(partial: RunFolder, cfg: dict) -> bool:
+def _resumable(partial: RunFolder, cfg: C.Config) -> bool:
     """Whether an interrupted run can continue here, checking the config has not changed."""
     if not partial.has_config():
         return False
@@ -100,7 +100,7 @@ def load_previous(run_dir: str | Path, model: str = TOWERS) -> LoadedBundle:
     return folder.load_bundle(model)
 
 
-def _reference_model(name: str, data: Prepared, cfg: dict) -> tuple[TwoTowerModel, dict]:
+def _reference_model(name: str, data: Prepared, cfg: C.Config) -> tuple[TwoTowerModel, C.Config]:
     """A reference model trained beside the towers: the linear factor model or the bilinear model."""
     if name == LINEAR_FACTOR:
         return baseline_model(data, cfg)
@@ -108,22 +108,22 @@ def _reference_model(name: str, data: Prepared, cfg: dict) -> tuple[TwoTowerMode
     return build_model(data, preset), preset
 
 
-def _train_reference(name: str, data: Prepared, cfg: dict, partial: RunFolder, init_from: str | Path | None,
+def _train_reference(name: str, data: Prepared, cfg: C.Config, partial: RunFolder, init_from: str | Path | None,
                      resuming: bool, started_from: dict | None):
     """Train, save and export one reference model; returns (model, scorer, history)."""
-    torch.manual_seed(cfg["run"]["seed"])
+    torch.manual_seed(cfg.run.seed)
     model, preset = _reference_model(name, data, cfg)
     if init_from and RunFolder(init_from).has_model(name):
         earlier = load_previous(init_from, name)
         started_from[name] = grow_weights(model, earlier.model.state_dict(), earlier.path)
-    solver = fit_als if name == LINEAR_FACTOR and preset["evaluation"]["baseline_solver"] != "gradient" else fit
+    solver = fit_als if name == LINEAR_FACTOR and preset.evaluation.baseline_solver != "gradient" else fit
     result = solver(model, data, preset, partial.checkpoints(name), name, resume=resuming)
-    if name == LINEAR_FACTOR and cfg["training"]["loss"] == "squared":  # is it the global optimum? (certificate.py)
+    if name == LINEAR_FACTOR and cfg.training.rating_loss:  # is it the global optimum? (certificate.py)
         cert = certify(model, data, preset)
         partial.write_json(RunFolder.CERTIFICATE, cert, name)
         log(describe_certificate(cert))
     scorer = model_scorer(model, data)
-    _save_model(partial, name, model, preset["model"], data)
+    _save_model(partial, name, model, preset.model, data)
     export_run(partial, model, data, preset, name, scorer)
     return model, scorer, result.history
 
@@ -147,17 +147,26 @@ def train_run(config_path: str | Path, out_dir: str | Path, overwrite: bool = Fa
     if not resuming:
         out.check_new(overwrite)
     distributed.start()
-    primary = distributed.is_primary()
-    scratch = None
-    if not primary:  # the other processes train alongside and write only into a private scratch folder
-        scratch = Path(tempfile.mkdtemp(prefix="towers-process-"))
+    if distributed.is_primary():
+        return _train_into(cfg, config_path, out, partial, resuming, init_from, started, primary=True)
+    # the other processes train alongside and write only into a private scratch folder, removed however they end
+    scratch = Path(tempfile.mkdtemp(prefix="towers-process-"))
+    try:
         if resuming:
             shutil.copytree(partial.path, scratch / partial.path.name)
-        partial = RunFolder(scratch / partial.path.name)
+        return _train_into(cfg, config_path, out, RunFolder(scratch / partial.path.name), resuming, init_from, started,
+                           primary=False)
+    finally:
+        shutil.rmtree(scratch, ignore_errors=True)
+
+
+def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, resuming: bool,
+                init_from: str | Path | None, started: float, primary: bool) -> dict:
+    """Everything after the output folders are settled: prepare, train, evaluate, write partial, publish to out."""
     if distributed.rank_and_size()[1] > 1:
-        cfg["run"]["threads"] = distributed.threads_per_process(cfg["run"]["threads"])
+        cfg = cfg.with_section("run", threads=distributed.threads_per_process(cfg.run.threads))
     apply_threads(cfg)
-    torch.manual_seed(cfg["run"]["seed"])
+    torch.manual_seed(cfg.run.seed)
     previous = load_previous(init_from) if init_from else None
     data = prepare(cfg, previous)
     started_from = None if previous is None else {"run": str(Path(init_from).resolve()), "encoders": data.started_from}
@@ -173,8 +182,8 @@ def train_run(config_path: str | Path, out_dir: str | Path, overwrite: bool = Fa
         partial.remove()
         partial.make(TOWERS, checkpoints=True)
         partial.write_config(cfg)
-    references = [name for name, on in ((LINEAR_FACTOR, cfg["evaluation"]["baseline"]),
-                                        (BILINEAR, cfg["evaluation"]["bilinear"])) if on]
+    references = [name for name, on in ((LINEAR_FACTOR, cfg.evaluation.baseline),
+                                        (BILINEAR, cfg.evaluation.bilinear)) if on]
     for name in references:
         partial.make(name, checkpoints=True)
     resume_hint = f"resume with: towers train {config_path} --out {out.path} --resume"
@@ -182,7 +191,7 @@ def train_run(config_path: str | Path, out_dir: str | Path, overwrite: bool = Fa
         result = fit(model, data, cfg, partial.checkpoints(), TOWERS, resume=resuming)
         scorers: dict[str, Scorer] = {
             "popularity": popularity_scorer(data.train, len(data.queries.ids), len(data.candidates.ids),
-                                            cfg["training"]["loss"] == "squared", data.item_item),
+                                            cfg.training.rating_loss, data.item_item),
             TOWERS: model_scorer(model, data),
         }
         histories = {TOWERS: result.history}
@@ -198,14 +207,13 @@ def train_run(config_path: str | Path, out_dir: str | Path, overwrite: bool = Fa
         partial.remove()  # a diverged run leaves nothing behind
         raise
     if not primary:
-        shutil.rmtree(scratch, ignore_errors=True)
         return {"metrics": None, "out": out.path, "table": ""}
     if data.oracle is not None:
         scorers["oracle"] = oracle_scorer(data.oracle)
     event_vectors = {name: _event_vectors(m.query_tower, data) for name, m in context_models.items()
                      if reads_context(m.query_tower, data)}
     metrics = evaluate_slices(scorers, data.split, cfg, event_vectors)
-    _save_model(partial, TOWERS, model, cfg["model"], data)
+    _save_model(partial, TOWERS, model, cfg.model, data)
     files = export_run(partial, model, data, cfg, TOWERS, scorers[TOWERS])
     partial.write_pairs(data.queries.ids, data.candidates.ids, data.split)
     partial.write_json(RunFolder.METRICS, metrics)
@@ -213,7 +221,7 @@ def train_run(config_path: str | Path, out_dir: str | Path, overwrite: bool = Fa
         partial.write_json(RunFolder.STARTED_FROM, started_from)
     partial.write_json(RunFolder.HISTORY,
                        {"stop_metric": result.stop_metric, "best_epoch": result.best_epoch, "epochs": histories})
-    if cfg["report"]["enabled"]:
+    if cfg.report.enabled:
         write_report(partial.path)  # report.html, read back from the finished files
     partial.publish(out)
     table = format_table(metrics)

@@ -131,9 +131,10 @@ def _bf16_at_most(x, scratch_f, scratch_u):
 
     bfloat16 bits are the high half of float32 bits: truncation rounds toward zero, so a negative x
     with nonzero low bits takes the next bfloat16 away from zero. Below the lowest finite bfloat16 the
-    threshold stays at it, so -inf (an excluded item) never passes while every finite score does. Above zero, bfloat16 order is the
-    order of the bits as int16; at or below zero, a score passes when its bits as uint16 are at most
-    the threshold's (every non-negative score has bits below 0x8000, and more negative means larger).
+    threshold stays at it, so -inf (an excluded item) never passes while every finite score does.
+    Above zero, bfloat16 order is the order of the bits as int16; at or below zero, a score passes when
+    its bits as uint16 are at most the threshold's (every non-negative score has bits below 0x8000, and
+    more negative means larger).
     """
     scratch_f[0] = x if x == x else -np.inf  # NaN (an unbounded margin): every finite score passes
     b = scratch_u[0]

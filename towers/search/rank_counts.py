@@ -34,7 +34,7 @@ SEARCH_COST = 64
 # bits differ; smaller blocks are padded with zero rows, so that a query's scores, and so its ranks,
 # do not depend on how the queries were cut into blocks (thread count, buffer size)
 PRODUCT_ROWS = 16
-_U = np.uint64  # unsigned tile indices, as in select_kernels: numba then reads tiles with vector loads
+_U = np.uint64  # unsigned tile indices, as in kernels.py: numba then reads tiles with vector loads
 _NEG = np.float32(-np.inf)
 _ONE, _ZERO = np.float32(1.0), np.float32(0.0)
 

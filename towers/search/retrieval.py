@@ -1,7 +1,7 @@
 """Blocked exact top-N retrieval: score tiles of queries x items, keep each query's best N.
 
 The full query x item score matrix is never built: tiles.py walks blocks of queries over chunks of
-the catalog in reused buffers, and for each tile the compiled kernels of select_kernels keep each
+the catalog in reused buffers, and for each tile the compiled kernels of kernels.py keep each
 row's candidates at or above its floor while the tile is still in the cache; the floor rises to the
 n-th best kept whenever a row's candidates fill up.
 

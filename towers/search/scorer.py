@@ -9,6 +9,8 @@ from dataclasses import dataclass
 
 import torch
 
+from towers.search.retrieval import top_n
+
 FORMULA = "dot(query, item) / temperature + query bias + item bias + global bias"
 FORMULA_NO_BIAS = "dot(query, item) / temperature"
 
@@ -30,11 +32,25 @@ class Scorer:
         return Scorer(self.query_vectors, self.item_vectors.index_select(0, item_rows), self.query_bias, bias,
                       self.global_bias, self.scale)
 
-    def for_events(self, users: torch.Tensor, vectors: torch.Tensor | None = None) -> "Scorer":
-        """One query row per event: the event's own vector (context-aware towers) or its user's."""
-        qv = vectors if vectors is not None else self.query_vectors.index_select(0, users)
-        qb = None if self.query_bias is None else self.query_bias.index_select(0, users)
+    def for_queries(self, rows: torch.Tensor, vectors: torch.Tensor | None = None) -> "Scorer":
+        """The same model for some query rows (row i is rows[i]; rows may repeat, one per event), with their own
+        vectors where given (context-aware towers) and their biases."""
+        qv = vectors if vectors is not None else self.query_vectors.index_select(0, rows)
+        qb = None if self.query_bias is None else self.query_bias.index_select(0, rows)
         return Scorer(qv, self.item_vectors, qb, self.item_bias, self.global_bias, self.scale)
+
+    def top(self, n: int, exclude_rows: torch.Tensor | None = None, exclude_cols: torch.Tensor | None = None):
+        """Each query's n best items as (item rows, scores), both (queries, n), best first; padding rows are -1.
+
+        Exact top-N over the whole catalog (retrieval.py) of scale * q.x + item bias, then the query and
+        global biases, which shift a query's scores alike and so never change its order. Excluded
+        (query, item) cells are given sorted by query.
+        """
+        idx, scores = top_n(self.query_vectors, self.item_vectors, n, self.item_bias, exclude_rows, exclude_cols,
+                            self.scale)
+        if self.query_bias is not None:
+            scores = scores + self.query_bias.unsqueeze(1)
+        return idx, scores + self.global_bias
 
     def formula(self, biases: bool = True) -> str:
         """The score function in words, as exported files record it."""
@@ -47,3 +63,29 @@ class Scorer:
         if self.query_bias is not None:
             s = s + self.query_bias.index_select(0, q)
         return s + self.global_bias
+
+
+def excluded_cells(query_rows: torch.Tensor, known_query: torch.Tensor, known_item: torch.Tensor,
+                   item_column: torch.Tensor | None = None, exclude_self: bool = False):
+    """The (ranking row, column) cells a ranking leaves out, sorted by row.
+
+    Row i of the ranking is catalog query row query_rows[i] (distinct, any order). A known pair
+    (known_query, known_item) of a ranked query excludes its item; with exclude_self (item-to-item
+    runs) each query item excludes itself. item_column maps catalog items to ranking columns (-1 for
+    items that do not compete); None means every item competes, in catalog order.
+    """
+    order = torch.argsort(query_rows)
+    ranked = query_rows.index_select(0, order)
+    cols = known_item if item_column is None else item_column.index_select(0, known_item)
+    if len(ranked):
+        at = torch.searchsorted(ranked, known_query).clamp_(max=len(ranked) - 1)
+        hit = (ranked.index_select(0, at) == known_query) & (cols >= 0)
+        rows, cols = order.index_select(0, at[hit]), cols[hit]
+    else:
+        rows, cols = known_query[:0], cols[:0]
+    if exclude_self:
+        own = query_rows if item_column is None else item_column.index_select(0, query_rows)
+        has = torch.nonzero(own >= 0).flatten()
+        rows, cols = torch.cat([rows, has]), torch.cat([cols, own.index_select(0, has)])
+    by_row = torch.argsort(rows, stable=True)
+    return rows.index_select(0, by_row), cols.index_select(0, by_row)

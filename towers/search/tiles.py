@@ -15,8 +15,8 @@ over all of torch's threads.
 from __future__ import annotations
 
 import threading
+from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
-from typing import Callable
 
 import torch
 

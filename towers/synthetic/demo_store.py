@@ -27,7 +27,6 @@ value before rounding.
 from __future__ import annotations
 
 import argparse
-import os
 import pathlib
 import sys
 
@@ -35,8 +34,12 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
+import torch
 
+from towers.atomic import write_atomic
+from towers.data.embeddings_file import write_embeddings
 from towers.errors import TowersError
+from towers.search.scorer import FORMULA
 
 STORE_NAME = "Thimbleroot Lane Hardware & Garden"
 ITEM_PREFIX = "TR-"
@@ -130,37 +133,21 @@ _CHUNK = 512             # customers per sampling chunk: bounds memory to CHUNK 
 
 # ---------------------------------------------------------------- writing helpers
 
-def _atomic(path: pathlib.Path, write) -> pathlib.Path:
-    """Run ``write(tmp_path)`` then rename into place, so readers never see half a file."""
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
-    try:
-        write(tmp)
-        os.replace(tmp, path)
-    finally:
-        if tmp.exists():
-            tmp.unlink()
-    return path
-
-
 def _write_parquet(path: pathlib.Path, table: pa.Table) -> pathlib.Path:
-    return _atomic(path, lambda tmp: pq.write_table(table, tmp))
+    return write_atomic(path, lambda tmp: pq.write_table(table, tmp))
 
 
 def _write_csv(path: pathlib.Path, frame: pd.DataFrame) -> pathlib.Path:
-    return _atomic(path, lambda tmp: frame.to_csv(tmp, index=False))
+    return write_atomic(path, lambda tmp: frame.to_csv(tmp, index=False))
 
 
-def _vector_table(ids: pa.Array, vectors: np.ndarray, bias: np.ndarray) -> pa.Table:
-    """Embedding export layout: id, embedding fixed_size_list<float32>[k], bias float32."""
-    k = vectors.shape[1]
-    flat = pa.array(np.ascontiguousarray(vectors, dtype=np.float32).reshape(-1), pa.float32())
-    table = pa.table({
-        "id": ids,
-        "embedding": pa.FixedSizeListArray.from_arrays(flat, k),
-        "bias": pa.array(bias.astype(np.float32), pa.float32()),
-    })
-    return table.replace_schema_metadata({b"k": str(k).encode(), b"score": b"dot"})
+def _write_truth(path: pathlib.Path, ids: np.ndarray, vectors: np.ndarray, bias: np.ndarray, side: str) -> pathlib.Path:
+    """True vectors in the embeddings-file layout that runs export (towers.data.embeddings_file), so the
+    oracle rows read them like any model's vectors."""
+    meta = {"normalized": "false", "temperature": 1.0, "score": FORMULA, "global_bias": 0.0,
+            "model": "planted truth", "side": side}
+    return write_embeddings(path, ids, torch.from_numpy(np.ascontiguousarray(vectors, dtype=np.float32)),
+                            torch.from_numpy(np.asarray(bias, dtype=np.float32)), meta)
 
 
 def _list_array(offsets: np.ndarray, values: pa.Array) -> pa.ListArray:
@@ -536,23 +523,21 @@ def generate_store(out_dir, seed: int = 7, n_items: int = 3000, n_customers: int
     }))
 
     truth = out / "truth"
-    cust_col = pa.array(cust_ids, pa.int64())
+    cust = np.asarray(cust_ids, dtype=np.int64)
+    item_text = np.asarray(item_ids.to_pylist(), dtype=object)
     zeros = np.zeros(n_c, dtype=np.float32)
-    paths["truth_customer_vectors"] = _write_parquet(
-        truth / "customer_vectors.parquet", _vector_table(cust_col, u, zeros))
-    paths["truth_item_vectors"] = _write_parquet(
-        truth / "item_vectors.parquet", _vector_table(item_ids, v, b))
-    paths["truth_rating_customer_vectors"] = _write_parquet(
-        truth / "rating_customer_vectors.parquet", _vector_table(cust_col, ru, zeros))
-    paths["truth_rating_item_vectors"] = _write_parquet(
-        truth / "rating_item_vectors.parquet", _vector_table(item_ids, v, rb))
+    paths["truth_customer_vectors"] = _write_truth(truth / "customer_vectors.parquet", cust, u, zeros, "user")
+    paths["truth_item_vectors"] = _write_truth(truth / "item_vectors.parquet", item_text, v, b, "item")
+    paths["truth_rating_customer_vectors"] = _write_truth(
+        truth / "rating_customer_vectors.parquet", cust, ru, zeros, "user")
+    paths["truth_rating_item_vectors"] = _write_truth(truth / "rating_item_vectors.parquet", item_text, v, rb, "item")
     return paths
 
 
 def main(argv=None) -> int:
-    """CLI: ``python -m towers.demo_store OUT_DIR [--seed N]``; prints each file written."""
+    """CLI: ``python -m towers.synthetic.demo_store OUT_DIR [--seed N]``; prints each file written."""
     parser = argparse.ArgumentParser(
-        prog="python -m towers.demo_store",
+        prog="python -m towers.synthetic.demo_store",
         description=f"Write the fictional {STORE_NAME} demo data set.")
     parser.add_argument("out_dir")
     parser.add_argument("--seed", type=int, default=7)

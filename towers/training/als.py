@@ -1,7 +1,7 @@
 """Alternating least squares for the linear factor model: exact row solves of the training objective.
 
 The linear factor model scores a pair s = u_q . v_c + b_q + b_c + g. Under squared loss its summed
-training objective (N * J, see training.py) is
+training objective (N * J, see training/loop.py) is
 
     N J = sum_p 1/2 w_p (s_p - y_p)^2 + lambda/2 sum_e (||e_e||^2 + b_e^2)
 
@@ -58,7 +58,7 @@ from pathlib import Path
 import torch
 from tqdm import tqdm
 
-from towers.config import default_stop_metric
+from towers.config import Config
 from towers.data.prepare import Prepared
 from towers.errors import TowersError
 from towers.model.towers import TwoTowerModel
@@ -442,16 +442,17 @@ def als_sweep(f: Factors, cells: Cells, lam: float, cg_steps: int = 0, non_negat
         update_global_bias(f, cells)
 
 
-def method_name(cfg: dict) -> str:
-    ev = cfg["evaluation"]
-    if ev["baseline_non_negative"]:
+def method_name(cfg: Config) -> str:
+    ev = cfg.evaluation
+    if ev.baseline_non_negative:
         return "non-negative ALS (HALS)"
-    solve = f"conjugate gradient, {ev['baseline_row_steps']} steps" if ev["baseline_row_steps"] else "Cholesky"
-    kind = f"weighted ALS (alpha {ev['baseline_event_weight']:g})" if ev["baseline_solver"] == "weighted_als" else "ALS"
+    steps = ev.baseline_row_steps
+    solve = f"conjugate gradient, {steps} step{'s' if steps > 1 else ''} per row" if steps else "Cholesky"
+    kind = f"weighted ALS (alpha {ev.baseline_event_weight:g})" if ev.baseline_solver == "weighted_als" else "ALS"
     return f"{kind}, {solve}"
 
 
-def fit_als(model: TwoTowerModel, data: Prepared, cfg: dict, checkpoint_dir: Path | None, label: str,
+def fit_als(model: TwoTowerModel, data: Prepared, cfg: Config, checkpoint_dir: Path | None, label: str,
             resume: bool = False) -> TrainResult:
     """Train the linear factor model by ALS sweeps, with the same validation and early stopping as `fit`.
 
@@ -459,23 +460,24 @@ def fit_als(model: TwoTowerModel, data: Prepared, cfg: dict, checkpoint_dir: Pat
     ALS is deterministic and quick, so a resumed run simply solves again from the same start
     (`resume` is accepted for the same call shape as `fit`).
     """
-    ev, tcfg = cfg["evaluation"], cfg["training"]
-    implicit = ev["baseline_solver"] == "weighted_als"
-    lam, sweeps, steps, non_negative = tcfg["id_l2"], ev["baseline_rounds"], ev["baseline_row_steps"], ev["baseline_non_negative"]
+    ev, tcfg = cfg.evaluation, cfg.training
+    implicit = ev.baseline_solver == "weighted_als"
+    lam, sweeps, steps, non_negative = tcfg.id_l2, ev.baseline_rounds, ev.baseline_row_steps, ev.baseline_non_negative
     if lam <= 0:
-        raise TowersError("config key 'training.id_l2': ALS needs lambda > 0; raise it or use evaluation.baseline_solver: gradient")
-    cells = cells_of(data, implicit, ev["baseline_event_weight"])
+        raise TowersError("config key 'training.id_l2': ALS needs lambda > 0; "
+                          "raise it or use evaluation.baseline_solver: gradient")
+    cells = cells_of(data, implicit, ev.baseline_event_weight)
     f = Factors.of_model(model)
     if non_negative:
         f.query.abs_()  # a non-negative start: the magnitudes of the usual random initialisation
         f.candidate.abs_()
     update_global_bias(f, cells)
     n = max(1, cells.n_pairs)
-    result = TrainResult(stop_metric=default_stop_metric(cfg))
-    stopping = EarlyStopping(result, tcfg["patience"], label, "sweep", sweeps, "objective", 6)
+    result = TrainResult(stop_metric=cfg.stop_metric)
+    stopping = EarlyStopping(result, tcfg.patience, label, "round", sweeps, "objective", 6)
     log(f"{label}: {method_name(cfg)} on {len(cells.rows):,} cells; objective {objective(f, cells, lam) / n:.6f} at the start")
-    bar = show_bar(tcfg["progress"])
-    progress = tqdm(total=sweeps, desc=f"{label} sweeps", unit="sweep", leave=False, file=sys.stderr, disable=not bar)
+    bar = show_bar(tcfg.progress)
+    progress = tqdm(total=sweeps, desc=f"{label} rounds", unit="round", leave=False, file=sys.stderr, disable=not bar)
     try:
         with StopRequest() as stop:
             for sweep in range(1, sweeps + 1):
@@ -484,14 +486,14 @@ def fit_als(model: TwoTowerModel, data: Prepared, cfg: dict, checkpoint_dir: Pat
                 rate = n / max(1e-9, time.perf_counter() - started)
                 loss = objective(f, cells, lam) / n
                 if not math.isfinite(loss):
-                    raise TrainingDiverged(f"{label} ALS diverged at sweep {sweep} (objective {loss}); no model was "
+                    raise TrainingDiverged(f"{label} ALS diverged at round {sweep} (objective {loss}); no model was "
                                            "written; raise training.id_l2")
                 f.write_to(model)
                 finished = stopping.after_round(model, data, cfg, sweep, loss, rate, checkpoint_dir)
                 progress.update(1)
                 progress.set_postfix(objective=f"{loss:.6f}")
                 if stop.requested:
-                    raise TrainingInterrupted(f"{label} ALS interrupted after sweep {sweep}; ALS starts again on resume")
+                    raise TrainingInterrupted(f"{label} ALS interrupted after round {sweep}; ALS starts again on resume")
                 if finished:
                     break
     finally:

@@ -1,6 +1,6 @@
 """A global-optimality certificate for the linear factor model trained under squared loss.
 
-The objective. For the id-only model, N J (training.py) is, over the cells of the training pairs
+The objective. For the id-only model, N J (training/loop.py) is, over the cells of the training pairs
 (repeated pairs merged: weight omega = sum of their weights, target ybar = their weighted mean,
 C = the part of the loss no score can remove),
 
@@ -37,7 +37,7 @@ reach, in the units of N J. It is 0 exactly at a global optimum (t = 1 there). T
 passes when gap / F <= evaluation.certificate_gap.
 
 Reading a failing certificate: with a large gradient norm the model has not converged (train longer:
-more epochs or ALS sweeps); with a gradient norm near 0 and a ratio above 1 it sits at a stationary
+more epochs or ALS rounds); with a gradient norm near 0 and a ratio above 1 it sits at a stationary
 point of rank k that is not the global optimum, so k = model.dim is too small for this lambda.
 
 Spectral norms come from Golub-Kahan-Lanczos bidiagonalisation with full reorthogonalisation on
@@ -51,6 +51,7 @@ import math
 import numpy as np
 import torch
 
+from towers.config import Config
 from towers.data.prepare import Prepared
 from towers.model.towers import TwoTowerModel
 from towers.training.als import Cells, Factors, cell_scores, cells_of
@@ -115,20 +116,20 @@ def not_applicable(reason: str) -> dict:
     return {"applies": False, "reason": reason}
 
 
-def certify(model: TwoTowerModel, data: Prepared, cfg: dict) -> dict:
+def certify(model: TwoTowerModel, data: Prepared, cfg: Config) -> dict:
     """The certificate of a trained linear factor model (a dict for certificate.json)."""
-    tcfg, ev = cfg["training"], cfg["evaluation"]
-    if tcfg["loss"] != "squared":
-        return not_applicable(f"training.loss is {tcfg['loss']}; the certificate is for squared loss")
-    if tcfg["id_l2"] <= 0:
+    tcfg, ev = cfg.training, cfg.evaluation
+    if tcfg.loss != "squared":
+        return not_applicable(f"training.loss is {tcfg.loss}; the certificate is for squared loss")
+    if tcfg.id_l2 <= 0:
         return not_applicable("training.id_l2 is 0: without the trace-norm penalty there is no certificate")
-    if ev.get("baseline_non_negative"):
+    if ev.baseline_non_negative:
         return not_applicable("non-negative factors: the certificate covers unconstrained factors only")
     if model.shared:
         return not_applicable("a shared tower scores u_i . u_j, which is not a free product U V^T")
     cells = cells_of(data, dtype=torch.float64)
     factors = Factors.of_model(model, torch.float64)
-    return certificate(factors, cells, tcfg["id_l2"], ev["certificate_gap"])
+    return certificate(factors, cells, tcfg.id_l2, ev.certificate_gap)
 
 
 def certificate(f: Factors, cells: Cells, lam: float, tolerance: float = 1e-3) -> dict:
@@ -187,5 +188,5 @@ def describe(cert: dict, label: str = "linear_factor") -> str:
              f"objective within {cert['gap']:.3g} (relative {cert['relative_gap']:.2e}) of the global optimum")
     if cert["passed"]:
         return f"{label} certificate: passed; {facts}"
-    return (f"{label} certificate: not passed; {facts}; train longer (more epochs or ALS sweeps), and if the "
+    return (f"{label} certificate: not passed; {facts}; train longer (more epochs or ALS rounds), and if the "
             "gradient norm is already near 0, raise model.dim")

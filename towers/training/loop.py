@@ -20,7 +20,7 @@ import torch
 from tqdm import tqdm
 
 from towers.atomic import write_atomic
-from towers.config import default_stop_metric
+from towers.config import Config
 from towers.data.features import block_len, take
 from towers.data.prepare import Prepared
 from towers.errors import TowersError
@@ -56,21 +56,21 @@ from towers.training.stopping import (
 class Trainer:
     """Runs epochs over the training pairs of a Prepared dataset for one model."""
 
-    def __init__(self, model: TwoTowerModel, data: Prepared, cfg: dict, label: str = "towers"):
+    def __init__(self, model: TwoTowerModel, data: Prepared, cfg: Config, label: str = "towers"):
         self.model, self.data, self.cfg, self.label = model, data, cfg, label
-        self.tcfg = cfg["training"]
-        if cfg["run"]["reuse_memory"]:
+        self.tcfg = cfg.training
+        if cfg.run.reuse_memory:
             reuse_freed_memory()
-        self.generator = torch.Generator().manual_seed(cfg["run"]["seed"])
+        self.generator = torch.Generator().manual_seed(cfg.run.seed)
         self.optimizers = make_optimizers(model, self.tcfg)
         self.rank, self.world = rank_and_size()
         # one process: negatives come from the shuffling generator, as always; several: each process
         # draws its own negatives, while the shared shuffle keeps every process on the same order
         self.negative_generator = self.generator if self.world == 1 else \
-            torch.Generator().manual_seed(cfg["run"]["seed"] + 1 + self.rank)
-        self.logistic = self.tcfg["loss"] == "logistic"
-        self.softmax = self.tcfg["loss"] == "softmax"
-        self.n_neg = self.tcfg["negatives"] if self.logistic else 0
+            torch.Generator().manual_seed(cfg.run.seed + 1 + self.rank)
+        self.logistic = self.tcfg.loss == "logistic"
+        self.softmax = self.tcfg.loss == "softmax"
+        self.n_neg = self.tcfg.sampled_negatives
         # both towers output their id rows (the linear factor model): the closed-form objective node
         self.id_rows_only = output_is_id_row(model.query_tower) and output_is_id_row(model.candidate_tower)
         if self.id_rows_only:  # each pair's id-table rows, looked up once instead of twice per step
@@ -78,8 +78,8 @@ class Trainer:
             self.pair_c_ids = data.candidates.block["id"].index_select(0, data.train.candidate)
         train = data.train
         self.log_q = log_batch_share(train.candidate, block_len(data.candidates.block)) \
-            if self.softmax and self.tcfg["logq_correction"] else None
-        if self.tcfg["loss"] == "squared" and train.target is None:
+            if self.softmax and self.tcfg.logq_correction else None
+        if self.tcfg.rating_loss and train.target is None:
             raise TowersError("config key 'training.loss': squared loss needs interactions.target_column (ratings); "
                               "use loss: logistic for events without a target")
         self.sampler = NegativeSampler(train, block_len(data.candidates.block), data.warm_items, self.tcfg,
@@ -92,7 +92,7 @@ class Trainer:
         else:
             self.q_inv = id_counts(q_ids, data.queries.encoders.id_encoder.size)
             self.c_inv = id_counts(c_ids, data.candidates.encoders.id_encoder.size)
-        self.lam = self.tcfg["id_l2"]
+        self.lam = self.tcfg.id_l2
         self.stop = StopRequest(self.world)
         self.step_loss = self.batch_loss if self.world == 1 else wrap(self)
 
@@ -222,13 +222,13 @@ class Trainer:
         self.model.eval()
         with torch.no_grad():
             n = len(self.data.train)
-            step = self.tcfg["batch_size"] if self.softmax else 65536  # softmax: batches as in training
+            step = self.tcfg.batch_size if self.softmax else 65536  # softmax: batches as in training
             total = sum(float(self.batch_loss(torch.arange(i, min(n, i + step)))) * min(step, n - i)
                         for i in range(0, n, step))
             dense = sum(float(p.pow(2).sum()) for p in self.model.dense_parameters())
         self.model.train()
         self.n_neg = keep_neg
-        return total / n + 0.5 * self.tcfg["weight_decay"] * dense
+        return total / n + 0.5 * self.tcfg.weight_decay * dense
 
     def run_epoch(self, epoch: int, bar: bool, perm: torch.Tensor | None = None, start_step: int = 0,
                   done_loss: float = 0.0) -> float:
@@ -239,7 +239,7 @@ class Trainer:
         """
         self.model.train()
         n = len(self.data.train)
-        bs = self.tcfg["batch_size"]
+        bs = self.tcfg.batch_size
         if perm is None:
             perm = torch.randperm(n, generator=self.generator)
         steps = math.ceil(n / bs)
@@ -284,7 +284,7 @@ class Interrupted(Exception):
         self.epoch, self.step, self.perm, self.loss_so_far = epoch, step, perm, loss_so_far
 
 
-def fit(model: TwoTowerModel, data: Prepared, cfg: dict, checkpoint_dir: Path | None, label: str,
+def fit(model: TwoTowerModel, data: Prepared, cfg: Config, checkpoint_dir: Path | None, label: str,
         resume: bool = False) -> TrainResult:
     """Train with validation every epoch, early stopping, and best/last checkpoints.
 
@@ -293,10 +293,10 @@ def fit(model: TwoTowerModel, data: Prepared, cfg: dict, checkpoint_dir: Path | 
     resume=True an existing last.pt is continued, and a finished one is simply loaded.
     """
     trainer = Trainer(model, data, cfg, label)
-    tcfg = cfg["training"]
-    bar = show_bar(tcfg["progress"])
-    result = TrainResult(stop_metric=default_stop_metric(cfg))
-    stopping = EarlyStopping(result, tcfg["patience"], label, "epoch", tcfg["epochs"])
+    tcfg = cfg.training
+    bar = show_bar(tcfg.progress)
+    result = TrainResult(stop_metric=cfg.stop_metric)
+    stopping = EarlyStopping(result, tcfg.patience, label, "epoch", tcfg.epochs)
     epoch, perm, start_step, done_loss = 1, None, 0, 0.0
     last_path = checkpoint_dir / "last.pt" if checkpoint_dir is not None else None
 
@@ -333,7 +333,7 @@ def fit(model: TwoTowerModel, data: Prepared, cfg: dict, checkpoint_dir: Path | 
         log(f"{label}: resuming at epoch {epoch}" + (f", step {start_step}" if start_step else ""))
 
     with trainer.stop:
-        while epoch <= tcfg["epochs"]:
+        while epoch <= tcfg.epochs:
             try:
                 loss = trainer.run_epoch(epoch, bar, perm, start_step, done_loss)
             except RuntimeError as exc:  # a collective failed: a peer process is gone

@@ -5,20 +5,21 @@ from __future__ import annotations
 
 import torch
 
+from towers.config import TrainingSection
 from towers.data.pairs import Pairs
 
 
 class NegativeSampler:
     """Draws negative candidate rows as one tensor op: uniform or proportional to popularity^alpha."""
 
-    def __init__(self, train: Pairs, n_items: int, warm: torch.Tensor, tcfg: dict, generator: torch.Generator):
+    def __init__(self, train: Pairs, n_items: int, warm: torch.Tensor, tcfg: TrainingSection, generator: torch.Generator):
         self.generator = generator
         self.cdf = None
-        if tcfg["negative_sampling"] == "uniform":
+        if tcfg.negative_sampling == "uniform":
             self.rows = torch.nonzero(warm).flatten()  # uniform: one randint, no search
             return
         counts = torch.bincount(train.candidate, minlength=n_items).double()
-        weights = counts.pow(tcfg["popularity_exponent"]) * warm.double()
+        weights = counts.pow(tcfg.popularity_exponent) * warm.double()
         self.cdf = torch.cumsum(weights / weights.sum(), 0)
         self.cdf[-1] = 1.0
 

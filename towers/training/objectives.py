@@ -22,7 +22,7 @@ class IdRowObjective(torch.autograd.Function):
       w * (loss(s q.c+ + qb + cb+ + g, y) + sum_j softplus(s q.c-_j + qb + cb-_j + g)) [logistic]
       w * (pos - y)^2 / 2                                                         [squared]
       + pq (|q|^2 + qb^2) / 2 + pc (|c+|^2 + cb+^2) / 2,
-    the same value as the general path of Trainer.batch_loss (tests/test_batch_loss.py checks both
+    the same value as the general path of Trainer.batch_loss (tests/training/test_batch_loss.py checks both
     the value and every gradient against it).
     """
 

@@ -12,7 +12,7 @@ from pathlib import Path
 import torch
 
 from towers.atomic import write_atomic
-from towers.config import lower_is_better
+from towers.config import Config, lower_is_better
 from towers.data.prepare import Prepared
 from towers.errors import TowersError
 from towers.evaluation.protocol import validation_metrics
@@ -61,7 +61,7 @@ class EarlyStopping:
     loss_digits: int = 4
     stale: int = 0
 
-    def after_round(self, model: TwoTowerModel, data: Prepared, cfg: dict, step: int, loss: float, rate: float,
+    def after_round(self, model: TwoTowerModel, data: Prepared, cfg: Config, step: int, loss: float, rate: float,
                     checkpoint_dir: Path | None) -> bool:
         """Validate round `step`, log it, save the best weights; returns whether training should stop."""
         value, improved = self._record(model, data, cfg, step, loss, rate, checkpoint_dir)
@@ -79,7 +79,7 @@ class EarlyStopping:
         if self.result.best_state is not None:
             model.load_state_dict(self.result.best_state)
 
-    def _record(self, model: TwoTowerModel, data: Prepared, cfg: dict, step: int, loss: float, rate: float,
+    def _record(self, model: TwoTowerModel, data: Prepared, cfg: Config, step: int, loss: float, rate: float,
                 checkpoint_dir: Path | None) -> tuple[float | None, bool]:
         """Append the round's history row; keep and save the best weights. With no validation pairs every
         round counts as the best."""
