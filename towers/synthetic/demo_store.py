@@ -34,12 +34,10 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
-import torch
 
 from towers.atomic import write_atomic
-from towers.data.embeddings_file import write_embeddings
 from towers.errors import TowersError
-from towers.search.scorer import FORMULA
+from towers.synthetic.truth import write_truth
 
 STORE_NAME = "Thimbleroot Lane Hardware & Garden"
 ITEM_PREFIX = "TR-"
@@ -139,15 +137,6 @@ def _write_parquet(path: pathlib.Path, table: pa.Table) -> pathlib.Path:
 
 def _write_csv(path: pathlib.Path, frame: pd.DataFrame) -> pathlib.Path:
     return write_atomic(path, lambda tmp: frame.to_csv(tmp, index=False))
-
-
-def _write_truth(path: pathlib.Path, ids: np.ndarray, vectors: np.ndarray, bias: np.ndarray, side: str) -> pathlib.Path:
-    """True vectors in the embeddings-file layout that runs export (towers.data.embeddings_file), so the
-    oracle rows read them like any model's vectors."""
-    meta = {"normalized": "false", "temperature": 1.0, "score": FORMULA, "global_bias": 0.0,
-            "model": "planted truth", "side": side}
-    return write_embeddings(path, ids, torch.from_numpy(np.ascontiguousarray(vectors, dtype=np.float32)),
-                            torch.from_numpy(np.asarray(bias, dtype=np.float32)), meta)
 
 
 def _list_array(offsets: np.ndarray, values: pa.Array) -> pa.ListArray:
@@ -526,11 +515,11 @@ def generate_store(out_dir, seed: int = 7, n_items: int = 3000, n_customers: int
     cust = np.asarray(cust_ids, dtype=np.int64)
     item_text = np.asarray(item_ids.to_pylist(), dtype=object)
     zeros = np.zeros(n_c, dtype=np.float32)
-    paths["truth_customer_vectors"] = _write_truth(truth / "customer_vectors.parquet", cust, u, zeros, "user")
-    paths["truth_item_vectors"] = _write_truth(truth / "item_vectors.parquet", item_text, v, b, "item")
-    paths["truth_rating_customer_vectors"] = _write_truth(
+    paths["truth_customer_vectors"] = write_truth(truth / "customer_vectors.parquet", cust, u, zeros, "user")
+    paths["truth_item_vectors"] = write_truth(truth / "item_vectors.parquet", item_text, v, b, "item")
+    paths["truth_rating_customer_vectors"] = write_truth(
         truth / "rating_customer_vectors.parquet", cust, ru, zeros, "user")
-    paths["truth_rating_item_vectors"] = _write_truth(truth / "rating_item_vectors.parquet", item_text, v, rb, "item")
+    paths["truth_rating_item_vectors"] = write_truth(truth / "rating_item_vectors.parquet", item_text, v, rb, "item")
     return paths
 
 

@@ -37,12 +37,10 @@ import sys
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
-import torch
 
 from towers.atomic import write_atomic, write_text_atomic
-from towers.data.embeddings_file import write_embeddings
 from towers.errors import TowersError
-from towers.search.scorer import FORMULA
+from towers.synthetic.truth import write_truth
 
 ITEM_PREFIX = "item-"
 _CHUNK = 1024  # users per sampling chunk: bounds memory to CHUNK x n_items
@@ -52,15 +50,6 @@ _CHUNK = 1024  # users per sampling chunk: bounds memory to CHUNK x n_items
 
 def _write_parquet(path: pathlib.Path, table: pa.Table) -> pathlib.Path:
     return write_atomic(path, lambda tmp: pq.write_table(table, tmp))
-
-
-def _write_truth(path: pathlib.Path, ids: np.ndarray, vectors: np.ndarray, bias: np.ndarray, side: str) -> pathlib.Path:
-    """True vectors in the embeddings-file layout that runs export (towers.data.embeddings_file), so the
-    oracle rows read them like any model's vectors."""
-    meta = {"normalized": "false", "temperature": 1.0, "score": FORMULA, "global_bias": 0.0,
-            "model": "planted truth", "side": side}
-    return write_embeddings(path, ids, torch.from_numpy(np.ascontiguousarray(vectors, dtype=np.float32)),
-                            torch.from_numpy(np.asarray(bias, dtype=np.float32)), meta)
 
 
 def _items_table(ids: np.ndarray, group: np.ndarray, attrs: np.ndarray) -> pa.Table:
@@ -161,8 +150,8 @@ def generate_explicit(out_dir, seed: int = 0, n_users: int = 1500, n_items: int 
             "user_id": pa.array(user_ids[uu], pa.int64()), "item_id": item_col.take(pa.array(ii)),
             "rating": pa.array(rating, pa.float64())})),
         "items": _write_parquet(out / "items.parquet", _items_table(item_ids, group, attrs)),
-        "truth_users": _write_truth(out / "truth" / "user_vectors.parquet", user_ids, u, b_user, "user"),
-        "truth_items": _write_truth(out / "truth" / "item_vectors.parquet", item_ids, v, mean_rating + b_item, "item"),
+        "truth_users": write_truth(out / "truth" / "user_vectors.parquet", user_ids, u, b_user, "user"),
+        "truth_items": write_truth(out / "truth" / "item_vectors.parquet", item_ids, v, mean_rating + b_item, "item"),
     }
     info = {"kind": "explicit", "seed": seed, "n_users": n_users, "n_items": n_items, "rank": rank, "noise": noise,
             "n_ratings": n_obs, "threshold": threshold, "oversampling": oversampling,
@@ -219,8 +208,8 @@ def generate_implicit(out_dir, seed: int = 0, n_users: int = 2000, n_items: int 
         "events": _write_parquet(out / "events.parquet", pa.table({
             "user_id": pa.array(user_ids[uu], pa.int64()), "item_id": item_col.take(pa.array(ii))})),
         "items": _write_parquet(out / "items.parquet", _items_table(item_ids, group, attrs)),
-        "truth_users": _write_truth(out / "truth" / "user_vectors.parquet", user_ids, u, np.zeros(n_users), "user"),
-        "truth_items": _write_truth(out / "truth" / "item_vectors.parquet", item_ids, v, b, "item"),
+        "truth_users": write_truth(out / "truth" / "user_vectors.parquet", user_ids, u, np.zeros(n_users), "user"),
+        "truth_items": write_truth(out / "truth" / "item_vectors.parquet", item_ids, v, b, "item"),
     }
     info = {"kind": "implicit", "seed": seed, "n_users": n_users, "n_items": n_items, "rank": rank,
             "n_events": int(len(uu)), "events_per_user": events_per_user, "min_events": min_events,
