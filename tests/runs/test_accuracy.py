@@ -14,12 +14,12 @@ import sys
 from pathlib import Path
 
 import numpy as np
-import pyarrow.parquet as pq
 import pytest
 
 import towers
 from towers.model.bundle import load_payload
 
+from ..helpers import read_vectors
 from ..sizes import PLANTED_EXPLICIT, PLANTED_IMPLICIT
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -36,18 +36,9 @@ ONE_THREAD = {"run": {"threads": 1}}
 
 # ---------------------------------------------------------------- helpers
 
-def _vectors(path: Path):
-    """(ids, vectors, bias) of an embeddings parquet, read with pyarrow alone."""
-    t = pq.read_table(path)
-    k = t.schema.field("embedding").type.list_size
-    vec = t.column("embedding").combine_chunks().flatten().to_numpy().reshape(-1, k).astype(np.float64)
-    bias = t.column("bias").to_numpy().astype(np.float64) if "bias" in t.column_names else np.zeros(len(vec))
-    return t.column("id").to_pylist(), vec, bias
-
-
 def _aligned(path: Path, ids: list):
     """Vectors and biases of `path` in the order of `ids`."""
-    own, vec, bias = _vectors(path)
+    own, vec, bias = read_vectors(path)
     row = {v: i for i, v in enumerate(own)}
     pick = np.array([row[i] for i in ids])
     return vec[pick], bias[pick]

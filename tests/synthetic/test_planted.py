@@ -5,7 +5,6 @@ from __future__ import annotations
 
 import json
 import math
-from pathlib import Path
 
 import numpy as np
 import pyarrow.parquet as pq
@@ -14,25 +13,17 @@ import pytest
 from towers.errors import TowersError
 from towers.synthetic.planted import generate_explicit
 
+from ..helpers import read_vectors
 from ..sizes import PLANTED_EXPLICIT as EXPLICIT
 from ..sizes import PLANTED_IMPLICIT as IMPLICIT
-
-
-def _vectors(path: Path):
-    """(ids, vectors, bias) of an embeddings parquet, read with pyarrow alone."""
-    t = pq.read_table(path)
-    k = t.schema.field("embedding").type.list_size
-    vec = t.column("embedding").combine_chunks().flatten().to_numpy().reshape(-1, k).astype(np.float64)
-    bias = t.column("bias").to_numpy().astype(np.float64) if "bias" in t.column_names else np.zeros(len(vec))
-    return t.column("id").to_pylist(), vec, bias
 
 
 def test_explicit_data_is_rank_r_plus_noise_sigma(planted_explicit):
     data = planted_explicit
     info = json.loads((data / "truth" / "planted.json").read_text())
     ratings = pq.read_table(data / "ratings.parquet").to_pandas()
-    users, u, bu = _vectors(data / "truth" / "user_vectors.parquet")
-    items, v, bi = _vectors(data / "truth" / "item_vectors.parquet")
+    users, u, bu = read_vectors(data / "truth" / "user_vectors.parquet")
+    items, v, bi = read_vectors(data / "truth" / "item_vectors.parquet")
     # the planted mean matrix (minus its biases) has rank exactly r: numpy's SVD-based rank
     assert np.linalg.matrix_rank(u @ v.T) == EXPLICIT["rank"]
     r_of = {x: i for i, x in enumerate(users)}
@@ -58,8 +49,8 @@ def test_implicit_data_draws_distinct_items_by_true_scores(planted_implicit):
     per_user = events.groupby("user_id").size()
     assert per_user.min() >= IMPLICIT["min_events"]
     # users pick items they score higher: the mean true logit of drawn items is above the catalog's
-    users, u, _ = _vectors(data / "truth" / "user_vectors.parquet")
-    items, v, b = _vectors(data / "truth" / "item_vectors.parquet")
+    users, u, _ = read_vectors(data / "truth" / "user_vectors.parquet")
+    items, v, b = read_vectors(data / "truth" / "item_vectors.parquet")
     logits = u @ v.T + b
     qi = events.user_id.map({x: i for i, x in enumerate(users)}).to_numpy()
     ci = events.item_id.map({x: i for i, x in enumerate(items)}).to_numpy()

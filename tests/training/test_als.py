@@ -15,10 +15,7 @@ import yaml
 from sklearn.linear_model import Ridge
 
 from towers import config as C
-from towers.data.prepare import prepare
 from towers.errors import TowersError
-from towers.model.build import baseline_model
-from towers.runs.train import apply_threads
 from towers.training.als import (
     Cells,
     Factors,
@@ -29,6 +26,8 @@ from towers.training.als import (
     objective,
 )
 from towers.training.loop import Trainer, fit
+
+from ..helpers import prepared_baseline
 
 F64 = torch.float64
 
@@ -182,7 +181,7 @@ def test_objective_is_the_gradient_trainers_objective(tmp_path):
     df = _matrix_frame(_gapped_matrix(), repeat=True)
     cfg = _write_config(tmp_path, df, {"loss": "squared", "id_l2": 0.6}, {"dim": 4, "hidden": [], "biases": True},
                         weights=True)
-    data, model, preset = _prepared(cfg)
+    data, model, preset = prepared_baseline(cfg)
     trainer = Trainer(model, data, preset, "linear_factor")
     f = Factors.of_model(model, F64)
     assert objective(f, cells_of(data, dtype=F64), 0.6) == pytest.approx(trainer.objective() * len(data.train), rel=1e-5)
@@ -211,14 +210,6 @@ def _write_config(tmp_path, df: pd.DataFrame, training: dict, model: dict, evalu
     return C.load(tmp_path / "config.yaml")
 
 
-def _prepared(cfg: C.Config):
-    apply_threads(cfg)
-    torch.manual_seed(cfg.run.seed)
-    data = prepare(cfg)
-    model, preset = baseline_model(data, cfg)
-    return data, model, preset
-
-
 def _gapped_matrix() -> np.ndarray:
     """16 x 12, singular values 8, 6, 5 then a tail below 1, plus an offset of 2 for the biases to take."""
     rng = np.random.default_rng(7)
@@ -240,14 +231,14 @@ def test_als_and_gradient_training_reach_the_same_objective(tmp_path):
     grad_cfg = _write_config(tmp_path, df, {"loss": "squared", "id_l2": lam, "epochs": 400, "id_optimizer": "sgd",
                                             "id_learning_rate": 0.04 * n, "learning_rate": 0.05},
                              {"dim": k, "hidden": [], "biases": True})
-    data, grad_model, preset = _prepared(grad_cfg)
+    data, grad_model, preset = prepared_baseline(grad_cfg)
     fit(grad_model, data, preset, None, "linear_factor")
     gradient_objective = _summed(grad_model, data, lam)
 
     als_cfg = _write_config(tmp_path, df, {"loss": "squared", "id_l2": lam},
                             {"dim": k, "hidden": [], "biases": True},
                             {"baseline_solver": "als", "baseline_rounds": 100, "baseline_row_steps": 0})
-    data, als_model, preset = _prepared(als_cfg)
+    data, als_model, preset = prepared_baseline(als_cfg)
     result = fit_als(als_model, data, preset, None, "linear_factor")
     assert len(result.history) == 100 and all(set(r) == {"epoch", "loss", "pairs_per_s"} for r in result.history)
     als_objective = _summed(als_model, data, lam)
@@ -268,7 +259,7 @@ def test_conjugate_gradient_sweeps_reach_the_cholesky_optimum(tmp_path):
     for steps in (0, 3):
         cfg = _write_config(tmp_path, df, {"loss": "squared", "id_l2": 2.0}, {"dim": 5, "hidden": [], "biases": True},
                             {"baseline_solver": "als", "baseline_rounds": 100, "baseline_row_steps": steps})
-        data, model, preset = _prepared(cfg)
+        data, model, preset = prepared_baseline(cfg)
         fit_als(model, data, preset, None, "linear_factor")
         values.append(_summed(model, data, 2.0))
     # common practice (no source): warm-started CG sweeps (Takacs, Pilaszy & Tikk 2011) converge to the same optimum
@@ -289,7 +280,7 @@ def test_weighted_als_fits_through_the_run_path(tmp_path):
            "report": {"enabled": False}}
     (tmp_path / "c.yaml").write_text(yaml.safe_dump(raw), encoding="utf-8")
     cfg = C.load(tmp_path / "c.yaml")
-    data, model, preset = _prepared(cfg)
+    data, model, preset = prepared_baseline(cfg)
     result = fit_als(model, data, preset, None, "linear_factor")
     losses = [r["loss"] for r in result.history]
     assert all("valid_recall@5" in r for r in result.history)

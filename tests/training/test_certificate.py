@@ -19,12 +19,13 @@ import torch
 import yaml
 
 from towers import config as C
-from towers.data.prepare import prepare
 from towers.model.build import baseline_model
-from towers.runs.train import apply_threads, train_run
+from towers.runs.train import train_run
 from towers.training.als import Cells, Factors, als_sweep, cells_of, fit_als
 from towers.training.certificate import certificate, certify, describe, spectral_norm
 from towers.training.loop import fit
+
+from ..helpers import prepared_baseline
 
 F64 = torch.float64
 
@@ -137,14 +138,6 @@ def _frame(y: np.ndarray, keep: np.ndarray | None = None, weights: np.ndarray | 
     return df
 
 
-def _baseline(cfg: C.Config):
-    apply_threads(cfg)
-    torch.manual_seed(cfg.run.seed)
-    data = prepare(cfg)
-    model, preset = baseline_model(data, cfg)
-    return data, model, preset
-
-
 def _matrix_order(model, data, y):
     """The matrix-ordered product U V^T of the learned id tables (ids u00.., i00..)."""
     uid = {name: r + 1 for r, name in enumerate(data.queries.encoders.id_encoder.ids.tolist())}
@@ -161,7 +154,7 @@ def test_stopped_early_fails_and_the_bound_covers_the_true_gap(tmp_path, how):
     evaluation = {"baseline_solver": "als", "baseline_rounds": 1, "baseline_row_steps": 0} if how == "als" else {}
     cfg = _write(tmp_path, _frame(y), {"id_l2": lam, "epochs": 2, "id_optimizer": "sgd", "id_learning_rate": 10.0,
                                        "batch_size": 600}, {"dim": k, "hidden": [], "biases": False}, evaluation)
-    data, model, preset = _baseline(cfg)
+    data, model, preset = prepared_baseline(cfg)
     (fit if how == "gradient" else fit_als)(model, data, preset, None, "linear_factor")
     cert = certify(model, data, preset)
     u, v = _matrix_order(model, data, y)
@@ -220,7 +213,7 @@ def test_als_to_convergence_passes_with_biases_weights_and_missing_ratings(tmp_p
     lam = 1.5
     cfg = _write(tmp_path, _frame(y, observed, weights), {"id_l2": lam}, {"dim": 6, "hidden": [], "biases": True},
                  {"baseline_solver": "als", "baseline_rounds": 400, "baseline_row_steps": 0}, weights=True)
-    data, model, preset = _baseline(cfg)
+    data, model, preset = prepared_baseline(cfg)
     fit_als(model, data, preset, None, "linear_factor")
     cert = certify(model, data, preset)
     assert cert["passed"] and cert["ratio"] <= 1 + 1e-3 and cert["relative_gap"] < 1e-5
