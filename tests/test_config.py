@@ -187,6 +187,12 @@ BAD_VALUES = [
     ("training", "loss", "hinge", "one of squared, logistic"),
     ("evaluation", "top_k", [0], "a list of positive whole numbers"),
     ("evaluation", "test_fraction", 0.91, "a number <= 0.9"),
+    ("evaluation", "split", "session", "one of random, time, user_share, user_last"),
+    ("evaluation", "last_n", 0, "a number >= 1"),
+    ("evaluation", "last_n", 1.5, "a whole number"),
+    ("evaluation", "cold_user_fraction", 0.95, "a number <= 0.9"),
+    ("evaluation", "cold_user_fraction", -0.1, "a number >= 0.0"),
+    ("interactions", "group_column", ["order"], "a string"),
     ("interactions", "weight_column", ["w"], "a string"),
 ]
 
@@ -288,6 +294,21 @@ def test_a_feature_named_id_is_rejected(tmp_path):
     ({"training": {"stop_metric": "rmse"}}, r"'training\.stop_metric': got 'rmse'; expected one of auc, mrr, ndcg@20, recall@20"),
     ({"training": {"loss": "squared", "stop_metric": "recall@20"}}, r"expected one of mae, rmse"),
     ({"training": {"stop_metric": "recall@10"}}, r"'training\.stop_metric'"),
+    ({"evaluation": {"split": "user_last"}},
+     r"^config key 'evaluation\.split': 'user_last' needs interactions\.time_column; set it or use split: user_share$"),
+    ({"run": {"mode": "item_item"}, "evaluation": {"split": "user_share"}},
+     r"^config key 'evaluation\.split': got 'user_share'; expected random or time in item_item mode"),
+    ({"run": {"mode": "item_item"}, "interactions": {"time_column": "ts"}, "evaluation": {"split": "user_last"}},
+     r"^config key 'evaluation\.split': got 'user_last'; expected random or time in item_item mode"),
+    ({"evaluation": {"last_n": 3}}, r"^config key 'evaluation\.last_n': got 3; expected 1 unless evaluation\.split is user_last"),
+    ({"evaluation": {"cold_user_fraction": 0.1}},
+     r"^config key 'evaluation\.cold_user_fraction': a cold-user split needs user features \(users\.features\)"),
+    ({"run": {"mode": "item_item"}, "evaluation": {"cold_user_fraction": 0.1}},
+     r"^config key 'evaluation\.cold_user_fraction': item_item mode has no users; set it to 0"),
+    ({"interactions": {"group_column": "user"}},
+     r"^config key 'interactions\.group_column': got 'user'; expected a column other than the id columns"),
+    ({"run": {"mode": "item_item"}, "interactions": {"group_column": "item"}},
+     r"^config key 'interactions\.group_column': got 'item'; expected a column other than the id columns"),
 ])
 def test_contradictory_options_are_rejected(tmp_path, sections, pattern):
     with pytest.raises(TowersError, match=pattern):
@@ -301,6 +322,11 @@ def test_contradictory_options_are_rejected(tmp_path, sections, pattern):
     {"evaluation": {"top_k": [5, 10], "oracle_users": "u.parquet", "oracle_items": "i.parquet"},
      "training": {"stop_metric": "ndcg@10"}},
     {"training": {"loss": "squared", "stop_metric": "mae"}},
+    {"evaluation": {"split": "user_last", "last_n": 3}, "interactions": {"time_column": "ts", "group_column": "order"}},
+    {"evaluation": {"split": "user_share", "cold_user_fraction": 0.2},
+     "users": {"path": "users.csv", "id_column": "user", "features": [{"name": "age", "kind": "numeric"}]}},
+    {"run": {"mode": "item_item"}, "interactions": {"group_column": "order", "time_column": "ts"},
+     "evaluation": {"split": "time"}, "items": items_with_features()},
 ])
 def test_consistent_combinations_are_accepted(tmp_path, sections):
     C.resolve(minimal(**sections), tmp_path)

@@ -97,6 +97,10 @@ class InteractionsSection:
                                     nullable=True)
     weight_column: str | None = key('str', None, 'non-negative weight of each row in the loss', nullable=True)
     time_column: str | None = key('str', None, 'event time; enables the time split', nullable=True)
+    group_column: str | None = key('str', None,
+                                   'rows sharing a value here (an order or session id) always land on the same '
+                                   'side of the split (training, validation or test)',
+                                   nullable=True)
     context: tuple[FeatureSpec, ...] = key('features', (),
                                            'columns of the log describing each event (hour, channel, device '
                                            '...), numeric or categorical, fed to the query tower beside the '
@@ -201,14 +205,22 @@ class EvaluationSection:
     """evaluation: the held-out split, the reference models and the oracle."""
 
     split: str = key('choice', 'random',
-                     'held-out split: random or time (needs interactions.time_column)',
-                     choices=('random', 'time'))
+                     'held-out split: random, time (the latest events; needs interactions.time_column), '
+                     "user_share (a share of each user's events) or user_last (each user's last_n latest events)",
+                     choices=('random', 'time', 'user_share', 'user_last'))
+    last_n: int = key('int', 1,
+                      "user_last: each user's latest this-many events are the test slice (and the this-many "
+                      'before them validation, when validation_fraction > 0)',
+                      low=1)
     test_fraction: float = key('float', 0.1, 'share of pairs held out for the test slice', low=0.0, high=0.9)
     validation_fraction: float = key('float', 0.1,
                                      'share of the remaining pairs held out for early stopping',
                                      low=0.0, high=0.9)
     cold_item_fraction: float = key('float', 0.0,
                                     'share of items (with features) held out whole for the cold slice',
+                                    low=0.0, high=0.9)
+    cold_user_fraction: float = key('float', 0.0,
+                                    'share of users (with features) held out whole for the cold_users slice',
                                     low=0.0, high=0.9)
     top_k: tuple[int, ...] = key('int_list', (20,), 'K values for recall@K and ndcg@K')
     baseline: bool = key('bool', True, 'also train the linear factor model (ids only, no hidden layer)')
@@ -502,8 +514,7 @@ def _check_consistency(cfg: dict) -> None:
     if ev["cold_item_fraction"] > 0 and not cfg["items"]["features"]:
         raise TowersError("config key 'evaluation.cold_item_fraction': a cold-start split needs item features "
                           "(items.features); set it to 0 or add features")
-    if ev["split"] == "time" and not cfg["interactions"]["time_column"]:
-        raise TowersError("config key 'evaluation.split': 'time' needs interactions.time_column; set it or use split: random")
+    _check_split(cfg)
     if ev["test_fraction"] + ev["validation_fraction"] >= 0.95:
         raise TowersError("config keys 'evaluation.test_fraction' + 'validation_fraction' leave almost no training data; "
                           "lower them")
@@ -530,6 +541,32 @@ def _check_consistency(cfg: dict) -> None:
                           f"features ({', '.join(categorical)})" if categorical else
                           f"config key 'report.color_feature': got {colour!r}; expected null (items.features lists no "
                           "categorical feature)")
+
+
+def _check_split(cfg: dict) -> None:
+    """The split's own needs: a time column for the time-ordered splits, users for the per-user ones."""
+    ev, ic = cfg["evaluation"], cfg["interactions"]
+    split, item_item = ev["split"], cfg["run"]["mode"] == "item_item"
+    if split in ("time", "user_last") and not ic["time_column"]:
+        raise TowersError(f"config key 'evaluation.split': {split!r} needs interactions.time_column; set it or use "
+                          f"split: {'random' if split == 'time' else 'user_share'}")
+    if split in ("user_share", "user_last") and item_item:
+        raise TowersError(f"config key 'evaluation.split': got {split!r}; expected random or time in item_item mode "
+                          "(per-user splits need users; use run.mode: user_item, or split: random)")
+    if ev["last_n"] != 1 and split != "user_last":
+        raise TowersError(f"config key 'evaluation.last_n': got {ev['last_n']}; expected 1 unless evaluation.split is "
+                          "user_last (remove the key, or use split: user_last)")
+    if ev["cold_user_fraction"] > 0 and item_item:
+        raise TowersError("config key 'evaluation.cold_user_fraction': item_item mode has no users; set it to 0 "
+                          "(cold_item_fraction holds out items)")
+    if ev["cold_user_fraction"] > 0 and not cfg["users"]["features"]:
+        raise TowersError("config key 'evaluation.cold_user_fraction': a cold-user split needs user features "
+                          "(users.features); set it to 0 or add features")
+    group = ic["group_column"]
+    if group is not None and group in (ic["query_column"], ic["candidate_column"]):
+        raise TowersError(f"config key 'interactions.group_column': got {group!r}; expected a column other than the id "
+                          "columns (to hold out whole users or items use evaluation.cold_user_fraction or "
+                          "cold_item_fraction)")
 
 
 def _check_baseline_solver(cfg: dict) -> None:
