@@ -38,7 +38,7 @@ class Pairs:
 
 @dataclass
 class SplitPairs:
-    """The split a run is trained and judged on: pairs per slice, and which items are warm or cold."""
+    """The split a run is trained and judged on: pairs per slice, which items are warm or cold, which users cold."""
 
     train: Pairs
     valid: Pairs
@@ -47,6 +47,8 @@ class SplitPairs:
     warm_items: torch.Tensor  # bool (n_items,): items with training pairs
     cold_items: torch.Tensor  # bool (n_items,): items held out whole for the cold slice
     item_item: bool
+    cold_user_test: Pairs  # pairs of the users held out whole, for the cold_users slice
+    cold_users: torch.Tensor  # bool (n_queries,): users held out whole
 
     def known(self) -> Pairs:
         """Positives a query is known to have (training and validation): excluded from its test ranking."""

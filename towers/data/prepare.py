@@ -17,7 +17,7 @@ from towers.data.embeddings_file import TrueVectors, true_vectors
 from towers.data.encoders import make_encoder
 from towers.data.features import FeatureBlock, SideEncoders, SideTable
 from towers.data.pairs import Pairs, SplitPairs
-from towers.data.splits import Split, make_split
+from towers.data.splits import HoldOut, Split, make_split
 from towers.data.tables import (
     align_id_types,
     factorize_ids,
@@ -51,6 +51,8 @@ class Prepared:
     test: Pairs
     cold_test: Pairs
     cold_items: torch.Tensor  # bool (n_candidates,)
+    cold_user_test: Pairs  # pairs of the users held out whole
+    cold_users: torch.Tensor  # bool (n_queries,)
     warm_items: torch.Tensor  # bool (n_candidates,): candidates with training pairs
     item_item: bool
     notes: list[str]
@@ -61,7 +63,7 @@ class Prepared:
     @property
     def split(self) -> SplitPairs:
         return SplitPairs(self.train, self.valid, self.test, self.cold_test, self.warm_items, self.cold_items,
-                          self.item_item)
+                          self.item_item, self.cold_user_test, self.cold_users)
 
 
 @dataclass
@@ -77,7 +79,7 @@ class IdColumn:
 
 @dataclass
 class Log:
-    """The interaction log's columns, validated: ids, optional target / weight / time, context frame."""
+    """The interaction log's columns, validated: ids, optional target / weight / time / group, context frame."""
 
     query_ids: IdColumn
     candidate_ids: IdColumn
@@ -85,6 +87,7 @@ class Log:
     weight: np.ndarray | None
     time: np.ndarray | None
     context: pd.DataFrame | None
+    group: np.ndarray | None = None  # int64 codes of the group column, one per row
 
     @property
     def query(self) -> np.ndarray:
@@ -98,10 +101,10 @@ class Log:
 
 
 def read_interactions(cfg: Config) -> Log:
-    """The log's id arrays, optional target / weight / time arrays and context columns, validated."""
+    """The log's id arrays, optional target / weight / time / group arrays and context columns, validated."""
     ic = cfg.interactions
     path = ic.path
-    optional = [ic.target_column, ic.weight_column, ic.time_column]
+    optional = [ic.target_column, ic.weight_column, ic.time_column, ic.group_column]
     cols = [ic.query_column, ic.candidate_column] + [c for c in optional if c]
     context_cols = [f.name for f in ic.context]
     df = read_table(path, columns=list(dict.fromkeys(cols + context_cols)))
@@ -125,12 +128,26 @@ def read_interactions(cfg: Config) -> Log:
             raise TowersError(f"{where(path, ic.weight_column, row + 1)}: negative weight {weight[row]!r}; weights must be >= 0")
     if ic.time_column:
         when = time_column(df[ic.time_column], path, ic.time_column)
+    group = None
+    if ic.group_column:
+        group = _group_codes(df[ic.group_column], path, ic.group_column)
     context = None
     if context_cols:
         context = df[context_cols].reset_index(drop=True)
         for spec in ic.context:  # every value checked in file order, so an error names the log's row
             make_encoder(spec).validate(context[spec.name], path)
-    return Log(q, c, target, weight, when, context)
+    return Log(q, c, target, weight, when, context, group)
+
+
+def _group_codes(series: pd.Series, path, column) -> np.ndarray:
+    """The group column as int64 codes (equal values, equal codes); a missing value is an error."""
+    codes, _ = pd.factorize(series)
+    missing = codes < 0
+    if missing.any():
+        row = int(np.flatnonzero(missing)[0])
+        raise TowersError(f"{where(path, column, row + 1)}: missing group value; every row needs one (fill it, e.g. "
+                          "with the row's own order or session id)")
+    return codes.astype(np.int64, copy=False)
 
 
 def _as_pairs(qr, cr, target, weight, when) -> Pairs:
@@ -193,6 +210,7 @@ def prepare(cfg: Config, previous=None) -> Prepared:
         notes.append(f"dropped {dropped} interaction rows whose ids have no feature row (missing_rows: drop)")
     sel = lambda a: None if a is None else a[keep]  # noqa: E731
     pairs = _as_pairs(q_rows, c_rows, sel(target), sel(weight), sel(when))
+    groups = sel(log.group)
     if len(pairs) == 0:
         raise TowersError(f"{ic.path}: no interaction rows are left after matching ids to the feature tables; "
                           f"check the id columns")
@@ -201,9 +219,16 @@ def prepare(cfg: Config, previous=None) -> Prepared:
     item_has_row = np.ones(len(c_ids), bool)
     if item_side.has_table:
         item_has_row = pd.Index(item_side.ids).get_indexer(c_ids) >= 0
-    split: Split = make_split(pairs, len(c_ids), cfg.evaluation, cfg.run.seed,
-                              cold_eligible=torch.from_numpy(item_has_row) if has_item_features else None,
-                              item_item=item_item)
+    cold_items = cold_users = None
+    if has_item_features:
+        cold_items = HoldOut(item_has_row, None if previous is None else _learned(c_ids, previous.candidate_encoders))
+    if not item_item and cfg.users.features:
+        user_has_row = np.ones(len(q_ids), bool)
+        if user_side.has_table:
+            user_has_row = pd.Index(user_side.ids).get_indexer(q_ids) >= 0
+        cold_users = HoldOut(user_has_row, None if previous is None else _learned(q_ids, previous.query_encoders))
+    split: Split = make_split(pairs, len(c_ids), cfg.evaluation, cfg.run.seed, cold_eligible=cold_items,
+                              item_item=item_item, groups=groups, n_queries=len(q_ids), cold_user_eligible=cold_users)
     if len(split.train) == 0:
         raise TowersError(f"{ic.path}: the split leaves no training pairs; lower evaluation fractions or add data")
     context_encoders = None
@@ -249,10 +274,18 @@ def prepare(cfg: Config, previous=None) -> Prepared:
         warm[train.query] = True
     _warn_small_data(cfg, train, len(q_ids), len(c_ids), notes)
     prepared = Prepared(q_side, c_side, train, pairs.subset(split.valid), pairs.subset(split.test),
-                        pairs.subset(split.cold_test), split.cold_items, warm, item_item, notes, context=context_encoders,
-                        started_from=started_from)
+                        pairs.subset(split.cold_test), split.cold_items, pairs.subset(split.cold_user_test),
+                        split.cold_users, warm, item_item, notes, context=context_encoders, started_from=started_from)
     _check_oracles(cfg, prepared)
     return prepared
+
+
+def _learned(ids: np.ndarray, encoders: SideEncoders) -> np.ndarray:
+    """Which catalog ids an earlier run learned (its id encoder lists them): such entities are not cold."""
+    known = encoders.id_encoder.ids
+    if len(known) == 0:
+        return np.zeros(len(ids), dtype=bool)
+    return pd.Index(known).get_indexer(align_id_types(ids, known)) >= 0
 
 
 def _check_oracles(cfg: Config, data: Prepared) -> None:

@@ -1,54 +1,222 @@
-"""Held-out splits: random or by time for the warm slice, plus whole items held out for the cold slice."""
+"""Held-out splits: whole items and users held out for the cold slices, then the rest split by unit.
+
+A unit is what must land on one side (training, validation or test) together: one row by default;
+with a group column every row of a group; in item_item mode both directions of an unordered pair
+(A, B) and (B, A), so a test pair's reverse never teaches the model its answer. Units are merged
+when they share rows (a pair seen in two orders joins both orders' groups). The warm split then
+places units: at random, by time (a unit at its earliest event), or per user (a share of each
+user's units at random, or each user's latest units).
+"""
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
 import torch
 
 from towers.config import EvaluationSection
+from towers.errors import TowersError
+
+TRAIN, VALID, TEST = 0, 1, 2
 
 
 @dataclass
 class Split:
-    """Index arrays into the pair list, and which candidate rows are held out whole."""
+    """Index arrays into the pair list, and which catalog rows are held out whole."""
 
     train: np.ndarray
     valid: np.ndarray
     test: np.ndarray
     cold_test: np.ndarray
     cold_items: torch.Tensor  # bool (n_items,)
+    cold_user_test: np.ndarray
+    cold_users: torch.Tensor  # bool (n_queries,)
 
 
-def make_split(pairs, n_items: int, ev: EvaluationSection, seed: int, cold_eligible: torch.Tensor | None,
-               item_item: bool) -> Split:
-    """Split pairs per the evaluation config; the same seed always gives the same split."""
+@dataclass
+class HoldOut:
+    """Which entities of one side may be held out whole: those with a feature row, minus those an earlier
+    run learned (a warm start), which would not be cold."""
+
+    eligible: np.ndarray  # bool (n,): has a feature row
+    learned: np.ndarray | None = None  # bool (n,): in the earlier run's id encoder
+
+
+def make_split(pairs, n_items: int, ev: EvaluationSection, seed: int, cold_eligible: HoldOut | None,
+               item_item: bool, groups: np.ndarray | None = None, n_queries: int | None = None,
+               cold_user_eligible: HoldOut | None = None) -> Split:
+    """Split pairs per the evaluation config; the same seed and data always give the same split.
+
+    groups: one code per pair (the log's group column), or None. n_queries: rows of the query catalog
+    (default: the item catalog in item_item mode, else the largest query row + 1). cold_eligible /
+    cold_user_eligible: which items / users may be held out whole (None: none may). Cold items are
+    drawn first, then cold users, then the warm split, all from one seeded generator.
+    """
     rng = np.random.default_rng(seed + 1)
     q = pairs.query.numpy()
     c = pairs.candidate.numpy()
+    if n_queries is None:
+        n_queries = n_items if item_item else int(q.max(initial=-1)) + 1
     cold_items = np.zeros(n_items, dtype=bool)
     if ev.cold_item_fraction > 0 and cold_eligible is not None:
         seen = np.zeros(n_items, dtype=bool)
         seen[c] = True
         if item_item:
             seen[q] = True
-        candidates = np.flatnonzero(seen & cold_eligible.numpy())
-        n_cold = int(round(ev.cold_item_fraction * len(candidates)))
-        cold_items[rng.choice(candidates, size=n_cold, replace=False)] = True
-    touches_cold = cold_items[c] | (cold_items[q] if item_item else False)
-    cold_test = np.flatnonzero(cold_items[c] & ~(cold_items[q] if item_item else False))
+        cold_items = _held_out(seen, cold_eligible, ev.cold_item_fraction, rng, "item")
+    cold_users = np.zeros(n_queries, dtype=bool)
+    if ev.cold_user_fraction > 0 and cold_user_eligible is not None and not item_item:
+        seen = np.zeros(n_queries, dtype=bool)
+        seen[q] = True
+        cold_users = _held_out(seen, cold_user_eligible, ev.cold_user_fraction, rng, "user")
+    cold_q = cold_items[q] if item_item else cold_users[q]
+    touches_cold = cold_items[c] | cold_q
+    cold_test = np.flatnonzero(cold_items[c] & ~cold_q)
+    cold_user_test = np.flatnonzero(cold_users[q] & ~cold_items[c])
     rest = np.flatnonzero(~touches_cold)
-    if ev.split == "time" and pairs.time is not None:
-        order = rest[np.argsort(pairs.time.numpy()[rest], kind="stable")]
+    unit = split_units(q[rest], c[rest], None if groups is None else groups[rest], item_item)
+    when = None if pairs.time is None else pairs.time.numpy()[rest]
+    if ev.split in ("user_share", "user_last"):
+        side = _per_user_sides(unit, q[rest], when, ev, rng)
     else:
-        order = rest[rng.permutation(len(rest))]
-    n_test = int(round(ev.test_fraction * len(order)))
-    n_valid = int(round(ev.validation_fraction * (len(order) - n_test)))
-    if ev.split == "time":
-        test = order[len(order) - n_test:]
-        valid = order[len(order) - n_test - n_valid:len(order) - n_test]
-        train = order[:len(order) - n_test - n_valid]
+        side = _global_sides(unit, when, ev, rng)
+    return Split(rest[side == TRAIN], rest[side == VALID], rest[side == TEST], cold_test, torch.from_numpy(cold_items),
+                 cold_user_test, torch.from_numpy(cold_users))
+
+
+def _held_out(seen: np.ndarray, pool: HoldOut, fraction: float, rng, what: str) -> np.ndarray:
+    """A bool mask of entities held out whole: round(fraction x eligible entities of the log), drawn from
+    those no earlier run learned; an error with the numbers when too few of those remain."""
+    eligible = seen & pool.eligible
+    n_eligible = int(eligible.sum())
+    n_cold = int(round(fraction * n_eligible))
+    new = eligible if pool.learned is None else eligible & ~pool.learned
+    candidates = np.flatnonzero(new)
+    if n_cold > len(candidates):
+        most = math.floor(len(candidates) / n_eligible * 1000) / 1000 if n_eligible else 0.0
+        raise TowersError(f"--init-from: evaluation.cold_{what}_fraction {fraction:g} asks for {n_cold} cold {what}s, but "
+                          f"only {len(candidates)} of the {n_eligible} {what}s with features in the log were not learned by "
+                          f"the earlier run (those are not cold); lower cold_{what}_fraction to at most {most:g}, "
+                          f"or add new {what}s to the log")
+    out = np.zeros(len(seen), dtype=bool)
+    out[rng.choice(candidates, size=n_cold, replace=False)] = True
+    return out
+
+
+def split_units(q: np.ndarray, c: np.ndarray, groups: np.ndarray | None, item_item: bool) -> np.ndarray:
+    """One unit code per row (0..n_units-1): rows with one code always land on the same side.
+
+    Rows are joined when they share a group, and in item_item mode when they hold the same unordered
+    pair. Without either, every row is its own unit (code = row position).
+    """
+    keys = []
+    if item_item:
+        lo, hi = np.minimum(q, c).astype(np.int64), np.maximum(q, c).astype(np.int64)
+        keys.append(np.unique(lo * (int(max(q.max(initial=0), c.max(initial=0))) + 1) + hi, return_inverse=True)[1])
+    if groups is not None:
+        keys.append(np.unique(groups, return_inverse=True)[1])
+    if not keys:
+        return np.arange(len(q), dtype=np.int64)
+    if len(keys) == 1:
+        return keys[0].reshape(-1).astype(np.int64)
+    return connected_units(keys[0].reshape(-1), keys[1].reshape(-1))
+
+
+def connected_units(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Connected components of the graph whose nodes are the values of `a` and of `b` and whose edges are
+    the rows (a[i], b[i]): each row's component, numbered 0..k-1 in order of first row.
+
+    Minimum-label propagation with pointer jumping, one vectorised pass per round; the rounds grow with
+    the logarithm of the longest chain of linked keys, not with the rows.
+    """
+    na = int(a.max(initial=-1)) + 1
+    u, v = a.astype(np.int64), b.astype(np.int64) + na
+    label = np.arange(na + int(b.max(initial=-1)) + 1, dtype=np.int64)
+    while True:
+        low = np.minimum(label[u], label[v])
+        before = label.copy()
+        np.minimum.at(label, u, low)
+        np.minimum.at(label, v, low)
+        while True:  # pointer jumping: every label points at a node whose label is not larger
+            jumped = label[label]
+            if np.array_equal(jumped, label):
+                break
+            label = jumped
+        if np.array_equal(label, before):
+            break
+    # first-appearance numbering, so the codes do not depend on how the keys were numbered
+    _, first, inverse = np.unique(label[u], return_index=True, return_inverse=True)
+    rank = np.empty(len(first), dtype=np.int64)
+    rank[np.argsort(first, kind="stable")] = np.arange(len(first))
+    return rank[inverse.reshape(-1)]
+
+
+def _unit_first_row(unit: np.ndarray, n_units: int) -> np.ndarray:
+    first = np.full(n_units, len(unit), dtype=np.int64)
+    np.minimum.at(first, unit, np.arange(len(unit), dtype=np.int64))
+    return first
+
+
+def _unit_time(unit: np.ndarray, n_units: int, when: np.ndarray) -> np.ndarray:
+    """Each unit's earliest event time."""
+    t = np.full(n_units, np.iinfo(np.int64).max, dtype=np.int64)
+    np.minimum.at(t, unit, when.astype(np.int64))
+    return t
+
+
+def _global_sides(unit: np.ndarray, when: np.ndarray | None, ev: EvaluationSection, rng) -> np.ndarray:
+    """Random or time split of the units, the fractions applied to units: test first, then validation
+    from the rest. Returns each row's side."""
+    n_units = int(unit.max(initial=-1)) + 1
+    if ev.split == "time" and when is not None:
+        order = np.argsort(_unit_time(unit, n_units, when), kind="stable")
     else:
-        test, valid, train = order[:n_test], order[n_test:n_test + n_valid], order[n_test + n_valid:]
-    return Split(np.sort(train), np.sort(valid), np.sort(test), cold_test, torch.from_numpy(cold_items))
+        order = rng.permutation(n_units)
+    n_test = int(round(ev.test_fraction * n_units))
+    n_valid = int(round(ev.validation_fraction * (n_units - n_test)))
+    unit_side = np.full(n_units, TRAIN, dtype=np.int8)
+    if ev.split == "time":  # the latest units are the test slice, the next latest validation
+        unit_side[order[n_units - n_test:]] = TEST
+        unit_side[order[n_units - n_test - n_valid:n_units - n_test]] = VALID
+    else:
+        unit_side[order[:n_test]] = TEST
+        unit_side[order[n_test:n_test + n_valid]] = VALID
+    return unit_side[unit]
+
+
+def _per_user_sides(unit: np.ndarray, q: np.ndarray, when: np.ndarray | None, ev: EvaluationSection, rng) -> np.ndarray:
+    """Each user's units split apart, every user keeping at least one training unit; returns each row's side.
+
+    A unit belongs to the user of its first row. user_share: of a user's k units, round(test_fraction x k)
+    at random are test (halves rounded up), capped at k - 1; then round(validation_fraction x the rest)
+    of the rest are validation, capped to leave one for training. user_last: the latest min(last_n, k - 1)
+    units are test and, when validation_fraction > 0, the min(last_n, what is left - 1) before them
+    validation (ties in time: the later row counts as later).
+    """
+    n_units = int(unit.max(initial=-1)) + 1
+    first = _unit_first_row(unit, n_units)
+    owner = q[first].astype(np.int64)
+    if ev.split == "user_last":
+        # ascending by (owner, earliest time, first row): a user's latest units come last
+        order = np.lexsort((first, _unit_time(unit, n_units, when), owner))
+    else:
+        order = np.lexsort((rng.random(n_units), owner))
+    owners_sorted = owner[order]
+    starts = np.flatnonzero(np.r_[True, owners_sorted[1:] != owners_sorted[:-1]])
+    counts = np.diff(np.r_[starts, n_units])
+    k = np.repeat(counts, counts)  # units of each sorted unit's owner
+    pos = np.arange(n_units) - np.repeat(starts, counts)  # place within the owner's units
+    if ev.split == "user_last":
+        pos = k - 1 - pos  # 0 is the latest
+        n_test = np.minimum(ev.last_n, k - 1)
+        n_valid = np.minimum(ev.last_n, k - 1 - n_test) if ev.validation_fraction > 0 else np.zeros_like(k)
+    else:
+        n_test = np.minimum(np.floor(ev.test_fraction * k + 0.5).astype(np.int64), k - 1)
+        left = k - n_test
+        n_valid = np.minimum(np.floor(ev.validation_fraction * left + 0.5).astype(np.int64), left - 1)
+    sorted_side = np.where(pos < n_test, TEST, np.where(pos < n_test + n_valid, VALID, TRAIN)).astype(np.int8)
+    unit_side = np.empty(n_units, dtype=np.int8)
+    unit_side[order] = sorted_side
+    return unit_side[unit]

@@ -190,17 +190,23 @@ class RunFolder:
                    "query_ids": query_ids.tolist(), "item_ids": item_ids.tolist(),
                    "train": _pack(split.train), "valid": _pack(split.valid), "test": _pack(split.test),
                    "cold_test": _pack(split.cold_test), "cold_items": split.cold_items,
-                   "warm_items": split.warm_items, "item_item": split.item_item}
+                   "warm_items": split.warm_items, "item_item": split.item_item,
+                   "cold_user_test": _pack(split.cold_user_test), "cold_users": split.cold_users}
         return write_atomic(self.path / self.PAIRS, lambda p: torch.save(payload, p))
 
     def read_pairs_payload(self) -> dict:
         return load_payload(self.path / self.PAIRS, "pairs file")
 
     def read_pairs(self) -> SavedPairs:
+        """pairs.pt read back; a file written before the cold-user slice existed reads with that slice empty."""
         p = self.read_pairs_payload()
+        query_ids = _ids(p["query_ids"])
+        none = torch.zeros(0, dtype=torch.int64)
+        cold_user_test = _unpack(p["cold_user_test"]) if "cold_user_test" in p else Pairs(none, none)
+        cold_users = p.get("cold_users", torch.zeros(len(query_ids), dtype=torch.bool))
         split = SplitPairs(_unpack(p["train"]), _unpack(p["valid"]), _unpack(p["test"]), _unpack(p["cold_test"]),
-                           p["warm_items"], p["cold_items"], p["item_item"])
-        return SavedPairs(_ids(p["query_ids"]), _ids(p["item_ids"]), split)
+                           p["warm_items"], p["cold_items"], p["item_item"], cold_user_test, cold_users)
+        return SavedPairs(query_ids, _ids(p["item_ids"]), split)
 
 
 def _ids(values: list) -> np.ndarray:

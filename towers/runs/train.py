@@ -173,7 +173,8 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
     for note in data.notes:
         log(note)
     log(f"data: {len(data.train):,} training, {len(data.valid):,} validation, {len(data.test):,} test, "
-        f"{len(data.cold_test):,} cold-start pairs; {len(data.queries.ids):,} queries, {len(data.candidates.ids):,} items")
+        f"{len(data.cold_test):,} cold-start pairs, {len(data.cold_user_test):,} cold-user pairs; "
+        f"{len(data.queries.ids):,} queries, {len(data.candidates.ids):,} items")
 
     model = build_model(data, cfg)
     if previous is not None:  # before anything is written, so a mismatch leaves no folder behind
