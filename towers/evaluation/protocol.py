@@ -2,7 +2,7 @@
 
 Metrics themselves are pure functions in metrics.py; this module decides what is ranked against
 what: warm pairs against every item with training history (the query's known positives excluded),
-cold pairs against the held-out items only.
+cold pairs against the held-out items only, pairs of users held out whole against the warm items.
 """
 
 from __future__ import annotations
@@ -112,7 +112,7 @@ def oracle_scorer(truth: TrueVectors) -> Scorer:
 
 
 def evaluate_slices(scorers: dict[str, Scorer], data: SplitPairs, cfg: Config, event_vectors: dict | None = None) -> dict:
-    """{slice: {model: {metric: value}}} for the warm test pairs and, if any, the cold ones.
+    """{slice: {model: {metric: value}}} for the warm test pairs and, if any, the cold-item and cold-user ones.
 
     With context columns each held-out event is its own query (context.py); event_vectors maps a
     model name to a function giving its query vectors for a slice's events (context-aware towers).
@@ -123,6 +123,8 @@ def evaluate_slices(scorers: dict[str, Scorer], data: SplitPairs, cfg: Config, e
     slices = {"warm": (data.test, data.known(), data.warm_items)}
     if len(data.cold_test):
         slices["cold"] = (data.cold_test, empty, data.cold_items)
+    if len(data.cold_user_test):  # users held out whole: ranked over the warm items, nothing known of them
+        slices["cold_users"] = (data.cold_user_test, empty, data.warm_items)
     out: dict = {name: {} for name in slices}
     for slice_name, (pairs, known, candidates) in slices.items():
         users = None

@@ -201,14 +201,17 @@ class _Page:
             ("pairs: training / validation / test / cold", " / ".join(
                 f"{len(p[s]['query']):,}" for s in ("train", "valid", "test", "cold_test"))),
         ]
+        if len(p.get("cold_user_test", {}).get("query", ())):  # pairs files before the cold-user slice lack it
+            rows.append(("pairs: cold users", f"{len(p['cold_user_test']['query']):,}"))
         body = "".join(f"<tr><th>{_e(k)}</th><td>{_e(str(v))}</td></tr>" for k, v in rows)
         return f'<h2 id="summary">Run</h2>\n<table class="summary">{body}</table>'
 
     def _metrics_section(self) -> str:
         out = ['<h2 id="metrics">Held-out metrics</h2>',
                '<p class="how">The same numbers as <code>metrics.json</code>, on the test pairs (warm: items with '
-               'training pairs, ranked against every such item) and on the cold slice (items held out whole, ranked '
-               'among themselves). Bold marks the best of popularity, linear factor and towers in each column; '
+               'training pairs, ranked against every such item), on the cold slice (items held out whole, ranked '
+               'among themselves) and on the cold_users slice (users held out whole, ranked over the warm items). '
+               'Bold marks the best of popularity, linear factor and towers in each column; '
                'the oracle row scores the true vectors of generated data, a ceiling rather than a competitor. '
                'Higher is better except for rmse and mae.</p>']
         for slice_name, models in self.metrics.items():

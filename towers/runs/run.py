@@ -366,8 +366,10 @@ class Run:
             if log.context is not None and self.context is not None:
                 new.context = self.context.encode(log.context.iloc[np.flatnonzero(ok)], interactions)
             warm = split.warm_items[new.candidate]
-            split.test = new.subset(torch.nonzero(warm).flatten())
+            cold_user = warm & split.cold_users[new.query]  # users this run held out whole stay a slice of their own
+            split.test = new.subset(torch.nonzero(warm & ~cold_user).flatten())
             split.cold_test = new.subset(torch.nonzero(~warm).flatten())
+            split.cold_user_test = new.subset(torch.nonzero(cold_user).flatten())
             split.cold_items = ~split.warm_items
         explicit = cfg.training.rating_loss
         scorers = {"popularity": popularity_scorer(split.train, len(query_ids), len(item_ids), explicit, split.item_item)}
