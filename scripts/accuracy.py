@@ -34,6 +34,7 @@ from accuracy_ratios import ratio  # noqa: E402
 
 import towers  # noqa: E402
 from towers.atomic import write_text_atomic  # noqa: E402
+from towers.evaluation.protocol import SLICES  # noqa: E402
 from towers.model.bundle import load_payload  # noqa: E402
 from towers.synthetic.planted import generate_explicit, generate_implicit  # noqa: E402
 
@@ -95,8 +96,8 @@ def implicit_report(metrics: dict, metric: str = "recall@20", warm_min: float = 
                     ) -> tuple[list[dict], list[str]]:
     """Rows {slice, model, value, /oracle, /popularity, target, ok} and the list of missed targets."""
     rows, missed = [], []
-    for slice_name, models in metrics.items():
-        for model, m in models.items():
+    for slice_name in [s for s in SLICES if s in metrics]:
+        for model, m in metrics[slice_name].items():
             over_o = ratio(metrics, slice_name, model, "oracle", metric)
             over_p = ratio(metrics, slice_name, model, "popularity", metric)
             target, ok = "", True
@@ -139,7 +140,7 @@ def format_implicit(rows: list[dict], info: dict, metrics: dict, metric: str = "
         fmt = lambda v: "n/a" if v is None else f"{v:.3f}"  # noqa: E731
         lines.append(f"{r['slice']:<6}{r['model']:<15}{r['value']:11.4f}{fmt(r['/oracle']):>9}"
                      f"{fmt(r['/popularity']):>13}  {_mark(r['ok'], r['target'])}".rstrip())
-    queries = {s: next(iter(m.values())).get("queries") for s, m in metrics.items()}
+    queries = {s: next(iter(metrics[s].values())).get("queries") for s in SLICES if s in metrics}
     lines.append("queries: " + ", ".join(f"{s} {q:,}" for s, q in queries.items()))
     return "\n".join(lines) + "\n"
 

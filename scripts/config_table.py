@@ -26,7 +26,8 @@ FIX = ".venv/bin/python scripts/config_table.py --write"
 
 FEATURE_TITLE = ("Each entry of `users.features` and `items.features` takes these keys (so does each entry of\n"
                  "`interactions.context`, whose kind is numeric or categorical):")
-KIND_NAMES = {"int_list": "list of int", "str_or_int_list": "list of ids", "features": "list of feature specs"}
+KIND_NAMES = {"int_list": "list of int", "str_list": "list of str", "str_or_int_list": "list of ids",
+              "features": "list of feature specs"}
 
 
 def _cell(text: str) -> str:

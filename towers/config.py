@@ -27,7 +27,7 @@ from towers.errors import TowersError
 class Key:
     """One config key: its type, default, constraint and meaning."""
 
-    kind: str  # "int", "float", "bool", "str", "choice", "path", "int_list", "str_or_int_list", "features", "any"
+    kind: str  # "int", "float", "bool", "str", "choice", "path", "int_list", "str_list", "str_or_int_list", "features", "any"
     default: Any
     meaning: str
     low: float | None = None  # inclusive lower bound, unless low_open
@@ -222,11 +222,22 @@ class EvaluationSection:
     cold_user_fraction: float = key('float', 0.0,
                                     'share of users (with features) held out whole for the cold_users slice',
                                     low=0.0, high=0.9)
-    top_k: tuple[int, ...] = key('int_list', (20,), 'K values for recall@K and ndcg@K')
+    top_k: tuple[int, ...] = key('int_list', (20,), 'K values for recall@K, ndcg@K, coverage@K and popularity_pct@K')
+    group_metrics_by: tuple[str, ...] = key('str_list', (),
+                                            'columns of the users or items table (a segment, a category ...): '
+                                            'warm-slice recall@K and ndcg@K per value of each, in metrics.json '
+                                            'under "groups" and in the table')
     baseline: bool = key('bool', True, 'also train the linear factor model (ids only, no hidden layer)')
     bilinear: bool = key('bool', False,
                          'also train the bilinear model (features and ids, linear towers: no hidden layer), to '
                          "see what the towers' hidden layers add")
+    references: bool = key('bool', True,
+                           'implicit runs: also score EASE and item-kNN (from each query\'s training history), '
+                           'each with its setting chosen on the validation pairs')
+    ease_max_items: int = key('int', 10000,
+                              'largest catalog EASE is fitted for (its memory grows with items^2: about 1.1 GiB '
+                              'at 10,000); above it the table notes it as skipped',
+                              low=1)
     baseline_solver: str = key('choice', 'gradient',
                                'how the linear factor model is trained: gradient (the same loop as the towers),'
                                ' als (ratings, squared loss) or weighted_als (implicit events)',
@@ -346,7 +357,7 @@ def _plain(value):
 def _typed_value(kind: str, value):
     if kind == "features":
         return tuple(FeatureSpec(**f) for f in value)
-    if kind in ("int_list", "str_or_int_list"):
+    if kind in ("int_list", "str_list", "str_or_int_list"):
         return tuple(value)
     return value
 
@@ -429,6 +440,10 @@ def _check_value(label: str, key: Key, value: Any, base_dir: Path) -> Any:
     if key.kind == "int_list":
         if not isinstance(value, list) or not all(isinstance(v, int) and not isinstance(v, bool) and v > 0 for v in value):
             raise bad("a list of positive whole numbers, e.g. [128, 64]")
+        return list(value)
+    if key.kind == "str_list":
+        if not isinstance(value, list) or not all(isinstance(v, str) for v in value):
+            raise bad("a list of names, e.g. [segment, region]")
         return list(value)
     if key.kind == "str_or_int_list":
         if not isinstance(value, list) or not all(isinstance(v, (str, int)) and not isinstance(v, bool) for v in value):

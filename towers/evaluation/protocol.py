@@ -7,21 +7,28 @@ cold pairs against the held-out items only, pairs of users held out whole agains
 
 from __future__ import annotations
 
+import math
+from dataclasses import dataclass
+
 import numpy as np
 import torch
 
 from towers.config import Config
 from towers.data.context import event_pairs, vectors_with_context
 from towers.data.embeddings_file import TrueVectors
+from towers.data.groups import Groups
 from towers.data.pairs import Pairs, SplitPairs
 from towers.data.prepare import Prepared
 from towers.evaluation import metrics as M
+from towers.evaluation import references as R
+from towers.evaluation.references import ReferenceScorer
 from towers.model.embed import reads_context
 from towers.model.towers import TwoTowerModel
 from towers.search import rank_counts as RC
 from towers.search.scorer import Scorer, excluded_cells
 
-MODEL_ORDER = ("popularity", "linear_factor", "bilinear", "towers", "oracle")
+MODEL_ORDER = ("popularity", "linear_factor", R.ITEM_KNN, R.EASE, "bilinear", "towers", "oracle")
+SLICES = ("warm", "cold", "cold_users")  # the keys of metrics.json that hold a slice's {model: metrics}
 
 
 def popularity_scorer(train: Pairs, n_queries: int, n_items: int, explicit: bool, item_item: bool = False) -> Scorer:
@@ -53,14 +60,25 @@ def _pair_keys(q: torch.Tensor, c: torch.Tensor, n_items: int) -> np.ndarray:
     return q.numpy().astype(np.int64) * n_items + c.numpy().astype(np.int64)
 
 
-def ranking_metrics(scorer: Scorer, test: Pairs, known: Pairs, candidate_mask: torch.Tensor, ks,
-                    tie_seed: int = 0, max_queries: int | None = None, exclude_self: bool = False) -> dict[str, float]:
-    """Full-catalog ranking metrics of held-out positives, averaged over queries.
+@dataclass
+class HeldOut:
+    """A slice's held-out positives as a ranking problem: distinct queries, their positives and exclusions."""
 
-    candidate_mask: bool (n_items,) items that compete in the ranking. known: the pairs whose items
-    are excluded from each query's ranking (its training positives). Test pairs that are also known,
-    or whose item is not a candidate, are dropped. Ranks are counted tile by tile (rank_counts.py),
-    from float32 scores ((scale q.x + item bias) + query bias) + global bias, without building the query x item score matrix.
+    queries: torch.Tensor  # catalog query rows, distinct
+    q_index: torch.Tensor  # (P,) each positive's position in `queries`
+    items: torch.Tensor  # (P,) each positive's catalog item row
+    cand_rows: torch.Tensor  # catalog rows of the competing items; column j of a ranking is cand_rows[j]
+    columns: torch.Tensor  # (P,) each positive's column
+    ex_rows: torch.Tensor  # excluded (ranking row, column) cells, sorted by row
+    ex_cols: torch.Tensor
+
+
+def held_out(test: Pairs, known: Pairs, candidate_mask: torch.Tensor, seed: int = 0, max_queries: int | None = None,
+             exclude_self: bool = False) -> HeldOut | None:
+    """The positives of `test` to rank, or None when none is left.
+
+    Test pairs that are also known, or whose item does not compete, are dropped; with max_queries
+    a seeded sample of that many queries is kept.
     """
     n_items = len(candidate_mask)
     test = test.positives()
@@ -73,36 +91,94 @@ def ranking_metrics(scorer: Scorer, test: Pairs, known: Pairs, candidate_mask: t
     known_keys = np.unique(_pair_keys(known.query, known.candidate, n_items))
     keys = keys[~np.isin(keys, known_keys, assume_unique=True)]
     if len(keys) == 0:
-        return {}
+        return None
     pq = torch.from_numpy(keys // n_items)
     pc = torch.from_numpy(keys % n_items)
     queries, q_index = torch.unique(pq, return_inverse=True)
     if max_queries is not None and len(queries) > max_queries:
-        g = torch.Generator().manual_seed(tie_seed + 7)
+        g = torch.Generator().manual_seed(seed + 7)
         chosen = torch.zeros(len(queries), dtype=torch.bool)
         chosen[torch.randperm(len(queries), generator=g)[:max_queries]] = True
         sel = chosen[q_index]
         pq, pc = pq[sel], pc[sel]
         queries, q_index = torch.unique(pq, return_inverse=True)
     cand_rows = torch.nonzero(candidate_mask).flatten()
-    over = scorer.over_items(cand_rows)
     col_of = torch.full((n_items,), -1, dtype=torch.int64)
     col_of[cand_rows] = torch.arange(len(cand_rows))
-    n_cols = len(cand_rows)
-    tie_break = torch.rand(n_cols, generator=torch.Generator().manual_seed(tie_seed))
-
-    # excluded (query row, column) cells: the test queries' known pairs and, for item-item data, each
-    # query item itself
+    # excluded (query row, column) cells: the queries' known pairs and, for item-item data, each query item itself
     ex_rows, ex_cols = excluded_cells(queries, torch.from_numpy(known_keys // n_items),
                                       torch.from_numpy(known_keys % n_items), col_of, exclude_self)
+    return HeldOut(queries, q_index, pc, cand_rows, col_of[pc], ex_rows, ex_cols)
 
-    qb = None if over.query_bias is None else over.query_bias.index_select(0, queries)
-    ranks, n_candidates = RC.rank_counts(over.query_vectors.index_select(0, queries), over.item_vectors, q_index,
-                                         col_of[pc], tie_break, over.item_bias, qb, over.global_bias, over.scale,
-                                         ex_rows, ex_cols)
-    per_q = M.per_query_ranking(ranks, q_index, len(queries), n_candidates, ks)
+
+# Cells of one dense score block of a reference model, and of one comparison block of its positives
+BLOCK_CELLS = 1 << 22
+
+
+def _reference_blocks(scorer: ReferenceScorer, h: HeldOut):
+    """Yield (first row, last row + 1, scores) dense blocks of a reference model's queries over the competing
+    items, excluded cells at -inf."""
+    per_block = max(1, BLOCK_CELLS // max(1, scorer.history.n_items))
+    for lo in range(0, len(h.queries), per_block):
+        hi = min(len(h.queries), lo + per_block)
+        s = scorer.score_rows(h.queries[lo:hi]).index_select(1, h.cand_rows)
+        a, b = torch.searchsorted(h.ex_rows, torch.tensor([lo, hi])).tolist()
+        s[h.ex_rows[a:b] - lo, h.ex_cols[a:b]] = float("-inf")
+        yield lo, hi, s
+
+
+def _reference_ranks(scorer: ReferenceScorer, h: HeldOut) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
+    """(ahead, tied, candidates) of a history-based reference model, from dense score blocks of its queries."""
+    n_q, n_p, n_cols = len(h.queries), len(h.q_index), len(h.cand_rows)
+    ahead = torch.zeros(n_p, dtype=torch.int64)
+    tied = torch.zeros(n_p, dtype=torch.int64)
+    candidates = torch.zeros(n_q, dtype=torch.int64)
+    by_query = torch.argsort(h.q_index, stable=True)
+    p_starts = torch.searchsorted(h.q_index.index_select(0, by_query), torch.arange(n_q + 1))
+    step = max(1, BLOCK_CELLS // max(1, n_cols))
+    for lo, hi, s in _reference_blocks(scorer, h):
+        candidates[lo:hi] = (s > float("-inf")).sum(1)
+        mine = by_query[p_starts[lo]:p_starts[hi]]
+        for c0 in range(0, len(mine), step):
+            part = mine[c0:c0 + step]
+            ahead[part], tied[part] = M.ranks_of_positives(s, h.q_index[part] - lo, h.columns[part])
+    return ahead, tied, candidates
+
+
+def rank_positives(scorer, h: HeldOut) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
+    """(ahead, tied, candidates): for each positive the competing items scored above it and level with it
+    (itself not counted), and each query's competing items.
+
+    Vector models are counted tile by tile (rank_counts.py), from float32 scores
+    ((scale q.x + item bias) + query bias) + global bias, without building the query x item score matrix;
+    history-based references from dense blocks of their scores.
+    """
+    if isinstance(scorer, ReferenceScorer):
+        return _reference_ranks(scorer, h)
+    over = scorer.over_items(h.cand_rows)
+    qb = None if over.query_bias is None else over.query_bias.index_select(0, h.queries)
+    return RC.rank_counts(over.query_vectors.index_select(0, h.queries), over.item_vectors, h.q_index, h.columns,
+                          item_bias=over.item_bias, query_bias=qb, global_bias=over.global_bias, scale=over.scale,
+                          exclude_rows=h.ex_rows, exclude_cols=h.ex_cols)
+
+
+def ranking_metrics(scorer, test: Pairs, known: Pairs, candidate_mask: torch.Tensor, ks,
+                    tie_seed: int = 0, max_queries: int | None = None, exclude_self: bool = False) -> dict[str, float]:
+    """Full-catalog ranking metrics of held-out positives, averaged over queries.
+
+    candidate_mask: bool (n_items,) items that compete in the ranking. known: the pairs whose items
+    are excluded from each query's ranking (its training positives). Test pairs that are also known,
+    or whose item is not a candidate, are dropped. Items scored level with a positive count as in a
+    random order: each metric is its exact expected value over those orders (metrics.per_query_ranking).
+    tie_seed seeds only the sample of max_queries queries.
+    """
+    h = held_out(test, known, candidate_mask, tie_seed, max_queries, exclude_self)
+    if h is None:
+        return {}
+    ahead, tied, n_candidates = rank_positives(scorer, h)
+    per_q = M.per_query_ranking(ahead, h.q_index, len(h.queries), n_candidates, ks, tied=tied)
     out = M.mean_over_queries(per_q)
-    out["queries"] = int(len(queries))
+    out["queries"] = int(len(h.queries))
     return out
 
 
@@ -111,28 +187,137 @@ def oracle_scorer(truth: TrueVectors) -> Scorer:
     return Scorer(truth.query_vectors, truth.item_vectors, truth.query_bias, truth.item_bias)
 
 
-def evaluate_slices(scorers: dict[str, Scorer], data: SplitPairs, cfg: Config, event_vectors: dict | None = None) -> dict:
-    """{slice: {model: {metric: value}}} for the warm test pairs and, if any, the cold-item and cold-user ones.
+def reference_scorers(data: SplitPairs, n_queries: int, n_items: int, cfg: Config, log=None) -> tuple[dict, dict]:
+    """EASE and item-kNN fitted on the training positives, each with the setting the validation pairs prefer.
 
+    Returns ({name: ReferenceScorer}, {name: what was chosen and tried, or why it was skipped}).
+    Implicit runs only (a rating run has no ranking to compare them on).
+    """
+    ev = cfg.evaluation
+    if cfg.training.rating_loss or not ev.references:
+        return {}, {}
+    train = data.train.positives()
+    history = R.History.from_pairs(train.query, train.candidate, n_queries, n_items, include_self=data.item_item)
+    known = data.train.positives()
+    metric = cfg.stop_metric
+
+    def judge(scorer) -> float:
+        got = ranking_metrics(scorer, data.valid, known, data.warm_items, ev.top_k, tie_seed=cfg.run.seed,
+                              max_queries=cfg.training.validate_queries, exclude_self=data.item_item).get(metric)
+        return got if got is not None and math.isfinite(got) else -math.inf
+
+    scorers, info = {}, {}
+    if n_items > ev.ease_max_items:
+        info[R.EASE] = {"skipped": f"{n_items:,} items exceed evaluation.ease_max_items ({ev.ease_max_items:,}); EASE "
+                                   f"would need about {R.ease_bytes(n_items) / 2**30:.1f} GiB"}
+    else:
+        if log is not None:
+            log(f"ease: {n_items:,} items, about {R.ease_bytes(n_items) / 2**30:.2f} GiB while fitting; choosing its "
+                f"penalty by validation {metric}")
+        scorers[R.EASE], tries = R.choose_ease(history, judge)
+        info[R.EASE] = {**scorers[R.EASE].setting, "by": f"validation {metric}", "tries": tries}
+    if log is not None:
+        log(f"item_knn: choosing its neighbour count by validation {metric}")
+    scorers[R.ITEM_KNN], tries = R.choose_knn(history, judge)
+    info[R.ITEM_KNN] = {**scorers[R.ITEM_KNN].setting, "by": f"validation {metric}", "tries": tries}
+    for name in scorers:
+        if not len(data.valid):
+            info[name]["by"] = "no validation pairs: the default setting"
+        for t in info[name]["tries"]:  # JSON has no infinity: an unjudged try is null
+            t["score"] = t["score"] if math.isfinite(t["score"]) else None
+    return scorers, info
+
+
+def _empty_reason(slice_name: str, pairs: Pairs, cfg: Config) -> str:
+    """Why a slice has nothing to score, in words a user can act on."""
+    ev = cfg.evaluation
+    if not len(pairs):
+        if slice_name == "warm" and ev.test_fraction == 0:
+            return "no test pairs: evaluation.test_fraction is 0; raise it to measure the models"
+        return "no test pairs: the split held none out; raise evaluation.test_fraction or add data"
+    return ("no test pairs left to rank: every held-out pair is also a training or validation pair, or its item "
+            "has no training history")
+
+
+def _list_metrics(scorer, h: HeldOut, ks, counts: torch.Tensor) -> dict[str, float]:
+    """Catalog coverage@K and the mean popularity percentile@K of each query's top-K list (ties: catalog order)."""
+    k_max = min(max(ks), len(h.cand_rows))
+    if isinstance(scorer, ReferenceScorer):
+        tops = []
+        for _, _, s in _reference_blocks(scorer, h):
+            val, idx = torch.topk(s, k_max, dim=1)
+            tops.append(torch.where(val > float("-inf"), idx, -1))
+        top = torch.cat(tops)
+    else:
+        top, _ = scorer.over_items(h.cand_rows).for_queries(h.queries).top(k_max, h.ex_rows, h.ex_cols)
+    out = {}
+    for k in ks:
+        out[f"coverage@{k}"] = M.catalog_coverage(top[:, :k], len(h.cand_rows))
+        out[f"popularity_pct@{k}"] = M.popularity_percentile(top[:, :k], counts)
+    return out
+
+
+def _group_metrics(groups: list[Groups], h: HeldOut, per_q: dict, ahead, tied, n_candidates, ks) -> dict:
+    """{column: {group name: {recall@K, ndcg@K, queries}}} of one model on one slice.
+
+    A user column groups the queries; an item column keeps, for each group, only the positives of
+    its items (every query still ranks the whole catalog), so it asks how well each category's
+    items are found.
+    """
+    wanted = [f"{m}@{k}" for k in ks for m in ("recall", "ndcg")]
+    out = {}
+    for g in groups:
+        rows = {}
+        if g.side == "user":
+            means = M.mean_by_group({m: per_q[m] for m in wanted}, g.codes.index_select(0, h.queries), len(g.names))
+            for c, name in enumerate(g.names):
+                if int(means["queries"][c]):
+                    rows[name] = {m: float(means[m][c]) for m in wanted} | {"queries": int(means["queries"][c])}
+        else:
+            labels = g.codes.index_select(0, h.items)
+            for c in torch.unique(labels).tolist():
+                sel = labels == c
+                part = M.per_query_ranking(ahead[sel], h.q_index[sel], len(h.queries), n_candidates, ks, tied=tied[sel])
+                n = int(torch.unique(h.q_index[sel]).numel())
+                rows[g.names[c]] = {m: float(torch.nanmean(part[m])) for m in wanted} | {"queries": n}
+        out[g.column] = rows
+    return out
+
+
+def evaluate_slices(scorers: dict, data: SplitPairs, cfg: Config, event_vectors: dict | None = None,
+                    reference_info: dict | None = None, groups: list[Groups] | None = None) -> dict:
+    """{slice: {model: {metric: value}}} for the warm test pairs and, if any, the cold ones, plus "notes".
+
+    Implicit runs also get each model's catalog coverage@K and popularity percentile@K. The
+    history-based references (EASE, item-kNN) are scored on the warm slice only: items or users with
+    no history give them nothing to score. A slice with nothing to score is empty, and "notes" says why.
     With context columns each held-out event is its own query (context.py); event_vectors maps a
     model name to a function giving its query vectors for a slice's events (context-aware towers).
+    groups: columns whose groups get warm-slice metrics of their own, under "groups".
     """
     explicit = cfg.training.rating_loss
-    ks, tie = cfg.evaluation.top_k, cfg.run.seed
+    ks, seed = cfg.evaluation.top_k, cfg.run.seed
     empty = Pairs(torch.zeros(0, dtype=torch.int64), torch.zeros(0, dtype=torch.int64))
     slices = {"warm": (data.test, data.known(), data.warm_items)}
     if len(data.cold_test):
         slices["cold"] = (data.cold_test, empty, data.cold_items)
     if len(data.cold_user_test):  # users held out whole: ranked over the warm items, nothing known of them
         slices["cold_users"] = (data.cold_user_test, empty, data.warm_items)
+    n_items = len(data.warm_items)
+    counts = torch.bincount(data.train.positives().candidate, minlength=n_items).double()
+    if data.item_item:
+        counts += torch.bincount(data.train.positives().query, minlength=n_items).double()
     out: dict = {name: {} for name in slices}
+    notes: dict = {}
+    by_group: dict = {}
     for slice_name, (pairs, known, candidates) in slices.items():
         users = None
+        raw = pairs
         if pairs.context is not None:
-            raw = pairs
             pairs, known, users = event_pairs(pairs, known)
+        h = None if explicit else held_out(pairs, known, candidates, seed, exclude_self=data.item_item)
         for name in MODEL_ORDER:
-            if name not in scorers:
+            if name not in scorers or (isinstance(scorers[name], ReferenceScorer) and slice_name != "warm"):
                 continue
             s = scorers[name]
             if users is not None:
@@ -140,27 +325,78 @@ def evaluate_slices(scorers: dict[str, Scorer], data: SplitPairs, cfg: Config, e
                 s = s.for_queries(users, fn(raw) if fn else None)
             if explicit:
                 out[slice_name][name] = rating_metrics(s, pairs)
+            elif h is not None:
+                ahead, tied, n_candidates = rank_positives(s, h)
+                per_q = M.per_query_ranking(ahead, h.q_index, len(h.queries), n_candidates, ks, tied=tied)
+                out[slice_name][name] = M.mean_over_queries(per_q) | _list_metrics(s, h, ks,
+                                                                                   counts.index_select(0, h.cand_rows))
+                out[slice_name][name]["queries"] = int(len(h.queries))
+                if groups and slice_name == "warm" and users is None:
+                    for column, rows in _group_metrics(groups, h, per_q, ahead, tied, n_candidates, ks).items():
+                        by_group.setdefault(column, {})[name] = rows
             else:
-                out[slice_name][name] = ranking_metrics(s, pairs, known, candidates, ks, tie, exclude_self=data.item_item)
+                out[slice_name][name] = {}
+        if not any(out[slice_name].values()):
+            notes[slice_name] = _empty_reason(slice_name, raw, cfg)
+    for name, info in (reference_info or {}).items():
+        if "skipped" in info:
+            notes[name] = f"{name} skipped: {info['skipped']}"
+    if by_group:
+        out["groups"] = by_group
+    if notes:
+        out["notes"] = notes
+    if reference_info:
+        out["references"] = reference_info
     return out
 
 
 def format_table(metrics: dict) -> str:
-    """The metrics as a plain text table, one block per slice."""
+    """The metrics as a plain text table, one block per slice, then the notes."""
     lines = []
-    for slice_name, models in metrics.items():
+    notes = metrics.get("notes", {})
+    for slice_name in [s for s in SLICES if s in metrics]:
+        models = metrics[slice_name]
         names = [m for m in models if models[m]]
         if not names:
+            lines += [f"[{slice_name}]  {notes.get(slice_name, 'nothing to score')}", ""]
             continue
         cols = [c for c in next(iter(models[n] for n in names)) if c != "queries"]
         width = max(len(n) for n in names) + 2
         first = models[names[0]]
         lines.append(f"[{slice_name}]" + (f"  ({first['queries']} queries)" if "queries" in first else ""))
-        lines.append("model".ljust(width) + "".join(c.rjust(11) for c in cols))
+        lines.append("model".ljust(width) + "".join(c.rjust(max(11, len(c) + 2)) for c in cols))
         for n in names:
-            lines.append(n.ljust(width) + "".join(f"{models[n].get(c, float('nan')):11.4f}" for c in cols))
+            lines.append(n.ljust(width) + "".join(f"{models[n].get(c, float('nan')):{max(11, len(c) + 2)}.4f}"
+                                                  for c in cols))
         lines.append("")
+    for column, models in metrics.get("groups", {}).items():
+        lines += _group_table(column, models)
+    for name, text in notes.items():
+        if name not in SLICES:
+            lines.append(f"note: {text}")
+    chosen = [f"{n} {', '.join(f'{k} {v:g}' for k, v in info.items() if k not in ('by', 'tries'))} (by {info['by']})"
+              for n, info in metrics.get("references", {}).items() if "skipped" not in info]
+    if chosen:
+        lines.append("references: " + "; ".join(chosen))
     return "\n".join(lines).rstrip() + "\n"
+
+
+def _group_table(column: str, models: dict) -> list[str]:
+    """Warm-slice metrics per group of one column: a row per group, the first metric of each model in columns."""
+    names = list(models)
+    groups = list(dict.fromkeys(g for rows in models.values() for g in rows))
+    if not groups:
+        return []
+    metric = next(iter(next(iter(models[names[0]].values()))), "recall@20") if models[names[0]] else "recall@20"
+    width = max(len(column) + 2, max(len(g) for g in groups) + 2)
+    lines = [f"[warm by {column}]  {metric}", column.ljust(width) + "queries".rjust(9)
+             + "".join(n.rjust(max(11, len(n) + 2)) for n in names)]
+    for g in groups:
+        q = next((models[n][g]["queries"] for n in names if g in models[n]), 0)
+        lines.append(g.ljust(width) + f"{q:9d}" + "".join(
+            f"{models[n][g][metric]:{max(11, len(n) + 2)}.4f}" if g in models[n] else "-".rjust(max(11, len(n) + 2))
+            for n in names))
+    return lines + [""]
 
 
 def validation_metrics(scorer: Scorer, data: Prepared, cfg: Config, pairs: Pairs,

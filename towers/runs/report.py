@@ -24,6 +24,7 @@ from towers.atomic import write_text_atomic
 from towers.config import lower_is_better
 from towers.data.tables import align_id_types, normalise_ids, read_table
 from towers.errors import TowersError
+from towers.evaluation.protocol import SLICES
 from towers.runs.folder import LINEAR_FACTOR, RunFolder
 from towers.runs.run import Run
 
@@ -196,7 +197,9 @@ class _Page:
             ("hidden layers", list(c.model.hidden) or "none (linear map)"),
             ("training.weight_decay / training.id_l2", f"{c.training.weight_decay:g} / {c.training.id_l2:g}"),
             ("epochs run (best)", f"{len(towers_hist)} ({self.history.get('best_epoch')}) by validation "
-                                  f"{self.history.get('stop_metric')}"),
+                                  f"{self.history.get('stop_metric')}"
+                                  + ("; still improving at the last epoch: more epochs may help"
+                                     if self.history.get("still_improving") else "")),
             ("items / queries", f"{len(p['item_ids']):,} / {len(p['query_ids']):,}"),
             ("pairs: training / validation / test / cold", " / ".join(
                 f"{len(p[s]['query']):,}" for s in ("train", "valid", "test", "cold_test"))),
@@ -211,12 +214,16 @@ class _Page:
                '<p class="how">The same numbers as <code>metrics.json</code>, on the test pairs (warm: items with '
                'training pairs, ranked against every such item), on the cold slice (items held out whole, ranked '
                'among themselves) and on the cold_users slice (users held out whole, ranked over the warm items). '
-               'Bold marks the best of popularity, linear factor and towers in each column; '
+               'Bold marks the best model in each column (EASE and item-kNN are '
+               'references scored on the warm slice, each with its setting chosen on the validation pairs); '
                'the oracle row scores the true vectors of generated data, a ceiling rather than a competitor. '
                'Higher is better except for rmse and mae.</p>']
-        for slice_name, models in self.metrics.items():
+        notes = self.metrics.get("notes", {})
+        for slice_name in [s for s in SLICES if s in self.metrics]:
+            models = self.metrics[slice_name]
             names = [m for m in models if models[m]]
             if not names:
+                out.append(f'<h3>{_e(slice_name)}</h3><p class="how">{_e(notes.get(slice_name, "nothing to score"))}</p>')
                 continue
             cols = [k for k in models[names[0]] if k != "queries"]
             queries = models[names[0]].get("queries")

@@ -24,6 +24,7 @@ from towers.data.embeddings_file import (
     write_embeddings,
 )
 from towers.data.features import SideEncoders
+from towers.data.groups import group_labels
 from towers.data.pairs import Pairs
 from towers.data.prepare import read_interactions
 from towers.data.tables import (
@@ -34,7 +35,7 @@ from towers.data.tables import (
     require_columns,
 )
 from towers.errors import TowersError
-from towers.evaluation.protocol import evaluate_slices, oracle_scorer, popularity_scorer
+from towers.evaluation.protocol import evaluate_slices, oracle_scorer, popularity_scorer, reference_scorers
 from towers.model.bundle import load_bundle
 from towers.model.embed import EMBED_CHUNK
 from towers.runs.folder import EMBEDDINGS, SUBFOLDER_MODELS, TOWERS, RunFolder
@@ -392,6 +393,9 @@ class Run:
                 towers["bilinear"] = self.folder.load_bundle("bilinear").model.query_tower
             for name, tower in towers.items():
                 event_vectors[name] = (lambda t: lambda p: vectors_with_context(t, block, p.query, p.context))(tower)
-        return {"metrics": evaluate_slices(scorers, split, cfg, event_vectors), "notes": notes}
+        references, reference_info = reference_scorers(split, len(query_ids), len(item_ids), cfg)
+        groups = group_labels(cfg, query_ids, item_ids)
+        metrics = evaluate_slices(scorers | references, split, cfg, event_vectors, reference_info, groups)
+        return {"metrics": metrics, "notes": notes}
 
 

@@ -30,6 +30,7 @@ import yaml
 from towers import config as C
 from towers.atomic import open_private_log, write_atomic, write_text_atomic
 from towers.errors import TowersError
+from towers.evaluation.protocol import SLICES
 from towers.runs.folder import LINEAR_FACTOR, TOWERS, RunFolder
 from towers.runs.train import train_run
 from towers.training.progress import log, show_bar
@@ -352,8 +353,8 @@ def _row(cell: Cell, metric: str, penalty_key: str) -> dict:
                 "epochs_run": len(towers)})
     metrics = json.loads(metrics_path.read_text(encoding="utf-8"))
     for model, prefix in ((TOWERS, ""), (LINEAR_FACTOR, f"{LINEAR_FACTOR}_")):
-        for slice_name, models in metrics.items():
-            for m, v in (models.get(model) or {}).items():
+        for slice_name in [s for s in SLICES if s in metrics]:
+            for m, v in (metrics[slice_name].get(model) or {}).items():
                 if m != "queries":
                     row[f"{prefix}{slice_name}_{m}"] = v
     return row

@@ -16,6 +16,7 @@ import torch
 from towers import config as C
 from towers.data.context import sample_contexts, vectors_with_context
 from towers.data.embeddings_file import write_embeddings
+from towers.data.groups import group_labels
 from towers.data.prepare import Prepared, prepare
 from towers.errors import TowersError
 from towers.evaluation.protocol import (
@@ -23,6 +24,7 @@ from towers.evaluation.protocol import (
     format_table,
     oracle_scorer,
     popularity_scorer,
+    reference_scorers,
 )
 from towers.model.build import baseline_model, build_model
 from towers.model.bundle import LoadedBundle, save_bundle
@@ -169,6 +171,7 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
     torch.manual_seed(cfg.run.seed)
     previous = load_previous(init_from) if init_from else None
     data = prepare(cfg, previous)
+    groups = group_labels(cfg, data.queries.ids, data.candidates.ids)  # read now: a wrong column fails before training
     started_from = None if previous is None else {"run": str(Path(init_from).resolve()), "encoders": data.started_from}
     for note in data.notes:
         log(note)
@@ -213,7 +216,11 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
         scorers["oracle"] = oracle_scorer(data.oracle)
     event_vectors = {name: _event_vectors(m.query_tower, data) for name, m in context_models.items()
                      if reads_context(m.query_tower, data)}
-    metrics = evaluate_slices(scorers, data.split, cfg, event_vectors)
+    references, reference_info = reference_scorers(data.split, len(data.queries.ids), len(data.candidates.ids), cfg, log)
+    metrics = evaluate_slices(scorers | references, data.split, cfg, event_vectors, reference_info, groups)
+    if result.still_improving:
+        metrics.setdefault("notes", {})["towers_training"] = ("towers: the best epoch was the last one run; validation "
+                                                               "was still improving (raise training.epochs)")
     _save_model(partial, TOWERS, model, cfg.model, data)
     files = export_run(partial, model, data, cfg, TOWERS, scorers[TOWERS])
     partial.write_pairs(data.queries.ids, data.candidates.ids, data.split)
@@ -221,7 +228,8 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
     if started_from is not None:
         partial.write_json(RunFolder.STARTED_FROM, started_from)
     partial.write_json(RunFolder.HISTORY,
-                       {"stop_metric": result.stop_metric, "best_epoch": result.best_epoch, "epochs": histories})
+                       {"stop_metric": result.stop_metric, "best_epoch": result.best_epoch,
+                        "still_improving": result.still_improving, "epochs": histories})
     if cfg.report.enabled:
         write_report(partial.path)  # report.html, read back from the finished files
     partial.publish(out)

@@ -39,6 +39,12 @@ class TrainResult:
     stop_metric: str = ""
     best_state: dict | None = None
 
+    @property
+    def still_improving(self) -> bool:
+        """Validation was measured and its best round was the last one run: more rounds may help."""
+        validated = any(k.startswith("valid_") for row in self.history for k in row)
+        return validated and bool(self.history) and self.best_epoch == self.history[-1]["epoch"]
+
 
 def clone_state(state: dict) -> dict:
     return {k: v.detach().clone() for k, v in state.items()}
@@ -76,8 +82,13 @@ class EarlyStopping:
         return False
 
     def restore_best(self, model: TwoTowerModel) -> None:
+        """Load the best round's weights; warn when that round was the last (validation still improving)."""
         if self.result.best_state is not None:
             model.load_state_dict(self.result.best_state)
+        if self.result.still_improving and self.rounds > 1:
+            more = "training.epochs" if self.unit == "epoch" else "evaluation.baseline_rounds"
+            log(f"warning: {self.label}: the best {self.unit} was the last one run ({self.result.best_epoch}); validation "
+                f"was still improving, so raising {more} may help")
 
     def _record(self, model: TwoTowerModel, data: Prepared, cfg: Config, step: int, loss: float, rate: float,
                 checkpoint_dir: Path | None) -> tuple[float | None, bool]:

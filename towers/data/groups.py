@@ -1,0 +1,64 @@
+"""Group labels of catalog rows, for metrics per group of a categorical user or item column.
+
+A fairness and quality audit: does the model serve every customer segment, every category, alike?
+The labels come straight from the feature tables (any column, feature or not), one per catalog row.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+import torch
+
+from towers.config import Config
+from towers.data.tables import align_id_types, normalise_ids, read_table
+from towers.errors import TowersError
+
+MOST_GROUPS = 100  # more distinct values than this is not a grouping a table can show
+MISSING = "(missing)"
+
+
+@dataclass
+class Groups:
+    """One column's groups: which side it labels, each catalog row's group index, and the group names."""
+
+    column: str
+    side: str  # "user" (query rows) or "item" (item rows)
+    codes: torch.Tensor  # int64 (n_rows,)
+    names: list[str]
+
+
+def _table_columns(path: str | None) -> list[str]:
+    return list(read_table(path).columns) if path else []
+
+
+def group_labels(cfg: Config, query_ids: np.ndarray, item_ids: np.ndarray) -> list[Groups]:
+    """The groups of every column named in evaluation.group_metrics_by, read from the users or items table."""
+    out = []
+    for column in cfg.evaluation.group_metrics_by:
+        sides = [("item", cfg.items, item_ids)]
+        if not cfg.item_item:
+            sides.insert(0, ("user", cfg.users, query_ids))
+        found = [(side, sec, ids) for side, sec, ids in sides if sec.path and column in _table_columns(sec.path)]
+        if not found:
+            where = " or ".join(f"the {s}s table ({sec.path})" for s, sec, _ in sides if sec.path) or "no feature table"
+            raise TowersError(f"config key 'evaluation.group_metrics_by': column {column!r} is not in {where}; "
+                              "name a column of the users or items table")
+        side, sec, ids = found[0]
+        out.append(_labels(column, side, sec.path, sec.id_column, ids))
+    return out
+
+
+def _labels(column: str, side: str, path: str, id_column: str, catalog_ids: np.ndarray) -> Groups:
+    df = read_table(path, columns=[id_column, column])
+    ids = normalise_ids(df[id_column], path, id_column)
+    row = pd.Index(align_id_types(ids, catalog_ids)).get_indexer(catalog_ids)
+    values = df[column].astype("string").fillna(MISSING).to_numpy(dtype=object)
+    labels = np.where(row >= 0, values[np.maximum(row, 0)], MISSING)
+    codes, names = pd.factorize(labels, sort=True)
+    if len(names) > MOST_GROUPS:
+        raise TowersError(f"{path}, column '{column}': {len(names)} distinct values; metrics per group need a "
+                          f"categorical column with at most {MOST_GROUPS} (remove it from evaluation.group_metrics_by)")
+    return Groups(column, side, torch.from_numpy(codes.astype(np.int64)), [str(n) for n in names])
