@@ -59,8 +59,10 @@ def ranking_metrics(scorer: Scorer, test: Pairs, known: Pairs, candidate_mask: t
 
     candidate_mask: bool (n_items,) items that compete in the ranking. known: the pairs whose items
     are excluded from each query's ranking (its training positives). Test pairs that are also known,
-    or whose item is not a candidate, are dropped. Ranks are counted tile by tile (rank_counts.py),
-    from float32 scores ((scale q.x + item bias) + query bias) + global bias, without building the query x item score matrix.
+    or whose item is not a candidate, are dropped. Candidates above and tied with each positive are
+    counted tile by tile (rank_counts.py), from float32 scores ((scale q.x + item bias) + query bias)
+    + global bias, without building the query x item score matrix; ties count at their expected value
+    (metrics.per_query_ranking). tie_seed seeds the sample of max_queries queries.
     """
     n_items = len(candidate_mask)
     test = test.positives()
@@ -88,8 +90,6 @@ def ranking_metrics(scorer: Scorer, test: Pairs, known: Pairs, candidate_mask: t
     over = scorer.over_items(cand_rows)
     col_of = torch.full((n_items,), -1, dtype=torch.int64)
     col_of[cand_rows] = torch.arange(len(cand_rows))
-    n_cols = len(cand_rows)
-    tie_break = torch.rand(n_cols, generator=torch.Generator().manual_seed(tie_seed))
 
     # excluded (query row, column) cells: the test queries' known pairs and, for item-item data, each
     # query item itself
@@ -97,10 +97,10 @@ def ranking_metrics(scorer: Scorer, test: Pairs, known: Pairs, candidate_mask: t
                                       torch.from_numpy(known_keys % n_items), col_of, exclude_self)
 
     qb = None if over.query_bias is None else over.query_bias.index_select(0, queries)
-    ranks, n_candidates = RC.rank_counts(over.query_vectors.index_select(0, queries), over.item_vectors, q_index,
-                                         col_of[pc], tie_break, over.item_bias, qb, over.global_bias, over.scale,
-                                         ex_rows, ex_cols)
-    per_q = M.per_query_ranking(ranks, q_index, len(queries), n_candidates, ks)
+    ahead, tied, n_candidates = RC.rank_counts(over.query_vectors.index_select(0, queries), over.item_vectors,
+                                               q_index, col_of[pc], over.item_bias, qb, over.global_bias, over.scale,
+                                               ex_rows, ex_cols)
+    per_q = M.per_query_ranking(ahead, q_index, len(queries), n_candidates, ks, tied)
     out = M.mean_over_queries(per_q)
     out["queries"] = int(len(queries))
     return out
