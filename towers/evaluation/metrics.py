@@ -1,4 +1,4 @@
-"""Full-catalog ranking metrics and rating errors, as pure functions of tensors.
+"""Full-catalog ranking metrics, beyond-accuracy measures and rating errors, as pure functions of tensors.
 
 Ranking metrics are computed from two numbers per held-out positive: `ahead`, its query's
 non-excluded candidates scoring above it, and `tied`, those scoring exactly the same (itself not
@@ -223,6 +223,80 @@ def _first_reciprocal(first: torch.Tensor, size: torch.Tensor, m: torch.Tensor) 
         log_p = torch.lgamma(rest) - torch.lgamma(rest - um_f[u] + 1.0) + constant[u]
         sums.index_add_(0, u, torch.exp(log_p) / (uc[u].to(f64) + j))
     out[several] = sums[where]
+    return out
+
+
+def catalog_coverage(top_items: torch.Tensor, n_candidates: int) -> float:
+    """Share of the n_candidates columns that appear in any row of top_items.
+
+    top_items: (Q, K) int64 column indices in [0, n_candidates), -1 for padding (a list shorter
+    than K). Returns a float in [0, 1]; NaN when there are no candidates.
+    """
+    flat = _recommended(top_items, n_candidates)
+    if n_candidates == 0:
+        return math.nan
+    shown = torch.zeros(n_candidates, dtype=torch.bool)
+    shown[flat] = True
+    return float(shown.sum()) / n_candidates
+
+
+def popularity_percentile(top_items: torch.Tensor, counts: torch.Tensor) -> float:
+    """Mean popularity percentile of the recommended items, over every non-padding slot of top_items.
+
+    counts: (n_candidates,) training interaction counts per candidate column. A candidate's
+    percentile is the share of candidates with a smaller count plus half the share with an equal one
+    (itself included), in percent: scipy.stats.percentileofscore(counts, its count, kind="mean").
+    top_items: (Q, K) as in catalog_coverage. Returns a float in [0, 100]; NaN with no slot filled.
+    """
+    if counts.dim() != 1:
+        raise ValueError(f"counts must be 1-D (n_candidates,), got shape {tuple(counts.shape)}")
+    counts = counts.to(torch.float64)
+    if not torch.isfinite(counts).all():
+        raise ValueError("counts must be finite")
+    flat = _recommended(top_items, len(counts))
+    if flat.numel() == 0:
+        return math.nan
+    ordered = torch.sort(counts).values
+    below = torch.searchsorted(ordered, counts, right=False)  # candidates with a smaller count
+    at_or_below = torch.searchsorted(ordered, counts, right=True)
+    percentile = 50.0 * (below + at_or_below).to(torch.float64) / len(counts)
+    return float(percentile[flat].mean())
+
+
+def _recommended(top_items: torch.Tensor, n_candidates: int) -> torch.Tensor:
+    """The non-padding entries of a (Q, K) top_items table, flattened, checked to lie in [0, n_candidates)."""
+    if top_items.dim() != 2:
+        raise ValueError(f"top_items must be 2-D (queries, K), got shape {tuple(top_items.shape)}")
+    flat = top_items.reshape(-1).long()
+    if flat.numel() and (flat.min() < -1 or flat.max() >= n_candidates):
+        raise ValueError(f"top_items must lie in [0, {n_candidates}), or be -1 for padding")
+    return flat[flat >= 0]
+
+
+def mean_by_group(per_query: Mapping[str, torch.Tensor], group: torch.Tensor, n_groups: int) -> dict[str, torch.Tensor]:
+    """Each per-query metric averaged within groups of queries (NaN values left out), and the queries per group.
+
+    per_query: name -> (Q,) values, as per_query_ranking returns. group: (Q,) int64 in [0, n_groups).
+    Returns name -> float64 (n_groups,) means (NaN where a group defines none) and 'queries' ->
+    int64 (n_groups,), the queries in each group.
+    """
+    group = group.long()
+    if group.dim() != 1:
+        raise ValueError(f"group must be 1-D (queries,), got shape {tuple(group.shape)}")
+    if group.numel() and (group.min() < 0 or group.max() >= n_groups):
+        raise ValueError(f"group must lie in [0, {n_groups})")
+    if "queries" in per_query:
+        raise ValueError("'queries' is the name of the count of queries per group; rename that metric")
+    out: dict[str, torch.Tensor] = {}
+    for name, values in per_query.items():  # a loop over metrics, never over queries
+        if values.shape != group.shape:
+            raise ValueError(f"metric '{name}' must have the shape of group {tuple(group.shape)}, got {tuple(values.shape)}")
+        v = values.to(torch.float64)
+        ok = ~torch.isnan(v)
+        sums = torch.zeros(n_groups, dtype=torch.float64).index_add_(0, group[ok], v[ok])
+        defined = torch.bincount(group[ok], minlength=n_groups)[:n_groups]
+        out[name] = torch.where(defined > 0, sums / defined.clamp(min=1), math.nan)
+    out["queries"] = torch.bincount(group, minlength=n_groups)[:n_groups]
     return out
 
 
