@@ -1,9 +1,10 @@
 """Property-based checks (hypothesis) of the ranking metrics: every per-query value lies in [0, 1], the
-mean does not depend on the order of the queries, and all of it agrees with a brute-force computation
-from the sorted ranking."""
+mean does not depend on the order of the queries, and all of it agrees with a brute-force computation:
+the plain metrics of every sorted ranking the ties allow, averaged."""
 
 from __future__ import annotations
 
+import itertools
 import math
 
 import numpy as np
@@ -35,27 +36,41 @@ def ranking_cases(draw):
                 items.append(c)
             elif flag == "excluded":
                 scores[q, c] = -math.inf
-    tie_break = np.asarray(draw(st.permutations(range(n))), dtype=np.float64)
     shuffle = draw(st.permutations(range(len(rows)))) if rows else []
     rows = np.asarray(rows, dtype=np.int64)[list(shuffle)] if rows else np.zeros(0, np.int64)
     items = np.asarray(items, dtype=np.int64)[list(shuffle)] if len(items) else np.zeros(0, np.int64)
-    return scores, rows, items, tie_break
+    return scores, rows, items
 
 
-def towers_metrics(scores, rows, items, tie_break):
+def towers_metrics(scores, rows, items):
     s = torch.from_numpy(scores)
-    ranks = M.ranks_of_positives(s, torch.from_numpy(rows), torch.from_numpy(items), torch.from_numpy(tie_break))
-    per_query = M.per_query_ranking(ranks, torch.from_numpy(rows), s.shape[0], M.candidates_per_row(s), KS)
+    ahead, tied = M.ranks_of_positives(s, torch.from_numpy(rows), torch.from_numpy(items))
+    per_query = M.per_query_ranking(ahead, torch.from_numpy(rows), s.shape[0], M.candidates_per_row(s), KS, tied)
     return {k: v.numpy() for k, v in per_query.items()}
 
 
-def brute_force(scores, rows, items, tie_break) -> dict[str, np.ndarray]:
-    """Sort each query's candidates (score descending, then tie_break ascending) and count directly.
+def plain_metrics(labels: list[bool], n_pos: int) -> dict[str, float]:
+    """The metrics of one sorted ranking, labels[r] telling whether rank r holds a positive.
 
     Definitions: recall@k and binary-relevance nDCG@k with ideal DCG over min(k, m) positives
     (Jarvelin & Kekalainen, 2002, cumulated gain); MRR of the first positive; AUC as the share of
     (positive, negative) pairs ordered correctly (the Mann-Whitney form of the ROC area).
     """
+    out = {}
+    for k in KS:
+        out[f"recall@{k}"] = sum(labels[:k]) / n_pos
+        dcg = sum(1.0 / math.log2(p + 2) for p, hit in enumerate(labels[:k]) if hit)
+        out[f"ndcg@{k}"] = dcg / sum(1.0 / math.log2(p + 2) for p in range(min(k, n_pos)))
+    out["mrr"] = 1.0 / (1 + labels.index(True))
+    n_neg = len(labels) - n_pos
+    right = sum(1 for i, a in enumerate(labels) if a for b in labels[i + 1:] if not b)
+    out["auc"] = right / (n_pos * n_neg) if n_neg else math.nan
+    return out
+
+
+def brute_force(scores, rows, items) -> dict[str, np.ndarray]:
+    """Expected metrics over random orders of ties: every arrangement of positives within each group of equal
+    scores (all equally likely), each ranking's metrics computed from the sorted labels, averaged."""
     nq, n = scores.shape
     out = {f"{m}@{k}": np.full(nq, np.nan) for m in ("recall", "ndcg") for k in KS}
     out["mrr"], out["auc"] = np.full(nq, np.nan), np.full(nq, np.nan)
@@ -63,18 +78,19 @@ def brute_force(scores, rows, items, tie_break) -> dict[str, np.ndarray]:
         pos = set(items[rows == q].tolist())
         if not pos:
             continue
-        order = sorted((c for c in range(n) if np.isfinite(scores[q, c])), key=lambda c: (-scores[q, c], tie_break[c]))
-        is_pos = [c in pos for c in order]
-        for k in KS:
-            out[f"recall@{k}"][q] = sum(is_pos[:k]) / len(pos)
-            dcg = sum(1.0 / math.log2(p + 2) for p, hit in enumerate(is_pos[:k]) if hit)
-            ideal = sum(1.0 / math.log2(p + 2) for p in range(min(k, len(pos))))
-            out[f"ndcg@{k}"][q] = dcg / ideal
-        out["mrr"][q] = 1.0 / (1 + is_pos.index(True))
-        n_neg = len(order) - len(pos)
-        if n_neg:
-            right = sum(1 for i, a in enumerate(is_pos) if a for b in is_pos[i + 1:] if not b)
-            out["auc"][q] = right / (len(pos) * n_neg)
+        values = sorted({scores[q, c] for c in range(n) if np.isfinite(scores[q, c])}, reverse=True)
+        groups = [[c in pos for c in range(n) if scores[q, c] == v] for v in values]  # best group first
+        # within a group only where its positives sit matters: each choice of places equally likely
+        choices = [list(itertools.combinations(range(len(g)), sum(g))) for g in groups]
+        totals: dict[str, float] = {}
+        arrangements = 0
+        for pick in itertools.product(*choices):
+            labels = [i in places for g, places in zip(groups, pick) for i in range(len(g))]
+            for name, value in plain_metrics(labels, len(pos)).items():
+                totals[name] = totals.get(name, 0.0) + value
+            arrangements += 1
+        for name, total in totals.items():
+            out[name][q] = total / arrangements
     return out
 
 
@@ -94,12 +110,12 @@ def test_metrics_agree_with_brute_force_and_lie_in_0_1(case):
 @FAST
 @given(case=ranking_cases(), data=st.data())
 def test_mean_metrics_do_not_depend_on_the_order_of_queries(case, data):
-    scores, rows, items, tie_break = case
+    scores, rows, items = case
     perm = np.asarray(data.draw(st.permutations(range(scores.shape[0]))), dtype=np.int64)
     new_row_of = np.argsort(perm)  # query q moves to position new_row_of[q]
-    before = M.mean_over_queries({k: torch.from_numpy(v) for k, v in towers_metrics(scores, rows, items, tie_break).items()})
+    before = M.mean_over_queries({k: torch.from_numpy(v) for k, v in towers_metrics(scores, rows, items).items()})
     after = M.mean_over_queries({k: torch.from_numpy(v) for k, v in
-                                 towers_metrics(scores[perm], new_row_of[rows], items, tie_break).items()})
+                                 towers_metrics(scores[perm], new_row_of[rows], items).items()})
     for name, value in before.items():
         if math.isnan(value):
             assert math.isnan(after[name]), name

@@ -36,14 +36,13 @@ def make_case(case, num_queries=9, n=40, exclude_rate=0.25, pos_counts=None):
     items = torch.tensor(items, dtype=torch.long)
     # Shuffle the positives so that nothing relies on them being grouped by query.
     shuffle = torch.randperm(len(rows), generator=gen)
-    tie_break = torch.randperm(n, generator=gen).to(torch.float64)
-    return scores, rows[shuffle], items[shuffle], tie_break
+    return scores, rows[shuffle], items[shuffle]
 
 
-def evaluate(scores, rows, items, tie_break, ks=KS):
-    ranks = metrics.ranks_of_positives(scores, rows, items, tie_break)
+def evaluate(scores, rows, items, ks=KS):
+    ahead, tied = metrics.ranks_of_positives(scores, rows, items)
     num_cand = metrics.candidates_per_row(scores)
-    return ranks, metrics.per_query_ranking(ranks, rows, scores.shape[0], num_cand, ks)
+    return ahead, metrics.per_query_ranking(ahead, rows, scores.shape[0], num_cand, ks, tied)
 
 
 def query_view(scores, rows, items, u):
@@ -60,21 +59,24 @@ CASES = range(6)
 
 @pytest.mark.parametrize("case", CASES)
 def test_ranks_match_bruteforce_argsort(case):
-    scores, rows, items, tie_break = make_case(case)
-    ranks = metrics.ranks_of_positives(scores, rows, items, tie_break)
+    scores, rows, items = make_case(case)
+    ranks, tied = metrics.ranks_of_positives(scores, rows, items)
     assert ranks.dtype == torch.long and ranks.shape == rows.shape
+    assert tied.dtype == torch.long and tied.shape == rows.shape
     for p in range(len(rows)):
         s = scores[rows[p]].numpy()
         cand = np.flatnonzero(np.isfinite(s))
         order = cand[np.argsort(-s[cand], kind="stable")]
         # reference: position in a numpy argsort of the non-excluded candidates
         assert ranks[p].item() == int(np.flatnonzero(order == items[p].item())[0])
+        # reference: numpy.unique (continuous random scores: no two candidates of a row are equal)
+        assert tied[p].item() == 0 and len(np.unique(s[cand])) == len(cand)
 
 
 @pytest.mark.parametrize("case", CASES)
 def test_auc_matches_sklearn(case):
-    scores, rows, items, tie_break = make_case(case)
-    _, out = evaluate(scores, rows, items, tie_break)
+    scores, rows, items = make_case(case)
+    _, out = evaluate(scores, rows, items)
     for u in range(scores.shape[0]):
         s, y = query_view(scores, rows, items, u)
         if y.sum() == 0:
@@ -86,8 +88,8 @@ def test_auc_matches_sklearn(case):
 
 @pytest.mark.parametrize("case", CASES)
 def test_ndcg_matches_sklearn(case):
-    scores, rows, items, tie_break = make_case(case)
-    _, out = evaluate(scores, rows, items, tie_break)
+    scores, rows, items = make_case(case)
+    _, out = evaluate(scores, rows, items)
     for u in range(scores.shape[0]):
         s, y = query_view(scores, rows, items, u)
         for k in KS:
@@ -101,8 +103,8 @@ def test_ndcg_matches_sklearn(case):
 
 @pytest.mark.parametrize("case", CASES)
 def test_recall_and_mrr_match_bruteforce(case):
-    scores, rows, items, tie_break = make_case(case)
-    _, out = evaluate(scores, rows, items, tie_break)
+    scores, rows, items = make_case(case)
+    _, out = evaluate(scores, rows, items)
     for u in range(scores.shape[0]):
         s, y = query_view(scores, rows, items, u)
         if y.sum() == 0:
@@ -118,8 +120,8 @@ def test_recall_and_mrr_match_bruteforce(case):
 
 
 def test_output_shapes_dtypes_and_keys():
-    scores, rows, items, tie_break = make_case(0)
-    _, out = evaluate(scores, rows, items, tie_break)
+    scores, rows, items = make_case(0)
+    _, out = evaluate(scores, rows, items)
     assert set(out) == set(NAMES)
     for name in NAMES:
         assert out[name].shape == (scores.shape[0],) and out[name].dtype == torch.float64
@@ -127,8 +129,8 @@ def test_output_shapes_dtypes_and_keys():
 
 @pytest.mark.parametrize("case", CASES)
 def test_all_metrics_within_unit_interval(case):
-    scores, rows, items, tie_break = make_case(case, num_queries=9, n=25, exclude_rate=0.5)
-    _, out = evaluate(scores, rows, items, tie_break)
+    scores, rows, items = make_case(case, num_queries=9, n=25, exclude_rate=0.5)
+    _, out = evaluate(scores, rows, items)
     for name in NAMES:
         v = out[name][~torch.isnan(out[name])]
         assert len(v) > 0
@@ -140,8 +142,7 @@ def test_zero_negatives_gives_nan_auc_only():
     scores = torch.tensor([[0.3, -math.inf, 0.9, -math.inf], [0.1, 0.5, 0.2, 0.7]], dtype=torch.float64)
     rows = torch.tensor([0, 0, 1])
     items = torch.tensor([0, 2, 1])
-    tie_break = torch.arange(4, dtype=torch.float64)
-    _, out = evaluate(scores, rows, items, tie_break)
+    _, out = evaluate(scores, rows, items)
     assert math.isnan(out["auc"][0])
     assert out["mrr"][0] == 1.0 and out["recall@3"][0] == 1.0 and out["ndcg@3"][0] == pytest.approx(1.0)
     # Query 1: positive at rank 1 with two of three negatives below it.
@@ -155,11 +156,10 @@ def test_perfect_and_worst_rankings():
     scores = torch.rand(num_queries, n, generator=gen, dtype=torch.float64)
     rows = torch.repeat_interleave(torch.arange(num_queries), pos_counts)
     items = torch.cat([torch.randperm(n, generator=gen)[:m] for m in pos_counts.tolist()])
-    tie_break = torch.randperm(n, generator=gen).to(torch.float64)
 
     perfect = scores.clone()
     perfect[rows, items] += 10.0  # every positive above every negative
-    _, out = evaluate(perfect, rows, items, tie_break)
+    _, out = evaluate(perfect, rows, items)
     for k in KS:
         torch.testing.assert_close(out[f"ndcg@{k}"], torch.ones(num_queries, dtype=torch.float64))
         # With more positives than k, even a perfect ranking only recalls k of them.
@@ -170,15 +170,15 @@ def test_perfect_and_worst_rankings():
 
     worst = scores.clone()
     worst[rows, items] -= 10.0  # every positive below every negative
-    _, out = evaluate(worst, rows, items, tie_break)
+    _, out = evaluate(worst, rows, items)
     torch.testing.assert_close(out["auc"], torch.zeros(num_queries, dtype=torch.float64))
     torch.testing.assert_close(out["mrr"], 1.0 / (1.0 + (n - pos_counts).double()))
     torch.testing.assert_close(out["recall@1"], torch.zeros(num_queries, dtype=torch.float64))
 
 
 def test_excluded_entries_never_counted():
-    scores, rows, items, tie_break = make_case(2, exclude_rate=0.0)
-    before = metrics.ranks_of_positives(scores, rows, items, tie_break)
+    scores, rows, items = make_case(2, exclude_rate=0.0)
+    before, _ = metrics.ranks_of_positives(scores, rows, items)
     # Exclude the best-scoring non-positive of every query: each positive's rank
     # must drop by exactly one, and the candidate count by one.
     is_pos = torch.zeros_like(scores, dtype=torch.bool)
@@ -186,88 +186,76 @@ def test_excluded_entries_never_counted():
     top_neg = scores.masked_fill(is_pos, -math.inf).argmax(dim=1)
     hidden = scores.clone()
     hidden[torch.arange(scores.shape[0]), top_neg] = -math.inf
-    after = metrics.ranks_of_positives(hidden, rows, items, tie_break)
+    after, _ = metrics.ranks_of_positives(hidden, rows, items)
     ahead = scores[rows, top_neg[rows]] > scores[rows, items]
     torch.testing.assert_close(after, before - ahead.long())
     assert (ahead.sum() > 0).item()
     torch.testing.assert_close(metrics.candidates_per_row(hidden), metrics.candidates_per_row(scores) - 1)
 
-    # Excluded entries tied at -inf with a tiny priority still count for nothing.
+    # Excluded entries, equal to each other at -inf, count for nothing, neither ahead nor tied.
     row = torch.tensor([[-math.inf, -math.inf, 0.5, 0.2]])
-    r = metrics.ranks_of_positives(row, torch.tensor([0, 0]), torch.tensor([2, 3]), torch.arange(4.0))
-    assert r.tolist() == [0, 1]
+    ahead, tied = metrics.ranks_of_positives(row, torch.tensor([0, 0]), torch.tensor([2, 3]))
+    assert ahead.tolist() == [0, 1] and tied.tolist() == [0, 0]
     assert metrics.candidates_per_row(row).tolist() == [2]
 
 
 def test_excluded_positive_is_rejected():
     scores = torch.tensor([[0.1, -math.inf, 0.3]])
     with pytest.raises(ValueError):
-        metrics.ranks_of_positives(scores, torch.tensor([0]), torch.tensor([1]), torch.arange(3.0))
+        metrics.ranks_of_positives(scores, torch.tensor([0]), torch.tensor([1]))
 
 
-def test_constant_scores_rank_by_tie_break():
-    gen = torch.Generator().manual_seed(11)
+def test_equal_scores_are_counted_as_tied():
     n = 20
-    tie_break = torch.randperm(n, generator=gen).to(torch.float32)
     scores = torch.full((1, n), 0.25)
-    ranks = metrics.ranks_of_positives(scores, torch.zeros(n, dtype=torch.long), torch.arange(n), tie_break)
-    # Each item is preceded by exactly the items with a smaller priority.
-    assert ranks.tolist() == torch.argsort(torch.argsort(tie_break)).tolist()
-    assert sorted(ranks.tolist()) == list(range(n))
+    ahead, tied = metrics.ranks_of_positives(scores, torch.zeros(n, dtype=torch.long), torch.arange(n))
+    # hand-worked: with one score for all, nothing is above anyone and each ties the other n - 1
+    assert ahead.tolist() == [0] * n and tied.tolist() == [n - 1] * n
 
-    # Small explicit case: priorities [2, 0, 1] rank items as 1, 2, 0.
-    r = metrics.ranks_of_positives(torch.ones(1, 3), torch.zeros(3, dtype=torch.long), torch.arange(3),
-                                   torch.tensor([2.0, 0.0, 1.0]))
-    assert r.tolist() == [2, 0, 1]
-
-    # Ties are only broken among equal scores; a higher score still wins.
+    # Ties only among equal scores; a higher score is ahead. Hand-worked for scores [1, 2, 1, 1]:
+    # item 1 (score 2) has nothing ahead and no tie; items 0, 2, 3 have item 1 ahead and tie the other two.
     s = torch.tensor([[1.0, 2.0, 1.0, 1.0]])
-    r = metrics.ranks_of_positives(s, torch.zeros(4, dtype=torch.long), torch.arange(4), torch.tensor([0.0, 3.0, 2.0, 1.0]))
-    assert r.tolist() == [1, 0, 3, 2]
+    ahead, tied = metrics.ranks_of_positives(s, torch.zeros(4, dtype=torch.long), torch.arange(4))
+    assert ahead.tolist() == [1, 0, 1, 1] and tied.tolist() == [2, 0, 2, 2]
 
 
-def test_constant_model_auc_is_one_half_on_average():
-    gen = torch.Generator().manual_seed(12)
-    n, trials = 50, 400
-    items = torch.randperm(n, generator=gen)[:5]
-    rows = torch.zeros(5, dtype=torch.long)
-    scores = torch.zeros(1, n)
-    aucs = []
-    for _ in range(trials):  # a test loop over independent tie-break draws
-        tie_break = torch.randperm(n, generator=gen).to(torch.float32)
-        _, out = evaluate(scores, rows, items, tie_break, ks=(10,))
-        aucs.append(out["auc"][0].item())
-    # Null AUC has sd sqrt(51 / (12 * 5 * 45)) ~ 0.14, so the mean of 400 has sd ~ 0.007.
-    assert abs(np.mean(aucs) - 0.5) < 0.03
-    assert np.std(aucs) > 0.05  # ties really are broken differently each time
+def test_constant_model_scores_chance_exactly():
+    # One constant score for all 50 candidates, 5 positives: each positive has a = 0, t = 49.
+    n = 50
+    items = torch.randperm(n, generator=torch.Generator().manual_seed(12))[:5]
+    _, out = evaluate(torch.zeros(1, n), torch.zeros(5, dtype=torch.long), items, ks=(10,))
+    # hand-worked: every (positive, negative) pair is tied, half credit each: auc = 1/2
+    assert out["auc"][0].item() == pytest.approx(0.5, abs=1e-15)
+    # hand-worked: each positive lands in the top 10 with probability 10/50
+    assert out["recall@10"][0].item() == pytest.approx(10 / 50, abs=1e-15)
+    # hand-worked: each positive's expected gain is D(10)/50, five of them over the ideal D(5)
+    d = np.cumsum(1 / np.log2(np.arange(10) + 2.0))
+    assert out["ndcg@10"][0].item() == pytest.approx(5 * d[9] / 50 / d[4], rel=1e-12)
 
 
-def test_random_tie_breaks_average_to_sklearn_half_credit():
-    # With coarse scores (many ties), averaging over random tie-breaks gives each
-    # tied positive/negative pair half credit, which is how sklearn scores ties.
+def test_tied_auc_equals_sklearn_half_credit():
+    # With coarse scores (many ties) the expected AUC over random tie orders gives each tied
+    # (positive, negative) pair half credit, which is how roc_auc_score scores ties.
     gen = torch.Generator().manual_seed(13)
-    n, trials = 30, 600
-    scores = torch.randint(0, 3, (1, n), generator=gen).to(torch.float64)
-    items = torch.randperm(n, generator=gen)[:6]
-    rows = torch.zeros(6, dtype=torch.long)
-    y = np.zeros(n, dtype=int)
-    y[items.numpy()] = 1
-    aucs = [
-        evaluate(scores, rows, items, torch.randperm(n, generator=gen).double(), ks=(5,))[1]["auc"][0].item()
-        for _ in range(trials)
-    ]
-    # reference: sklearn.metrics.roc_auc_score (ties count 1/2)
-    assert np.mean(aucs) == pytest.approx(roc_auc_score(y, scores[0].numpy()), abs=0.02)
+    nq, n = 6, 30
+    scores = torch.randint(0, 3, (nq, n), generator=gen).to(torch.float64)
+    rows = torch.arange(nq).repeat_interleave(6)
+    items = torch.stack([torch.randperm(n, generator=gen)[:6] for _ in range(nq)]).flatten()
+    _, out = evaluate(scores, rows, items, ks=(5,))
+    for u in range(nq):
+        s, y = query_view(scores, rows, items, u)
+        # reference: sklearn.metrics.roc_auc_score (ties count 1/2)
+        assert out["auc"][u].item() == pytest.approx(roc_auc_score(y, s), abs=1e-12)
 
 
 def test_permutation_invariance():
-    scores, rows, items, tie_break = make_case(4)
-    _, out = evaluate(scores, rows, items, tie_break)
+    scores, rows, items = make_case(4)
+    _, out = evaluate(scores, rows, items)
     gen = torch.Generator().manual_seed(21)
     perm = torch.randperm(scores.shape[0], generator=gen)  # new row i holds old query perm[i]
     inverse = torch.argsort(perm)
     shuffle = torch.randperm(len(rows), generator=gen)  # also reorder the positives
-    _, out_perm = evaluate(scores[perm], inverse[rows][shuffle], items[shuffle], tie_break)
+    _, out_perm = evaluate(scores[perm], inverse[rows][shuffle], items[shuffle])
     for name in NAMES:
         torch.testing.assert_close(out_perm[name], out[name][perm], equal_nan=True)
     means, means_perm = metrics.mean_over_queries(out), metrics.mean_over_queries(out_perm)
@@ -277,8 +265,8 @@ def test_permutation_invariance():
 
 
 def test_mean_over_queries_ignores_nan():
-    scores, rows, items, tie_break = make_case(1)
-    _, out = evaluate(scores, rows, items, tie_break)
+    scores, rows, items = make_case(1)
+    _, out = evaluate(scores, rows, items)
     assert torch.isnan(out["mrr"]).sum() == 1  # the query with no positives
     means = metrics.mean_over_queries(out)
     for name in NAMES:
@@ -303,6 +291,18 @@ def test_bad_inputs_rejected():
         metrics.per_query_ranking(torch.tensor([0]), torch.tensor([0]), 1, torch.tensor([5]), (0,))
     with pytest.raises(ValueError):  # more positives than candidates
         metrics.per_query_ranking(torch.tensor([0, 1]), torch.tensor([0, 0]), 1, torch.tensor([1]), (1,))
+    one = (torch.tensor([0]), torch.tensor([0]), 1, torch.tensor([5]), (1,))
+    with pytest.raises(ValueError, match=">= 0"):
+        metrics.per_query_ranking(*one, tied=torch.tensor([-1]))
+    with pytest.raises(ValueError, match="shape of ahead"):
+        metrics.per_query_ranking(*one, tied=torch.tensor([0, 0]))
+    with pytest.raises(ValueError, match="more candidates ahead"):  # 2 ahead + itself + 3 tied > 5
+        metrics.per_query_ranking(torch.tensor([2]), *one[1:], tied=torch.tensor([3]))
+    two = (torch.tensor([1, 1]), torch.tensor([0, 0]), 1, torch.tensor([9]), (1,))
+    with pytest.raises(ValueError, match="tied counts must agree"):  # equal ahead, so one score, one group
+        metrics.per_query_ranking(*two, tied=torch.tensor([2, 3]))
+    with pytest.raises(ValueError, match="tied counts must agree"):  # two positives in a group of one
+        metrics.per_query_ranking(*two, tied=torch.tensor([0, 0]))
 
 
 def test_positives_per_query():

@@ -10,7 +10,7 @@ from sklearn.metrics import ndcg_score
 
 from towers.data.pairs import Pairs
 from towers.evaluation import metrics as M
-from towers.evaluation.protocol import ranking_metrics
+from towers.evaluation.protocol import popularity_scorer, ranking_metrics
 from towers.search.scorer import Scorer
 
 
@@ -52,14 +52,13 @@ def dense_block(scorer: Scorer, q_rows: torch.Tensor, item_rows: torch.Tensor) -
     return s + scorer.global_bias if scorer.global_bias else s
 
 
-def dense_ranking_metrics(scorer: Scorer, test: Pairs, known: Pairs, mask: torch.Tensor, ks, tie_seed: int,
+def dense_ranking_metrics(scorer: Scorer, test: Pairs, known: Pairs, mask: torch.Tensor, ks,
                           exclude_self: bool) -> dict:
     """Reference: ranking metrics the dense way, written per query: the full dense_block matrix, exclusions
     at -inf, metrics.ranks_of_positives, per_query_ranking."""
     n_items = len(mask)
     cols = torch.nonzero(mask).flatten()
     col_of = {int(c): j for j, c in enumerate(cols)}
-    tie = torch.rand(len(cols), generator=torch.Generator().manual_seed(tie_seed))
     known_set = set(zip(known.query.tolist(), known.candidate.tolist()))
     pos = test.positives()
     by_query: dict[int, set] = {}
@@ -77,8 +76,8 @@ def dense_ranking_metrics(scorer: Scorer, test: Pairs, known: Pairs, mask: torch
             rows.append(r)
             items.append(col_of[c])
     rows, items = torch.tensor(rows), torch.tensor(items)
-    ranks = M.ranks_of_positives(scores, rows, items, tie)
-    out = M.mean_over_queries(M.per_query_ranking(ranks, rows, len(queries), M.candidates_per_row(scores), ks))
+    ahead, tied = M.ranks_of_positives(scores, rows, items)
+    out = M.mean_over_queries(M.per_query_ranking(ahead, rows, len(queries), M.candidates_per_row(scores), ks, tied))
     out["queries"] = len(queries)
     return out
 
@@ -93,14 +92,14 @@ def test_ranking_metrics_equal_the_dense_path(count_tiles, exclude_self):
     known = Pairs(torch.randint(0, n, (900,), generator=g), torch.randint(0, n, (900,), generator=g))
     mask = torch.rand(n, generator=g) < 0.8
     got = ranking_metrics(scorer, test, known, mask, [1, 5, 20], tie_seed=4, exclude_self=exclude_self)
-    assert got == dense_ranking_metrics(scorer, test, known, mask, [1, 5, 20], 4, exclude_self)  # reference: dense path
+    assert got == dense_ranking_metrics(scorer, test, known, mask, [1, 5, 20], exclude_self)  # reference: dense path
     assert ranking_metrics(scorer, test, known, mask, [5], tie_seed=4, max_queries=9)["queries"] == 9
 
 
 def test_ranking_metrics_against_sklearn():
     g = torch.Generator().manual_seed(14)
     nq, ni = 40, 200
-    # integer products plus distinct continuous biases: no ties, so tie-breaking plays no part
+    # integer products plus distinct continuous biases: no ties, so the expectation over tie orders plays no part
     scorer = Scorer(torch.randint(-3, 4, (nq, 5), generator=g).float(), torch.randint(-3, 4, (ni, 5), generator=g).float(),
                     item_bias=torch.rand(ni, generator=g))
     test = Pairs(torch.randint(0, nq, (160,), generator=g), torch.randint(0, ni, (160,), generator=g))
@@ -126,3 +125,18 @@ def test_ranking_metrics_against_sklearn():
         assert got[f"ndcg@{k}"] == pytest.approx(np.mean(ndcg[k]), abs=1e-12)  # reference: sklearn.metrics.ndcg_score
         assert got[f"recall@{k}"] == pytest.approx(np.mean(recall[k]), abs=1e-12)  # reference: numpy argsort top-k
     assert got["queries"] == len(ndcg[5])
+
+
+def test_a_model_tying_every_candidate_scores_chance_exactly():
+    # Regression: ranks used one seeded tie order shared by every query, so a model tying every candidate
+    # (popularity where no item has a training pair) scored one random draw of that order, not chance.
+    g = torch.Generator().manual_seed(15)
+    nq, ni = 40, 90
+    none = Pairs(torch.zeros(0, dtype=torch.int64), torch.zeros(0, dtype=torch.int64))
+    scorer = popularity_scorer(none, nq, ni, explicit=False)  # every count 0: one score for all
+    test = Pairs(torch.randint(0, nq, (200,), generator=g), torch.randint(0, ni, (200,), generator=g))
+    got = ranking_metrics(scorer, test, none, torch.ones(ni, dtype=torch.bool), [10])
+    # hand-worked: each positive has 0 candidates ahead and 89 tied, so it is in the top 10 with
+    # probability 10/90 in every query; every (positive, negative) pair is tied: auc 1/2
+    assert got["recall@10"] == pytest.approx(10 / 90, rel=1e-12)
+    assert got["auc"] == pytest.approx(0.5, abs=1e-12)

@@ -1,5 +1,5 @@
-"""Tile-by-tile ranks of held-out positives (towers/search/rank_counts.py) against numpy argsort ranks and
-the dense tensor reference (towers.evaluation.metrics.ranks_of_positives)."""
+"""Tile-by-tile counts of the candidates above and tied with held-out positives (towers/search/rank_counts.py)
+against numpy brute force and the dense tensor reference (towers.evaluation.metrics.ranks_of_positives)."""
 
 from __future__ import annotations
 
@@ -13,11 +13,13 @@ from towers.evaluation import metrics as M
 
 
 def make_case(seed: int, nq: int, ni: int, pos_per_row: int = 3, ex_per_row: int = 4, many_rows: int = 0,
-              scale: float = 1.0, biases: bool = True, k: int = 6):
+              scale: float = 1.0, biases: bool = True, k: int = 6, zero_rows: int = 0):
     """Integer-valued vectors (products exact in any summation order, so many ties), half-integer item
-    biases, float query biases; distinct positives and exclusions per row, disjoint."""
+    biases, float query biases; distinct positives and exclusions per row, disjoint. The first
+    zero_rows queries have all-zero vectors: without biases they tie every candidate."""
     g = torch.Generator().manual_seed(seed)
     q = torch.randint(-2, 3, (nq, k), generator=g).float()
+    q[:zero_rows] = 0.0
     items = torch.randint(-2, 3, (ni, k), generator=g).float()
     ib = torch.randint(-3, 4, (ni,), generator=g).float() * 0.5 if biases else None
     qb = torch.randn(nq, generator=g) if biases else None
@@ -37,8 +39,7 @@ def make_case(seed: int, nq: int, ni: int, pos_per_row: int = 3, ex_per_row: int
     ex_shuffle = torch.randperm(len(ex_r), generator=g)
     ex_r = torch.tensor(ex_r, dtype=torch.int64)[ex_shuffle]
     ex_c = torch.tensor(ex_c, dtype=torch.int64)[ex_shuffle]
-    tie = torch.randperm(ni, generator=g).float()  # distinct priorities
-    return dict(query_vectors=q, item_vectors=items, rows=rows, items=cols, tie_break=tie, item_bias=ib,
+    return dict(query_vectors=q, item_vectors=items, rows=rows, items=cols, item_bias=ib,
                 query_bias=qb, global_bias=gb, scale=scale, exclude_rows=ex_r, exclude_cols=ex_c)
 
 
@@ -55,24 +56,37 @@ def dense_scores(case) -> np.ndarray:
     return s
 
 
-def numpy_ranks(s: np.ndarray, rows: np.ndarray, cols: np.ndarray, tie: np.ndarray) -> np.ndarray:
-    """Reference: each positive's position when its row is argsorted by score descending, then priority."""
-    out = np.empty(len(rows), np.int64)
+def numpy_counts(s: np.ndarray, rows: np.ndarray, cols: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Reference: per positive, the scores of its row above its own and those equal to it, itself left out."""
+    ahead, tied = np.empty(len(rows), np.int64), np.empty(len(rows), np.int64)
     for p, (r, c) in enumerate(zip(rows, cols)):
-        order = np.lexsort((tie, -s[r].astype(np.float64)))  # excluded (-inf) scores sort last
-        out[p] = int(np.flatnonzero(order == c)[0])
-    return out
+        others = np.delete(s[r], c)  # excluded (-inf) scores are never above or equal to a finite one
+        ahead[p] = int((others > s[r, c]).sum())
+        tied[p] = int((others == s[r, c]).sum())
+    return ahead, tied
 
 
 def check_case(case):
-    ranks, cands = RC.rank_counts(**case)
+    ahead, tied, cands = RC.rank_counts(**case)
     s = dense_scores(case)
-    rows, cols, tie = case["rows"].numpy(), case["items"].numpy(), case["tie_break"].numpy()
-    assert np.array_equal(ranks.numpy(), numpy_ranks(s, rows, cols, tie))  # reference: numpy argsort brute force
-    dense = M.ranks_of_positives(torch.from_numpy(s), case["rows"], case["items"], case["tie_break"])
-    assert torch.equal(ranks, dense)  # reference: the dense tensor count in evaluation/metrics.py
+    want_ahead, want_tied = numpy_counts(s, case["rows"].numpy(), case["items"].numpy())
+    assert np.array_equal(ahead.numpy(), want_ahead)  # reference: numpy brute force per positive
+    assert np.array_equal(tied.numpy(), want_tied)  # reference: numpy brute force per positive
+    dense_ahead, dense_tied = M.ranks_of_positives(torch.from_numpy(s), case["rows"], case["items"])
+    assert torch.equal(ahead, dense_ahead) and torch.equal(tied, dense_tied)  # reference: the dense count in metrics.py
     assert np.array_equal(cands.numpy(), (s > -np.inf).sum(1))  # reference: numpy count of finite scores
-    return ranks
+    return ahead, tied
+
+
+def test_hand_worked_counts():
+    # one query (vector [1]), items [1], [1], [2], [1], [0], [1] score 1, 1, 2, 1, 0, 1; item 5 excluded.
+    # positive item 0: ahead = {item 2} = 1, tied = {items 1, 3} = 2 (itself and excluded item 5 left out);
+    # positive item 4: ahead = {0, 1, 2, 3} = 4, tied = none = 0; candidates: 6 items - 1 excluded = 5
+    q = torch.tensor([[1.0]])
+    x = torch.tensor([[1.0], [1.0], [2.0], [1.0], [0.0], [1.0]])
+    ahead, tied, cands = RC.rank_counts(q, x, torch.tensor([0, 0]), torch.tensor([0, 4]),
+                                        exclude_rows=torch.tensor([0]), exclude_cols=torch.tensor([5]))
+    assert ahead.tolist() == [1, 4] and tied.tolist() == [2, 0] and cands.tolist() == [5]  # hand-worked above
 
 
 @pytest.mark.parametrize("seed", range(4))
@@ -92,15 +106,18 @@ def test_one_query():
     check_case(make_case(5, nq=1, ni=500, pos_per_row=4))
 
 
+@pytest.mark.parametrize("biases", [True, False])
 @pytest.mark.parametrize("path", ["default", "passes", "search"])
-def test_many_positives_per_row(count_tiles, monkeypatch, path):
-    # rows of 60 positives among 150 items, with every tie resolved by priority
+def test_many_positives_per_row(count_tiles, monkeypatch, path, biases):
+    # rows of 60 positives among 150 items, many tied with each other and with other columns; without
+    # biases the two all-zero rows tie every candidate (the many-positives search's second search)
     if path == "passes":
         monkeypatch.setattr(RC, "MANY", 10 ** 9)
     elif path == "search":
         monkeypatch.setattr(RC, "MANY", 2)
         monkeypatch.setattr(RC, "SEARCH_COST", 0)
-    check_case(make_case(7, nq=12, ni=150, many_rows=8, k=3))
+    ahead, tied = check_case(make_case(7, nq=12, ni=150, many_rows=8, k=3, biases=biases, zero_rows=2))
+    assert int((tied > 0).sum()) > len(tied) // 2  # ties are the common case here, not an accident
 
 
 def test_search_and_passes_agree_on_continuous_scores(monkeypatch):
@@ -108,14 +125,15 @@ def test_search_and_passes_agree_on_continuous_scores(monkeypatch):
     nq, ni = 20, 700
     rows = torch.arange(nq).repeat_interleave(50)
     cols = torch.stack([torch.randperm(ni, generator=g)[:50] for _ in range(nq)]).flatten()
-    args = (torch.randn(nq, 5, generator=g), torch.randn(ni, 5, generator=g), rows, cols, torch.rand(ni, generator=g))
+    args = (torch.randn(nq, 5, generator=g), torch.randn(ni, 5, generator=g), rows, cols)
     monkeypatch.setattr(RC, "MANY", 10 ** 9)
     passes = RC.rank_counts(*args)
     monkeypatch.setattr(RC, "MANY", 2)
     monkeypatch.setattr(RC, "SEARCH_COST", 0)
     search = RC.rank_counts(*args)
-    assert torch.equal(passes[0], search[0]) and torch.equal(passes[1], search[1])
+    assert all(torch.equal(x, y) for x, y in zip(passes, search))
     assert int(passes[0].max()) > 400  # low positives too, not only the top of each row
+    assert int(passes[1].max()) == 0  # reference: continuous random scores have no ties (almost surely)
 
 
 @pytest.mark.parametrize("seed", range(2))
@@ -134,14 +152,14 @@ def test_same_ranks_whatever_the_blocks(two_threads, monkeypatch):
     base = torch.randn(ni // 10, 16, generator=g)
     items = base.repeat_interleave(10, 0) * (1 + 1e-6 * torch.randn(ni, 1, generator=g))
     args = (torch.randn(nq, 16, generator=g), items, torch.arange(nq).repeat(4),
-            torch.randint(0, ni, (4 * nq,), generator=g), torch.rand(ni, generator=g))
+            torch.randint(0, ni, (4 * nq,), generator=g))
     two = RC.rank_counts(*args)
     torch.set_num_threads(1)
     one = RC.rank_counts(*args)
     monkeypatch.setattr(T, "BLOCK_ENTRIES", 1 << 13)  # blocks of one row
     torch.set_num_threads(2)
     tiny = RC.rank_counts(*args)
-    assert torch.equal(one[0], two[0]) and torch.equal(one[0], tiny[0]) and torch.equal(one[1], tiny[1])
+    assert all(torch.equal(x, y) and torch.equal(x, z) for x, y, z in zip(one, two, tiny))
 
 
 def test_positive_scores_that_differ_from_the_tiles_are_counted_again(monkeypatch):

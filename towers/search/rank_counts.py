@@ -1,20 +1,24 @@
-"""Full-catalog ranks of held-out positives, counted tile by tile without the query x item score matrix.
+"""Full-catalog standing of held-out positives, counted tile by tile without the query x item score matrix.
 
-A positive's rank is the number of its query's candidates that rank before it: a higher score, or
-the same score and a smaller tie-break priority; excluded candidates (-inf) never count. It is the
-count metrics.ranks_of_positives makes on a whole block of scores in plain tensors. Here tiles.py
-walks blocks of queries over chunks of the catalog, and a compiled (numba) kernel counts each
-chunk's tile while it is still in the cache. One vectorised pass per row finishes the scores
-(scale, then item, query and global bias, each rounded in float32), counts the row's candidates and the scores that reach
-its lowest positive; when none do, the row is done. Otherwise each positive, lowest first, takes
-one vectorised pass (two compares a score) until one is out of reach. A row with many positives
-instead searches each column that reaches its lowest positive among its sorted positives, when
-that is cheaper than a pass per positive.
+For each positive it counts its query's candidates with a strictly higher score (`ahead`, other
+positives included) and those with exactly its score (`tied`, the positive itself left out); excluded
+candidates (-inf) never count. metrics.per_query_ranking turns the two counts into the metrics'
+expected values over random orders of the ties; metrics.ranks_of_positives makes the same counts on
+a whole block of scores in plain tensors. Here tiles.py walks blocks of queries over chunks of the
+catalog, and a compiled (numba) kernel counts each chunk's tile while it is still in the cache. One
+vectorised pass per row finishes the scores (scale, then item, query and global bias, each rounded in
+float32), counts the row's candidates and the scores that reach its lowest positive; when none do,
+the row is done. Otherwise each positive, lowest first, takes one vectorised pass (two compares a
+score; a positive whose score equals the previous one reuses its counts) until one is out of reach.
+A row with many positives instead searches each column that reaches its lowest positive among its
+sorted positives, when that is cheaper than a pass per positive: one binary search for the positives
+strictly below the column, and a second, only when the column equals a positive's score, for those
+at or below it.
 
-A positive's own score must be the very float32 value its tile holds, or a tie with itself (or a
-last-bit difference) moves its rank. So each block first scores its positives with the same product
-(the same query rows against a chunk-wide tile of the positives' items), and the kernel records what
-the tiles really held; a block where the two differ is counted again with the tiles' values.
+A positive's own score must be the very float32 value its tile holds, or a last-bit difference moves
+it out of (or into) a tie. So each block first scores its positives with the same product (the same
+query rows against a chunk-wide tile of the positives' items), and the kernel records what the tiles
+really held; a block where the two differ is counted again with the tiles' values.
 """
 
 from __future__ import annotations
@@ -66,38 +70,45 @@ def _above_and_equal(tile, row, s):
 
 
 @numba.njit(boundscheck=False, cache=True, nogil=True)
-def _beaten(v, tie_j, own, own_tie, first, m):
-    """How many of the positives first..first+m-1 (m >= 1; sorted by score, then priority descending) a column beats.
+def _below(v, own, first, m):
+    """How many of the positives first..first+m-1 (m >= 1, sorted by score) score below v.
 
-    A column beats a positive with a lower score, or an equal one and a higher priority; in this
-    order the beaten positives come first, so a binary search finds where they end. Its steps depend
-    on m only and move by a product, not a jump: nothing to mispredict, and the searches of
-    successive columns overlap in the processor.
+    A binary search whose steps depend on m only and move by a product, not a jump: nothing to
+    mispredict, and the searches of successive columns overlap in the processor.
     """
     base, n = first, m
     while n > 1:
         half = n >> 1
-        s = own[base + half]
-        base += half * ((v > s) | ((v == s) & (tie_j < own_tie[base + half])))
+        base += half * (v > own[base + half])
         n -= half
-    s = own[base]
-    return base - first + ((v > s) | ((v == s) & (tie_j < own_tie[base])))
+    return base - first + (v > own[base])
 
 
 @numba.njit(boundscheck=False, cache=True, nogil=True)
-def count_tile(tile, first_item, item_bias, tie, scale, query_bias, global_bias,
-               starts, items, own, own_tie, ahead, seen, candidates, many, search_cost):
-    """Count, for each positive of the tile's rows, the tile's columns that rank before it.
+def _at_or_below(v, own, first, m):
+    """How many of the positives first..first+m-1 (m >= 1, sorted by score) score v or below; as _below."""
+    base, n = first, m
+    while n > 1:
+        half = n >> 1
+        base += half * (v >= own[base + half])
+        n -= half
+    return base - first + (v >= own[base])
+
+
+@numba.njit(boundscheck=False, cache=True, nogil=True)
+def count_tile(tile, first_item, item_bias, scale, query_bias, global_bias,
+               starts, items, own, ahead, tied, seen, candidates, many, search_cost):
+    """Count, for each positive of the tile's rows, the tile's columns scoring above it and those scoring the same.
 
     tile (rows, width) float32: raw products of the rows' queries with items first_item onwards,
     excluded pairs and padding items at -inf; finished in place (scale, item_bias (width,), the
     row's query_bias, global_bias; NaN becomes -inf, so that it counts nowhere, as in
-    ranks_of_positives). tie (width,): the columns' tie-break priorities. Positives of row i are
-    starts[i]..starts[i+1], sorted by score, then by priority descending: catalog column items[p],
-    score own[p], priority own_tie[p]. Adds to ahead[p] (int64) the columns ranking before
-    positive p and to candidates[i] the row's scores above -inf; sets seen[p] to the tile's score
-    at p's own column when it is here. many, search_cost: MANY and SEARCH_COST (arguments, since
-    numba would freeze globals into the cached machine code).
+    ranks_of_positives). Positives of row i are starts[i]..starts[i+1], sorted by score: catalog
+    column items[p], score own[p]. Adds to ahead[p] (int64) the columns scoring above positive p,
+    to tied[p] those scoring exactly own[p] (its own column included: the caller takes it off), and
+    to candidates[i] the row's scores above -inf; sets seen[p] to the tile's score at p's own
+    column when it is here. many, search_cost: MANY and SEARCH_COST (arguments, since numba would
+    freeze globals into the cached machine code).
     """
     r = tile.shape[0]
     width = tile.shape[1]
@@ -105,7 +116,8 @@ def count_tile(tile, first_item, item_bias, tie, scale, query_bias, global_bias,
     most = 0
     for i in range(r):
         most = max(most, starts[i + 1] - starts[i])
-    hist = np.zeros(most + 1, np.int64)  # columns by how many of the row's positives they beat
+    below = np.zeros(most + 1, np.int64)  # columns by how many of the row's positives score below them
+    at_or_below = np.zeros(most + 1, np.int64)  # ... and by how many score at or below them
     for i in range(r):
         row = _U(i)
         first, m = starts[i], starts[i + 1] - starts[i]
@@ -126,67 +138,75 @@ def count_tile(tile, first_item, item_bias, tie, scale, query_bias, global_bias,
             if 0 <= col < width:
                 seen[p] = tile[row, col]
         if reach == 0:
-            continue  # no column reaches even the lowest positive: none ranks before any of them
+            continue  # no column reaches even the lowest positive: none is above or tied with any of them
         levels = 1
         while (1 << levels) <= m:
             levels += 1
         if m >= many and reach * levels * search_cost < m * width:
-            hist[:m + 1] = 0
+            below[:m + 1] = 0
+            at_or_below[:m + 1] = 0
             for j in range(w):  # only the columns that reach the lowest positive are searched
                 v = tile[row, j]
                 if v >= low:
-                    hist[_beaten(v, tie[j], own, own_tie, first, m)] += 1
-            above = 0
-            for k in range(m - 1, -1, -1):  # positive k is beaten by the columns beating more than k
-                above += hist[k + 1]
-                ahead[first + k] += above
+                    b = _below(v, own, first, m)
+                    c = b
+                    if b < m and own[first + b] == v:  # the column ties positive b (and maybe more)
+                        c = b + _at_or_below(v, own, first + b, m - b)
+                    below[b] += 1
+                    at_or_below[c] += 1
+            n_above = 0
+            n_reach = 0
+            for k in range(m - 1, -1, -1):
+                # positive k: above it the columns with more than k positives below them, at or
+                # above it those with more than k at or below them
+                n_above += below[k + 1]
+                n_reach += at_or_below[k + 1]
+                ahead[first + k] += n_above
+                tied[first + k] += n_reach - n_above
             continue
-        for p in range(first, first + m):  # one pass per positive, lowest score first
+        prev = np.float32(np.nan)  # never equal: the first positive always takes a pass
+        above, equal = _ZERO, _ZERO
+        for p in range(first, first + m):  # one pass per distinct score, lowest first
             s = own[p]
-            above, equal = _above_and_equal(tile, row, s)
+            if s != prev:
+                above, equal = _above_and_equal(tile, row, s)
+                prev = s
             if above + equal == 0:
                 break  # nothing reaches this positive, so nothing reaches the higher ones either
-            c = np.int64(above)
-            if equal:  # equal scores (the positive itself among them): the tie-break decides
-                t_p = own_tie[p]
-                for j in range(w):
-                    c += (tile[row, j] == s) & (tie[j] < t_p)
-            ahead[p] += c
+            ahead[p] += np.int64(above)
+            tied[p] += np.int64(equal)
 
 
 def rank_counts(query_vectors: torch.Tensor, item_vectors: torch.Tensor, rows: torch.Tensor, items: torch.Tensor,
-                tie_break: torch.Tensor, item_bias: torch.Tensor | None = None, query_bias: torch.Tensor | None = None,
+                item_bias: torch.Tensor | None = None, query_bias: torch.Tensor | None = None,
                 global_bias: float = 0.0, scale: float = 1.0, exclude_rows: torch.Tensor | None = None,
-                exclude_cols: torch.Tensor | None = None) -> tuple[torch.Tensor, torch.Tensor]:
-    """0-based rank of each positive (rows[p], items[p]) among its row's candidates, and candidates per row.
+                exclude_cols: torch.Tensor | None = None) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
+    """For each positive (rows[p], items[p]), its row's candidates scoring above it and those tied with it.
 
     score(q, i) = ((scale * query_vectors[q] . item_vectors[i] + item_bias[i]) + query_bias[q]) + global_bias,
-    in float32 and rounded in that order. Pairs (exclude_rows,
-    exclude_cols) are no candidates. Among equal scores the smaller tie_break (n_items,) ranks first.
-    Returns int64 ranks (P,), the number of candidates ranked before each positive (other positives
-    included), and int64 candidates (n_queries,): the scores above -inf in each row. Every positive
-    must have a finite score (ValueError otherwise, as ranks_of_positives).
+    in float32 and rounded in that order. Pairs (exclude_rows, exclude_cols) are no candidates.
+    Returns int64 ahead (P,): candidates with a strictly higher score (other positives included);
+    int64 tied (P,): candidates with exactly the positive's score, itself not counted; int64
+    candidates (n_queries,): the scores above -inf in each row. Every positive must have a finite
+    score (ValueError otherwise, as ranks_of_positives).
     """
     nq, ni = query_vectors.shape[0], item_vectors.shape[0]
     rows, items = rows.long(), items.long()
     if rows.shape != items.shape or rows.dim() != 1:
         raise ValueError(f"rows and items must be 1-D of equal length, got {tuple(rows.shape)} and {tuple(items.shape)}")
-    if tie_break.shape != (ni,):
-        raise ValueError(f"tie_break must have shape ({ni},), got {tuple(tie_break.shape)}")
     if len(rows) and (rows.min() < 0 or rows.max() >= nq or items.min() < 0 or items.max() >= ni):
         raise ValueError(f"positives must lie in [0, {nq}) x [0, {ni})")
-    ranks = np.zeros(len(rows), np.int64)
+    ahead = np.zeros(len(rows), np.int64)
+    tied = np.zeros(len(rows), np.int64)
     candidates = np.zeros(nq, np.int64)
     if nq == 0 or ni == 0:
-        return torch.from_numpy(ranks), torch.from_numpy(candidates)
+        return torch.from_numpy(ahead), torch.from_numpy(tied), torch.from_numpy(candidates)
 
     queries = query_vectors.detach().float().contiguous()
     # item biases are added in the kernel, after the scale, as the score is defined (an addmm would
     # add them before): the layout gets none, and only its padding items have bias -inf
     layout = T.Layout(item_vectors, None)
     w = layout.sub_width
-    tie = np.full(layout.padded, np.inf)  # float64: exact for float32 and float64 priorities alike
-    tie[:ni] = tie_break.detach().double().numpy()
     i_bias = np.zeros(layout.padded, np.float32)
     if item_bias is not None:
         i_bias[:ni] = item_bias.detach().float().numpy()
@@ -196,7 +216,8 @@ def rank_counts(query_vectors: torch.Tensor, item_vectors: torch.Tensor, rows: t
     p_rows = rows.index_select(0, order).numpy()
     p_items = items.index_select(0, order).numpy()
     starts = np.concatenate([[0], np.cumsum(np.bincount(p_rows, minlength=nq))]).astype(np.int64)
-    counts = np.zeros(len(rows), np.int64)  # in the grouped order
+    above = np.zeros(len(rows), np.int64)  # in the grouped order
+    same = np.zeros(len(rows), np.int64)
     if exclude_rows is not None and len(exclude_rows):
         ex_order = torch.argsort(exclude_rows.long(), stable=True)  # block_exclusions wants them by row
         ex_rows, ex_cols = exclude_rows.long()[ex_order], exclude_cols.long()[ex_order]
@@ -223,20 +244,21 @@ def rank_counts(query_vectors: torch.Tensor, item_vectors: torch.Tensor, rows: t
             ex = T.block_exclusions(ex_rows, ex_cols, lo, hi, layout)
             local = p_rows[p0:p1] - lo
             own = _own_scores(q, layout, local, p_items[p0:p1], lo, finish, own_items, out)
-            sweep = (q, layout, ex, out, lo, local, p_items[p0:p1], tie, finish, candidates[lo:hi])
-            counts[p0:p1], seen = _count_block(own, *sweep)
+            sweep = (q, layout, ex, out, lo, local, p_items[p0:p1], finish, candidates[lo:hi])
+            above[p0:p1], same[p0:p1], seen = _count_block(own, *sweep)
             if not np.isfinite(seen).all():
                 # an excluded or NaN positive has no meaningful rank (as in ranks_of_positives)
                 raise ValueError("every positive must have a finite score (is a held-out positive also excluded?)")
             if not np.array_equal(seen, own):  # the two products rounded differently: count with the tiles' values
-                counts[p0:p1], again = _count_block(seen, *sweep)
+                above[p0:p1], same[p0:p1], again = _count_block(seen, *sweep)
                 if not np.array_equal(again, seen):
                     raise RuntimeError("the same products gave different scores twice")
         return do_block
 
     T.run_blocks(nq, rows_per_block, workers, start_worker)
-    ranks[order.numpy()] = counts
-    return torch.from_numpy(ranks), torch.from_numpy(candidates)
+    ahead[order.numpy()] = above
+    tied[order.numpy()] = same
+    return torch.from_numpy(ahead), torch.from_numpy(tied), torch.from_numpy(candidates)
 
 
 def _own_scores(q: torch.Tensor, layout: T.Layout, local: np.ndarray, p_items: np.ndarray, lo: int, finish: tuple,
@@ -267,29 +289,28 @@ def _own_scores(q: torch.Tensor, layout: T.Layout, local: np.ndarray, p_items: n
 
 
 def _count_block(own: np.ndarray, q: torch.Tensor, layout: T.Layout, ex: T.Exclusions | None, out: torch.Tensor,
-                 lo: int, local: np.ndarray, p_items: np.ndarray, tie: np.ndarray, finish: tuple,
-                 candidates: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+                 lo: int, local: np.ndarray, p_items: np.ndarray, finish: tuple,
+                 candidates: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """One sweep of a block over every chunk, its positives (grouped by row) scored `own`.
 
-    Returns the positives' ranks and the scores their tiles held, in the given order; sets the
-    block's candidates (n_rows,) in place.
+    Returns the positives' ahead and tied counts and the scores their tiles held, in the given
+    order; sets the block's candidates (n_rows,) in place.
     """
     r, w = len(candidates), layout.sub_width
     i_bias, q_bias, scale, global_bias = finish
-    p_tie = tie[p_items]
-    by_score = np.lexsort((-p_tie, own, local))  # the kernel's order: by row, score, then priority descending
-    items_s, own_s, tie_s = p_items[by_score], own[by_score], p_tie[by_score]
+    by_score = np.lexsort((own, local))  # the kernel's order: by row, then score
+    items_s, own_s = p_items[by_score], own[by_score]
     starts = np.searchsorted(local, np.arange(r + 1)).astype(np.int64)
-    counts = np.zeros(len(own), np.int64)
+    above = np.zeros(len(own), np.int64)
+    same = np.zeros(len(own), np.int64)
     seen = np.full(len(own), np.nan, np.float32)
     candidates[:] = 0
     for step in layout.steps:
         for a in step:
             s = T.scored_chunk(q, layout, a, ex, out).numpy()[:r]
-            count_tile(s, a, i_bias[a:a + w], tie[a:a + w], scale, q_bias[lo:lo + r], global_bias,
-                       starts, items_s, own_s, tie_s, counts, seen, candidates, MANY, SEARCH_COST)
-    ranks = np.empty_like(counts)
-    ranks[by_score] = counts
-    tile_scores = np.empty_like(seen)
-    tile_scores[by_score] = seen
-    return ranks, tile_scores
+            count_tile(s, a, i_bias[a:a + w], scale, q_bias[lo:lo + r], global_bias,
+                       starts, items_s, own_s, above, same, seen, candidates, MANY, SEARCH_COST)
+    same -= (seen == own_s).astype(np.int64)  # a positive's own column tied with it wherever its tile held its score
+    ahead, tied, tile_scores = np.empty_like(above), np.empty_like(same), np.empty_like(seen)
+    ahead[by_score], tied[by_score], tile_scores[by_score] = above, same, seen
+    return ahead, tied, tile_scores
