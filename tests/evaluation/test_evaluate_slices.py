@@ -46,7 +46,8 @@ def _split(n_q=30, n_i=40, seed=0, n_train=300, n_valid=60, n_test=80) -> SplitP
     warm = torch.zeros(n_i, dtype=torch.bool)
     warm[train.candidate] = True
     empty = _pairs([], [])
-    return SplitPairs(train, valid, test, empty, warm, torch.zeros(n_i, dtype=torch.bool), False)
+    return SplitPairs(train, valid, test, empty, warm, torch.zeros(n_i, dtype=torch.bool), False, empty,
+                      torch.zeros(n_q, dtype=torch.bool))
 
 
 def _expected_recall_brute(scores: np.ndarray, split: SplitPairs, k: int) -> float:
