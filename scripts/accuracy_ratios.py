@@ -1,4 +1,4 @@
-"""Ratio rows from a run's metrics.json: each model against the oracle and against popularity.
+"""Ratio rows from a run's metrics.json: each model against the oracle, popularity and the references.
 
 Used by scripts/accuracy (planted data) and scripts/demo (the demo store). A ranking metric is
 better when higher, so model/oracle near 1 means close to the limit; for rmse lower is better, so
@@ -13,12 +13,15 @@ import json
 import sys
 from pathlib import Path
 
+from towers.evaluation.protocol import SLICES
+
 ROWS = (("towers", "oracle"), ("towers", "popularity"), ("linear_factor", "oracle"))
+REFERENCE_ROWS = (("towers", "ease"), ("towers", "item_knn"))  # the references score the warm slice only
 
 
 def headline_metric(metrics: dict) -> str:
     """rmse for rating runs, else the first recall@K."""
-    first = next(iter(next(iter(metrics.values())).values()))
+    first = next(iter(metrics["warm"].values()))
     if "rmse" in first:
         return "rmse"
     return next(m for m in first if m.startswith("recall@"))
@@ -34,12 +37,14 @@ def ratio(metrics: dict, slice_name: str, model: str, reference: str, metric: st
 
 
 def ratio_rows(metrics: dict, metric: str | None = None) -> str:
-    """The ratio rows of every slice as text: 'towers/oracle', 'towers/popularity', 'linear_factor/oracle'."""
+    """The ratio rows of every slice as text: 'towers/oracle', 'towers/popularity', 'linear_factor/oracle', and on
+    the warm slice of an implicit run 'towers/ease' and 'towers/item_knn'."""
     metric = metric or headline_metric(metrics)
     lines = []
-    for slice_name in metrics:
+    for slice_name in [s for s in SLICES if s in metrics]:
         lines.append(f"[{slice_name}] {metric} ratios")
-        for model, reference in ROWS:
+        rows = ROWS + (REFERENCE_ROWS if slice_name == "warm" and metric != "rmse" else ())
+        for model, reference in rows:
             r = ratio(metrics, slice_name, model, reference, metric)
             missing = next((m for m in (reference, model) if m not in metrics[slice_name]), None)
             shown = f"{r:.3f}" if r is not None else f"n/a (no {missing} row)" if missing else "n/a (zero)"

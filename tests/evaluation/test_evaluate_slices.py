@@ -50,6 +50,12 @@ def _split(n_q=30, n_i=40, seed=0, n_train=300, n_valid=60, n_test=80) -> SplitP
                       torch.zeros(n_q, dtype=torch.bool))
 
 
+def _random_scorer(rng) -> Scorer:
+    """Vectors for 30 queries and 40 items, normal entries: a model with no level scores."""
+    return Scorer(torch.from_numpy(rng.normal(size=(30, 4)).astype(np.float32)),
+                  torch.from_numpy(rng.normal(size=(40, 4)).astype(np.float32)))
+
+
 def _expected_recall_brute(scores: np.ndarray, split: SplitPairs, k: int) -> float:
     """Per positive: a above, t level (itself not counted) among non-excluded warm items; hit chance
     clamp(k - a, 0, t + 1) / (t + 1); mean per query, then over queries. Plain numpy loops."""
@@ -128,8 +134,7 @@ def test_an_empty_test_slice_says_why():
 def test_list_metrics_equal_numpy_over_the_same_top_lists():
     split = _split(seed=2)
     rng = np.random.default_rng(3)
-    scorer = Scorer(torch.from_numpy(rng.normal(size=(30, 4)).astype(np.float32)),
-                    torch.from_numpy(rng.normal(size=(40, 4)).astype(np.float32)))
+    scorer = _random_scorer(rng)
     m = evaluate_slices({"towers": scorer}, split, _cfg())["warm"]["towers"]
     h = held_out(split.test, split.known(), split.warm_items)
     top, _ = scorer.over_items(h.cand_rows).for_queries(h.queries).top(5, h.ex_rows, h.ex_cols)
@@ -146,8 +151,7 @@ def test_list_metrics_equal_numpy_over_the_same_top_lists():
 def test_user_groups_average_the_queries_of_each_group_as_pandas_does():
     split = _split(seed=4)
     rng = np.random.default_rng(5)
-    scorer = Scorer(torch.from_numpy(rng.normal(size=(30, 4)).astype(np.float32)),
-                    torch.from_numpy(rng.normal(size=(40, 4)).astype(np.float32)))
+    scorer = _random_scorer(rng)
     codes = torch.from_numpy(rng.integers(0, 3, 30))
     groups = [Groups("segment", "user", codes, ["a", "b", "c"])]
     metrics = evaluate_slices({"towers": scorer}, split, _cfg(), groups=groups)
@@ -165,3 +169,20 @@ def test_user_groups_average_the_queries_of_each_group_as_pandas_does():
         assert per_group[name]["recall@5"] == pytest.approx(row["mean"], abs=1e-12)
         assert per_group[name]["queries"] == row["size"]
     assert "[warm by segment]  recall@5" in format_table(metrics)
+
+
+def test_item_groups_rank_the_whole_catalog_but_count_only_their_positives():
+    split = _split(seed=6)
+    rng = np.random.default_rng(7)
+    scorer = _random_scorer(rng)
+    codes = torch.from_numpy(rng.integers(0, 2, 40))
+    metrics = evaluate_slices({"towers": scorer}, split, _cfg(), groups=[Groups("shelf", "item", codes, ["s1", "s2"])])
+    for c, name in enumerate(["s1", "s2"]):
+        # reference: the test pairs of that group's items alone, ranked by ranking_metrics over the same catalog
+        mine = codes.index_select(0, split.test.candidate) == c
+        alone = ranking_metrics(scorer, split.test.subset(torch.nonzero(mine).flatten()), split.known(),
+                                split.warm_items, [5])
+        got = metrics["groups"]["shelf"]["towers"][name]
+        assert got["recall@5"] == pytest.approx(alone["recall@5"], abs=1e-12)
+        assert got["ndcg@5"] == pytest.approx(alone["ndcg@5"], abs=1e-12)
+        assert got["queries"] == alone["queries"]

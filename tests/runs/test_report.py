@@ -227,3 +227,15 @@ def test_report_keys_are_checked(tiny_runs, tmp_path, report, message):
     cfg = tiny_runs.settings(report=report)
     with pytest.raises(TowersError, match=message):
         C.resolve(cfg, tmp_path)
+
+
+def test_a_last_epoch_best_is_marked_in_the_run_table(run_dir):
+    history = json.loads((run_dir / "history.json").read_text())
+    towers_epochs = history["epochs"]["towers"]
+    last_best = history["best_epoch"] == towers_epochs[-1]["epoch"] and "valid_recall@20" in towers_epochs[-1]
+    assert history["still_improving"] == last_best
+    summary = _tables(_parse(run_dir / "report.html"), "summary")[0]
+    shown = " ".join(" ".join(r) for r in summary["rows"])
+    assert ("still improving at the last epoch" in shown) == last_best
+    metrics = json.loads((run_dir / "metrics.json").read_text())
+    assert ("towers_training" in metrics.get("notes", {})) == last_best
