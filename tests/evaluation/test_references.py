@@ -42,8 +42,8 @@ def test_ease_equals_the_closed_form_by_numpy_inverse(penalty):
     p = np.linalg.inv(x.T @ x + penalty * np.eye(25))
     b = np.eye(25) - p / np.diag(p)[None, :]
     s = R.EaseFit(h).solve(penalty)
-    np.testing.assert_allclose(s.weights.numpy(), b, atol=2e-5)
-    assert np.all(np.diag(s.weights.numpy()) == 0.0)  # the zero-diagonal constraint holds exactly
+    np.testing.assert_allclose(s.matrix().numpy(), b, atol=2e-5)
+    assert np.all(np.diag(s.matrix().numpy()) == 0.0)  # the zero-diagonal constraint holds exactly
     rows = torch.arange(40)
     np.testing.assert_allclose(s.score_rows(rows).numpy(), x @ b, atol=1e-4)
 
@@ -60,8 +60,20 @@ def test_knn_scores_equal_sklearn_cosine_products(neighbours):
         order = [j for j in order if j != r and sim[r, j] > 0][:neighbours]
         kept[r, order] = sim[r, order]
     s = R.knn_scorer(h, neighbours)
-    np.testing.assert_allclose(s.weights.to_dense().numpy(), kept, atol=1e-6)
+    np.testing.assert_allclose(s.matrix().numpy(), kept.T, atol=1e-6)  # W[j, i] = s(i, j)
     np.testing.assert_allclose(s.score_rows(torch.arange(40)).numpy(), x @ kept.T, atol=1e-5)
+
+
+@pytest.mark.parametrize("cells", [1, 7, 1 << 20])
+def test_sparse_and_dense_knn_weights_score_alike(cells, monkeypatch):
+    # the gather path (any piece size) against the dense product of the same W
+    monkeypatch.setattr(R, "GATHER_CELLS", cells)
+    monkeypatch.setattr(R, "DENSE_SHARE", 2.0)  # never dense
+    h, q, i = _random_history(seed=8)
+    s = R.knn_scorer(h, 5)
+    assert isinstance(s.weights, R.SparseRows)
+    rows = torch.tensor([5, 0, 39, 5, 12])
+    np.testing.assert_allclose(s.score_rows(rows).numpy(), h.dense(rows).numpy() @ s.matrix().numpy(), atol=1e-5)
 
 
 def test_ease_penalty_is_the_one_the_judge_prefers():
@@ -79,4 +91,4 @@ def test_knn_neighbours_are_the_ones_the_judge_prefers():
     h, _, _ = _random_history(n_i=300, nnz=3000, seed=6)
     chosen, tries = R.choose_knn(h, lambda s: -abs(s.setting["neighbours"] - 50))
     assert chosen.setting["neighbours"] == 50
-    assert [t["neighbours"] for t in tries] == [k for k in R.NEIGHBOUR_CHOICES if k < 300]
+    assert [t["neighbours"] for t in tries] == [k for k in R.NEIGHBOUR_CHOICES if k < 299] + [299]

@@ -101,24 +101,76 @@ def ease_bytes(n_items: int) -> int:
 
 
 @dataclass
+class SparseRows:
+    """A sparse item x item matrix W as CSR arrays: row j holds the items i with W[j, i] != 0."""
+
+    starts: np.ndarray  # int64 (n_items + 1,)
+    cols: torch.Tensor  # int64 (nnz,)
+    values: torch.Tensor  # float32 (nnz,)
+
+    @classmethod
+    def from_coo(cls, rows: torch.Tensor, cols: torch.Tensor, values: torch.Tensor, n: int) -> "SparseRows":
+        order = np.lexsort((cols.numpy(), rows.numpy()))
+        starts = np.zeros(n + 1, np.int64)
+        np.cumsum(np.bincount(rows.numpy(), minlength=n), out=starts[1:])
+        pick = torch.from_numpy(order)
+        return cls(starts, cols.index_select(0, pick), values.index_select(0, pick))
+
+    def dense(self, n: int) -> torch.Tensor:
+        rows = torch.from_numpy(np.repeat(np.arange(n, dtype=np.int64), np.diff(self.starts)))
+        out = torch.zeros(n, n)
+        out[rows, self.cols] = self.values
+        return out
+
+
+# Cells gathered at once when a sparse W is applied (memory: some 20 bytes a cell)
+GATHER_CELLS = 1 << 23
+
+
+@dataclass
 class ReferenceScorer:
-    """A history-based reference model: score rows are X[rows] W, W dense (EASE) or sparse (item-kNN)."""
+    """A history-based reference model: score rows are X[rows] W, W dense (n_items, n_items) or SparseRows."""
 
     name: str
     history: History
-    weights: torch.Tensor  # EASE: dense B (n_items, n_items); item-kNN: sparse S, row i = i's neighbours
+    weights: torch.Tensor | SparseRows  # EASE: B; item-kNN: W[j, i] = s(i, j) for j among i's neighbours
     setting: dict  # the hyperparameter chosen, as reported
 
     def for_queries(self, rows: torch.Tensor, vectors: torch.Tensor | None = None) -> "ReferenceScorer":
         """The same model for some query rows (one per event in context runs); it has no query vectors to take."""
         return ReferenceScorer(self.name, self.history.take(rows), self.weights, self.setting)
 
+    def matrix(self) -> torch.Tensor:
+        """W as a dense tensor (tests and small catalogs)."""
+        w = self.weights
+        return w if isinstance(w, torch.Tensor) else w.dense(self.history.n_items)
+
     def score_rows(self, query_rows: torch.Tensor) -> torch.Tensor:
-        """Scores of some query rows against every item: float32 (len(query_rows), n_items)."""
-        x = self.history.dense(query_rows)
-        if self.weights.layout == torch.strided:
-            return x @ self.weights
-        return torch.sparse.mm(self.weights, x.t()).t().contiguous()
+        """Scores of some query rows against every item: float32 (len(query_rows), n_items).
+
+        A dense W is one matrix product; a sparse one adds, for each history item j of a query, row j
+        of W into the query's scores (a gather and one index_add, in pieces of GATHER_CELLS cells).
+        """
+        if isinstance(self.weights, torch.Tensor):
+            return self.history.dense(query_rows) @ self.weights
+        n = self.history.n_items
+        out = torch.zeros(len(query_rows), n)
+        h = self.history.take(query_rows)
+        local = np.repeat(np.arange(len(query_rows), dtype=np.int64), np.diff(h.starts))
+        w = self.weights
+        fan = w.starts[h.items + 1] - w.starts[h.items]  # cells each history item adds
+        ends = np.cumsum(fan)
+        flat = out.view(-1)
+        lo = 0
+        while lo < len(h.items):
+            hi = max(lo + 1, int(np.searchsorted(ends, (ends[lo - 1] if lo else 0) + GATHER_CELLS, side="right")))
+            lengths = fan[lo:hi]
+            first = np.repeat(w.starts[h.items[lo:hi]] - np.concatenate([[0], np.cumsum(lengths[:-1])]), lengths)
+            pos = torch.from_numpy(first + np.arange(int(lengths.sum()), dtype=np.int64))
+            target = torch.from_numpy(np.repeat(local[lo:hi], lengths)) * n + w.cols.index_select(0, pos)
+            flat.index_add_(0, target, w.values.index_select(0, pos))
+            lo = hi
+        return out
 
 
 class EaseFit:
@@ -139,29 +191,50 @@ class EaseFit:
         return ReferenceScorer(EASE, self.history, b, {"penalty": penalty})
 
 
-def knn_similarity(history: History, neighbours: int) -> torch.Tensor:
-    """Cosine similarity of the items' history columns, each row keeping its `neighbours` largest (not itself).
+class KnnFit:
+    """item-kNN for several neighbour counts from one similarity pass: each count is a cut of one sort.
 
-    Returns a sparse COO float32 (n_items, n_items) tensor, row i holding i's neighbours j and s(i, j).
-    Ties at the k-th place are broken by the smaller item index, so the result is deterministic.
+    Cosine similarity of the items' history columns, s(i, j) = c_ij / sqrt(c_ii c_jj); each item i's
+    other items are ranked by similarity (ties: the smaller item index first, so results are
+    deterministic), and k neighbours keep ranks below k.
     """
-    c = history.cooccurrence()
-    (rows, cols), vals = c.indices(), c.values()
-    diag = torch.zeros(history.n_items).index_add_(0, rows[rows == cols], vals[rows == cols])
-    off = rows != cols
-    rows, cols, vals = rows[off], cols[off], vals[off]
-    sims = vals / torch.sqrt(diag[rows] * diag[cols])
-    order = np.lexsort((cols.numpy(), -sims.numpy(), rows.numpy()))  # by row, then similarity descending
-    r = rows.numpy()[order]
-    starts = np.searchsorted(r, r, side="left")
-    keep = order[(np.arange(len(r)) - starts) < neighbours]
-    keep = torch.from_numpy(np.sort(keep))
-    idx = torch.stack([rows[keep], cols[keep]])
-    return torch.sparse_coo_tensor(idx, sims[keep], (history.n_items, history.n_items), check_invariants=False).coalesce()
+
+    def __init__(self, history: History):
+        self.history = history
+        c = history.cooccurrence()
+        (rows, cols), vals = c.indices(), c.values()
+        diag = torch.zeros(history.n_items).index_add_(0, rows[rows == cols], vals[rows == cols])
+        off = rows != cols
+        rows, cols, vals = rows[off], cols[off], vals[off]
+        sims = vals / torch.sqrt(diag[rows] * diag[cols])
+        order = np.lexsort((cols.numpy(), -sims.numpy(), rows.numpy()))  # by row, then similarity descending
+        r = rows.numpy()[order]
+        rank = np.empty(len(r), np.int64)
+        rank[order] = np.arange(len(r)) - np.searchsorted(r, r, side="left")
+        self.rows, self.cols, self.sims, self.rank = rows, cols, sims, torch.from_numpy(rank)
+
+    def neighbours(self, k: int) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
+        """(i, j, s(i, j)) for every kept neighbour j of every item i."""
+        keep = self.rank < k
+        return self.rows[keep], self.cols[keep], self.sims[keep]
+
+    def solve(self, k: int) -> ReferenceScorer:
+        """score(q, i) = sum of s(i, j) over the items j of q's history among i's k neighbours: W[j, i] = s(i, j)."""
+        i, j, sims = self.neighbours(k)
+        n = self.history.n_items
+        w = SparseRows.from_coo(j, i, sims, n)
+        if n <= DENSE_ITEMS and len(sims) >= DENSE_SHARE * n * n:
+            w = w.dense(n)
+        return ReferenceScorer(ITEM_KNN, self.history, w, {"neighbours": k})
+
+
+# W is kept dense (one matrix product per block) when at least this share of it is filled and it is small
+DENSE_SHARE = 0.02
+DENSE_ITEMS = 10000
 
 
 def knn_scorer(history: History, neighbours: int) -> ReferenceScorer:
-    return ReferenceScorer(ITEM_KNN, history, knn_similarity(history, neighbours), {"neighbours": neighbours})
+    return KnnFit(history).solve(neighbours)
 
 
 # A geometric walk over penalties from the Gram matrix's mean diagonal (the mean item count), a
@@ -202,16 +275,18 @@ def choose_ease(history: History, judge) -> tuple[ReferenceScorer, list[dict]]:
 
 
 def choose_knn(history: History, judge) -> tuple[ReferenceScorer, list[dict]]:
-    """item-kNN with the neighbour count the validation pairs prefer, among NEIGHBOUR_CHOICES below the catalog."""
-    choices = [k for k in NEIGHBOUR_CHOICES if k < history.n_items] or [max(1, history.n_items - 1)]
+    """item-kNN with the neighbour count the validation pairs prefer: NEIGHBOUR_CHOICES below the catalog size,
+    and every other item."""
+    every = max(1, history.n_items - 1)  # every other item may be a neighbour
+    choices = [k for k in NEIGHBOUR_CHOICES if k < every] + [every]
+    fit = KnnFit(history)
     tries, best = [], None
     for k in choices:
-        s = knn_scorer(history, k)
+        s = fit.solve(k)
         score = judge(s)
         tries.append({"neighbours": k, "score": score})
         if best is None or score > best[0]:
             best = (score, s)
     if not math.isfinite(best[0]):  # nothing to judge by (no validation pairs): the middle choice
-        k = choices[len(choices) // 2]
-        return knn_scorer(history, k), tries
+        return fit.solve(choices[len(choices) // 2]), tries
     return best[1], tries
