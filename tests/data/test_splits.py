@@ -88,7 +88,7 @@ def test_item_item_pairs_never_have_their_reverse_in_training(split):
 
 def test_the_leak_check_finds_a_per_row_split():
     # Regression: a per-row random split put most test pairs' reverses into training (4,814 of 5,918 test
-    # pairs on the demo's co-purchases); the same check on a per-row split of the planted log finds them
+    # pairs on a made-up shop's co-purchases); the same check on a per-row split of the planted log finds them
     df = copurchase_log(seed=4)
     test = np.random.default_rng(0).permutation(len(df))[:len(df) // 5]
     is_test = np.zeros(len(df), bool)
