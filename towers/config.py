@@ -96,7 +96,7 @@ class InteractionsSection:
                                     'rating, 0/1 label or count; absent means every row is a positive event',
                                     nullable=True)
     weight_column: str | None = key('str', None, 'non-negative weight of each row in the loss', nullable=True)
-    time_column: str | None = key('str', None, 'event time; enables the time split', nullable=True)
+    time_column: str | None = key('str', None, 'event time; needed by the splits time, user_recent and user_last', nullable=True)
     group_column: str | None = key('str', None,
                                    'rows sharing a value here (an order or session id) always land on the same '
                                    'side of the split (training, validation or test)',
@@ -206,8 +206,9 @@ class EvaluationSection:
 
     split: str = key('choice', 'random',
                      'held-out split: random, time (the latest events; needs interactions.time_column), '
-                     "user_share (a share of each user's events) or user_last (each user's last_n latest events)",
-                     choices=('random', 'time', 'user_share', 'user_last'))
+                     "user_share (a share of each user's events), user_recent (each user's latest share of events; "
+                     "needs time_column) or user_last (each user's last_n latest events; needs time_column)",
+                     choices=('random', 'time', 'user_share', 'user_recent', 'user_last'))
     last_n: int = key('int', 1,
                       "user_last: each user's latest this-many events are the test slice (and the this-many "
                       'before them validation, when validation_fraction > 0)',
@@ -562,10 +563,10 @@ def _check_split(cfg: dict) -> None:
     """The split's own needs: a time column for the time-ordered splits, users for the per-user ones."""
     ev, ic = cfg["evaluation"], cfg["interactions"]
     split, item_item = ev["split"], cfg["run"]["mode"] == "item_item"
-    if split in ("time", "user_last") and not ic["time_column"]:
+    if split in ("time", "user_recent", "user_last") and not ic["time_column"]:
         raise TowersError(f"config key 'evaluation.split': {split!r} needs interactions.time_column; set it or use "
                           f"split: {'random' if split == 'time' else 'user_share'}")
-    if split in ("user_share", "user_last") and item_item:
+    if split in ("user_share", "user_recent", "user_last") and item_item:
         raise TowersError(f"config key 'evaluation.split': got {split!r}; expected random or time in item_item mode "
                           "(per-user splits need users; use run.mode: user_item, or split: random)")
     if ev["last_n"] != 1 and split != "user_last":

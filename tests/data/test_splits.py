@@ -245,6 +245,58 @@ def test_user_last_counts_the_later_row_as_later_among_equal_times():
     assert (out.side.to_numpy() == np.where(rank <= np.minimum(3, k - 1), "test", "train")).all()
 
 
+@pytest.mark.parametrize("test_fraction,validation", [(0.2, 0.1), (0.3, 0.0), (0.5, 0.4)])
+def test_user_recent_holds_out_each_users_latest_share(test_fraction, validation):
+    df = user_log(seed=4)
+    ev = EvaluationSection(split="user_recent", test_fraction=test_fraction, validation_fraction=validation)
+    out = with_sides(df, make_split(as_pairs(df), 200, ev, 0, None, False, n_queries=120))
+    # reference: pandas rank by time within each user, 1 = the user's latest event
+    rank = df.groupby("q").t.rank(method="first", ascending=False)
+    k = df.groupby("q").q.transform("size")
+    # counts as user_share's: the share rounded half up, capped to leave one training event
+    n_test = np.minimum(np.floor(test_fraction * k + 0.5), k - 1)
+    n_valid = np.minimum(np.floor(validation * (k - n_test) + 0.5), k - n_test - 1)
+    expected = np.where(rank <= n_test, "test", np.where(rank <= n_test + n_valid, "valid", "train"))
+    assert (out.side.to_numpy() == expected).all()
+    assert (out[k.to_numpy() == 1].side == "train").all()  # single-event users stay in training
+    assert (out.side == "test").sum() > 150 and (out.side == "valid").any() == (validation > 0)
+    # the split is by time: every user's test events come after the user's training events
+    last_train = out[out.side == "train"].groupby("q").t.max()  # reference: pandas groupby max / min
+    first_test = out[out.side == "test"].groupby("q").t.min()
+    assert (first_test > last_train.reindex(first_test.index)).all()
+    again = with_sides(df, make_split(as_pairs(df), 200, ev, 9, None, False, n_queries=120))
+    assert (again.side == out.side).all()  # no randomness: the seed does not move it
+
+
+def test_user_recent_counts_the_later_row_as_later_among_equal_times():
+    rng = np.random.default_rng(6)
+    df = pd.DataFrame({"q": rng.integers(0, 30, 400), "c": rng.integers(0, 40, 400), "t": rng.integers(0, 4, 400)})
+    ev = EvaluationSection(split="user_recent", test_fraction=0.25, validation_fraction=0.2)
+    out = with_sides(df, make_split(as_pairs(df), 40, ev, 0, None, False, n_queries=30))
+    # reference: pandas rank on the rows in reverse, so among equal times the later row ranks first
+    rev = df.iloc[::-1]
+    rank = rev.groupby("q").t.rank(method="first", ascending=False).iloc[::-1]
+    k = df.groupby("q").q.transform("size")
+    n_test = np.minimum(np.floor(0.25 * k + 0.5), k - 1)
+    n_valid = np.minimum(np.floor(0.2 * (k - n_test) + 0.5), k - n_test - 1)
+    expected = np.where(rank <= n_test, "test", np.where(rank <= n_test + n_valid, "valid", "train"))
+    assert (out.side.to_numpy() == expected).all()
+
+
+def test_user_recent_with_groups_holds_out_each_users_latest_orders():
+    df = order_log(seed=9)
+    ev = EvaluationSection(split="user_recent", test_fraction=0.3, validation_fraction=0.2)
+    out = with_sides(df, make_split(as_pairs(df), 60, ev, 2, None, False, groups=groups_of(df, "order"), n_queries=50))
+    per = out.groupby("order").agg(q=("q", "first"), t=("t", "min"), side=("side", "first"), sides=("side", "nunique"))
+    assert per.sides.max() == 1  # reference: pandas groupby nunique
+    rank = per.groupby("q").t.rank(method="first", ascending=False)  # reference: pandas rank of order start times
+    g = per.groupby("q").q.transform("size")
+    n_test = np.minimum(np.floor(0.3 * g + 0.5), g - 1)
+    n_valid = np.minimum(np.floor(0.2 * (g - n_test) + 0.5), g - n_test - 1)
+    expected = np.where(rank <= n_test, "test", np.where(rank <= n_test + n_valid, "valid", "train"))
+    assert (per.side.to_numpy() == expected).all()
+
+
 def order_log(seed: int) -> pd.DataFrame:
     """Orders of 1-4 rows, each order one user's; an order's rows a little apart in time."""
     rng = np.random.default_rng(seed)

@@ -5,7 +5,7 @@ with a group column every row of a group; in item_item mode both directions of a
 (A, B) and (B, A), so a test pair's reverse never teaches the model its answer. Units are merged
 when they share rows (a pair seen in two orders joins both orders' groups). The warm split then
 places units: at random, by time (a unit at its earliest event), or per user (a share of each
-user's units at random, or each user's latest units).
+user's units at random, each user's latest share, or each user's latest units).
 """
 
 from __future__ import annotations
@@ -20,6 +20,7 @@ from towers.config import EvaluationSection
 from towers.errors import TowersError
 
 TRAIN, VALID, TEST = 0, 1, 2
+PER_USER_SPLITS = ("user_share", "user_recent", "user_last")
 
 
 @dataclass
@@ -78,10 +79,8 @@ def make_split(pairs, n_items: int, ev: EvaluationSection, seed: int, cold_eligi
     rest = np.flatnonzero(~touches_cold)
     unit = split_units(q[rest], c[rest], None if groups is None else groups[rest], item_item)
     when = None if pairs.time is None else pairs.time.numpy()[rest]
-    if ev.split in ("user_share", "user_last"):
-        side = _per_user_sides(unit, q[rest], when, ev, rng)
-    else:
-        side = _global_sides(unit, when, ev, rng)
+    per_user = ev.split in PER_USER_SPLITS
+    side = _per_user_sides(unit, q[rest], when, ev, rng) if per_user else _global_sides(unit, when, ev, rng)
     return Split(rest[side == TRAIN], rest[side == VALID], rest[side == TEST], cold_test, torch.from_numpy(cold_items),
                  cold_user_test, torch.from_numpy(cold_users))
 
@@ -191,25 +190,28 @@ def _per_user_sides(unit: np.ndarray, q: np.ndarray, when: np.ndarray | None, ev
 
     A unit belongs to the user of its first row. user_share: of a user's k units, round(test_fraction x k)
     at random are test (halves rounded up), capped at k - 1; then round(validation_fraction x the rest)
-    of the rest are validation, capped to leave one for training. user_last: the latest min(last_n, k - 1)
-    units are test and, when validation_fraction > 0, the min(last_n, what is left - 1) before them
-    validation (ties in time: the later row counts as later).
+    of the rest are validation, capped to leave one for training. user_recent: the same counts, taken
+    from the user's latest units (test the latest, validation the latest before them). user_last: the
+    latest min(last_n, k - 1) units are test and, when validation_fraction > 0, the min(last_n, what is
+    left - 1) before them validation. By time, a unit is at its earliest event and among equal times the
+    later row counts as later.
     """
     n_units = int(unit.max(initial=-1)) + 1
     first = _unit_first_row(unit, n_units)
     owner = q[first].astype(np.int64)
-    if ev.split == "user_last":
-        # ascending by (owner, earliest time, first row): a user's latest units come last
-        order = np.lexsort((first, _unit_time(unit, n_units, when), owner))
-    else:
-        order = np.lexsort((rng.random(n_units), owner))
+    by_time = ev.split in ("user_recent", "user_last")
+    # by time, ascending by (owner, earliest time, first row), so a user's latest units come last; else a
+    # random order within each user
+    within = (first, _unit_time(unit, n_units, when)) if by_time else (rng.random(n_units),)
+    order = np.lexsort((*within, owner))
     owners_sorted = owner[order]
     starts = np.flatnonzero(np.r_[True, owners_sorted[1:] != owners_sorted[:-1]])
     counts = np.diff(np.r_[starts, n_units])
     k = np.repeat(counts, counts)  # units of each sorted unit's owner
     pos = np.arange(n_units) - np.repeat(starts, counts)  # place within the owner's units
-    if ev.split == "user_last":
+    if by_time:
         pos = k - 1 - pos  # 0 is the latest
+    if ev.split == "user_last":
         n_test = np.minimum(ev.last_n, k - 1)
         n_valid = np.minimum(ev.last_n, k - 1 - n_test) if ev.validation_fraction > 0 else np.zeros_like(k)
     else:
