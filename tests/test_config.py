@@ -70,11 +70,17 @@ def test_derived_facts_are_computed_once_in_the_config(tmp_path):
     assert C.resolve(minimal(run={"mode": "item_item"}), tmp_path).query_side.features == ()
 
 
-@pytest.mark.parametrize("loss", ["softmax", "squared"])
-def test_negatives_with_a_loss_that_samples_none_is_an_error(tmp_path, loss):
-    with pytest.raises(TowersError, match=rf"^config key 'training\.negatives': got 3; .*training\.loss is {loss}"):
-        C.resolve(minimal(training={"loss": loss, "negatives": 3}), tmp_path)
-    assert C.resolve(minimal(training={"loss": loss, "negatives": 0}), tmp_path).training.sampled_negatives == 0
+def test_negatives_with_the_squared_loss_is_an_error(tmp_path):
+    with pytest.raises(TowersError, match=r"^config key 'training\.negatives': got 3; .*training\.loss is squared"):
+        C.resolve(minimal(training={"loss": "squared", "negatives": 3}), tmp_path)
+    assert C.resolve(minimal(training={"loss": "squared", "negatives": 0}), tmp_path).training.sampled_negatives == 0
+
+
+def test_softmax_negatives_are_drawn_per_batch_not_per_pair(tmp_path):
+    cfg = C.resolve(minimal(training={"loss": "softmax", "negatives": 3}), tmp_path).training
+    assert (cfg.batch_negatives, cfg.sampled_negatives) == (3, 0)
+    assert C.resolve(minimal(training={"loss": "softmax"}), tmp_path).training.batch_negatives == 0
+    assert C.resolve(minimal(), tmp_path).training.batch_negatives == 0  # logistic draws per pair instead
 
 
 def test_empty_sections_mean_all_defaults(tmp_path):

@@ -142,6 +142,10 @@ class ModelSection:
     non_negative: bool = key('bool', False, 'softplus on the output so every embedding entry is >= 0')
     biases: bool = key('bool', True, 'per-id biases on both sides plus a global bias')
     shared_tower: bool = key('bool', False, 'item_item mode: one tower embeds both sides')
+    history_length: int = key('int', 0,
+                              "user_item runs: the query tower also averages embeddings of up to this many of "
+                              "the user's training items (the latest when the log has a time column); 0: off",
+                              low=0)
 
 
 @dataclass(frozen=True)
@@ -153,8 +157,9 @@ class TrainingSection:
                     "(events; each pair's item against the other items in its batch)",
                     choices=('squared', 'logistic', 'softmax'))
     negatives: int | None = key('int', None,
-                                'logistic: sampled negatives per positive (empty: 4); any other loss samples none, '
-                                'so a value above 0 there is an error',
+                                'logistic: sampled negatives per positive (empty: 4); softmax: items drawn '
+                                "uniformly for each batch and shared by all its pairs, beside the batch's own "
+                                '(empty: 0); squared loss samples none, so a value above 0 there is an error',
                                 low=0, nullable=True)
     negative_sampling: str = key('choice', 'popularity',
                                  'uniform over training items, or popularity^alpha',
@@ -191,6 +196,11 @@ class TrainingSection:
     def rating_loss(self) -> bool:
         """Squared loss: the model predicts ratings (judged by RMSE), not a ranking of events."""
         return self.loss == "squared"
+
+    @property
+    def batch_negatives(self) -> int:
+        """softmax: uniformly drawn items shared by a batch, beside its own (mixed negative sampling)."""
+        return (self.negatives or 0) if self.loss == "softmax" else 0
 
     @property
     def sampled_negatives(self) -> int:
@@ -523,6 +533,9 @@ def _check_consistency(cfg: dict) -> None:
     if cfg["run"]["mode"] == "item_item" and any(v != _plain(SIDE_KEYS[k].default) for k, v in cfg["users"].items()):
         raise TowersError("config: item_item mode draws both sides from 'items'; "
                           "remove the 'users' section or use mode user_item")
+    if cfg["model"]["history_length"] and cfg["run"]["mode"] == "item_item":
+        raise TowersError("config key 'model.history_length': a history is a user's items, so user_item mode only; "
+                          "set it to 0")
     if cfg["model"]["shared_tower"] and cfg["run"]["mode"] != "item_item":
         raise TowersError("config key 'model.shared_tower': only item_item mode can share one tower; set it false")
     _check_context(cfg)
@@ -545,10 +558,10 @@ def _check_consistency(cfg: dict) -> None:
         if stop not in allowed:
             raise TowersError(f"config key 'training.stop_metric': got {stop!r}; expected one of {', '.join(sorted(allowed))}")
     training = cfg["training"]
-    if training["negatives"] and training["loss"] != "logistic":
+    if training["negatives"] and training["loss"] == "squared":
         raise TowersError(f"config key 'training.negatives': got {training['negatives']}; expected empty or 0, since "
-                          f"training.loss is {training['loss']} (only the logistic loss samples negatives; "
-                          "remove the key or use loss: logistic)")
+                          "training.loss is squared (ratings need no negatives; remove the key, or use loss: logistic "
+                          "or softmax for events)")
     _check_baseline_solver(cfg)
     colour = cfg["report"]["color_feature"]
     categorical = [f["name"] for f in cfg["items"]["features"] if f["kind"] == "categorical"]

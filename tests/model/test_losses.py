@@ -116,3 +116,21 @@ def test_softmax_loss_drops_duplicate_positives_from_negatives():
     assert ours[0].item() == pytest.approx(row0, abs=1e-6)
     row2 = -1.0 + float(torch.logsumexp(torch.tensor([0.0, 0.0, 1.0]), 0))
     assert ours[2].item() == pytest.approx(row2, abs=1e-6)
+
+
+def test_softmax_with_drawn_columns_equals_cross_entropy_over_the_kept_columns():
+    # reference: torch.nn.functional.cross_entropy over each row's own columns, built one row at a time,
+    # with a drawn column holding the row's own item removed and log q subtracted per column
+    gen = torch.Generator().manual_seed(11)
+    b, extra = 6, 5
+    own = torch.tensor([3, 7, 3, 1, 9, 4])
+    drawn = torch.tensor([7, 2, 3, 8, 9])  # 7, 3 and 9 are also some rows' own items
+    columns = torch.cat([own, drawn])
+    logits = torch.randn(b, b + extra, generator=gen, dtype=torch.float64)
+    log_q = torch.randn(b + extra, generator=gen, dtype=torch.float64)
+    got = in_batch_softmax_loss(logits, columns, log_q)
+    for i in range(b):
+        keep = [j for j in range(b + extra) if j == i or columns[j] != own[i]]
+        row = (logits[i] - log_q)[keep]
+        want = F.cross_entropy(row.unsqueeze(0), torch.tensor([keep.index(i)]))
+        torch.testing.assert_close(got[i], want, rtol=1e-12, atol=1e-12)

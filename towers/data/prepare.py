@@ -16,6 +16,7 @@ from towers.data.context import ContextEncoders
 from towers.data.embeddings_file import TrueVectors, true_vectors
 from towers.data.encoders import make_encoder
 from towers.data.features import FeatureBlock, SideEncoders, SideTable
+from towers.data.history import HISTORY, history_column
 from towers.data.pairs import Pairs, SplitPairs
 from towers.data.splits import HoldOut, Split, make_split
 from towers.data.tables import (
@@ -266,6 +267,8 @@ def prepare(cfg: Config, previous=None) -> Prepared:
         q_side = c_side
     else:
         q_block = q_enc.encode(q_ids, q_table, cfg.users.path)
+        if cfg.model.history_length:
+            q_block[HISTORY] = history_column(train, len(q_ids), len(c_ids), cfg.model.history_length)
         q_side = Side(q_ids, q_enc, q_block, bool(cfg.users.features))
 
     warm = torch.zeros(len(c_ids), dtype=torch.bool)

@@ -5,6 +5,7 @@ from __future__ import annotations
 import torch
 
 from towers import config as C
+from towers.data.history import HISTORY
 from towers.data.prepare import Prepared
 from towers.errors import TowersError
 from towers.model.towers import TwoTowerModel
@@ -14,12 +15,15 @@ def build_model(data: Prepared, cfg: C.Config) -> TwoTowerModel:
     """A TwoTowerModel sized for the prepared data's encoders."""
     q, c = data.queries.encoders, data.candidates.encoders
     if not cfg.model.use_ids:
-        for side, enc in (("users" if not data.item_item else "items", q), ("items", c)):
-            if not enc.encoders:
+        for side, enc, block in (("users" if not data.item_item else "items", q, data.queries.block),
+                                 ("items", c, data.candidates.block)):
+            if not enc.encoders and HISTORY not in block:
                 raise TowersError(f"config key 'model.use_ids': false leaves the {side} tower with no input; "
                                   f"add {side}.features or set use_ids: true")
     shared = data.item_item and cfg.model.shared_tower
     q_inputs = _with_dims(q.model_inputs(), cfg.query_side.features)
+    if HISTORY in data.queries.block:  # the user's items, averaged from a table of their own (history.py)
+        q_inputs.append({"name": HISTORY, "kind": "tokens", "size": len(data.candidates.ids) + 1, "dim": cfg.model.dim})
     if data.context is not None:
         q_inputs += _with_dims(data.context.model_inputs(), cfg.interactions.context)
     c_inputs = _with_dims(c.model_inputs(), cfg.items.features)

@@ -44,18 +44,22 @@ def logistic_loss(logits: torch.Tensor, target: torch.Tensor) -> torch.Tensor:
 
 def in_batch_softmax_loss(logits: torch.Tensor, candidates: torch.Tensor,
                           log_q: torch.Tensor | None = None) -> torch.Tensor:
-    """Per-row cross-entropy of each query's own candidate against the other candidates in the batch.
+    """Per-row cross-entropy of each query's own candidate against the other candidates of the batch.
 
-    logits: (B, B) scores of query i with the candidate of pair j; the positive is the diagonal.
-    candidates: (B,) candidate ids of the pairs; a column holding the same item as row i's positive
-    is not a negative for row i and is left out. log_q: (B,) log of each column's chance of being in
-    a batch; subtracting it is the sampling-bias correction of Yi et al. (RecSys 2019), without which
-    popular items are pushed down simply for appearing as negatives more often. Returns (B,) in nats.
+    logits: (B, C) scores of query i with column j, C >= B; the first B columns are the pairs' own
+    candidates (the positive is the diagonal), any further ones items drawn for the whole batch.
+    candidates: (C,) the columns' item ids; a column holding the same item as row i's positive is not
+    a negative for row i and is left out. log_q: (C,) log of each column item's expected count among
+    the columns; subtracting it is the sampling-bias correction of Yi et al. (RecSys 2019), without
+    which popular items are pushed down simply for appearing as negatives more often (with drawn
+    columns the count is B x the item's share of events + C - B over the items drawn from, as in
+    Yang et al., WWW 2020). Returns (B,) in nats.
     """
+    b = logits.shape[0]
     if log_q is not None:
         logits = logits - log_q.unsqueeze(0)
-    same = candidates.unsqueeze(0) == candidates.unsqueeze(1)
-    same.fill_diagonal_(False)
+    same = candidates[:b].unsqueeze(1) == candidates.unsqueeze(0)
+    same[:, :b].fill_diagonal_(False)
     logits = logits.masked_fill(same, float("-inf"))
     return torch.logsumexp(logits, dim=1) - logits.diagonal()
 

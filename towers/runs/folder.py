@@ -216,11 +216,11 @@ def _ids(values: list) -> np.ndarray:
 
 def _pack(p: Pairs) -> dict:
     d = {"query": p.query, "candidate": p.candidate}
-    for name in ("context", "target", "weight"):
+    for name in ("context", "target", "weight", "time"):
         if getattr(p, name) is not None:
             d[name] = getattr(p, name)
     return d
 
 
 def _unpack(d: dict) -> Pairs:
-    return Pairs(d["query"], d["candidate"], d.get("target"), d.get("weight"), context=d.get("context"))
+    return Pairs(d["query"], d["candidate"], d.get("target"), d.get("weight"), d.get("time"), context=d.get("context"))

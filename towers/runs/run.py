@@ -25,6 +25,7 @@ from towers.data.embeddings_file import (
 )
 from towers.data.features import SideEncoders
 from towers.data.groups import group_labels
+from towers.data.history import HISTORY, empty_history, history_column
 from towers.data.pairs import Pairs
 from towers.data.prepare import read_interactions
 from towers.data.tables import (
@@ -55,6 +56,10 @@ def _rows_in_file(exc: TowersError, source, start: int) -> TowersError:
         return exc
     head = text[:found.start(2)]
     return TowersError(f"{head}{int(found.group(2)) + start}{text[found.end(2):]}")
+
+
+def _reads_history(tower) -> bool:
+    return any(i["name"] == HISTORY for i in tower.inputs)
 
 
 def _check_archive(path: Path, kind: str) -> None:
@@ -149,6 +154,8 @@ class Run:
                 raise _rows_in_file(exc, source, start) from None
             for name, count in encoders.unknown_counts().items():
                 unknown[name] = unknown.get(name, 0) + count
+            if _reads_history(tower):  # a new entity has no history: features alone
+                block[HISTORY] = empty_history(len(frame))
             with torch.no_grad():
                 vecs = tower(block)
                 bias = bias_table(block["id"]).squeeze(1) if bias_table is not None else None
@@ -231,6 +238,15 @@ class Run:
         return ContextEncoders.from_state(state) if state else None
 
     def _user_block(self, rows: torch.Tensor) -> dict:
+        """Encoded features of catalog users (rows), and their training history when the tower reads one."""
+        block = self._user_features(rows)
+        if _reads_history(self.bundle.model.query_tower):
+            saved = self.folder.read_pairs()
+            block[HISTORY] = history_column(saved.split.train, len(saved.query_ids), len(saved.item_ids),
+                                            self.config.model.history_length).index_select(0, rows)
+        return block
+
+    def _user_features(self, rows: torch.Tensor) -> dict:
         """Encoded features of catalog users (rows), read from the run's user feature table."""
         enc = self.bundle.query_encoders
         ids = self.embeddings(self._query_side())[0][rows.numpy()]

@@ -22,6 +22,7 @@ from tqdm import tqdm
 from towers.atomic import write_atomic
 from towers.config import Config
 from towers.data.features import block_len, take
+from towers.data.history import HISTORY, without_targets
 from towers.data.prepare import Prepared
 from towers.errors import TowersError
 from towers.model.bundle import load_payload
@@ -71,6 +72,8 @@ class Trainer:
         self.logistic = self.tcfg.loss == "logistic"
         self.softmax = self.tcfg.loss == "softmax"
         self.n_neg = self.tcfg.sampled_negatives
+        self.extra = self.tcfg.batch_negatives
+        self.warm_rows = torch.nonzero(data.warm_items).flatten()
         # both towers output their id rows (the linear factor model): the closed-form objective node
         self.id_rows_only = output_is_id_row(model.query_tower) and output_is_id_row(model.candidate_tower)
         if self.id_rows_only:  # each pair's id-table rows, looked up once instead of twice per step
@@ -121,27 +124,38 @@ class Trainer:
         """
         m, d, train = self.model, self.data, self.data.train
         q_rows, c_rows = train.query.index_select(0, idx), train.candidate.index_select(0, idx)
-        qb = self.query_batch(idx, q_rows)
+        qb = self.query_batch(idx, q_rows, c_rows)
         q_ids = m.query_tower.id_rows(qb)
         qe = m.query_tower(qb, q_ids)
-        cb = take(d.candidates.block, c_rows)
+        columns = c_rows
+        if self.extra:  # mixed negatives: items drawn uniformly, shared by the batch (Yang et al., WWW 2020)
+            pick = torch.randint(len(self.warm_rows), (self.extra,), generator=self.negative_generator)
+            columns = torch.cat([c_rows, self.warm_rows.index_select(0, pick)])
+        cb = take(d.candidates.block, columns)
         c_ids = m.candidate_tower.id_rows(cb)
         ce = m.candidate_tower(cb, c_ids)
         logits = (qe @ ce.T) / m.temperature + m.candidate_bias_of(c_ids).unsqueeze(0)
-        log_q = self.log_q.index_select(0, c_rows) if self.log_q is not None else None
-        loss = in_batch_softmax_loss(logits, c_rows, log_q)
+        log_q = None
+        if self.log_q is not None:  # log of each column item's expected count among the columns
+            share = self.log_q.index_select(0, columns).double().exp()
+            log_q = torch.log(len(idx) * share + self.extra / len(self.warm_rows)).float()
+        loss = in_batch_softmax_loss(logits, columns, log_q)
         if train.target is not None:  # a label in [0, 1] scales its row; label 0 rows teach nothing here
             loss = loss * train.target.index_select(0, idx)
         if train.weight is not None:
             loss = loss * train.weight.index_select(0, idx)
         if self.lam > 0:
             loss = loss + self._penalty(m.query_tower, m.query_bias if m.use_biases else None, q_ids, self.q_inv)
-            loss = loss + self._penalty(m.candidate_tower, m.candidate_bias if m.use_biases else None, c_ids, self.c_inv)
+            loss = loss + self._penalty(m.candidate_tower, m.candidate_bias if m.use_biases else None, c_ids[:len(idx)],
+                                        self.c_inv)
         return loss.mean()
 
-    def query_batch(self, idx: torch.Tensor, q_rows: torch.Tensor) -> dict:
-        """The query tower's input for pairs idx: the query entity's features, plus the pairs' context columns."""
+    def query_batch(self, idx: torch.Tensor, q_rows: torch.Tensor, c_rows: torch.Tensor) -> dict:
+        """The query tower's input for pairs idx: the query entity's features, plus the pairs' context columns;
+        a user's history bag leaves out the pair's own item (history.py)."""
         qb = take(self.data.queries.block, q_rows)
+        if HISTORY in qb:
+            qb[HISTORY] = without_targets(qb[HISTORY], c_rows)
         if self.data.train.context is not None:
             qb = qb | take(self.data.train.context, idx)
         return qb
@@ -154,7 +168,7 @@ class Trainer:
             return self.id_row_loss(idx)
         m, d, train = self.model, self.data, self.data.train
         q_rows, c_rows = train.query.index_select(0, idx), train.candidate.index_select(0, idx)
-        qb = self.query_batch(idx, q_rows)
+        qb = self.query_batch(idx, q_rows, c_rows)
         q_ids = m.query_tower.id_rows(qb)
         qe = m.query_tower(qb, q_ids)
         b = len(idx)
