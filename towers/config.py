@@ -173,6 +173,11 @@ class TrainingSection:
     batch_size: int = key('int', 2048, 'positive pairs per step', low=1)
     learning_rate: float = key('float', 0.003, 'Adam step size for network weights', low=0.0, low_open=True)
     id_learning_rate: float = key('float', 0.01, 'step size for id-embedding and bias tables', low=0.0, low_open=True)
+    schedule: str = key('choice', 'constant',
+                        'step sizes over training: constant, or cosine (both rates fall along half a cosine from '
+                        'their value to 0 at the last step of training.epochs)',
+                        choices=('constant', 'cosine'))
+    warmup_steps: int = key('int', 0, 'steps over which both rates rise linearly from 0 at the start', low=0)
     id_optimizer: str = key('choice', 'adam',
                             'sparse optimiser for id tables: adam (SparseAdam), adagrad or sgd',
                             choices=('adam', 'adagrad', 'sgd'))

@@ -42,7 +42,7 @@ from towers.training.objectives import (
     id_counts,
     output_is_id_row,
 )
-from towers.training.optimizers import make_optimizers
+from towers.training.optimizers import make_optimizers, rate_factor, set_rates
 from towers.training.progress import log, show_bar
 from towers.training.stopping import (
     EarlyStopping,
@@ -64,6 +64,8 @@ class Trainer:
             reuse_freed_memory()
         self.generator = torch.Generator().manual_seed(cfg.run.seed)
         self.optimizers = make_optimizers(model, self.tcfg)
+        self.base_rates = [[g["lr"] for g in opt.param_groups] for opt in self.optimizers]
+        self.scheduled = self.tcfg.schedule != "constant" or self.tcfg.warmup_steps > 0
         self.rank, self.world = rank_and_size()
         # one process: negatives come from the shuffling generator, as always; several: each process
         # draws its own negatives, while the shared shuffle keeps every process on the same order
@@ -273,6 +275,9 @@ class Trainer:
                 raise TrainingDiverged(
                     f"training diverged at {self.label} epoch {epoch}, step {s + 1} (loss {float(loss.detach())}); no model "
                     "was written; lower training.learning_rate / id_learning_rate, or raise weight_decay / id_l2")
+            if self.scheduled:
+                set_rates(self.optimizers, self.base_rates,
+                          rate_factor(self.tcfg, (epoch - 1) * steps + s, self.tcfg.epochs * steps))
             for opt in self.optimizers:
                 opt.zero_grad(set_to_none=True)
             loss.backward()

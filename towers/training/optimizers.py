@@ -3,6 +3,8 @@
 
 from __future__ import annotations
 
+import math
+
 import torch
 
 from towers.config import TrainingSection
@@ -28,3 +30,23 @@ def make_optimizers(model: TwoTowerModel, tcfg: TrainingSection) -> list[torch.o
         else:
             opts.append(torch.optim.SGD(sparse, lr=lr))
     return opts
+
+
+def rate_factor(tcfg: TrainingSection, step: int, total: int) -> float:
+    """The share of each configured step size used at global step `step` (0-based) of `total`.
+
+    A pure function of the step, so a resumed run takes exactly the rates an uninterrupted one would.
+    """
+    factor = 1.0
+    if tcfg.schedule == "cosine":
+        factor = 0.5 * (1.0 + math.cos(math.pi * min(step, total) / max(1, total)))
+    if tcfg.warmup_steps:
+        factor *= min(1.0, (step + 1) / tcfg.warmup_steps)
+    return factor
+
+
+def set_rates(optimizers: list[torch.optim.Optimizer], base: list[list[float]], factor: float) -> None:
+    """Every parameter group at its base step size times `factor`."""
+    for opt, rates in zip(optimizers, base):
+        for group, rate in zip(opt.param_groups, rates):
+            group["lr"] = rate * factor
