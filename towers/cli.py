@@ -46,10 +46,19 @@ def _parser() -> argparse.ArgumentParser:
     side.add_argument("--items", help="item feature table (CSV or parquet)")
     side.add_argument("--users", help="user feature table (CSV or parquet)")
     m.add_argument("--out", required=True, help="parquet file to write")
+    m.add_argument("--history-column", metavar="NAME",
+                   help="with --users, for runs trained with model.history_length > 0: the column holding each user's "
+                        "item ids (a list, or text joined by --history-separator), the last the latest")
+    m.add_argument("--history-separator", default="|", metavar="SEP",
+                   help="what joins the item ids of a text --history-column (default |)")
 
     r = sub.add_parser("recommend", help="top items for users (their known training and validation positives excluded)")
     r.add_argument("run_dir")
-    r.add_argument("--users", nargs="+", required=True, help="user ids")
+    who = r.add_mutually_exclusive_group(required=True)
+    who.add_argument("--users", nargs="+", help="user ids")
+    who.add_argument("--history", nargs="+", metavar="ITEM",
+                     help="a new user known only by these item ids (the last the latest), for runs trained with "
+                          "model.history_length > 0; the items are excluded")
     r.add_argument("--top", type=int, default=10, help="how many items per user (default 10)")
     r.add_argument("--context", nargs="+", metavar="COLUMN=VALUE",
                    help="the event's context for runs trained with interactions.context, e.g. channel=app hour=20")
@@ -172,12 +181,17 @@ def run(args: argparse.Namespace) -> int:
         source = args.items or args.users
         if Path(args.out).suffix.lower() not in (".parquet", ".pq"):
             raise TowersError(f"{args.out}: embeddings are written as parquet; give an --out ending in .parquet")
-        count = run_.embed_file(source, args.out, "items" if args.items else "users")
+        count = run_.embed_file(source, args.out, "items" if args.items else "users", args.history_column,
+                                args.history_separator)
         print(f"embedded {count} {'items' if args.items else 'users'} into {args.out}")
         return 0
     if args.command in ("recommend", "similar"):
-        frame = run_.recommend(args.users, args.top, context=_context_pairs(args.context)) \
-            if args.command == "recommend" else run_.similar(args.items, args.top)
+        if args.command == "similar":
+            frame = run_.similar(args.items, args.top)
+        elif args.history:
+            frame = run_.recommend_history(args.history, args.top, context=_context_pairs(args.context))
+        else:
+            frame = run_.recommend(args.users, args.top, context=_context_pairs(args.context))
         if args.out:
             _write_frame(frame, args.out)
         else:

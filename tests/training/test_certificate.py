@@ -22,7 +22,7 @@ from towers import config as C
 from towers.model.build import baseline_model
 from towers.runs.train import train_run
 from towers.training.als import Cells, Factors, als_sweep, cells_of, fit_als
-from towers.training.certificate import certificate, certify, describe, spectral_norm
+from towers.training.certificate import certificate, certify, describe, spectral_norm, validation_course
 from towers.training.loop import fit
 
 from ..helpers import prepared_baseline
@@ -247,9 +247,93 @@ def test_training_run_writes_the_certificate(tmp_path, capfd):
     out = tmp_path / "run"
     train_run(tmp_path / "config.yaml", out)
     cert = json.loads((out / "linear_factor" / "certificate.json").read_text(encoding="utf-8"))
-    assert cert["applies"] and set(cert) >= {"ratio", "gradient_norm", "gap", "relative_gap", "passed"}
+    assert cert["applies"] and set(cert) >= {"ratio", "gradient_norm", "gap", "relative_gap", "passed", "advice",
+                                             "validation", "penalty_search"}
+    assert cert["validation"]["metric"] == "rmse" and cert["advice"]["kind"] in (
+        "none", "larger_penalty", "train_longer", "raise_dim_or_train_longer")
     history = json.loads((out / "history.json").read_text(encoding="utf-8"))["epochs"]["linear_factor"]
     assert history and all(set(r) == {"epoch", "loss", "pairs_per_s", "valid_rmse"} for r in history)
     err = capfd.readouterr().err
     assert "linear_factor certificate:" in err and "linear_factor round 1/60" in err
     assert cfg.evaluation.baseline_solver == "als"
+
+
+# --- the advice: not converged, overfit, or as the certificate says -------------------------------
+
+def _valid_rmse(model, data) -> float:
+    """Validation RMSE of a linear factor model, scored in numpy from its id and bias tables."""
+    q = data.queries.block["id"].index_select(0, data.valid.query).numpy()
+    c = data.candidates.block["id"].index_select(0, data.valid.candidate).numpy()
+    u = model.query_tower.ids.weight.detach().double().numpy()
+    v = model.candidate_tower.ids.weight.detach().double().numpy()
+    bq = model.query_bias.weight.detach().double().numpy()[:, 0]
+    bc = model.candidate_bias.weight.detach().double().numpy()[:, 0]
+    s = np.einsum("ij,ij->i", u[q], v[c]) + bq[q] + bc[c] + float(model.global_bias.detach())
+    return float(np.sqrt(np.mean((s - data.valid.target.double().numpy()) ** 2)))
+
+
+def _noisy_rank_two(tmp_path, lam: float, rounds: int, row_steps: int):
+    """Rank 2 (entries about 1.5) plus noise sigma 1, half the 40 x 30 cells observed, a quarter of them held
+    out for validation: a small penalty overfits it within a few rounds."""
+    rng = np.random.default_rng(11)
+    y = _spectrum_matrix(40, 30, [60, 45], seed=11) + rng.normal(0, 1.0, (40, 30))
+    keep = rng.random(y.shape) < 0.5
+    return _write(tmp_path, _frame(y, keep), {"id_l2": lam, "patience": 2}, {"dim": 8, "hidden": [], "biases": True},
+                  {"baseline_solver": "als", "baseline_rounds": rounds, "baseline_row_steps": row_steps,
+                   "validation_fraction": 0.25})
+
+
+def test_an_overfitting_run_is_told_the_larger_penalty_validation_prefers(tmp_path):
+    # Regression: an ALS run that overfitted from its first rounds (validation RMSE rising while the
+    # objective fell; early stopping kept an early round) was told to train longer or raise model.dim.
+    cfg = _noisy_rank_two(tmp_path, 0.3, rounds=15, row_steps=0)
+    data, model, preset = prepared_baseline(cfg)
+    result = fit_als(model, data, preset, None, "linear_factor")
+    cert = certify(model, data, preset, result.history)
+    course = cert["validation"]
+    assert course["overfit"] and course["last_value"] > course["best_value"]
+    assert course["last_objective"] < course["best_objective"]
+    assert not cert["passed"] and cert["advice"]["kind"] == "larger_penalty"
+    named = cert["penalty_search"]["best_id_l2"]
+    assert named > 0.3
+    line = describe(cert)
+    assert f"raise training.id_l2 from 0.3 to {named:g}" in line and "train longer" not in line
+    json.dumps(cert)  # certificate.json holds the same facts
+    # Refit by hand with the named penalty and more rounds: its validation RMSE, computed in numpy from
+    # the learned tables (a brute-force reference), beats the overfitted run's kept model.
+    kept = _valid_rmse(model, data)
+    assert kept == pytest.approx(course["best_value"], rel=1e-4)  # reference: the numpy RMSE above
+    refit_cfg = _noisy_rank_two(tmp_path, named, rounds=30, row_steps=0)
+    data2, model2, preset2 = prepared_baseline(refit_cfg)
+    fit_als(model2, data2, preset2, None, "linear_factor")
+    assert _valid_rmse(model2, data2) < kept - 0.1  # reference: the numpy RMSE above
+
+
+def test_a_run_stopped_before_converging_is_told_to_train_longer(tmp_path):
+    cfg = _noisy_rank_two(tmp_path, 1.0, rounds=2, row_steps=1)  # two rounds of one CG step per row
+    data, model, preset = prepared_baseline(cfg)
+    result = fit_als(model, data, preset, None, "linear_factor")
+    cert = certify(model, data, preset, result.history)
+    assert cert["validation"]["still_improving"] and not cert["validation"]["overfit"]
+    assert cert["penalty_search"] is None  # no refits when validation did not rise
+    assert not cert["passed"] and cert["advice"]["kind"] == "train_longer"
+    assert "not converged" in describe(cert) and "raise evaluation.baseline_rounds" in describe(cert)
+
+
+@pytest.mark.parametrize("values,losses,best,overfit,improving", [
+    ([1.0, 0.9, 0.95], [3, 2, 1], 2, True, False),  # rose while the objective fell
+    ([1.0, 0.9, 0.95, 0.9001], [4, 3, 2, 1], 2, True, False),  # rose, then came back: a rise all the same
+    ([1.0, 1.05, 0.9, 0.9004], [4, 3, 2, 1], 3, False, False),  # a rise before the best round is no overfit
+    ([1.0, 0.9, 0.95], [3, 2, 2], 2, False, False),  # rose, but the objective did not fall
+    ([1.0, 0.9, 0.9005], [3, 2, 1], 2, False, False),  # a rise within FLAT (0.1%) of the best is flat
+    ([1.0, 0.9, 0.8], [3, 2, 1], 3, False, True),  # still improving at the last round
+])
+def test_validation_course_reads_the_history(values, losses, best, overfit, improving):
+    history = [{"epoch": i + 1, "loss": loss, "pairs_per_s": 1.0, "valid_rmse": v}
+               for i, (v, loss) in enumerate(zip(values, losses))]
+    course = validation_course(history, "rmse")
+    # worked by hand from the rows above: rmse is lower-is-better
+    assert (course["best_round"], course["overfit"], course["still_improving"]) == (best, overfit, improving)
+    assert validation_course([{"epoch": 1, "loss": 1.0, "pairs_per_s": 1.0}], "rmse") is None
+    recall = [dict(r, **{"valid_recall@20": 1 - r["valid_rmse"]}) for r in history]  # higher is better
+    assert validation_course(recall, "recall@20")["best_round"] == best

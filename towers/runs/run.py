@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import re
 import warnings
 import zipfile
@@ -25,7 +26,7 @@ from towers.data.embeddings_file import (
 )
 from towers.data.features import SideEncoders
 from towers.data.groups import group_labels
-from towers.data.history import HISTORY, empty_history, history_column
+from towers.data.history import HISTORY, empty_history, history_bags, history_column, history_ids, trained_items
 from towers.data.pairs import Pairs
 from towers.data.prepare import read_interactions
 from towers.data.tables import (
@@ -58,6 +59,22 @@ def _rows_in_file(exc: TowersError, source, start: int) -> TowersError:
     return TowersError(f"{head}{int(found.group(2)) + start}{text[found.end(2):]}")
 
 
+def _column_label(source, column: str) -> str:
+    return str(source) if column == HISTORY else f"{source}, column '{column}'"
+
+
+def _left_out(counts: dict[str, int]) -> str:
+    """Words for the history ids left out: those not in the run, and those no training history held."""
+    parts = []
+    n, m = counts["unknown"], counts["untrained"]
+    if n:
+        parts.append(f"{n} item id{'s' if n != 1 else ''} not in this run's items")
+    if m:
+        parts.append(f"{m} item{'s' if m != 1 else ''} that no training history held (their history rows never "
+                     "learned)")
+    return " and ".join(parts)
+
+
 def _reads_history(tower) -> bool:
     return any(i["name"] == HISTORY for i in tower.inputs)
 
@@ -84,6 +101,7 @@ class Run:
         self.item_item = self.bundle.item_item
         self._pairs = None
         self._emb = {}
+        self._history_cache = None
 
     # ---- saved state -------------------------------------------------------------------------
     @property
@@ -104,15 +122,18 @@ class Run:
         return "query" if self.item_item else "user"
 
     # ---- embedding unseen entities ----------------------------------------------------------------
-    def _embed(self, df: pd.DataFrame, encoders: SideEncoders, tower, bias_table, source: str) -> pd.DataFrame:
+    def _embed(self, df: pd.DataFrame, encoders: SideEncoders, tower, bias_table, source: str,
+               history: tuple[str, str] | None = None) -> pd.DataFrame:
         self._check_embeddable(encoders, source)
-        require_columns(df.columns, [encoders.id_column] + [e.name for e in encoders.encoders], source)
+        self._check_history(history)
+        wanted = [encoders.id_column] + [e.name for e in encoders.encoders] + ([history[0]] if history else [])
+        require_columns(df.columns, wanted, source)
         if len(df) == 0:
             raise TowersError(f"{source}: no rows to embed")
         ids, lookup = self._embed_ids(df[encoders.id_column], encoders, source)
         frame = df.reset_index(drop=True)
         pieces = ((i, frame.iloc[i:i + EMBED_CHUNK]) for i in range(0, len(frame), EMBED_CHUNK))
-        parts = list(self._embed_pieces(pieces, lookup, encoders, tower, bias_table, source))
+        parts = list(self._embed_pieces(pieces, lookup, encoders, tower, bias_table, source, history))
         vecs = torch.cat([v for _, v, _ in parts])
         bias = torch.cat([b for _, _, b in parts]) if bias_table is not None else None
         out = pd.DataFrame({"id": ids, "embedding": list(vecs.numpy())})
@@ -120,6 +141,23 @@ class Run:
             out["bias"] = bias.numpy()
         out.attrs["vectors"], out.attrs["bias"] = vecs, bias
         return out
+
+    def _check_history(self, history: tuple[str, str] | None) -> None:
+        """Refuse a history when the query tower reads none, before any row is read."""
+        if history is not None and not _reads_history(self.bundle.model.query_tower):
+            raise TowersError(f"{self.dir}: this run was trained without user histories (model.history_length is 0), "
+                              "so it cannot read one; drop the history (--history-column / history=), or retrain with "
+                              "model.history_length > 0")
+
+    def _history_catalog(self) -> tuple[np.ndarray, torch.Tensor, int]:
+        """(the run's item ids, which of them some training history holds, the history length), read once."""
+        if self._history_cache is None:
+            _check_archive(self.folder.file(RunFolder.PAIRS), "pairs file")
+            saved = self.folder.read_pairs()
+            limit = self.bundle.model_cfg.history_length
+            bags = history_column(saved.split.train, len(saved.query_ids), len(saved.item_ids), limit)
+            self._history_cache = (saved.item_ids, trained_items(bags, len(saved.item_ids)), limit)
+        return self._history_cache
 
     @staticmethod
     def _check_embeddable(encoders: SideEncoders, source) -> None:
@@ -137,24 +175,30 @@ class Run:
         # else: text ids that are no whole numbers are new entities; they keep their own text as id
         return ids, lookup
 
-    @staticmethod
-    def _embed_pieces(pieces, lookup: np.ndarray, encoders: SideEncoders, tower, bias_table, source):
+    def _embed_pieces(self, pieces, lookup: np.ndarray, encoders: SideEncoders, tower, bias_table, source,
+                      history: tuple[str, str] | None = None):
         """Yield (first row, vectors, bias or None) for each (first row, feature frame) piece of a table.
 
         Pieces are encoded and embedded one at a time, so memory holds one piece's encoded block,
-        whatever the table's length. Counts of values unseen in training are summed over the pieces
-        and reported in one warning at the end.
+        whatever the table's length. Counts of values unseen in training, and of history ids left out,
+        are summed over the pieces and reported in one warning each at the end. history = (column,
+        separator): each row's item ids (history.py); without it a tower that reads histories gets
+        empty ones (features alone).
         """
         unknown: dict[str, int] = {}
+        left_out = {"unknown": 0, "untrained": 0}
         tower.eval()
         for start, frame in pieces:
             try:
                 block = encoders.encode(lookup[start:start + len(frame)], frame.reset_index(drop=True), source)
+                if history is not None:
+                    block[HISTORY], counts = self._bags(frame[history[0]], source, history)
+                    left_out = {k: left_out[k] + counts[k] for k in left_out}
             except TowersError as exc:
                 raise _rows_in_file(exc, source, start) from None
             for name, count in encoders.unknown_counts().items():
                 unknown[name] = unknown.get(name, 0) + count
-            if _reads_history(tower):  # a new entity has no history: features alone
+            if history is None and _reads_history(tower):  # no history given: features alone
                 block[HISTORY] = empty_history(len(frame))
             with torch.no_grad():
                 vecs = tower(block)
@@ -163,6 +207,15 @@ class Run:
         if unknown:
             listed = ", ".join(f"{k}: {v}" for k, v in unknown.items())
             warnings.warn(f"{source}: values unseen in training were mapped to the unknown bucket ({listed})", stacklevel=4)
+        if history is not None and any(left_out.values()):
+            warnings.warn(f"{_column_label(source, history[0])}: left out of the histories {_left_out(left_out)}",
+                          stacklevel=4)
+
+    def _bags(self, column: pd.Series, source, history: tuple[str, str]) -> tuple[torch.Tensor, dict[str, int]]:
+        """History bags of some rows (item rows + 1, 0 padding) and the counts of ids left out."""
+        item_ids, trained, limit = self._history_catalog()
+        ids, rows = history_ids(column, source, history[0], history[1])
+        return history_bags(ids, rows, len(column), item_ids, trained, limit)
 
     def _side_parts(self, side: str):
         """(encoders, tower, bias table) that embed new rows of one side: 'items' or 'users'."""
@@ -176,23 +229,29 @@ class Run:
             tower = AveragedOverContexts(m.query_tower, self.bundle.extra["context_sample"])
         return self.bundle.query_encoders, tower, m.query_bias if m.use_biases else None
 
-    def embed_file(self, source: str | Path, out: str | Path, side: str = "items") -> int:
+    def embed_file(self, source: str | Path, out: str | Path, side: str = "items", history_column: str | None = None,
+                   separator: str = "|") -> int:
         """Embed every row of a feature table file into an embeddings parquet; returns the row count.
 
         A parquet table is read, encoded, embedded and written EMBED_CHUNK rows at a time, so memory
         stays bounded however many rows it has (a CSV table is read whole first). The output is
         written atomically, in the format of the run's own embeddings files. `side`: items or users.
+        history_column (users of a run with model.history_length > 0): the column holding each user's
+        item ids, a list or text joined by `separator`, the last the latest (see embed_users).
         """
         import pyarrow.parquet as pq
 
-
+        if history_column is not None and side != "users":
+            raise TowersError(f"{source}: --history-column gives users' histories; use it with --users, not --items")
         encoders, tower, bias_table = self._side_parts(side)
         self._check_embeddable(encoders, source)
-        names = [e.name for e in encoders.encoders]
+        history = None if history_column is None else (history_column, separator)
+        self._check_history(history)
+        names = [e.name for e in encoders.encoders] + ([history_column] if history_column else [])
         meta = dict(self.embeddings("item")[3], side="item" if side == "items" else "user", source=str(source))
         if Path(source).suffix.lower() not in (".parquet", ".pq"):
             df = read_table(source)
-            result = self._embed(df, encoders, tower, bias_table, source)
+            result = self._embed(df, encoders, tower, bias_table, source, history)
             write_embeddings(out, result["id"].to_numpy(), result.attrs["vectors"], result.attrs["bias"], meta)
             return len(result)
         ids, lookup = self._embed_ids(read_table(source, columns=[encoders.id_column])[encoders.id_column],
@@ -206,7 +265,8 @@ class Run:
         def write(path: Path) -> None:
             writer = None
             try:
-                for start, vecs, bias in self._embed_pieces(pieces, lookup, encoders, tower, bias_table, source):
+                for start, vecs, bias in self._embed_pieces(pieces, lookup, encoders, tower, bias_table, source,
+                                                            history):
                     table = embeddings_table(ids[start:start + len(vecs)], vecs, bias, meta)
                     if writer is None:
                         writer = pq.ParquetWriter(path, table.schema)
@@ -222,13 +282,34 @@ class Run:
         """Embed item rows (id column plus feature columns) with the candidate tower."""
         return self._embed(df, *self._side_parts("items"), source)
 
-    def embed_users(self, df: pd.DataFrame, source: str = "users") -> pd.DataFrame:
+    def embed_users(self, df: pd.DataFrame, source: str = "users", history=None, history_column: str | None = None,
+                    separator: str = "|") -> pd.DataFrame:
         """Embed user rows (id column plus feature columns) with the query tower.
+
+        A run trained with model.history_length > 0 also reads each user's items: `history`, one list of
+        item ids per row of df (in the order given, the last the latest; an empty list for none), or
+        `history_column`, a column of df holding such lists or text of ids joined by `separator`. Ids
+        not among the run's items, and items no training history held, are left out with a warning
+        counting them; each item counts once, and the latest model.history_length are used. Without
+        a history such a run embeds users from features alone (an empty history).
 
         A run with context columns gives each user's vector averaged over the training context sample
         saved in its bundle, as user_embeddings.parquet does.
         """
-        return self._embed(df, *self._side_parts("users"), source)
+        if history is not None and history_column is not None:
+            raise TowersError(f"{source}: give the history either as lists (history=) or as a column (history_column=), "
+                              "not both")
+        if history is not None:
+            if isinstance(history, (str, bytes)) or not hasattr(history, "__len__"):
+                raise TowersError(f"{source}: history= takes one list of item ids per user row, got "
+                                  f"{type(history).__name__}; pass e.g. [[12, 40], [], [7]]")
+            if len(history) != len(df):
+                raise TowersError(f"{source}: history= has {len(history)} lists for {len(df)} user rows; give one list "
+                                  "of item ids per row (an empty list for a user with none)")
+            df = df.assign(**{HISTORY: pd.Series(list(history), index=df.index, dtype=object)})
+            history_column = HISTORY
+        spec = None if history_column is None else (history_column, separator)
+        return self._embed(df, *self._side_parts("users"), source, spec)
 
     # ---- context ----------------------------------------------------------------------------------
     @property
@@ -332,6 +413,45 @@ class Run:
                                         torch.cat([tr["candidate"], va["candidate"]]), exclude_self=self.item_item)
         idx, scores = self._scorer(TOWERS).for_queries(rows, vectors).top(top, ex_r, ex_c)
         return self._ranked_frame(q_ids[rows.numpy()], idx, scores, i_ids)
+
+    def recommend_history(self, item_ids, top: int = 10, context: dict | None = None) -> pd.DataFrame:
+        """Top items (query_id, rank, item_id, score) for a new user known only by a few items.
+
+        The user's vector is the query tower's on an empty feature row (every feature missing, the id
+        unknown, as the encoders treat values they never saw) plus this history (item ids, the last
+        the latest; embed_users' rules). The given items that are in the run are excluded from the
+        ranking. query_id is "(history)". Needs a run trained with model.history_length > 0.
+        """
+        if top <= 0:
+            raise TowersError(f"{self.dir}: --top must be a positive whole number, got {top}; ask for at least 1 item")
+        if self.item_item:
+            raise TowersError(f"{self.dir}: this run is item_item: it has no user tower; use similar for items")
+        if context and self.context is None:
+            raise TowersError(f"{self.dir}: this run was trained without context columns; drop --context")
+        items = list(item_ids)
+        if not items:
+            raise TowersError(f"{self.dir}: --history needs at least one item id")
+        history = (HISTORY, "|")
+        self._check_history(history)
+        encoders, tower, bias_table = self._side_parts("users")
+        frame = pd.DataFrame({e.name: pd.Series([None], dtype=object) for e in encoders.encoders})
+        frame[HISTORY] = pd.Series([items], dtype=object)
+        block = encoders.encode(np.asarray([None], dtype=object), frame, "--history")  # no id: the unknown row
+        block[HISTORY], counts = self._bags(frame[HISTORY], "--history", history)
+        if any(counts.values()):
+            warnings.warn(f"--history: left out {_left_out(counts)}", stacklevel=2)
+        # without --context a run with context columns averages over its training context sample, as embed_users
+        query = (lambda b: self.bundle.model.query_tower(b | self._context_block(context, 1))) if context else tower
+        with torch.no_grad():
+            vectors = query(block)
+            bias = bias_table(block["id"]).squeeze(1) if bias_table is not None else None
+        i_ids = self.embeddings("item")[0]  # the catalog order of pairs.pt and of the history table
+        ids, _ = history_ids(frame[HISTORY], "--history", HISTORY)
+        at = pd.Index(i_ids).get_indexer(align_id_types(ids, i_ids))
+        given = torch.from_numpy(np.unique(at[at >= 0]).astype(np.int64))  # the given items in the run, left out
+        scorer = dataclasses.replace(self._scorer(TOWERS), query_vectors=vectors, query_bias=bias)
+        idx, scores = scorer.top(top, torch.zeros(len(given), dtype=torch.int64), given)
+        return self._ranked_frame(["(history)"], idx, scores, i_ids)
 
     def similar(self, item_ids, top: int = 10) -> pd.DataFrame:
         """Most similar items (query_id, rank, item_id, score), the item itself excluded.

@@ -121,7 +121,7 @@ def _train_reference(name: str, data: Prepared, cfg: C.Config, partial: RunFolde
     solver = fit_als if name == LINEAR_FACTOR and preset.evaluation.baseline_solver != "gradient" else fit
     result = solver(model, data, preset, partial.checkpoints(name), name, resume=resuming)
     if name == LINEAR_FACTOR and cfg.training.rating_loss:  # is it the global optimum? (certificate.py)
-        cert = certify(model, data, preset)
+        cert = certify(model, data, preset, result.history)
         partial.write_json(RunFolder.CERTIFICATE, cert, name)
         log(describe_certificate(cert))
     scorer = model_scorer(model, data)

@@ -48,6 +48,7 @@ biases stay unconstrained. The start is the absolute value of the model's random
 
 from __future__ import annotations
 
+import copy
 import math
 import sys
 import time
@@ -58,10 +59,12 @@ from pathlib import Path
 import torch
 from tqdm import tqdm
 
-from towers.config import Config
+from towers.config import Config, lower_is_better
 from towers.data.prepare import Prepared
 from towers.errors import TowersError
-from towers.model.towers import TwoTowerModel
+from towers.evaluation.protocol import validation_metrics
+from towers.model.embed import model_scorer
+from towers.model.towers import ID_INIT_STD, TwoTowerModel
 from towers.training.progress import log, show_bar
 from towers.training.stopping import (
     EarlyStopping,
@@ -500,3 +503,92 @@ def fit_als(model: TwoTowerModel, data: Prepared, cfg: Config, checkpoint_dir: P
         progress.close()
     stopping.restore_best(model)
     return result
+
+
+PENALTY_FACTORS = (1.0, 3.0, 10.0, 30.0)  # multiples of training.id_l2 each penalty search refits
+PENALTY_FURTHER = (100.0, 300.0, 1000.0)  # tried in turn while the largest so far validates best
+PENALTY_ROUNDS = 10  # most ALS rounds of one refit
+PENALTY_PATIENCE = 2  # a refit stops after this many rounds without a better validation value
+
+
+def _fresh_factors(like: Factors, seed: int) -> Factors:
+    """Factors shaped like `like`, started as a new model is (id rows N(0, ID_INIT_STD^2), row 0 and biases
+    zero), from a generator of their own so the caller's random state is left alone."""
+    gen = torch.Generator().manual_seed(seed)
+
+    def table(t: torch.Tensor) -> torch.Tensor:
+        x = torch.randn(t.shape, generator=gen, dtype=torch.float64).mul_(ID_INIT_STD).to(t.dtype)
+        x[0] = 0.0
+        return x
+
+    zeros = lambda t: None if t is None else torch.zeros_like(t)  # noqa: E731
+    return Factors(table(like.query), table(like.candidate), zeros(like.query_bias), zeros(like.candidate_bias))
+
+
+def refit_validation(model: TwoTowerModel, data: Prepared, cfg: Config, lam: float,
+                     rounds: int = PENALTY_ROUNDS, cells: Cells | None = None) -> dict:
+    """Refit the linear factor model by ALS from a fresh start with penalty `lam`, validating each round.
+
+    Squared loss, the row solver of evaluation.baseline_row_steps; `model` is only a template (copied,
+    never changed). Stops after PENALTY_PATIENCE rounds without a better validation value. Returns
+    {"id_l2", "best_round", "rounds", "valid_<metric>"}: the best validation value and its round.
+    """
+    metric = cfg.stop_metric
+    lower = lower_is_better(metric)
+    cells = cells if cells is not None else cells_of(data)
+    f = _fresh_factors(Factors.of_model(model), cfg.run.seed)
+    update_global_bias(f, cells)
+    scratch = copy.deepcopy(model)
+    best, best_round, stale, done = None, 0, 0, 0
+    for sweep in range(1, rounds + 1):
+        als_sweep(f, cells, lam, cfg.evaluation.baseline_row_steps)
+        f.write_to(scratch)
+        value = validation_metrics(model_scorer(scratch, data), data, cfg, data.valid, scratch).get(metric)
+        done = sweep
+        if value is None or not math.isfinite(value):
+            break
+        if best is None or (value < best if lower else value > best):
+            best, best_round, stale = value, sweep, 0
+        else:
+            stale += 1
+            if stale >= PENALTY_PATIENCE:
+                break
+    return {"id_l2": lam, "best_round": best_round, "rounds": done, f"valid_{metric}": best}
+
+
+def penalty_search(model: TwoTowerModel, data: Prepared, cfg: Config) -> dict:
+    """The penalty validation prefers among multiples of training.id_l2, by cheap ALS refits.
+
+    Refits at PENALTY_FACTORS x id_l2 (the current penalty included, so every candidate is judged by the
+    same procedure: the same start, solver and round budget), then, while the largest penalty tried so far
+    validates best, at PENALTY_FURTHER in turn. Returns {"metric", "rounds", "tried": [refit_validation
+    rows with "factor"], "best_id_l2", "best_factor"}; the best is the current penalty when nothing
+    larger validates better. Needs validation pairs.
+    """
+    metric, lam = cfg.stop_metric, cfg.training.id_l2
+    lower = lower_is_better(metric)
+    key = f"valid_{metric}"
+    rounds = max(1, min(cfg.evaluation.baseline_rounds, PENALTY_ROUNDS))
+    cells = cells_of(data)
+    tried = []
+
+    def better(a: dict, b: dict) -> bool:
+        if a[key] is None:
+            return False
+        return b[key] is None or (a[key] < b[key] if lower else a[key] > b[key])
+
+    def best_row() -> dict:
+        top = tried[0]
+        for row in tried[1:]:
+            if better(row, top):
+                top = row
+        return top
+
+    for factor in PENALTY_FACTORS:
+        tried.append(dict(refit_validation(model, data, cfg, lam * factor, rounds, cells), factor=factor))
+    for factor in PENALTY_FURTHER:
+        if best_row() is not tried[-1]:
+            break
+        tried.append(dict(refit_validation(model, data, cfg, lam * factor, rounds, cells), factor=factor))
+    top = best_row()
+    return {"metric": metric, "rounds": rounds, "tried": tried, "best_id_l2": top["id_l2"], "best_factor": top["factor"]}

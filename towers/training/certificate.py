@@ -36,9 +36,27 @@ a bound on how far the trained objective is from the best any linear factor mode
 reach, in the units of N J. It is 0 exactly at a global optimum (t = 1 there). The certificate
 passes when gap / F <= evaluation.certificate_gap.
 
-Reading a failing certificate: with a large gradient norm the model has not converged (train longer:
-more epochs or ALS rounds); with a gradient norm near 0 and a ratio above 1 it sits at a stationary
-point of rank k that is not the global optimum, so k = model.dim is too small for this lambda.
+Advice. The certificate speaks about the training objective; whether more training or a different
+lambda helps is a question for validation, so the advice reads the run's history (one row per epoch or
+ALS round: the objective per pair `loss` and the validation metric) as well:
+
+  overfit        after its best round validation got worse (its worst value after the best by more
+                 than FLAT, 0.1%, of the best, so that a converged run's wobble does not count) while
+                 the objective per pair went on falling (from the best round to the last): later rounds
+                 fit the training pairs at validation's expense, and early stopping keeps an early
+                 round far from this lambda's optimum (so the certificate fails). A larger lambda is
+                 what helps, and which one is measured, not guessed: `als.penalty_search` refits the
+                 model by ALS from a fresh start at 1, 3, 10 and 30 times lambda (then 100, 300, 1000
+                 while the largest so far is best), each for at most als.PENALTY_ROUNDS rounds, keeping
+                 each refit's best validation value, and names the penalty with the best one. The
+                 current lambda is refitted too, so every candidate is judged by the same start, solver
+                 and round budget. When no larger lambda validates better, the line says so and the
+                 advice below applies.
+  not converged  the certificate fails and validation was still improving at the last round: train
+                 longer (more ALS rounds or epochs, and patience).
+  otherwise      as without validation: with a large gradient norm the model has not converged (train
+                 longer); with a gradient norm near 0 and a ratio above 1 it sits at a stationary point
+                 of rank k that is not the global optimum, so k = model.dim is too small for this lambda.
 
 Spectral norms come from Golub-Kahan-Lanczos bidiagonalisation with full reorthogonalisation on
 sparse index tensors (never a dense n x m matrix); its estimate approaches ||G||_2 from below.
@@ -51,14 +69,15 @@ import math
 import numpy as np
 import torch
 
-from towers.config import Config
+from towers.config import Config, lower_is_better
 from towers.data.prepare import Prepared
 from towers.model.towers import TwoTowerModel
-from towers.training.als import Cells, Factors, cell_scores, cells_of
+from towers.training.als import Cells, Factors, cell_scores, cells_of, penalty_search
 
 LANCZOS_STEPS = 100
 LANCZOS_MEMORY = 2 ** 25  # doubles kept for the Lanczos bases (256 MB)
 LANCZOS_TOL = 1e-9
+FLAT = 1e-3  # a validation value within this share of the best counts as no worse (converged runs wobble)
 
 
 def _sparse(rows: torch.Tensor, cols: torch.Tensor, values: torch.Tensor, shape: tuple[int, int]):
@@ -116,8 +135,12 @@ def not_applicable(reason: str) -> dict:
     return {"applies": False, "reason": reason}
 
 
-def certify(model: TwoTowerModel, data: Prepared, cfg: Config) -> dict:
-    """The certificate of a trained linear factor model (a dict for certificate.json)."""
+def certify(model: TwoTowerModel, data: Prepared, cfg: Config, history: list[dict] | None = None) -> dict:
+    """The certificate of a trained linear factor model (a dict for certificate.json).
+
+    `history` is the training history (TrainResult.history); with validation in it the certificate
+    also says whether the run overfitted or stopped before converging, and what to change ("advice").
+    """
     tcfg, ev = cfg.training, cfg.evaluation
     if tcfg.loss != "squared":
         return not_applicable(f"training.loss is {tcfg.loss}; the certificate is for squared loss")
@@ -129,7 +152,71 @@ def certify(model: TwoTowerModel, data: Prepared, cfg: Config) -> dict:
         return not_applicable("a shared tower scores u_i . u_j, which is not a free product U V^T")
     cells = cells_of(data, dtype=torch.float64)
     factors = Factors.of_model(model, torch.float64)
-    return certificate(factors, cells, tcfg.id_l2, ev.certificate_gap)
+    cert = certificate(factors, cells, tcfg.id_l2, ev.certificate_gap)
+    course = validation_course(history or [], cfg.stop_metric)
+    search = None
+    if course is not None and course["overfit"] and len(data.valid):
+        search = penalty_search(model, data, cfg)
+    more = "evaluation.baseline_rounds" if ev.baseline_solver != "gradient" else "training.epochs"
+    cert["validation"] = course
+    cert["penalty_search"] = search
+    cert["advice"] = advice(cert, course, search, more)
+    return cert
+
+
+def validation_course(history: list[dict], metric: str) -> dict | None:
+    """How validation and the objective moved over the rounds of a training history (None without
+    validation): the best round, the worst after it, the last, and whether the run overfitted (after its
+    best round validation got worse, by more than FLAT of the best value, while the objective per pair
+    fell from the best round to the last).
+    """
+    key = f"valid_{metric}"
+    rows = [r for r in history if r.get(key) is not None and math.isfinite(r[key])]
+    if not rows:
+        return None
+    lower = lower_is_better(metric)
+    sign = 1.0 if lower else -1.0  # sign * value: lower is better
+    at = min(range(len(rows)), key=lambda i: sign * rows[i][key])  # the first best round
+    best, last = rows[at], rows[-1]
+    worst = max(rows[at:], key=lambda r: sign * r[key])
+    rise = sign * (worst[key] - best[key])
+    return {"metric": metric, "best_round": best["epoch"], "best_value": best[key], "best_objective": best["loss"],
+            "worst_round_after_best": worst["epoch"], "worst_value_after_best": worst[key],
+            "last_round": last["epoch"], "last_value": last[key], "last_objective": last["loss"],
+            "still_improving": best is last,
+            "overfit": bool(rise > FLAT * abs(best[key]) and last["loss"] < best["loss"])}
+
+
+def advice(cert: dict, course: dict | None, search: dict | None, more: str) -> dict:
+    """What to change, as {"kind", "text"}: kind is larger_penalty, train_longer, raise_dim_or_train_longer
+    or none (see the module docstring); text is the advice's words for the log line."""
+    note = ""
+    if search is not None:
+        m, key = search["metric"], f"valid_{search['metric']}"
+        tried = ", ".join(f"{r['id_l2']:g}: " + ("-" if r[key] is None else f"{r[key]:.4f}") for r in search["tried"])
+        rose = (f"validation {m} rose from {course['best_value']:.4f} (round {course['best_round']}) to "
+                f"{course['worst_value_after_best']:.4f} (round {course['worst_round_after_best']}) while the "
+                f"objective fell from {course['best_objective']:.6g} to {course['last_objective']:.6g} (round "
+                f"{course['last_round']})")
+        refits = f"ALS refits of at most {search['rounds']} rounds, {m} by id_l2 {tried}"
+        if search["best_factor"] > 1.0:
+            best = next(r for r in search["tried"] if r["id_l2"] == search["best_id_l2"])
+            text = (f"overfit: {rose}; raise training.id_l2 from {cert['lambda']:g} to {search['best_id_l2']:g}, "
+                    f"which validation prefers ({m} {best[key]:.4f}; {refits})")
+            if search["best_factor"] == search["tried"][-1]["factor"]:
+                text += "; the largest tried was best, so a larger one may help still"
+            return {"kind": "larger_penalty", "text": text}
+        note = f"{rose}, but no larger training.id_l2 validated better ({refits}); "
+    if cert["passed"]:
+        return {"kind": "none", "text": note.rstrip("; ")}
+    if course is not None and course["still_improving"]:
+        return {"kind": "train_longer",
+                "text": (f"not converged: validation {course['metric']} was still improving at the last round "
+                         f"({course['last_value']:.4f}, round {course['last_round']}); train longer (raise {more} "
+                         "and training.patience)")}
+    return {"kind": "raise_dim_or_train_longer",
+            "text": (f"{note}train longer (more epochs or ALS rounds), and if the gradient norm is already near 0, "
+                     "raise model.dim")}
 
 
 def certificate(f: Factors, cells: Cells, lam: float, tolerance: float = 1e-3) -> dict:
@@ -181,12 +268,12 @@ def certificate(f: Factors, cells: Cells, lam: float, tolerance: float = 1e-3) -
 
 
 def describe(cert: dict, label: str = "linear_factor") -> str:
-    """One line for the training log."""
+    """One line for the training log: the verdict, the numbers, and the advice (certificate.json holds the
+    same facts under "advice", "validation" and "penalty_search")."""
     if not cert["applies"]:
         return f"{label} certificate: not computed ({cert['reason']})"
     facts = (f"||G||_2 / lambda = {cert['ratio']:.4f}, gradient norm {cert['gradient_norm']:.3g}, "
              f"objective within {cert['gap']:.3g} (relative {cert['relative_gap']:.2e}) of the global optimum")
-    if cert["passed"]:
-        return f"{label} certificate: passed; {facts}"
-    return (f"{label} certificate: not passed; {facts}; train longer (more epochs or ALS rounds), and if the "
-            "gradient norm is already near 0, raise model.dim")
+    verdict = "passed" if cert["passed"] else "not passed"
+    said = cert.get("advice") or advice(cert, None, None, "training.epochs")
+    return f"{label} certificate: {verdict}; {facts}" + (f"; {said['text']}" if said["text"] else "")
