@@ -19,8 +19,9 @@ folder (trials/NNN/); every trial keeps its config (trials/NNN.yaml) and its tra
 Control: the trial trains in a worker thread while this (main) thread waits, so Ctrl-C reaches the
 tuner rather than the training loop's own handler (which only listens in the main thread). The first
 Ctrl-C lets the running trial finish, then the study stops; the second stops the running trial at its
-next epoch, records it as failed and queues its values again for the next run; the third quits at
-once (the trial left "running" is failed and queued again when the study is next opened). With --jobs
+next epoch, records it as failed and queues its values again for the next run; the third does the
+same at once and quits. A trial a killed process left "running" is failed and queued again when the
+study is next opened. With --jobs
 N > 1, N spawned worker processes run trials against the same study, each in its own session; this
 process passes every Ctrl-C on to them and collects their messages.
 """
@@ -520,7 +521,7 @@ def _child(plan: Plan, worker: int, queue) -> None:
     progress = QueuedProgress(queue)
     control = Control()
     try:
-        with control.listening(progress.say):
+        with control.listening(lambda text: None):  # the main process says what each Ctrl-C does, once
             _work(plan, worker, control, progress)
     except KeyboardInterrupt:
         sys.exit(130)
