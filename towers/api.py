@@ -1,8 +1,9 @@
 """The Python API: every command of the `towers` CLI as a function, so both give the same results.
 
 train a run, load a run folder (a `Run` embeds unseen entities, recommends, finds similar items and
-re-evaluates: towers/runs/run.py), sweep a grid, write a report, align one run onto another, and
-generate the demo store; format_table and format_drift give the tables the CLI prints.
+re-evaluates: towers/runs/run.py), sweep a grid, tune settings within a time budget, write a report,
+align one run onto another, and generate the demo store; format_table and format_drift give the
+tables the CLI prints.
 """
 
 from __future__ import annotations
@@ -15,10 +16,11 @@ from towers.runs.report import write_report
 from towers.runs.run import Run
 from towers.runs.sweep import run_sweep
 from towers.runs.train import train_run
+from towers.runs.tune import run_tune
 from towers.synthetic.demo_store import generate_store
 
-__all__ = ["Run", "align_run", "format_drift", "format_table", "generate_store", "load", "run_sweep", "train",
-           "write_report"]
+__all__ = ["Run", "align_run", "format_drift", "format_table", "generate_store", "load", "run_sweep", "run_tune",
+           "train", "write_report"]
 
 
 def load(run_dir: str | Path) -> Run:

@@ -89,6 +89,19 @@ def _parser() -> argparse.ArgumentParser:
     w.add_argument("--jobs", type=int, default=1, help="cells trained at once, each on cores/jobs threads (default 1)")
     w.add_argument("--baseline", action="store_true", help="also train the linear factor model in every cell")
 
+    u = sub.add_parser("tune", help="search model and training settings within a time budget; judged by the "
+                                    "validation metric")
+    u.add_argument("config", help="YAML config file")
+    u.add_argument("--out", required=True,
+                   help="tune folder (study.db, trials/, trials.csv, trials.txt, trials.png, best.yaml); the same "
+                        "command run again continues the study")
+    u.add_argument("--minutes", type=float, required=True,
+                   help="time budget of this run: no trial starts after it, a running one stops at its next epoch")
+    u.add_argument("--trials", type=int, metavar="N",
+                   help="stop once the study holds N trials, counting earlier runs' (default: use the whole budget)")
+    u.add_argument("--jobs", type=int, default=1, metavar="N",
+                   help="trials at once, each in its own process on cores/N threads (default 1, in this process)")
+
     d = sub.add_parser("demo-data", help="generate the fictional hardware-and-garden store data")
     d.add_argument("--out", required=True, help="folder to write the demo tables into")
     d.add_argument("--seed", type=int, default=7, help="generator seed (default 7)")
@@ -127,6 +140,13 @@ def _context_pairs(items: list[str] | None) -> dict | None:
     return out
 
 
+def _plain(value) -> str:
+    """A config value as YAML would write it (true/false, 0.0012)."""
+    if isinstance(value, bool) or value is None:
+        return "null" if value is None else str(value).lower()
+    return f"{value:.4g}" if isinstance(value, float) else str(value)
+
+
 def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:
     # one `warning: ...` line on stderr, wherever the warning came from
     print(f"warning: {message}", file=sys.stderr)
@@ -155,6 +175,17 @@ def run(args: argparse.Namespace) -> int:
         best = result["best"]
         print(f"chosen: model.dim {best['dim']}, {args.penalty_key} {best['penalty']:g}; "
               f"config: {result['files']['best_config.yaml']}")
+        return 0
+    if args.command == "tune":
+        result = api.run_tune(args.config, args.out, args.minutes, args.trials, args.jobs)
+        print(result["table"], end="")
+        best = result["best"]
+        metric = next(k for k in best if k.startswith("valid_"))
+        print(f"best: trial {best['trial']:03d}, {metric} {best[metric]:.4f} (epoch {best['best_epoch']}); "
+              f"run folder: {result['run']}")
+        changed = ", ".join(f"{k} {_plain(was)} -> {_plain(now)}" for k, (was, now) in result["changed"].items())
+        print(f"changed: {changed or 'nothing (the config already held the best values)'}")
+        print(f"config: {result['files']['best.yaml']}")
         return 0
     if args.command == "report":
         print(f"wrote {api.write_report(args.run_dir)}")

@@ -91,11 +91,11 @@ def knee_index(x, y) -> int | None:
     return int(order[best]) if gap[best] > 1e-12 else None
 
 
-def _cores() -> int:
+def core_count() -> int:
     return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
 
 
-def _comparable(cfg: C.Config | dict) -> dict:
+def comparable_config(cfg: C.Config | dict) -> dict:
     """A config (as YAML would give it back) without the keys that change how fast, not what, a cell trains."""
     out = yaml.safe_load(C.dump(cfg)) if isinstance(cfg, C.Config) else yaml.safe_load(yaml.safe_dump(cfg))
     for section, key in IGNORED_WHEN_COMPARING:
@@ -104,11 +104,11 @@ def _comparable(cfg: C.Config | dict) -> dict:
     return out
 
 
-def _first_difference(a: dict, b: dict, prefix: str = "") -> str:
+def first_difference(a: dict, b: dict, prefix: str = "") -> str:
     for k in sorted(set(a) | set(b), key=str):
         if a.get(k) != b.get(k):
             if isinstance(a.get(k), dict) and isinstance(b.get(k), dict):
-                return _first_difference(a[k], b[k], f"{prefix}{k}.")
+                return first_difference(a[k], b[k], f"{prefix}{k}.")
             return f"{prefix}{k}: {a.get(k)!r} then, {b.get(k)!r} now"
     return ""
 
@@ -160,7 +160,7 @@ def run_sweep(config_path: str | Path, out_dir: str | Path, dims, penalties,
 
     todo = [c for c in cells if not _finished(c)]
     workers = max(1, min(jobs, len(todo)))
-    cores = _cores()
+    cores = core_count()
     threads = max(1, cores // workers)
     if base.run.threads:
         threads = min(threads, base.run.threads)
@@ -201,11 +201,11 @@ def _finished(cell: Cell) -> bool:
     if not done.is_file():
         return False
     saved = cell.folder / RunFolder.CONFIG
-    then = _comparable(yaml.safe_load(saved.read_text(encoding="utf-8"))) if saved.is_file() else {}
-    now = _comparable(cell.config)
+    then = comparable_config(yaml.safe_load(saved.read_text(encoding="utf-8"))) if saved.is_file() else {}
+    now = comparable_config(cell.config)
     if then != now:
         raise TowersError(f"{cell.folder}: this finished cell was trained with a different config "
-                          f"({_first_difference(then, now) or 'config.yaml missing'}); give the sweep a new --out, "
+                          f"({first_difference(then, now) or 'config.yaml missing'}); give the sweep a new --out, "
                           "or delete that cell folder to retrain it")
     return True
 
@@ -217,7 +217,7 @@ def _prepare_cell(cell: Cell, threads: int) -> None:
     saved = partial / RunFolder.CONFIG
     if saved.is_file():
         then = yaml.safe_load(saved.read_text(encoding="utf-8"))
-        if isinstance(then, dict) and _comparable(then) == _comparable(cfg):
+        if isinstance(then, dict) and comparable_config(then) == comparable_config(cfg):
             # the checkpoint resumes exactly with its own settings
             cfg = cfg.with_section("run", threads=then["run"]["threads"])
             cfg = cfg.with_section("training", progress=then["training"]["progress"])
@@ -397,7 +397,7 @@ def format_sweep_table(rows: list[dict], metric: str, penalty_key: str) -> str:
 
 
 # ---- plots -----------------------------------------------------------------------------------------
-def _figure(width: float, height: float):
+def figure(width: float, height: float):
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
@@ -406,7 +406,7 @@ def _figure(width: float, height: float):
     return fig, fig.subplots()
 
 
-def _save_png(fig, path: Path) -> Path:
+def save_png(fig, path: Path) -> Path:
     return write_atomic(path, lambda p: fig.savefig(p, format="png"))
 
 
@@ -416,7 +416,7 @@ def _plot_heatmap(path: Path, rows, dims, penalties, penalty_key, metric, best) 
     for r in rows:
         if r["status"] == "ok":
             grid[penalties.index(r["penalty"]), dims.index(r["dim"])] = r[value_key]
-    fig, ax = _figure(1.6 + 1.1 * len(dims), 1.4 + 0.6 * len(penalties))
+    fig, ax = figure(1.6 + 1.1 * len(dims), 1.4 + 0.6 * len(penalties))
     cmap = "viridis_r" if C.lower_is_better(metric) else "viridis"  # bright is better either way
     im = ax.imshow(np.ma.masked_invalid(grid), cmap=cmap, aspect="auto", origin="lower")
     fig.colorbar(im, ax=ax, label=f"validation {metric}")
@@ -436,12 +436,12 @@ def _plot_heatmap(path: Path, rows, dims, penalties, penalty_key, metric, best) 
     ax.set_yticks(range(len(penalties)), [f"{p:g}" for p in penalties])
     ax.set(xlabel="k (model.dim)", ylabel=penalty_key,
            title=f"validation {metric}; red box: chosen (k={best['dim']}, {best['penalty']:g})")
-    return _save_png(fig, path)
+    return save_png(fig, path)
 
 
 def _plot_elbow(path: Path, rows, penalties, penalty_key, metric, best) -> Path:
     value_key = f"valid_{metric}"
-    fig, ax = _figure(7.5, 4.5)
+    fig, ax = figure(7.5, 4.5)
     for i, p in enumerate(penalties):
         pts = sorted((r["dim"], validation_error(metric, r[value_key])) for r in rows
                      if r["status"] == "ok" and r["penalty"] == p)
@@ -465,12 +465,13 @@ def _plot_elbow(path: Path, rows, penalties, penalty_key, metric, best) -> Path:
            title="validation error against k; circle: elbow (Kneedle rule on log2 k)")
     ax.grid(alpha=0.3)
     ax.legend(frameon=False, fontsize=9)
-    return _save_png(fig, path)
+    return save_png(fig, path)
 
 
 # ---- best_config.yaml ------------------------------------------------------------------------------
-def _write_best_config(path: Path, config_path: Path, base: C.Config, best: dict, penalty_key: str, metric: str) -> Path:
-    """The user's own config with the chosen k and penalty; relative paths made absolute so it runs from here."""
+def config_with(config_path: Path, base: C.Config, values: dict) -> dict:
+    """The user's own config file as YAML data with `values` ({"section.key": value}) set and its relative
+    paths made absolute (base is that file loaded), so it runs from anywhere; comments are lost."""
     raw = yaml.safe_load(config_path.read_text(encoding="utf-8-sig")) or {}
     for section, keys in C.SCHEMA.items():
         given = raw.get(section)
@@ -479,11 +480,17 @@ def _write_best_config(path: Path, config_path: Path, base: C.Config, best: dict
         for k, spec in keys.items():
             if spec.kind == "path" and given.get(k) is not None:
                 given[k] = getattr(getattr(base, section), k)
-    section, key = penalty_key.split(".")
-    for s, k, v in (("model", "dim", best["dim"]), (section, key, best["penalty"])):
+    for dotted, v in values.items():
+        s, k = dotted.split(".")
         if not isinstance(raw.get(s), dict):
             raw[s] = {}
         raw[s][k] = v
+    return raw
+
+
+def _write_best_config(path: Path, config_path: Path, base: C.Config, best: dict, penalty_key: str, metric: str) -> Path:
+    """The user's own config with the chosen k and penalty; relative paths made absolute so it runs from here."""
+    raw = config_with(config_path, base, {"model.dim": best["dim"], penalty_key: best["penalty"]})
     head = (f"# {config_path.name} with the cell chosen by `towers sweep`: model.dim {best['dim']}, {penalty_key} "
             f"{best['penalty']!r}\n# (validation {metric} {best[f'valid_{metric}']:.4f} at epoch {best['best_epoch']}); "
             "paths made absolute; comments of the original are not kept.\n")

@@ -9,6 +9,7 @@ from __future__ import annotations
 import shutil
 import tempfile
 import time
+from collections.abc import Callable
 from pathlib import Path
 
 import torch
@@ -131,12 +132,15 @@ def _train_reference(name: str, data: Prepared, cfg: C.Config, partial: RunFolde
 
 
 def train_run(config_path: str | Path, out_dir: str | Path, overwrite: bool = False, resume: bool = False,
-              init_from: str | Path | None = None) -> dict:
+              init_from: str | Path | None = None, on_round: Callable[[int, float | None], None] | None = None) -> dict:
     """Train, evaluate and export one run; returns {'metrics': ..., 'out': path, 'table': text}.
 
     resume=True continues an interrupted run from RUN_DIR.partial (exactly: the same weights as an
     uninterrupted run with the same seed); with nothing to resume it starts afresh. init_from starts
     every model from an earlier run's weights, grown for new users, items and values (model/grow.py).
+    on_round(epoch, validation value) is called after each epoch of the towers (not of the reference
+    models); an exception it raises ends the run there, leaving RUN_DIR.partial (`towers tune` prunes
+    trials this way).
     """
     started = time.perf_counter()
     cfg = C.load(config_path)
@@ -150,20 +154,22 @@ def train_run(config_path: str | Path, out_dir: str | Path, overwrite: bool = Fa
         out.check_new(overwrite)
     distributed.start()
     if distributed.is_primary():
-        return _train_into(cfg, config_path, out, partial, resuming, init_from, started, primary=True)
+        return _train_into(cfg, config_path, out, partial, resuming, init_from, started, primary=True,
+                           on_round=on_round)
     # the other processes train alongside and write only into a private scratch folder, removed however they end
     scratch = Path(tempfile.mkdtemp(prefix="towers-process-"))
     try:
         if resuming:
             shutil.copytree(partial.path, scratch / partial.path.name)
         return _train_into(cfg, config_path, out, RunFolder(scratch / partial.path.name), resuming, init_from, started,
-                           primary=False)
+                           primary=False, on_round=on_round)
     finally:
         shutil.rmtree(scratch, ignore_errors=True)
 
 
 def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, resuming: bool,
-                init_from: str | Path | None, started: float, primary: bool) -> dict:
+                init_from: str | Path | None, started: float, primary: bool,
+                on_round: Callable[[int, float | None], None] | None = None) -> dict:
     """Everything after the output folders are settled: prepare, train, evaluate, write partial, publish to out."""
     if distributed.rank_and_size()[1] > 1:
         cfg = cfg.with_section("run", threads=distributed.threads_per_process(cfg.run.threads))
@@ -192,7 +198,7 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
         partial.make(name, checkpoints=True)
     resume_hint = f"resume with: towers train {config_path} --out {out.path} --resume"
     try:
-        result = fit(model, data, cfg, partial.checkpoints(), TOWERS, resume=resuming)
+        result = fit(model, data, cfg, partial.checkpoints(), TOWERS, resume=resuming, on_round=on_round)
         scorers: dict[str, Scorer] = {
             "popularity": popularity_scorer(data.train, len(data.queries.ids), len(data.candidates.ids),
                                             cfg.training.rating_loss, data.item_item),

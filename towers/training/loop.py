@@ -14,6 +14,7 @@ from __future__ import annotations
 import math
 import sys
 import time
+from collections.abc import Callable
 from pathlib import Path
 
 import torch
@@ -304,18 +305,20 @@ class Interrupted(Exception):
 
 
 def fit(model: TwoTowerModel, data: Prepared, cfg: Config, checkpoint_dir: Path | None, label: str,
-        resume: bool = False) -> TrainResult:
+        resume: bool = False, on_round: Callable[[int, float | None], None] | None = None) -> TrainResult:
     """Train with validation every epoch, early stopping, and best/last checkpoints.
 
     checkpoint_dir/last.pt holds everything needed to continue exactly (weights, optimiser state,
     random-number state, position in the epoch); best.pt holds the best weights so far. With
-    resume=True an existing last.pt is continued, and a finished one is simply loaded.
+    resume=True an existing last.pt is continued, and a finished one is simply loaded. on_round(epoch,
+    validation value) is called after each epoch (`EarlyStopping.on_round`); an exception it raises
+    ends training there.
     """
     trainer = Trainer(model, data, cfg, label)
     tcfg = cfg.training
     bar = show_bar(tcfg.progress)
     result = TrainResult(stop_metric=cfg.stop_metric)
-    stopping = EarlyStopping(result, tcfg.patience, label, "epoch", tcfg.epochs)
+    stopping = EarlyStopping(result, tcfg.patience, label, "epoch", tcfg.epochs, on_round=on_round)
     epoch, perm, start_step, done_loss = 1, None, 0, 0.0
     last_path = checkpoint_dir / "last.pt" if checkpoint_dir is not None else None
 

@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import signal
 import threading
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -56,6 +57,10 @@ class EarlyStopping:
 
     unit names a round in log lines ("epoch" or "sweep"); loss_name and loss_digits how its training
     loss is shown. `stale` and `result.best_state` are what a checkpoint needs to resume exactly.
+    on_round, when given, is called after each round is validated and logged with (round, its
+    validation value or None); an exception it raises ends training there and reaches the caller of
+    `fit` (the best weights so far are saved, the last checkpoint is not). `towers tune` reports
+    trials to its pruner this way; ordinary training passes nothing.
     """
 
     result: TrainResult
@@ -66,6 +71,7 @@ class EarlyStopping:
     loss_name: str = "loss"
     loss_digits: int = 4
     stale: int = 0
+    on_round: Callable[[int, float | None], None] | None = None
 
     def after_round(self, model: TwoTowerModel, data: Prepared, cfg: Config, step: int, loss: float, rate: float,
                     checkpoint_dir: Path | None) -> bool:
@@ -76,6 +82,8 @@ class EarlyStopping:
         shown = "" if value is None else f"  valid {metric} {value:.4f}{' (best)' if improved else ''}"
         log(f"{self.label} {self.unit} {step}/{self.rounds}  {self.loss_name} {loss:.{self.loss_digits}f}  "
             f"{rate:,.0f} pairs/s{shown}")
+        if self.on_round is not None:
+            self.on_round(step, value)
         if self.stale >= self.patience:
             log(f"{self.label}: stopping early after {self.unit} {step}; best {self.unit} {self.result.best_epoch}")
             return True
