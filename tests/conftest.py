@@ -165,6 +165,14 @@ class TinyRuns:
         path.write_text(yaml.safe_dump(self.settings(**options)), encoding="utf-8")
         return path
 
+    def search_config(self, name: str) -> Path:
+        """A tiny config for the search commands (sweep, tune) in a fresh folder `name`: data paths relative
+        to that folder (the best config they write elsewhere must fix them), no oracle or cold items, two
+        short epochs, no report."""
+        base = self._factory.mktemp(name)
+        return self.config(base, relative_to=base, oracle=False, evaluation={"cold_item_fraction": 0.0},
+                           training={"epochs": 2, "batch_size": 256, "patience": 10}, report={"enabled": False})
+
     def train(self, **options) -> Path:
         """The run folder of `towers.train` on `config(**options)`, trained once per session."""
         key = json.dumps(options, sort_keys=True, default=str)

@@ -233,18 +233,6 @@ def test_user_last_holds_out_each_users_latest_events(validation):
     assert (out.side == "valid").any() == (validation > 0)
 
 
-def test_user_last_counts_the_later_row_as_later_among_equal_times():
-    rng = np.random.default_rng(5)
-    df = pd.DataFrame({"q": rng.integers(0, 30, 400), "c": rng.integers(0, 40, 400), "t": rng.integers(0, 4, 400)})
-    ev = EvaluationSection(split="user_last", last_n=3, validation_fraction=0.0)
-    out = with_sides(df, make_split(as_pairs(df), 40, ev, 0, None, False, n_queries=30))
-    # reference: pandas rank on the rows in reverse, so among equal times the later row ranks first
-    rev = df.iloc[::-1]
-    rank = rev.groupby("q").t.rank(method="first", ascending=False).iloc[::-1]
-    k = df.groupby("q").q.transform("size")
-    assert (out.side.to_numpy() == np.where(rank <= np.minimum(3, k - 1), "test", "train")).all()
-
-
 @pytest.mark.parametrize("test_fraction,validation", [(0.2, 0.1), (0.3, 0.0), (0.5, 0.4)])
 def test_user_recent_holds_out_each_users_latest_share(test_fraction, validation):
     df = user_log(seed=4)
@@ -268,20 +256,26 @@ def test_user_recent_holds_out_each_users_latest_share(test_fraction, validation
     assert (again.side == out.side).all()  # no randomness: the seed does not move it
 
 
-def test_user_recent_counts_the_later_row_as_later_among_equal_times():
-    rng = np.random.default_rng(6)
+@pytest.mark.parametrize("split", ["user_last", "user_recent"])
+def test_per_user_time_splits_count_the_later_row_as_later_among_equal_times(split):
+    rng = np.random.default_rng(5 if split == "user_last" else 6)
     df = pd.DataFrame({"q": rng.integers(0, 30, 400), "c": rng.integers(0, 40, 400), "t": rng.integers(0, 4, 400)})
-    ev = EvaluationSection(split="user_recent", test_fraction=0.25, validation_fraction=0.2)
+    if split == "user_last":
+        ev = EvaluationSection(split="user_last", last_n=3, validation_fraction=0.0)
+    else:
+        ev = EvaluationSection(split="user_recent", test_fraction=0.25, validation_fraction=0.2)
     out = with_sides(df, make_split(as_pairs(df), 40, ev, 0, None, False, n_queries=30))
     # reference: pandas rank on the rows in reverse, so among equal times the later row ranks first
     rev = df.iloc[::-1]
     rank = rev.groupby("q").t.rank(method="first", ascending=False).iloc[::-1]
     k = df.groupby("q").q.transform("size")
-    n_test = np.minimum(np.floor(0.25 * k + 0.5), k - 1)
-    n_valid = np.minimum(np.floor(0.2 * (k - n_test) + 0.5), k - n_test - 1)
+    if split == "user_last":
+        n_test, n_valid = np.minimum(3, k - 1), 0 * k
+    else:
+        n_test = np.minimum(np.floor(0.25 * k + 0.5), k - 1)
+        n_valid = np.minimum(np.floor(0.2 * (k - n_test) + 0.5), k - n_test - 1)
     expected = np.where(rank <= n_test, "test", np.where(rank <= n_test + n_valid, "valid", "train"))
     assert (out.side.to_numpy() == expected).all()
-
 
 def test_user_recent_with_groups_holds_out_each_users_latest_orders():
     df = order_log(seed=9)

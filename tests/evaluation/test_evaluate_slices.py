@@ -80,7 +80,7 @@ def test_reference_ranking_equals_brute_force_expected_recall(kind):
     split = _split()
     tr = split.train
     history = R.History.from_pairs(tr.query, tr.candidate, 30, 40)
-    scorer = R.EaseFit(history).solve(3.0) if kind == "ease" else R.knn_scorer(history, 3)  # kNN: many level zeros
+    scorer = R.EaseFit(history).solve(3.0) if kind == "ease" else R.KnnFit(history).solve(3)  # kNN: many level zeros
     scores = scorer.score_rows(torch.arange(30)).numpy()
     got = ranking_metrics(scorer, split.test, split.known(), split.warm_items, [5])["recall@5"]
     assert got == pytest.approx(_expected_recall_brute(scores, split, 5), abs=1e-12)

@@ -59,7 +59,7 @@ def test_knn_scores_equal_sklearn_cosine_products(neighbours):
         order = sorted(range(25), key=lambda j: (-sim[r, j], j))
         order = [j for j in order if j != r and sim[r, j] > 0][:neighbours]
         kept[r, order] = sim[r, order]
-    s = R.knn_scorer(h, neighbours)
+    s = R.KnnFit(h).solve(neighbours)
     np.testing.assert_allclose(s.matrix().numpy(), kept.T, atol=1e-6)  # W[j, i] = s(i, j)
     np.testing.assert_allclose(s.score_rows(torch.arange(40)).numpy(), x @ kept.T, atol=1e-5)
 
@@ -70,7 +70,7 @@ def test_sparse_and_dense_knn_weights_score_alike(cells, monkeypatch):
     monkeypatch.setattr(R, "GATHER_CELLS", cells)
     monkeypatch.setattr(R, "DENSE_SHARE", 2.0)  # never dense
     h, q, i = _random_history(seed=8)
-    s = R.knn_scorer(h, 5)
+    s = R.KnnFit(h).solve(5)
     assert isinstance(s.weights, R.SparseRows)
     rows = torch.tensor([5, 0, 39, 5, 12])
     np.testing.assert_allclose(s.score_rows(rows).numpy(), h.dense(rows).numpy() @ s.matrix().numpy(), atol=1e-5)

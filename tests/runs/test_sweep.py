@@ -21,11 +21,8 @@ DIMS, PENALTIES, KEY = [4, 8], [1e-5, 1e-2], "training.weight_decay"
 
 
 @pytest.fixture(scope="module")
-def config(tiny_runs, tmp_path_factory) -> Path:
-    base = tmp_path_factory.mktemp("sweep")
-    # data paths relative to the config's folder: best_config.yaml, written elsewhere, must fix them
-    return tiny_runs.config(base, relative_to=base, oracle=False, evaluation={"cold_item_fraction": 0.0},
-                            training={"epochs": 2, "batch_size": 256, "patience": 10}, report={"enabled": False})
+def config(tiny_runs) -> Path:
+    return tiny_runs.search_config("sweep")
 
 
 @pytest.fixture(scope="module")

@@ -209,11 +209,8 @@ def test_bad_minutes_through_the_cli(tmp_path, capsys):
 # ---------------------------------------------------------------- a tiny study end to end
 
 @pytest.fixture(scope="module")
-def config(tiny_runs, tmp_path_factory) -> Path:
-    base = tmp_path_factory.mktemp("tune")
-    # data paths relative to the config's folder: best.yaml, written elsewhere, must fix them
-    return tiny_runs.config(base, relative_to=base, oracle=False, evaluation={"cold_item_fraction": 0.0},
-                            training={"epochs": 2, "batch_size": 256, "patience": 10}, report={"enabled": False})
+def config(tiny_runs) -> Path:
+    return tiny_runs.search_config("tune")
 
 
 @pytest.fixture(scope="module")

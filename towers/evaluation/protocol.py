@@ -127,12 +127,16 @@ def _reference_blocks(scorer: ReferenceScorer, h: HeldOut):
         yield lo, hi, s
 
 
-def _reference_ranks(scorer: ReferenceScorer, h: HeldOut) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
-    """(ahead, tied, candidates) of a history-based reference model, from dense score blocks of its queries."""
+def _reference_ranks(scorer: ReferenceScorer, h: HeldOut, k_max: int = 0):
+    """(ahead, tied, candidates, top) of a history-based reference model, from one pass of dense score blocks.
+
+    top: each query's k_max best columns (padding -1; level scores in catalog order), or None when k_max is 0.
+    """
     n_q, n_p, n_cols = len(h.queries), len(h.q_index), len(h.cand_rows)
     ahead = torch.zeros(n_p, dtype=torch.int64)
     tied = torch.zeros(n_p, dtype=torch.int64)
     candidates = torch.zeros(n_q, dtype=torch.int64)
+    tops = []
     by_query = torch.argsort(h.q_index, stable=True)
     p_starts = torch.searchsorted(h.q_index.index_select(0, by_query), torch.arange(n_q + 1))
     step = max(1, BLOCK_CELLS // max(1, n_cols))
@@ -142,7 +146,10 @@ def _reference_ranks(scorer: ReferenceScorer, h: HeldOut) -> tuple[torch.Tensor,
         for c0 in range(0, len(mine), step):
             part = mine[c0:c0 + step]
             ahead[part], tied[part] = M.ranks_of_positives(s, h.q_index[part] - lo, h.columns[part])
-    return ahead, tied, candidates
+        if k_max:
+            val, idx = torch.topk(s, k_max, dim=1)
+            tops.append(torch.where(val > float("-inf"), idx, -1))
+    return ahead, tied, candidates, (torch.cat(tops) if k_max else None)
 
 
 def rank_positives(scorer, h: HeldOut) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
@@ -154,7 +161,7 @@ def rank_positives(scorer, h: HeldOut) -> tuple[torch.Tensor, torch.Tensor, torc
     history-based references from dense blocks of their scores.
     """
     if isinstance(scorer, ReferenceScorer):
-        return _reference_ranks(scorer, h)
+        return _reference_ranks(scorer, h)[:3]
     over = scorer.over_items(h.cand_rows)
     qb = None if over.query_bias is None else over.query_bias.index_select(0, h.queries)
     return RC.rank_counts(over.query_vectors.index_select(0, h.queries), over.item_vectors, h.q_index, h.columns,
@@ -196,9 +203,8 @@ def reference_scorers(data: SplitPairs, n_queries: int, n_items: int, cfg: Confi
     ev = cfg.evaluation
     if cfg.training.rating_loss or not ev.references:
         return {}, {}
-    train = data.train.positives()
-    history = R.History.from_pairs(train.query, train.candidate, n_queries, n_items, include_self=data.item_item)
-    known = data.train.positives()
+    known = data.train.positives()  # the history, and what validation leaves out of each ranking
+    history = R.History.from_pairs(known.query, known.candidate, n_queries, n_items, include_self=data.item_item)
     metric = cfg.stop_metric
 
     def judge(scorer) -> float:
@@ -239,20 +245,20 @@ def _empty_reason(slice_name: str, pairs: Pairs, cfg: Config) -> str:
             "has no training history")
 
 
-def _list_metrics(scorer, h: HeldOut, ks, counts: torch.Tensor) -> dict[str, float]:
-    """Catalog coverage@K and the mean popularity percentile@K of each query's top-K list (ties: catalog order)."""
-    k_max = min(max(ks), len(h.cand_rows))
+def _ranks_and_lists(scorer, h: HeldOut, k_max: int):
+    """(ahead, tied, candidates, top): rank_positives plus each query's top-k_max columns (level scores in
+    catalog order), a reference model's from the same pass over its score blocks."""
     if isinstance(scorer, ReferenceScorer):
-        tops = []
-        for _, _, s in _reference_blocks(scorer, h):
-            val, idx = torch.topk(s, k_max, dim=1)
-            tops.append(torch.where(val > float("-inf"), idx, -1))
-        top = torch.cat(tops)
-    else:
-        top, _ = scorer.over_items(h.cand_rows).for_queries(h.queries).top(k_max, h.ex_rows, h.ex_cols)
+        return _reference_ranks(scorer, h, k_max)
+    top, _ = scorer.over_items(h.cand_rows).for_queries(h.queries).top(k_max, h.ex_rows, h.ex_cols)
+    return (*rank_positives(scorer, h), top)
+
+
+def _list_metrics(top: torch.Tensor, n_columns: int, ks, counts: torch.Tensor) -> dict[str, float]:
+    """Catalog coverage@K and the mean popularity percentile@K of each query's top-K list."""
     out = {}
     for k in ks:
-        out[f"coverage@{k}"] = M.catalog_coverage(top[:, :k], len(h.cand_rows))
+        out[f"coverage@{k}"] = M.catalog_coverage(top[:, :k], n_columns)
         out[f"popularity_pct@{k}"] = M.popularity_percentile(top[:, :k], counts)
     return out
 
@@ -326,10 +332,10 @@ def evaluate_slices(scorers: dict, data: SplitPairs, cfg: Config, event_vectors:
             if explicit:
                 out[slice_name][name] = rating_metrics(s, pairs)
             elif h is not None:
-                ahead, tied, n_candidates = rank_positives(s, h)
+                ahead, tied, n_candidates, top = _ranks_and_lists(s, h, min(max(ks), len(h.cand_rows)))
                 per_q = M.per_query_ranking(ahead, h.q_index, len(h.queries), n_candidates, ks, tied=tied)
-                out[slice_name][name] = M.mean_over_queries(per_q) | _list_metrics(s, h, ks,
-                                                                                   counts.index_select(0, h.cand_rows))
+                out[slice_name][name] = M.mean_over_queries(per_q) | _list_metrics(
+                    top, len(h.cand_rows), ks, counts.index_select(0, h.cand_rows))
                 out[slice_name][name]["queries"] = int(len(h.queries))
                 if groups and slice_name == "warm" and users is None:
                     for column, rows in _group_metrics(groups, h, per_q, ahead, tied, n_candidates, ks).items():

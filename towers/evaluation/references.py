@@ -233,10 +233,6 @@ DENSE_SHARE = 0.02
 DENSE_ITEMS = 10000
 
 
-def knn_scorer(history: History, neighbours: int) -> ReferenceScorer:
-    return KnnFit(history).solve(neighbours)
-
-
 # A geometric walk over penalties from the Gram matrix's mean diagonal (the mean item count), a
 # quarter or four times at a step: common practice for a scale-free start (no source)
 PENALTY_STEP = 4.0

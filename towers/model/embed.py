@@ -7,6 +7,7 @@ import torch
 
 from towers.data.context import averaged_vectors, sample_contexts
 from towers.data.features import FeatureBlock, block_len, slice_block
+from towers.data.history import HISTORY
 from towers.data.prepare import Prepared
 from towers.model.towers import Tower, TwoTowerModel
 from towers.search.scorer import Scorer
@@ -47,3 +48,8 @@ def model_scorer(model: TwoTowerModel, data: Prepared) -> Scorer:
 def reads_context(tower: Tower, data: Prepared) -> bool:
     """Whether a query tower takes the data's context columns as inputs."""
     return data.context is not None and any(i["name"] in data.context.names for i in tower.inputs)
+
+
+def reads_history(tower: Tower) -> bool:
+    """Whether a query tower takes a bag of the user's items as an input (data/history.py)."""
+    return any(i["name"] == HISTORY for i in tower.inputs)

@@ -39,7 +39,7 @@ from towers.data.tables import (
 from towers.errors import TowersError
 from towers.evaluation.protocol import evaluate_slices, oracle_scorer, popularity_scorer, reference_scorers
 from towers.model.bundle import load_bundle
-from towers.model.embed import EMBED_CHUNK
+from towers.model.embed import EMBED_CHUNK, reads_history
 from towers.runs.folder import EMBEDDINGS, SUBFOLDER_MODELS, TOWERS, RunFolder
 from towers.search.scorer import Scorer, excluded_cells
 
@@ -73,10 +73,6 @@ def _left_out(counts: dict[str, int]) -> str:
         parts.append(f"{m} item{'s' if m != 1 else ''} that no training history held (their history rows never "
                      "learned)")
     return " and ".join(parts)
-
-
-def _reads_history(tower) -> bool:
-    return any(i["name"] == HISTORY for i in tower.inputs)
 
 
 def _check_archive(path: Path, kind: str) -> None:
@@ -144,20 +140,25 @@ class Run:
 
     def _check_history(self, history: tuple[str, str] | None) -> None:
         """Refuse a history when the query tower reads none, before any row is read."""
-        if history is not None and not _reads_history(self.bundle.model.query_tower):
+        if history is not None and not reads_history(self.bundle.model.query_tower):
             raise TowersError(f"{self.dir}: this run was trained without user histories (model.history_length is 0), "
                               "so it cannot read one; drop the history (--history-column / history=), or retrain with "
                               "model.history_length > 0")
 
-    def _history_catalog(self) -> tuple[np.ndarray, torch.Tensor, int]:
-        """(the run's item ids, which of them some training history holds, the history length), read once."""
+    def _run_histories(self) -> tuple[np.ndarray, torch.Tensor, int]:
+        """(the run's item ids, every catalog user's training bag, the history length), built once per Run."""
         if self._history_cache is None:
             _check_archive(self.folder.file(RunFolder.PAIRS), "pairs file")
             saved = self.folder.read_pairs()
             limit = self.bundle.model_cfg.history_length
             bags = history_column(saved.split.train, len(saved.query_ids), len(saved.item_ids), limit)
-            self._history_cache = (saved.item_ids, trained_items(bags, len(saved.item_ids)), limit)
+            self._history_cache = (saved.item_ids, bags, limit)
         return self._history_cache
+
+    def _history_catalog(self) -> tuple[np.ndarray, torch.Tensor, int]:
+        """(the run's item ids, which of them some training history holds, the history length)."""
+        item_ids, bags, limit = self._run_histories()
+        return item_ids, trained_items(bags, len(item_ids)), limit
 
     @staticmethod
     def _check_embeddable(encoders: SideEncoders, source) -> None:
@@ -198,7 +199,7 @@ class Run:
                 raise _rows_in_file(exc, source, start) from None
             for name, count in encoders.unknown_counts().items():
                 unknown[name] = unknown.get(name, 0) + count
-            if history is None and _reads_history(tower):  # no history given: features alone
+            if history is None and reads_history(tower):  # no history given: features alone
                 block[HISTORY] = empty_history(len(frame))
             with torch.no_grad():
                 vecs = tower(block)
@@ -321,10 +322,8 @@ class Run:
     def _user_block(self, rows: torch.Tensor) -> dict:
         """Encoded features of catalog users (rows), and their training history when the tower reads one."""
         block = self._user_features(rows)
-        if _reads_history(self.bundle.model.query_tower):
-            saved = self.folder.read_pairs()
-            block[HISTORY] = history_column(saved.split.train, len(saved.query_ids), len(saved.item_ids),
-                                            self.config.model.history_length).index_select(0, rows)
+        if reads_history(self.bundle.model.query_tower):
+            block[HISTORY] = self._run_histories()[1].index_select(0, rows)
         return block
 
     def _user_features(self, rows: torch.Tensor) -> dict:

@@ -95,6 +95,18 @@ def core_count() -> int:
     return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
 
 
+def searchable_config(config_path: Path, out: Path, who: str) -> C.Config:
+    """The config a search (sweep or tune) starts from: it must hold validation pairs to choose by, and
+    `out` must be a folder or not yet exist."""
+    base = C.load(config_path)
+    if base.evaluation.validation_fraction <= 0:
+        raise TowersError(f"{config_path}: config key 'evaluation.validation_fraction': got 0; {who} chooses by "
+                          "the validation metric, so hold out some validation pairs (e.g. 0.1)")
+    if out.exists() and not out.is_dir():
+        raise TowersError(f"{out}: exists and is not a folder; choose another --out")
+    return base
+
+
 def comparable_config(cfg: C.Config | dict) -> dict:
     """A config (as YAML would give it back) without the keys that change how fast, not what, a cell trains."""
     out = yaml.safe_load(C.dump(cfg)) if isinstance(cfg, C.Config) else yaml.safe_load(yaml.safe_dump(cfg))
@@ -137,12 +149,7 @@ def run_sweep(config_path: str | Path, out_dir: str | Path, dims, penalties,
     """
     dims, penalties = _check_grid(dims, penalties, penalty_key, jobs)
     config_path, out = Path(config_path), Path(out_dir)
-    base = C.load(config_path)
-    if base.evaluation.validation_fraction <= 0:
-        raise TowersError(f"{config_path}: config key 'evaluation.validation_fraction': got 0; a sweep chooses by "
-                          "the validation metric, so hold out some validation pairs (e.g. 0.1)")
-    if out.exists() and not out.is_dir():
-        raise TowersError(f"{out}: exists and is not a folder; choose another --out")
+    base = searchable_config(config_path, out, "a sweep")
     metric = base.stop_metric
     section, key = penalty_key.split(".")
     cells_dir = out / "cells"

@@ -50,7 +50,15 @@ from towers.atomic import make_private_dir, open_private_log, write_text_atomic
 from towers.errors import TowersError
 from towers.runs import tune_space as S
 from towers.runs.folder import TOWERS, RunFolder
-from towers.runs.sweep import comparable_config, config_with, core_count, figure, first_difference, save_png
+from towers.runs.sweep import (
+    comparable_config,
+    config_with,
+    core_count,
+    figure,
+    first_difference,
+    save_png,
+    searchable_config,
+)
 from towers.runs.train import train_run
 from towers.training.progress import show_bar
 from towers.training.stopping import TrainingDiverged
@@ -582,12 +590,7 @@ def run_tune(config_path: str | Path, out_dir: str | Path, minutes: float, trial
     """
     _check_flags(minutes, trials, jobs)
     config_path, out = Path(config_path).resolve(), Path(out_dir)
-    base = C.load(config_path)
-    if base.evaluation.validation_fraction <= 0:
-        raise TowersError(f"{config_path}: config key 'evaluation.validation_fraction': got 0; tuning chooses by the "
-                          "validation metric, so hold out some validation pairs (e.g. 0.1)")
-    if out.exists() and not out.is_dir():
-        raise TowersError(f"{out}: exists and is not a folder; choose another --out")
+    base = searchable_config(config_path, out, "tuning")
     metric, lower = base.stop_metric, C.lower_is_better(base.stop_metric)
     started = time.time()
     make_private_dir(out / TRIALS_DIR)
