@@ -25,7 +25,7 @@ END = "<!-- end of config reference -->"
 FIX = ".venv/bin/python scripts/config_table.py --write"
 
 FEATURE_TITLE = ("Each entry of `users.features` and `items.features` takes these keys (so does each entry of\n"
-                 "`interactions.context`, whose kind is numeric or categorical):")
+                 "`interactions.context`, whose kind is numeric, categorical or date):")
 KIND_NAMES = {"int_list": "list of int", "str_list": "list of str", "str_or_int_list": "list of ids",
               "features": "list of feature specs"}
 

@@ -238,7 +238,8 @@ def test_feature_defaults_are_filled(tmp_path):
     tags, emb = cfg.items.features
     assert set(C.plain(tags)) == set(C.FEATURE_KEYS)
     assert C.plain(tags) == {"name": "tags", "kind": "tokens", "rare_below": 1, "hashed_rows": 0, "separator": "|",
-                             "token_limit": 32, "length": None, "dim": None}
+                             "token_limit": 32, "length": None, "dim": None, "log1p": False, "clip_lower": None,
+                             "clip_upper": None, "reference_date": None, "calendar": False}
     assert emb.length == 4
 
 

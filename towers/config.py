@@ -15,6 +15,7 @@ import dataclasses
 import difflib
 import math
 from dataclasses import dataclass, field
+from datetime import date, datetime
 from pathlib import Path
 from typing import Any
 
@@ -42,8 +43,8 @@ def key(kind: str, default: Any, meaning: str, **constraints) -> Any:
     return field(default=default, metadata={"key": Key(kind, default, meaning, **constraints)})
 
 
-FEATURE_KINDS = ("numeric", "categorical", "tokens", "vector")
-CONTEXT_KINDS = ("numeric", "categorical")
+FEATURE_KINDS = ("numeric", "categorical", "tokens", "vector", "date")
+CONTEXT_KINDS = ("numeric", "categorical", "date")
 DEFAULT_NEGATIVES = 4  # sampled negatives per positive under the logistic loss when none are configured
 
 
@@ -53,8 +54,8 @@ class FeatureSpec:
 
     name: str | None = key('str', None, 'column in the feature table')
     kind: str = key('choice', None,
-                    'numeric, categorical, tokens or vector',
-                    choices=('numeric', 'categorical', 'tokens', 'vector'))
+                    'numeric, categorical, tokens, vector or date',
+                    choices=FEATURE_KINDS)
     rare_below: int = key('int', 1,
                           'categorical/tokens: values seen fewer than this many times in training share the '
                           'unknown row (1 keeps every value seen)',
@@ -69,6 +70,27 @@ class FeatureSpec:
     dim: int | None = key('int', None,
                           'categorical/tokens: embedding size (default model.feature_dim)',
                           low=1, nullable=True)
+    log1p: bool = key('bool', False,
+                      'numeric: take log(1 + x) before standardising (prices, counts); a negative value is an error')
+    clip_lower: float | None = key('float', None,
+                                   'numeric: values below this quantile of the training values are raised to it '
+                                   '(e.g. 0.01; the bound is saved with the run); empty: no lower clip',
+                                   low=0.0, high=1.0, nullable=True)
+    clip_upper: float | None = key('float', None,
+                                   'numeric: values above this quantile of the training values are lowered to it '
+                                   '(e.g. 0.99; the bound is saved with the run); empty: no upper clip',
+                                   low=0.0, high=1.0, nullable=True)
+    reference_date: str | None = key('str', None,
+                                     'date: ages are counted in days up to this ISO date or timestamp (e.g. '
+                                     '2026-03-14); empty: the latest date among the training rows, saved with the run',
+                                     nullable=True)
+    calendar: bool = key('bool', False,
+                         'date: also the day of the week and the month of the year, each as a (sin, cos) pair')
+
+
+# keys that only mean something for some kinds: set on another kind, they are refused rather than ignored
+FEATURE_KEY_KINDS = {"log1p": ("numeric",), "clip_lower": ("numeric",), "clip_upper": ("numeric",),
+                     "reference_date": ("date",), "calendar": ("date",)}
 
 
 @dataclass(frozen=True)
@@ -492,9 +514,24 @@ def _check_feature(label: str, index: int, spec: Any, base_dir: Path) -> dict:
         if spec.get(required) is None:
             raise TowersError(f"config key '{here}.{required}' is missing; "
                               f"every feature needs a name and a kind ({', '.join(FEATURE_KINDS)})")
+    if isinstance(spec.get("reference_date"), date):  # YAML reads an unquoted 2026-03-14 as a date
+        spec = dict(spec, reference_date=spec["reference_date"].isoformat())
     out = {k: _check_value(f"{here}.{k}", key, spec.get(k, key.default), base_dir) for k, key in FEATURE_KEYS.items()}
     if out["kind"] == "vector" and out["length"] is None:
         raise TowersError(f"config key '{here}.length' is missing; a vector feature needs its fixed length")
+    for k, kinds in FEATURE_KEY_KINDS.items():
+        if out[k] != FEATURE_KEYS[k].default and out["kind"] not in kinds:
+            raise TowersError(f"config key '{here}.{k}': applies to {' or '.join(kinds)} features only (this one is "
+                              f"{out['kind']}); remove it")
+    if out["clip_lower"] is not None and out["clip_upper"] is not None and out["clip_lower"] >= out["clip_upper"]:
+        raise TowersError(f"config key '{here}.clip_lower': got {out['clip_lower']!r}; expected a quantile below "
+                          f"clip_upper ({out['clip_upper']!r})")
+    if out["reference_date"] is not None:
+        try:
+            datetime.fromisoformat(out["reference_date"])
+        except ValueError:
+            raise TowersError(f"config key '{here}.reference_date': got {out['reference_date']!r}; expected an ISO "
+                              "date or timestamp such as 2026-03-14 or 2026-03-14T09:30:00+01:00") from None
     return out
 
 
@@ -635,7 +672,7 @@ def _check_context(cfg: dict) -> None:
     for i, f in enumerate(context):
         here = f"config key 'interactions.context[{i}]"
         if f["kind"] not in CONTEXT_KINDS:
-            raise TowersError(f"{here}.kind': got {f['kind']!r}; context columns are numeric or categorical")
+            raise TowersError(f"{here}.kind': got {f['kind']!r}; context columns are numeric, categorical or date")
         if f["name"] in taken:
             raise TowersError(f"{here}.name': '{f['name']}' is also a {side} feature; rename one of the columns")
         if f["name"] in own:

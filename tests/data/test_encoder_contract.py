@@ -4,7 +4,8 @@
   state, size and transforms are identical (a run folder stores encoders only this way);
 * values the encoder has no row of its own for go to its unknown row: unseen or too-rare values to
   row 0 (categorical, ids), unseen tokens to slot 1 (tokens), and missing values to the all-missing
-  encoding (numeric: zero plus the missing flag; vectors: zeros; token lists: padding). Hashed
+  encoding (numeric and dates: zero plus the missing flag, calendar pairs zero; vectors: zeros; token
+  lists: padding). Hashed
   encoders give every present value a bucket, so only missing values have no row of their own;
 * row independence: encoding rows one at a time gives the rows of encoding them all together.
 """
@@ -58,6 +59,17 @@ CASES = {
     "numeric": Case(lambda: _fitted(E.NumericEncoder("price"), [1.0, 2.5, np.nan, 4.0]),
                     serve=[np.nan, 100.0, 2.5, -3.0, None, 4.0],
                     unknown={None: [0.0, 1.0]}, placed=[2.5, 100.0, -3.0]),
+    "numeric-log1p-clipped": Case(lambda: _fitted(E.NumericEncoder("price", log1p=True, clip_lower=0.1, clip_upper=0.9),
+                                                  [1.0, 10.0, np.nan, 100.0, 1000.0, 3.0]),
+                                  serve=[5000.0, None, 0.0, 40.0, np.nan, 2.0],
+                                  unknown={None: [0.0, 1.0]}, placed=[0.0, 40.0, 5000.0]),
+    "date": Case(lambda: _fitted(E.DateEncoder("listed"), ["2026-03-14", None, "2025-12-01T10:00:00+01:00", "2024-02-29"]),
+                 serve=["2027-01-01", None, "2026-03-14", "1990-05-05T23:59:59Z", np.nan],
+                 unknown={None: [0.0, 1.0]}, placed=["2026-03-14", "2027-01-01", "1990-05-05"]),
+    "date-calendar": Case(lambda: _fitted(E.DateEncoder("listed", reference_date="2026-01-01", calendar=True),
+                                          ["2026-03-14", None, "2025-12-01"]),
+                          serve=["2026-03-16T08:00:00", None, "2025-06-30", "2026-03-14"],
+                          unknown={None: [0.0, 1.0, 0.0, 0.0, 0.0, 0.0]}, placed=["2026-03-16", "2025-06-30"]),
     "categorical": Case(lambda: _fitted(E.CategoricalEncoder("brand"), ["acme", "bolt", "acme", None, "coil"]),
                         serve=["bolt", "new", None, "acme", "zzz", "coil"],
                         unknown={"new": 0, "zzz": 0, None: 0}, placed=["acme", "bolt", "coil"]),

@@ -6,6 +6,8 @@ at serving time is built exactly as in training. Index 0 is always the unknown /
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 import pandas as pd
 import pyarrow as pa
@@ -13,7 +15,7 @@ import pyarrow.compute as pc
 import torch
 
 from towers.config import FeatureSpec
-from towers.data.tables import numeric_column
+from towers.data.tables import DATE_FORM, date_column, numeric_column
 from towers.errors import TowersError, where
 
 
@@ -48,38 +50,158 @@ def _fit_vocab(text: np.ndarray, rare_below: int) -> list[str]:
     return sorted(kept.index.astype(str).tolist())
 
 
+def _scale(values: np.ndarray) -> tuple[float, float]:
+    """Mean and standard deviation of the present (non-NaN) values; a std of 0 becomes 1."""
+    ok = values[~np.isnan(values)]
+    mean = float(ok.mean()) if len(ok) else 0.0
+    std = float(ok.std()) if len(ok) > 1 else 1.0
+    return mean, (std if std > 1e-12 else 1.0)
+
+
+def _standardised(values: np.ndarray, mean: float, std: float) -> np.ndarray:
+    """(n, 2): each value standardised and a missing indicator; a missing (NaN) value is 0 with indicator 1."""
+    missing = np.isnan(values)
+    z = np.where(missing, 0.0, (values - mean) / std)
+    return np.stack([z, missing.astype(np.float64)], axis=1)
+
+
 class NumericEncoder:
-    """Standardise with training mean/std; a missing value becomes 0 with an indicator of 1."""
+    """Standardise with training mean/std; a missing value becomes 0 with an indicator of 1.
+
+    Optionally the values are first clipped at quantiles of the training values (the bounds `low` and
+    `high` are fitted once and saved) and then taken through log1p; the mean and std are those of the
+    clipped, transformed training values.
+    """
 
     kind = "numeric"
 
-    def __init__(self, name: str, mean: float = 0.0, std: float = 1.0):
+    def __init__(self, name: str, mean: float = 0.0, std: float = 1.0, log1p: bool = False,
+                 clip_lower: float | None = None, clip_upper: float | None = None,
+                 low: float | None = None, high: float | None = None):
         self.name, self.mean, self.std = name, mean, std
+        self.log1p, self.clip_lower, self.clip_upper = log1p, clip_lower, clip_upper
+        self.low, self.high = low, high
+
+    def _values(self, series: pd.Series, path) -> np.ndarray:
+        """The column as float64 (NaN where missing), checked: numbers, and none negative under log1p."""
+        v = numeric_column(series, path, self.name, feature=True)
+        if self.log1p:
+            negative = v < 0
+            if negative.any():
+                row = int(np.flatnonzero(negative)[0])
+                raise TowersError(f"{where(path, self.name, row + 1)}: {float(v[row])!r} is negative, but log1p "
+                                  "takes values >= 0 (prices, counts); fix the value or set log1p: false")
+        return v
+
+    def _shaped(self, v: np.ndarray) -> np.ndarray:
+        """Clipped at the fitted bounds, then log1p (NaN stays NaN)."""
+        if self.low is not None or self.high is not None:
+            v = np.clip(v, self.low, self.high)
+        return np.log1p(v) if self.log1p else v
 
     def fit(self, series: pd.Series, path) -> "NumericEncoder":
-        v = numeric_column(series, path, self.name)
+        v = self._values(series, path)
         ok = v[~np.isnan(v)]
-        self.mean = float(ok.mean()) if len(ok) else 0.0
-        std = float(ok.std()) if len(ok) > 1 else 1.0
-        self.std = std if std > 1e-12 else 1.0
+        self.low = float(np.quantile(ok, self.clip_lower)) if self.clip_lower is not None and len(ok) else None
+        self.high = float(np.quantile(ok, self.clip_upper)) if self.clip_upper is not None and len(ok) else None
+        self.mean, self.std = _scale(self._shaped(v))
         return self
 
     def validate(self, series: pd.Series, path) -> None:
         """Raise on a bad value anywhere in the column (rows count from 1 in the order given)."""
-        numeric_column(series, path, self.name)
+        self._values(series, path)
 
     def transform(self, series: pd.Series, path) -> torch.Tensor:
-        v = numeric_column(series, path, self.name)
-        missing = np.isnan(v)
-        z = np.where(missing, 0.0, (v - self.mean) / self.std)
-        return torch.from_numpy(np.stack([z, missing.astype(np.float64)], axis=1).astype(np.float32))
+        z = _standardised(self._shaped(self._values(series, path)), self.mean, self.std)
+        return torch.from_numpy(z.astype(np.float32))
 
     @property
     def width(self) -> int:
         return 2
 
     def state(self) -> dict:
-        return {"kind": self.kind, "name": self.name, "mean": self.mean, "std": self.std}
+        return {"kind": self.kind, "name": self.name, "mean": self.mean, "std": self.std, "log1p": self.log1p,
+                "clip_lower": self.clip_lower, "clip_upper": self.clip_upper, "low": self.low, "high": self.high}
+
+
+DAY_US = 86_400 * 10**6  # microseconds in a day
+EPOCH_WEEKDAY = 3  # 1970-01-01 was a Thursday; Monday is 0
+
+
+class DateEncoder:
+    """Dates and timestamps as their age in days at a reference date, standardised like numbers.
+
+    Inputs: the standardised age (reference minus date, in days; a later date has a negative age) and a
+    missing indicator, as NumericEncoder gives them. With `calendar`, four more: (sin, cos) of
+    2*pi*value/period for the day of the week (Monday 0, period 7) and the month of the year (January
+    0, period 12), all 0 for a missing date. Dates are read in UTC. The reference is the configured
+    one or, when none is, the latest training date; it is fixed at fit and saved, so unseen rows later
+    get their ages at the same reference.
+    """
+
+    kind = "date"
+
+    def __init__(self, name: str, reference_date: str | None = None, calendar: bool = False,
+                 mean: float = 0.0, std: float = 1.0):
+        self.name, self.calendar, self.mean, self.std = name, calendar, mean, std
+        self.reference_date = None if reference_date is None else _iso(_reference_us(reference_date, name))
+
+    def _times(self, series: pd.Series, path) -> np.ndarray:
+        return date_column(series, path, self.name)
+
+    def _ages(self, times: np.ndarray) -> np.ndarray:
+        missing = np.isnat(times)
+        us = np.where(missing, 0, times.astype(np.int64))
+        return np.where(missing, np.nan, (_reference_us(self.reference_date, self.name) - us) / DAY_US)
+
+    def validate(self, series: pd.Series, path) -> None:
+        """Raise unless every present value is an ISO date or timestamp (or a datetime column)."""
+        self._times(series, path)
+
+    def fit(self, series: pd.Series, path) -> "DateEncoder":
+        times = self._times(series, path)
+        if self.reference_date is None:
+            present = times[~np.isnat(times)]
+            if not len(present):
+                raise TowersError(f"{where(path, self.name)}: no dates among the training rows to count ages from; "
+                                  "set reference_date on this feature or fill the column")
+            self.reference_date = _iso(int(present.max().astype(np.int64)))
+        self.mean, self.std = _scale(self._ages(times))
+        return self
+
+    def transform(self, series: pd.Series, path) -> torch.Tensor:
+        times = self._times(series, path)
+        parts = [_standardised(self._ages(times), self.mean, self.std)]
+        if self.calendar:
+            missing = np.isnat(times)
+            us = np.where(missing, 0, times.astype(np.int64))
+            weekday = (np.floor_divide(us, DAY_US) + EPOCH_WEEKDAY) % 7
+            month = np.where(missing, 0, times.astype("datetime64[M]").astype(np.int64)) % 12
+            for value, period in ((weekday, 7), (month, 12)):
+                angle = 2 * np.pi * value / period
+                parts.append(np.where(missing[:, None], 0.0, np.stack([np.sin(angle), np.cos(angle)], axis=1)))
+        return torch.from_numpy(np.concatenate(parts, axis=1).astype(np.float32))
+
+    @property
+    def width(self) -> int:
+        return 6 if self.calendar else 2
+
+    def state(self) -> dict:
+        return {"kind": self.kind, "name": self.name, "reference_date": self.reference_date,
+                "calendar": self.calendar, "mean": self.mean, "std": self.std}
+
+
+def _reference_us(text: str, name: str) -> int:
+    """A reference date (ISO text) as microseconds since the epoch, UTC."""
+    us = date_column(pd.Series([text], dtype=object), None, name, strict=False)[0]
+    if np.isnat(us):
+        raise TowersError(f"feature '{name}': reference_date {text!r} is not {DATE_FORM}; fix it in the config")
+    return int(us.astype(np.int64))
+
+
+def _iso(us: int) -> str:
+    """Microseconds since the epoch as ISO text in UTC without a zone (2026-03-14T00:00:00)."""
+    return pd.Timestamp(us, unit="us").isoformat()
 
 
 class CategoricalEncoder:
@@ -120,6 +242,10 @@ class CategoricalEncoder:
                 "hashed_rows": self.hashed_rows, "vocab": list(self.vocab)}
 
 
+OTHER_SEPARATORS = (",", ";", " ")  # what a token column's text is most often split by, besides the separator
+SEPARATOR_SHARE = 0.2  # share of values holding one of them that triggers the warning: a choice (no source)
+
+
 class TokenEncoder:
     """Token lists (parquet list column or delimited text) as padded index rows for a bag of embeddings.
 
@@ -136,7 +262,7 @@ class TokenEncoder:
         self._index = pd.Index(self.vocab, dtype=object)
         self.unknown_seen = 0
 
-    def _lists(self, series: pd.Series, path) -> pa.ListArray:
+    def _lists(self, series: pd.Series, path, check_separator: bool = False) -> pa.ListArray:
         values = series.to_numpy(dtype=object)
         try:
             arr = pa.array(values, from_pandas=True)
@@ -156,6 +282,8 @@ class TokenEncoder:
         if pa.types.is_null(arr.type):
             arr = pa.array([None] * len(values), type=pa.list_(pa.string()))
         if pa.types.is_string(arr.type) or pa.types.is_large_string(arr.type):
+            if check_separator:
+                self._check_separator(arr, path)
             arr = pc.split_pattern(arr, pattern=self.separator)
             arr = pa.ListArray.from_arrays(arr.offsets, pc.utf8_trim_whitespace(arr.flatten()), mask=arr.is_null())
         elif not (pa.types.is_list(arr.type) or pa.types.is_large_list(arr.type)):
@@ -166,13 +294,29 @@ class TokenEncoder:
                               "(or declare the column categorical if each row holds one value)")
         return arr
 
-    def validate(self, series: pd.Series, path) -> None:
-        """Raise unless every row is a token list, delimited text or missing."""
-        self._flat(series, path)
+    def _check_separator(self, text: pa.Array, path) -> None:
+        """Warn when no value holds the separator but a fair share hold another common one: each whole
+        text would silently become one token."""
+        text = pc.utf8_trim_whitespace(text)
+        present = pc.sum(pc.not_equal(text, "")).as_py() or 0
+        if not present or pc.any(pc.match_substring(text, self.separator)).as_py():
+            return
+        shares = {sep: (pc.sum(pc.match_substring(text, sep)).as_py() or 0) / present
+                  for sep in OTHER_SEPARATORS if sep != self.separator}
+        sep, share = max(shares.items(), key=lambda kv: kv[1])
+        if share >= SEPARATOR_SHARE:
+            warnings.warn(f"{where(path, self.name)}: no value holds the separator {self.separator!r}, but "
+                          f"{share:.0%} of them hold {sep!r}, so each whole text is read as one token; if {sep!r} "
+                          f"separates the tokens, set separator: {sep!r} on this feature", stacklevel=4)
 
-    def _flat(self, series, path):
+    def validate(self, series: pd.Series, path) -> None:
+        """Raise unless every row is a token list, delimited text or missing; warn on a separator that
+        seems wrong."""
+        self._flat(series, path, check_separator=True)
+
+    def _flat(self, series, path, check_separator: bool = False):
         """Flattened token text plus per-row offsets; a null row is an empty list."""
-        arr = self._lists(series, path)
+        arr = self._lists(series, path, check_separator)
         lengths = np.asarray(pc.list_value_length(arr).fill_null(0), dtype=np.int64)
         offsets = np.concatenate([[0], np.cumsum(lengths)]).astype(np.int64)
         flat = arr.flatten()
@@ -337,14 +481,16 @@ class IdEncoder:
         return {"kind": self.kind, "id_type": self.id_type, "ids": self.ids.tolist()}
 
 
-ENCODERS = {c.kind: c for c in (NumericEncoder, CategoricalEncoder, TokenEncoder, VectorEncoder)}
+ENCODERS = {c.kind: c for c in (NumericEncoder, CategoricalEncoder, TokenEncoder, VectorEncoder, DateEncoder)}
 
 
 def make_encoder(spec: FeatureSpec):
     """A fresh (unfitted) encoder for one feature spec from the config."""
     name, kind = spec.name, spec.kind
     if kind == "numeric":
-        return NumericEncoder(name)
+        return NumericEncoder(name, log1p=spec.log1p, clip_lower=spec.clip_lower, clip_upper=spec.clip_upper)
+    if kind == "date":
+        return DateEncoder(name, spec.reference_date, spec.calendar)
     if kind == "categorical":
         return CategoricalEncoder(name, spec.rare_below, spec.hashed_rows)
     if kind == "tokens":

@@ -226,8 +226,11 @@ def check_unique_ids(ids: np.ndarray, path, column) -> None:
                           "(deduplicate it)")
 
 
-def numeric_column(series: pd.Series, path, column, allow_missing: bool = True) -> np.ndarray:
-    """A float64 view of a column, with errors for text, infinities and (optionally) missing values."""
+def numeric_column(series: pd.Series, path, column, allow_missing: bool = True, feature: bool = False) -> np.ndarray:
+    """A float64 view of a column, with errors for text, infinities and (optionally) missing values.
+
+    feature: the column is a numeric feature, so a value that reads as a date suggests the date kind.
+    """
     if pd.api.types.is_bool_dtype(series):
         values = series.astype(float).to_numpy(dtype=np.float64, na_value=np.nan)
     else:
@@ -235,7 +238,11 @@ def numeric_column(series: pd.Series, path, column, allow_missing: bool = True) 
         bad_text = np.isnan(values) & series.notna().to_numpy()
         if bad_text.any():
             row = int(np.flatnonzero(bad_text)[0])
-            raise TowersError(f"{where(path, column, row + 1)}: {series.iloc[row]!r} is not a number; "
+            value = series.iloc[row]
+            if feature and not np.isnat(date_column(series.iloc[row:row + 1], path, column, strict=False)[0]):
+                raise TowersError(f"{where(path, column, row + 1)}: {value!r} is not a number but reads as a date; "
+                                  "declare the feature with kind: date (its age in days) or fix the value")
+            raise TowersError(f"{where(path, column, row + 1)}: {value!r} is not a number; "
                               "fix the value or declare the column as categorical")
     inf = np.isinf(values)
     if inf.any():
@@ -263,3 +270,34 @@ def time_column(series: pd.Series, path, column) -> np.ndarray:
     if getattr(parsed.dt, "tz", None) is not None:
         parsed = parsed.dt.tz_convert("UTC").dt.tz_localize(None)
     return parsed.to_numpy(dtype="datetime64[ns]").astype(np.int64)
+
+
+DATE_FORM = "an ISO date or timestamp such as 2026-03-14 or 2026-03-14T09:30:00+01:00"
+
+
+def date_column(series: pd.Series, path, column, strict: bool = True) -> np.ndarray:
+    """Dates and timestamps as datetime64[us] in UTC (time zones converted, naive values taken as UTC);
+    missing values are NaT.
+
+    Reads datetime columns (parquet date and timestamp types) as they are and text as ISO 8601. strict:
+    a present value that is not such a date is an error naming its row; otherwise it becomes NaT.
+    """
+    if pd.api.types.is_datetime64_any_dtype(series):
+        parsed = series
+    elif pd.api.types.is_numeric_dtype(series) or pd.api.types.is_bool_dtype(series):
+        parsed = pd.Series(pd.NaT, index=series.index, dtype="datetime64[us]")  # numbers are no dates here
+    else:
+        # as text first: datetime.date objects and tz-aware timestamps print as ISO, numbers never parse as one
+        text = series.astype(str).str.strip().where(series.notna().to_numpy())
+        parsed = pd.to_datetime(text, errors="coerce", utc=True, format="ISO8601")
+    if getattr(parsed.dt, "tz", None) is not None:
+        parsed = parsed.dt.tz_convert("UTC").dt.tz_localize(None)
+    out = parsed.to_numpy(dtype="datetime64[us]")
+    bad = np.isnat(out) & series.notna().to_numpy()
+    if strict and bad.any():
+        row = int(np.flatnonzero(bad)[0])
+        value = series.iloc[row]
+        value = value.item() if isinstance(value, np.generic) else value
+        raise TowersError(f"{where(path, column, row + 1)}: {value!r} is not a date; "
+                          f"write {DATE_FORM} (time zones are converted to UTC)")
+    return out
