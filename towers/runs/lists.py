@@ -24,6 +24,7 @@ import pyarrow as pa
 import torch
 
 from towers.atomic import write_atomic
+from towers.data.history import history_ids
 from towers.data.tables import READABLE, align_id_types, check_unique_ids, normalise_ids, read_table, shown
 from towers.errors import TowersError, where
 from towers.search.scorer import Scorer
@@ -356,7 +357,7 @@ def block_exclusions(rows: torch.Tensor, offsets: torch.Tensor, items: torch.Ten
 
 def write_lists(out: str | Path, scorer: Scorer, lists: Lists, query_ids: np.ndarray, rows: torch.Tensor, top: int,
                 known: tuple[torch.Tensor, torch.Tensor] | None, exclude_self: bool, progress: str = "auto",
-                block: int = BATCH_USERS) -> int:
+                block: int | None = None) -> int:
     """Write the lists of the query rows `rows` to a parquet file, block by block; returns the rows written.
 
     scorer: the run's scorer over its whole catalog; known: known_by_query of the pairs to exclude.
@@ -365,6 +366,7 @@ def write_lists(out: str | Path, scorer: Scorer, lists: Lists, query_ids: np.nda
     import pyarrow.parquet as pq
     from tqdm import tqdm
 
+    block = block or BATCH_USERS
     column = lists.item_column
     schema_done: list[pa.Schema] = []
     written = [0]
@@ -451,10 +453,12 @@ def recommend_rows(run, df: pd.DataFrame, top: int, history_column: str | None, 
     df = _row_ids(df.reset_index(drop=True), run.bundle.query_encoders.id_column)
     embedded = run.embed_users(df, source, history_column=history_column, separator=separator)
     ex_r = ex_c = None
-    if history_column is not None:
-        bags, _ = run._bags(df[history_column], source, (history_column, separator))
-        cells = torch.nonzero(bags > 0)  # row-major: sorted by ranking row
-        ex_r, ex_c = cells[:, 0], bags[cells[:, 0], cells[:, 1]] - 1
+    if history_column is not None:  # every given item of the run is left out, as recommend_history does
+        ids, at_row = history_ids(df[history_column], source, history_column, separator)
+        item_ids = run.embeddings("item")[0]
+        at = pd.Index(item_ids).get_indexer(align_id_types(ids, item_ids))
+        cells = np.unique(np.stack([at_row[at >= 0], at[at >= 0]], 1), axis=0)  # sorted by row, each cell once
+        ex_r, ex_c = (torch.from_numpy(np.ascontiguousarray(cells[:, j], dtype=np.int64)) for j in (0, 1))
     idx, scores = lists.top(_run_scorer(run, embedded.attrs["vectors"], embedded.attrs["bias"]), top, ex_r, ex_c)
     return lists.frame(embedded["id"].to_numpy(), idx, scores)
 
