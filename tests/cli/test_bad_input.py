@@ -181,7 +181,7 @@ def test_missing_file(store, tmp_path, capsys):
 def test_folder_given_as_a_table(store, tmp_path, capsys):
     (tmp_path / "log_folder.csv").mkdir()
     cfg = change(base_config(store), "interactions", path=str(tmp_path / "log_folder.csv"))
-    train_fails(capsys, tmp_path, cfg, "log_folder.csv", fix=r"is a folder.*give a \.csv or \.parquet file")
+    train_fails(capsys, tmp_path, cfg, "log_folder.csv", fix=r"is a folder.*give a \.csv, \.tsv, \.parquet or \.pq file")
 
 
 def test_unsupported_extension(store, tmp_path, capsys):

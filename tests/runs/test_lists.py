@@ -339,3 +339,54 @@ def test_recommend_rows_with_a_history_column_equal_recommend_history(tiny_runs)
         assert mine["name"].tolist() == expected["name"].tolist()
         np.testing.assert_allclose(mine["score"], expected["score"], rtol=1e-5, atol=1e-5)
         assert not set(mine["item_id"]) & set(history)  # the history's items are left out
+
+
+@pytest.mark.slow  # trains a tiny item_item run on first use
+def test_item_item_runs_batch_and_feature_rows(tiny_runs, small_store, tmp_path):
+    run = towers.load(tiny_runs.train(config="store_copurchase.yaml", model={"shared_tower": False, "temperature": 0.5},
+                                      evaluation={"baseline": False}))
+    rows = pd.read_parquet(small_store / "items.parquet").head(5)
+    # outside reference: Run.similar on the same ids (the query side re-embedded gives the exported query vectors)
+    got = run.similar_rows(rows, top=7)
+    expected = run.similar(rows["item_id"], top=7)
+    assert got["item_id"].tolist() == expected["item_id"].tolist()
+    np.testing.assert_allclose(got["score"], expected["score"], rtol=1e-4, atol=1e-4)
+    # the batch of an item_item run: query items, each leaving out its known pairs and itself, as recommend does
+    queries = run.embeddings("query")[0][:30]
+    out = tmp_path / "pairs.parquet"
+    run.write_lists(out, queries, top=5)
+    np.testing.assert_array_equal(pd.read_parquet(out)["item_id"], run.recommend(queries, top=5)["item_id"])
+
+
+@pytest.mark.slow
+def test_cli_feature_rows(basket_run, small_store, tmp_path, capsys):
+    new_items = small_store / "new_items.parquet"
+    out = tmp_path / "arrivals.csv"
+    assert cli(["similar", str(basket_run), "--item-rows", str(new_items), "--top", "2", "--columns", "name",
+                "--out", str(out)]) == 0
+    got = pd.read_csv(out)
+    arrivals = pd.read_parquet(new_items)
+    expected = towers.load(basket_run).similar_rows(arrivals, top=2, columns=["name"])  # the Python API
+    assert got["query_id"].tolist() == expected["query_id"].tolist() and list(got.columns)[-1] == "name"
+    users = tmp_path / "walk_ins.csv"
+    pd.read_csv(small_store / "customers.csv").head(2).drop(columns=["customer_id"]).to_csv(users, index=False)
+    assert cli(["recommend", str(basket_run), "--user-rows", str(users), "--top", "3"]) == 0
+    printed = capsys.readouterr().out
+    assert "row 1" in printed and "row 2" in printed
+    assert cli(["recommend", str(basket_run), "--users", "1", "--history-column", "recent"]) == 2
+    assert "use it with --user-rows" in capsys.readouterr().err
+
+
+@pytest.mark.slow
+def test_a_rewritten_item_table_is_read_again(basket_run, small_store, tmp_path):
+    run = towers.load(basket_run)
+    items = pd.read_parquet(small_store / "items.parquet")[["item_id", "name"]]
+    path = tmp_path / "stock.parquet"
+    user = run.embeddings("user")[0][:1]
+    keep = ItemFilter(only_true=("in_stock",))
+    items.assign(in_stock=True).to_parquet(path, index=False)
+    first = run.recommend(user, top=3, keep=keep, item_table=path)["item_id"].tolist()
+    items.assign(in_stock=~items["item_id"].isin(first)).to_parquet(path, index=False)  # tonight they sold out
+    os.utime(path, ns=(os.stat(path).st_atime_ns, os.stat(path).st_mtime_ns + 10**9))
+    again = run.recommend(user, top=3, keep=keep, item_table=path)["item_id"].tolist()
+    assert not set(first) & set(again)  # common practice: a cache keyed by the file's size and time

@@ -118,6 +118,25 @@ def _text(value) -> str:
     return str(value)
 
 
+def _texts(series: pd.Series) -> pd.Series:
+    """A whole column as _text gives each value (missing values stay missing), without a Python call per row."""
+    missing = series.isna().to_numpy()
+    if pd.api.types.is_bool_dtype(series):
+        out = np.where(series.to_numpy(dtype=bool), "true", "false").astype(object)
+    elif pd.api.types.is_float_dtype(series):
+        values = series.to_numpy(dtype=np.float64)
+        out = series.astype(str).to_numpy(dtype=object)
+        with np.errstate(invalid="ignore"):
+            whole = np.isfinite(values) & (values == np.round(values)) & (np.abs(values) < 2.0 ** 63)
+        out[whole] = values[whole].astype(np.int64).astype(str)
+    elif series.dtype == object and series.map(type).isin((bool, np.bool_)).any():
+        out = series.map(_text, na_action="ignore").to_numpy(dtype=object)  # true/false among other values
+    else:
+        out = series.astype(str).to_numpy(dtype=object)
+    out[missing] = None
+    return pd.Series(out, index=series.index, dtype=object)
+
+
 # ---- the item table, aligned on a run's catalog --------------------------------------------------
 
 class ItemTable:
@@ -167,7 +186,7 @@ class ItemTable:
         if pd.api.types.is_bool_dtype(series):
             truth = series.to_numpy(dtype=bool)
         else:
-            text = series.map(_text, na_action="ignore").astype(object).str.lower()
+            text = _texts(series).str.lower()
             known = text.isna() | text.isin(("true", "false", "1", "0"))
             if not known.all():
                 row = int(np.flatnonzero(~known.to_numpy())[0])
@@ -177,8 +196,7 @@ class ItemTable:
         return truth[np.where(self.present, self._rows, 0)] & self.present
 
     def _text(self, name: str) -> pd.Series:
-        series = self._frame[name]
-        text = series.map(_text, na_action="ignore").astype(object)
+        text = _texts(self._frame[name])
         return text.iloc[np.where(self.present, self._rows, 0)].reset_index(drop=True).where(self.present)
 
 
@@ -279,10 +297,11 @@ def _id_array(values: np.ndarray, like: np.ndarray) -> pa.Array:
 
 
 def item_lists(item_ids: np.ndarray, keep: ItemFilter | None, columns: Sequence[str], table_path, id_column,
-               default_note: str) -> Lists:
+               default_note: str, cache: dict | None = None) -> Lists:
     """The allowed items and item columns for a run's catalog (item_ids), reading the item table only when
     `columns` or a table condition of `keep` needs it. table_path / id_column: the table to read;
-    default_note: what to tell the user when no table is known."""
+    default_note: what to tell the user when no table is known. cache: a dict that keeps the last table
+    read, reused while the file's size and modification time stay the same (a service lists many times)."""
     keep = keep or ItemFilter()
     if not isinstance(keep, ItemFilter):
         raise TowersError(f"keep: expected an ItemFilter (ItemFilter.from_dict builds one), got {type(keep).__name__}")
@@ -297,7 +316,7 @@ def item_lists(item_ids: np.ndarray, keep: ItemFilter | None, columns: Sequence[
         if clash:
             raise TowersError(f"column {clash[0]!r}: the lists already have a column of that name; "
                               f"choose item columns other than {', '.join(LIST_COLUMNS)}")
-        table = ItemTable(table_path, id_column, item_ids, needed)
+        table = _cached_table(cache, table_path, id_column, item_ids, needed)
         if keep.columns():
             allowed &= table.allowed(keep)
             lacking = int((~table.present).sum())
@@ -316,6 +335,20 @@ def item_lists(item_ids: np.ndarray, keep: ItemFilter | None, columns: Sequence[
         allowed[at[at >= 0]] = False  # ids not in the run are never listed anyway
     rows = None if allowed.all() else torch.from_numpy(np.flatnonzero(allowed).astype(np.int64))
     return Lists(item_ids, rows, out)
+
+
+def _cached_table(cache: dict | None, path, id_column: str, item_ids: np.ndarray, needed: list[str]) -> ItemTable:
+    try:
+        info = Path(path).stat()
+    except OSError:
+        return ItemTable(path, id_column, item_ids, needed)  # read_table names the problem
+    key = (str(Path(path).resolve()), info.st_mtime_ns, info.st_size, id_column, tuple(sorted(needed)))
+    if cache is None or cache.get("key") != key:
+        table = ItemTable(path, id_column, item_ids, needed)
+        if cache is None:
+            return table
+        cache.update(key=key, table=table)
+    return cache["table"]
 
 
 def _arrow_column(values: pd.Series, path, name: str) -> pa.Array:
@@ -421,7 +454,8 @@ def lists_for(run, columns: Sequence[str] = (), keep: ItemFilter | None = None, 
         id_column = run.config.interactions.candidate_column
     note = (f"{run.dir}: this run has no item table (config items.path), so item columns and column filters have "
             "nothing to read; name one with --item-table FILE (item_table=)")
-    return item_lists(run.embeddings("item")[0], keep, columns, path, id_column, note)
+    cache = run.__dict__.setdefault("_item_table_cache", {})
+    return item_lists(run.embeddings("item")[0], keep, columns, path, id_column, note, cache)
 
 
 def check_top(run, top) -> None:
