@@ -43,6 +43,7 @@ SIZES = {
     # lists for a slice of the users, timed and extrapolated to all of them (the whole run would take long)
     "lists": ({"users": 1_000_000, "items": 200_000, "slice": 20_000, "top": 10, "known": 10},
               {"users": 200_000, "items": 50_000, "slice": 5_000, "top": 10, "known": 10}),
+    "derive_pairs": ({"lines": 50_000_000, "items": 100_000}, {"lines": 3_000_000, "items": 50_000}),
 }
 CASES = tuple(SIZES)
 K = 64  # k, the embedding size, in every case
@@ -721,13 +722,68 @@ def case_lists(size: dict, work: Path) -> dict:
         f"{(rss_before or 0) / 2**30:.2f} GiB before listing)")
     return {"lists_vs_top_n": t_plain / t_lists, "lists_users_per_s": rate, "lists_peak_rss_gb": peak / 2 ** 30,
             "lists_all_users_extrapolated_s": nu / rate, "lists_slice_users": part, "lists_top_n_s": t_plain}
+def case_derive_data(size: dict, work: Path) -> dict:
+    """An order export as CSV, written in chunks of 1M lines: orders of 1 to 8 lines, long-tailed items, and one
+    order in 20,000 with 300 lines (above the default group_item_cap of 50)."""
+    import numpy as np
+    import pyarrow as pa
+    import pyarrow.csv as pacsv
+
+    rng = np.random.default_rng(15)
+    written, order = 0, 0
+    with pacsv.CSVWriter(work / "orders.csv", pa.schema([("order_id", pa.int64()), ("product_id", pa.string()),
+                                                         ("quantity", pa.int64()), ("ordered_at", pa.timestamp("s"))])) as out:
+        while written < size["lines"]:
+            n = min(1_000_000, size["lines"] - written)
+            lengths = np.where(rng.random(n) < 1 / 20_000, 300, rng.integers(1, 9, n))
+            cum = np.cumsum(lengths)
+            last = int(np.searchsorted(cum, n))  # the orders filling exactly n lines, the last one cut short
+            lengths = lengths[:last + 1]
+            lengths[-1] -= cum[last] - n
+            lines = n
+            orders = np.repeat(np.arange(order, order + len(lengths)), lengths)
+            start = np.datetime64("2026-01-01T00:00:00", "s")
+            out.write_table(pa.table({
+                "order_id": orders, "product_id": sku_text(popular_items(rng, lines, size["items"])),
+                "quantity": rng.geometric(0.7, lines),
+                "ordered_at": pa.array(start + (orders * 7).astype("timedelta64[s]"), pa.timestamp("s"))}))
+            written, order = written + lines, order + len(lengths)
+    return {"lines": written, "orders": order}
+
+
+def case_derive_run(size: dict, work: Path) -> dict:
+    """Pairs from baskets with a time split (towers/data/baskets.py) against one DuckDB pass over the same file."""
+    import duckdb
+
+    from towers import config as C
+    from towers.data.baskets import derive_pairs
+
+    cfg = C.resolve({"run": {"mode": "item_item", "threads": 2},
+                     "interactions": {"path": str(work / "orders.csv"), "pairs_from": "baskets", "group_column": "order_id",
+                                      "candidate_column": "product_id", "time_column": "ordered_at",
+                                      "quantity_column": "quantity"},
+                     "evaluation": {"split": "time"}, "training": {"progress": "plain"}}, work)
+    t = time.perf_counter()
+    con = duckdb.connect(config={"threads": 2, "memory_limit": "2GB"})
+    con.execute(f"SELECT count(*) FROM (SELECT order_id, count(*) FROM read_csv('{work / 'orders.csv'}') GROUP BY ALL)"
+                ).fetchall()
+    con.close()
+    scan = time.perf_counter() - t
+    t = time.perf_counter()
+    pairs = derive_pairs(cfg, split=True)
+    seconds = time.perf_counter() - t
+    lines = size["lines"]
+    log(f"pairs from {lines:,} order lines: {seconds:.1f} s ({lines / seconds:,.0f} lines/s), one scan {scan:.1f} s, "
+        f"{len(pairs.weight):,} pairs, peak RSS {peak_rss_bytes() / 2**30:.2f} GiB")
+    return {"seconds": seconds, "scan_s": scan, "pairs": len(pairs.weight), "peak_rss_gb": peak_rss_bytes() / 2 ** 30}
 
 
 CHILDREN = {"id_training": case_id_training, "tower_flops": case_tower_flops, "als": case_als,
             "retrieval": case_retrieval, "scale_data": case_scale_data,
             "scale_small": lambda s, w: case_scale_run(s, w, "small"),
             "scale_large": lambda s, w: case_scale_run(s, w, "large"),
-            "embed_setup": case_embed_setup, "embed_run": case_embed_run, "lists": case_lists}
+            "embed_setup": case_embed_setup, "embed_run": case_embed_run, "lists": case_lists,
+            "derive_data": case_derive_data, "derive_run": case_derive_run}
 
 
 # ---- the parent ------------------------------------------------------------------------------------
@@ -753,6 +809,12 @@ def run_case(name: str, size: dict, work: Path) -> dict:
         child("embed_setup", size, work)
         out = child("embed_run", size, work)
         return {"embed_1m_unseen_peak_rss_gb": out["peak_rss_gb"], "embed_1m_unseen_s": out["seconds"]}
+    if name == "derive_pairs":
+        data = child("derive_data", size, work)
+        out = child("derive_run", {**size, "lines": data["lines"]}, work)
+        return {"derive_pairs_vs_scan": out["seconds"] / out["scan_s"], "derive_pairs_peak_rss_gb": out["peak_rss_gb"],
+                "derive_pairs_lines_per_s": data["lines"] / out["seconds"], "derive_pairs_s": out["seconds"],
+                "derive_pairs_scan_s": out["scan_s"], "derive_pairs_lines": data["lines"], "derive_pairs_out": out["pairs"]}
     return child(name, size, work)
 
 
@@ -763,6 +825,7 @@ GOALS = {  # key: (goal, "at least" or "at most")
     "retrieval_float32_vs_bare_matmul": (None, ""),  # the same search with the bfloat16 screen off
     "scale_10m_over_1m": (11, "<="), "peak_rss_gb_10m": (4, "<="), "embed_1m_unseen_peak_rss_gb": (None, ""),
     "lists_vs_top_n": (None, ""), "lists_users_per_s": (None, ""), "lists_peak_rss_gb": (None, ""),
+    "derive_pairs_vs_scan": (None, ""), "derive_pairs_lines_per_s": (None, ""), "derive_pairs_peak_rss_gb": (4, "<="),
 }
 
 

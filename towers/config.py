@@ -121,8 +121,35 @@ class InteractionsSection:
     time_column: str | None = key('str', None, 'event time; needed by the splits time, user_recent and user_last', nullable=True)
     group_column: str | None = key('str', None,
                                    'rows sharing a value here (an order or session id) always land on the same '
-                                   'side of the split (training, validation or test)',
+                                   'side of the split (training, validation or test); with pairs_from baskets or '
+                                   'sessions, the basket or session id',
                                    nullable=True)
+    pairs_from: str = key('choice', 'rows',
+                          'where the pairs come from: rows (each row of the log is a pair), baskets (item_item: '
+                          'every two distinct items of candidate_column sharing a group_column value, counted once '
+                          'per basket, both directions) or sessions (item_item: two distinct items viewed in one '
+                          'group_column value at most session_minutes apart, counted once per session)',
+                          choices=('rows', 'baskets', 'sessions'))
+    session_minutes: float = key('float', 30.0,
+                                 'sessions: the longest time between two views that still pair them (needs '
+                                 'time_column; numeric times count as seconds)',
+                                 low=0.0)
+    group_item_cap: int = key('int', 50,
+                              'baskets and sessions: one holding more distinct items than this keeps a seeded random '
+                              'sample of this many, so one huge order adds at most cap x (cap - 1) pairs',
+                              low=2)
+    quantity_column: str | None = key('str', None,
+                                      'baskets: a pair counts min(quantity of a, quantity of b) per basket instead '
+                                      'of 1; count_repeats: a pair weighs its summed quantity instead of its rows',
+                                      nullable=True)
+    count_repeats: bool = key('bool', False,
+                              'rows repeating a (query, candidate) pair become one row weighted by their number (or '
+                              'summed quantity_column), keeping the latest time; with group_column, orders sharing '
+                              'a pair are one split unit')
+    derive_memory_gb: float = key('float', 2.0,
+                                  'baskets, sessions and count_repeats: memory limit in GiB of the embedded DuckDB '
+                                  'engine that derives the pairs; beyond it, it spills to a temporary folder (TMPDIR)',
+                                  low=0.1)
     context: tuple[FeatureSpec, ...] = key('features', (),
                                            'columns of the log describing each event (hour, channel, device '
                                            '...), numeric or categorical, fed to the query tower beside the '
@@ -561,7 +588,9 @@ def resolve(raw: dict, base_dir: Path) -> Config:
 
 
 def _check_consistency(cfg: dict) -> None:
-    for name in ("query_column", "candidate_column"):
+    _check_derived(cfg)
+    derived = cfg["interactions"]["pairs_from"] != "rows"
+    for name in ("candidate_column",) if derived else ("query_column", "candidate_column"):
         if not cfg["interactions"][name]:
             raise TowersError(f"config key 'interactions.{name}' is missing; name the id column of the interaction log")
     if not cfg["interactions"]["path"]:
@@ -638,6 +667,47 @@ def _check_split(cfg: dict) -> None:
         raise TowersError(f"config key 'interactions.group_column': got {group!r}; expected a column other than the id "
                           "columns (to hold out whole users or items use evaluation.cold_user_fraction or "
                           "cold_item_fraction)")
+
+
+def _check_derived(cfg: dict) -> None:
+    """Pairs derived from baskets or sessions, and repeats counted: the columns each needs and refuses."""
+    ic = cfg["interactions"]
+    source = ic["pairs_from"]
+    here = f"config key 'interactions.pairs_from': got {source!r}"
+    if source != "rows":
+        if cfg["run"]["mode"] != "item_item":
+            raise TowersError(f"{here}; expected rows in user_item mode (pairs of items need run.mode: item_item; "
+                              "for customers and items from an order export use count_repeats)")
+        if not ic["group_column"]:
+            raise TowersError(f"config key 'interactions.group_column' is missing; pairs_from {source} needs the "
+                              f"column holding the {'basket or order' if source == 'baskets' else 'session'} id")
+        for name in ("query_column", "target_column", "weight_column"):
+            if ic[name]:
+                raise TowersError(f"config key 'interactions.{name}': got {ic[name]!r}; expected it empty with pairs_from "
+                                  f"{source} (pairs pair two items of candidate_column, weighted by their count)")
+        if ic["context"]:
+            raise TowersError(f"config key 'interactions.context': pairs_from {source} derives pairs without event "
+                              "context; remove it")
+        if ic["count_repeats"]:
+            raise TowersError(f"config key 'interactions.count_repeats': got True; expected false with pairs_from "
+                              f"{source} (derived pairs are counts already)")
+    if source == "sessions" and not ic["time_column"]:
+        raise TowersError("config key 'interactions.time_column' is missing; pairs_from sessions pairs views within "
+                          "session_minutes, so it needs the view time")
+    if source == "sessions" and ic["quantity_column"]:
+        raise TowersError(f"config key 'interactions.quantity_column': got {ic['quantity_column']!r}; expected empty "
+                          "with pairs_from sessions (views have no quantity)")
+    if ic["quantity_column"] and source == "rows" and not ic["count_repeats"]:
+        raise TowersError(f"config key 'interactions.quantity_column': got {ic['quantity_column']!r}; expected empty "
+                          "unless pairs_from is baskets or count_repeats is true (use weight_column to weight rows)")
+    if ic["count_repeats"]:
+        for name in ("target_column", "weight_column"):
+            if ic[name]:
+                raise TowersError(f"config key 'interactions.{name}': got {ic[name]!r}; expected it empty with "
+                                  "count_repeats (the count of each pair's rows becomes its weight)")
+        if ic["context"]:
+            raise TowersError("config key 'interactions.context': count_repeats merges events with different "
+                              "contexts; remove the context columns or set count_repeats: false")
 
 
 def _check_baseline_solver(cfg: dict) -> None:

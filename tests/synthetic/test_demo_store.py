@@ -22,6 +22,8 @@ FILES = {
     "baskets": "baskets.parquet",
     "ratings": "ratings.csv",
     "co_purchases": "co_purchases.parquet",
+    "orders": "orders.csv",
+    "views": "views.csv",
     "truth_customer_vectors": "truth/customer_vectors.parquet",
     "truth_item_vectors": "truth/item_vectors.parquet",
     "truth_rating_customer_vectors": "truth/rating_customer_vectors.parquet",
@@ -30,7 +32,7 @@ FILES = {
 ITEM_SCHEMA = pa.schema([
     ("item_id", pa.string()), ("name", pa.string()), ("department", pa.string()),
     ("brand", pa.string()), ("price", pa.float64()), ("tags", pa.list_(pa.string())),
-    ("description_vector", pa.list_(pa.float32())),
+    ("description_vector", pa.list_(pa.float32())), ("in_stock", pa.bool_()),
 ])
 
 
@@ -46,6 +48,8 @@ def tables(store):
     t = {k: pq.read_table(p) for k, p in paths.items() if p.suffix == ".parquet"}
     t["customers"] = pd.read_csv(paths["customers"])
     t["ratings"] = pd.read_csv(paths["ratings"])
+    t["orders"] = pd.read_csv(paths["orders"], parse_dates=["ordered_at"])
+    t["views"] = pd.read_csv(paths["views"], parse_dates=["viewed_at"])
     return t
 
 
@@ -181,6 +185,45 @@ def test_co_purchases_match_baskets(tables):
     check = co.merge(recount, on=["item_a", "item_b"], how="outer")
     assert check.n.notna().all() and check.times.notna().all()
     assert (check.n == check.times).all()
+
+
+def test_orders_export_is_the_baskets(tables):
+    o = tables["orders"]
+    assert list(o.columns) == ["order_id", "customer_id", "product_id", "quantity", "price", "ordered_at"]
+    # the same lines as baskets.parquet: an order is one customer's lines at one time (pandas merge)
+    b = tables["baskets"].to_pandas().rename(columns={"item_id": "product_id", "purchased_at": "ordered_at"})
+    both = o.merge(b, on=["customer_id", "product_id", "ordered_at"], suffixes=("", "_b"), how="outer", indicator=True)
+    assert (both["_merge"] == "both").all() and (both.quantity == both.quantity_b).all()
+    per_order = o.groupby("order_id")[["customer_id", "ordered_at"]].nunique()
+    assert (per_order == 1).all().all()
+    assert o.groupby(["customer_id", "ordered_at"]).order_id.nunique().eq(1).all()
+    # order numbers count up with time; prices are the shelf prices, present on every line
+    first = o.groupby("order_id").ordered_at.first().sort_index()
+    assert first.is_monotonic_increasing
+    shelf = tables["items"].to_pandas().set_index("item_id").price
+    known = shelf.reindex(o.product_id).to_numpy()
+    assert o.price.notna().all() and np.allclose(o.price[~np.isnan(known)], known[~np.isnan(known)])
+
+
+def test_views_are_sessions_before_orders(tables):
+    v, o = tables["views"], tables["orders"]
+    assert list(v.columns) == ["session_id", "customer_id", "product_id", "viewed_at"]
+    assert v.groupby("session_id").customer_id.nunique().eq(1).all()
+    span = v.groupby("session_id").viewed_at.agg(lambda t: (t.max() - t.min()).total_seconds() / 60)
+    assert span.max() <= 25.0 and span.median() > 1.0  # a session spans minutes (datetime arithmetic)
+    # about half the orders were browsed first, and most bought lines of those orders were viewed
+    assert 0.4 < v.session_id.nunique() / o.order_id.nunique() < 0.7
+    seen = v.merge(o, on=["customer_id", "product_id"])
+    gap = (seen.ordered_at - seen.viewed_at).dt.total_seconds() / 60
+    near = seen[(gap > 0) & (gap <= 26)].drop_duplicates(["session_id", "product_id", "viewed_at"])
+    assert 0.3 < len(near) / len(v) < 0.8  # the rest are views of items not bought (pandas datetime arithmetic)
+    assert v.product_id.isin(tables["items"]["item_id"].to_pylist()).all()
+
+
+def test_stock_flags(tables):
+    for key in ("items", "new_items"):
+        stock = tables[key]["in_stock"].to_numpy(zero_copy_only=False)
+        assert stock.dtype == bool and 0.8 < stock.mean() < 1.0
 
 
 def test_truth_files_layout_and_coverage(tables):

@@ -12,6 +12,7 @@ import pandas as pd
 import torch
 
 from towers.config import Config
+from towers.data.baskets import collapse_repeats, derive_pairs
 from towers.data.context import ContextEncoders
 from towers.data.embeddings_file import TrueVectors, true_vectors
 from towers.data.encoders import make_encoder
@@ -89,6 +90,8 @@ class Log:
     time: np.ndarray | None
     context: pd.DataFrame | None
     group: np.ndarray | None = None  # int64 codes of the group column, one per row
+    side: np.ndarray | None = None  # int8 side per row, when baskets were placed before their pairs were derived
+    notes: list[str] = field(default_factory=list)  # what deriving or collapsing the rows did
 
     @property
     def query(self) -> np.ndarray:
@@ -101,10 +104,23 @@ class Log:
         return self.candidate_ids.values()
 
 
-def read_interactions(cfg: Config) -> Log:
-    """The log's id arrays, optional target / weight / time / group arrays and context columns, validated."""
+def read_interactions(cfg: Config, split: bool = False) -> Log:
+    """The log's id arrays, optional target / weight / time / group arrays and context columns, validated.
+
+    With interactions.pairs_from baskets or sessions the rows are the derived item pairs (data/baskets.py);
+    split: place whole baskets on the sides first (each row then carries its side), else all on training.
+    With count_repeats each distinct (query, candidate) is one row weighted by its count.
+    """
     ic = cfg.interactions
     path = ic.path
+    if ic.pairs_from != "rows":
+        d = derive_pairs(cfg, split)
+        return Log(IdColumn(d.query, d.ids), IdColumn(d.candidate, d.ids), None, d.weight, None, None,
+                   side=d.side if split else None, notes=d.notes)
+    if ic.count_repeats:
+        r = collapse_repeats(cfg)
+        return Log(IdColumn(r.query, r.query_ids), IdColumn(r.candidate, r.candidate_ids), None, r.weight, r.time, None,
+                   group=r.group, notes=r.notes)
     optional = [ic.target_column, ic.weight_column, ic.time_column, ic.group_column]
     cols = [ic.query_column, ic.candidate_column] + [c for c in optional if c]
     context_cols = [f.name for f in ic.context]
@@ -185,15 +201,18 @@ def prepare(cfg: Config, previous=None) -> Prepared:
     """
     ic = cfg.interactions
     item_item = cfg.item_item
-    log = read_interactions(cfg)
+    log = read_interactions(cfg, split=True)
     q_log, c_log, target, weight, when = log.query_ids, log.candidate_ids, log.target, log.weight, log.time
-    notes: list[str] = []
+    notes: list[str] = list(log.notes)
+    # rows derived from an export (baskets, sessions, count_repeats) are not the file's rows: errors say so
+    source = ic.path if ic.pairs_from == "rows" and not ic.count_repeats else f"{ic.path} (derived rows)"
 
     item_side = SideTable(cfg.items.path, cfg.items.id_column, cfg.items.features, cfg.items.missing_rows)
     # ids are matched once per distinct id and mapped to rows through the codes (see IdColumn)
     if item_item:
         both = _joint_ids(q_log, c_log)
-        c_ids, c_table, keep_both = item_side.catalog(both.uniques, ic.path, (ic.query_column, ic.candidate_column),
+        c_ids, c_table, keep_both = item_side.catalog(both.uniques, source,
+                                                      (ic.query_column or ic.candidate_column, ic.candidate_column),
                                                       codes=both.codes)
         n = len(q_log.codes)
         keep = keep_both[:n] & keep_both[n:]
@@ -202,8 +221,8 @@ def prepare(cfg: Config, previous=None) -> Prepared:
         q_rows, c_rows = rows_both[:n][keep], rows_both[n:][keep]
     else:
         user_side = SideTable(cfg.users.path, cfg.users.id_column, cfg.users.features, cfg.users.missing_rows)
-        q_ids, q_table, keep_q = user_side.catalog(q_log.uniques, ic.path, ic.query_column, codes=q_log.codes)
-        c_ids, c_table, keep_c = item_side.catalog(c_log.uniques, ic.path, ic.candidate_column, codes=c_log.codes)
+        q_ids, q_table, keep_q = user_side.catalog(q_log.uniques, source, ic.query_column, codes=q_log.codes)
+        c_ids, c_table, keep_c = item_side.catalog(c_log.uniques, source, ic.candidate_column, codes=c_log.codes)
         keep = keep_q & keep_c
         q_rows, c_rows = _catalog_rows(q_log, q_ids)[keep], _catalog_rows(c_log, c_ids)[keep]
     dropped = int((~keep).sum())
@@ -229,7 +248,8 @@ def prepare(cfg: Config, previous=None) -> Prepared:
             user_has_row = pd.Index(user_side.ids).get_indexer(q_ids) >= 0
         cold_users = HoldOut(user_has_row, None if previous is None else _learned(q_ids, previous.query_encoders))
     split: Split = make_split(pairs, len(c_ids), cfg.evaluation, cfg.run.seed, cold_eligible=cold_items,
-                              item_item=item_item, groups=groups, n_queries=len(q_ids), cold_user_eligible=cold_users)
+                              item_item=item_item, groups=groups, n_queries=len(q_ids), cold_user_eligible=cold_users,
+                              sides=sel(log.side))
     if len(split.train) == 0:
         raise TowersError(f"{ic.path}: the split leaves no training pairs; lower evaluation fractions or add data")
     context_encoders = None

@@ -47,13 +47,15 @@ class HoldOut:
 
 def make_split(pairs, n_items: int, ev: EvaluationSection, seed: int, cold_eligible: HoldOut | None,
                item_item: bool, groups: np.ndarray | None = None, n_queries: int | None = None,
-               cold_user_eligible: HoldOut | None = None) -> Split:
+               cold_user_eligible: HoldOut | None = None, sides: np.ndarray | None = None) -> Split:
     """Split pairs per the evaluation config; the same seed and data always give the same split.
 
     groups: one code per pair (the log's group column), or None. n_queries: rows of the query catalog
     (default: the item catalog in item_item mode, else the largest query row + 1). cold_eligible /
     cold_user_eligible: which items / users may be held out whole (None: none may). Cold items are
-    drawn first, then cold users, then the warm split, all from one seeded generator.
+    drawn first, then cold users, then the warm split, all from one seeded generator. sides: each pair's
+    side given already (pairs derived from baskets placed whole, data/baskets.py), used for the warm pairs
+    instead of a split by units.
     """
     rng = np.random.default_rng(seed + 1)
     q = pairs.query.numpy()
@@ -77,10 +79,14 @@ def make_split(pairs, n_items: int, ev: EvaluationSection, seed: int, cold_eligi
     cold_test = np.flatnonzero(cold_items[c] & ~cold_q)
     cold_user_test = np.flatnonzero(cold_users[q] & ~cold_items[c])
     rest = np.flatnonzero(~touches_cold)
+    if sides is not None:
+        side = sides[rest]
+        return Split(rest[side == TRAIN], rest[side == VALID], rest[side == TEST], cold_test,
+                     torch.from_numpy(cold_items), cold_user_test, torch.from_numpy(cold_users))
     unit = split_units(q[rest], c[rest], None if groups is None else groups[rest], item_item)
     when = None if pairs.time is None else pairs.time.numpy()[rest]
     per_user = ev.split in PER_USER_SPLITS
-    side = _per_user_sides(unit, q[rest], when, ev, rng) if per_user else _global_sides(unit, when, ev, rng)
+    side = _per_user_sides(unit, q[rest], when, ev, rng) if per_user else global_sides(unit, when, ev, rng)
     return Split(rest[side == TRAIN], rest[side == VALID], rest[side == TEST], cold_test, torch.from_numpy(cold_items),
                  cold_user_test, torch.from_numpy(cold_users))
 
@@ -165,9 +171,9 @@ def _unit_time(unit: np.ndarray, n_units: int, when: np.ndarray) -> np.ndarray:
     return t
 
 
-def _global_sides(unit: np.ndarray, when: np.ndarray | None, ev: EvaluationSection, rng) -> np.ndarray:
+def global_sides(unit: np.ndarray, when: np.ndarray | None, ev: EvaluationSection, rng) -> np.ndarray:
     """Random or time split of the units, the fractions applied to units: test first, then validation
-    from the rest. Returns each row's side."""
+    from the rest. Returns each row's side (unit = arange(n) places n units: data/baskets.py)."""
     n_units = int(unit.max(initial=-1)) + 1
     if ev.split == "time" and when is not None:
         order = np.argsort(_unit_time(unit, n_units, when), kind="stable")

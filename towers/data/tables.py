@@ -23,7 +23,7 @@ def read_table(path: str | Path, columns: list[str] | None = None) -> pd.DataFra
     CSV handling: a UTF-8 byte-order mark, quoted delimiters and Windows line ends are read correctly.
     """
     path = Path(path)
-    suffix = _check_file(path)
+    suffix = check_file(path)
     try:
         if suffix in (".parquet", ".pq"):
             import pyarrow.parquet as pq
@@ -63,7 +63,7 @@ def read_table(path: str | Path, columns: list[str] | None = None) -> pd.DataFra
     return df
 
 
-def _check_file(path: Path) -> str:
+def check_file(path: Path) -> str:
     """The table's suffix, after checking that it is an existing file of a readable format."""
     if not path.exists():
         raise TowersError(f"{path}: file not found; check the path in the config (relative paths start at the config file)")
@@ -99,7 +99,7 @@ def read_table_chunks(path: str | Path, columns: list[str], rows: int):
     and yielded as one piece. The checks and messages are read_table's; an empty table yields nothing.
     """
     path = Path(path)
-    suffix = _check_file(path)
+    suffix = check_file(path)
     if suffix not in (".parquet", ".pq"):
         df = read_table(path, columns=columns)
         yield 0, df[columns]

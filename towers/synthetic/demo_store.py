@@ -128,6 +128,11 @@ _BASKETS_PER_YEAR = 12.5
 _STAR_MEAN, _STAR_SPREAD, _STAR_NOISE = 3.7, 0.9, 0.7
 _RATED_SHARE = 0.25
 _CHUNK = 512             # customers per sampling chunk: bounds memory to CHUNK x n_items
+_OUT_OF_STOCK = 0.07     # share of items out of stock on the day the files are written
+_ONLINE_SHARE = 0.55     # share of baskets with a browsing session on the shop's website before them
+_EXTRA_VIEWS = 3.0       # mean views of items not bought in such a session (drawn from the same taste model)
+_SESSION_MINUTES = 25.0  # a session's views spread over up to this many minutes before the order
+_FIRST_ORDER = 260_001   # order numbers count up from here in time order
 
 # ---------------------------------------------------------------- writing helpers
 
@@ -269,6 +274,7 @@ def _items_table(items: dict, rows: np.ndarray) -> pa.Table:
         "price": pa.array(price, pa.float64(), mask=np.isnan(price)),
         "tags": _list_array(offsets, tag_values),
         "description_vector": _list_array(np.arange(len(rows) + 1) * d, desc_values),
+        "in_stock": pa.array(items["in_stock"][rows], pa.bool_()),
     })
 
 
@@ -384,6 +390,55 @@ def _draw_lines(rng, u64, v64, b64, outdoor, line_cust, line_season) -> np.ndarr
     return out
 
 
+# ---------------------------------------------------------------- raw exports
+
+def _write_exports(out: pathlib.Path, rng, items: dict, cust_ids: np.ndarray, u64, v64, b64, outdoor,
+                   basket_cust, basket_time, basket_day, line_basket, line_item, quantity, doy) -> dict:
+    """The shop's own exports of the same sales: orders.csv (one line per basket line, as the till
+    exports them) and views.csv (a clickstream: a browsing session before some baskets, viewing the
+    items bought plus a few others drawn from the customer's taste)."""
+    n_b = len(basket_cust)
+    # order numbers in time order; a line's price is the shelf price (the department's typical
+    # price where the catalog has none)
+    rank = np.empty(n_b, dtype=np.int64)
+    rank[np.lexsort((basket_cust, basket_time))] = np.arange(n_b)
+    order_id = _FIRST_ORDER + rank
+    shelf = items["price"][:len(v64)]
+    shelf = np.where(np.isnan(shelf), np.ceil(_DEPT_PRICE[items["department"][:len(v64)]]) - 0.01, shelf)
+    line_time = basket_time[line_basket]
+    ordl = np.lexsort((line_item, basket_cust[line_basket], line_time))
+    paths = {"orders": _write_csv(out / "orders.csv", pd.DataFrame({
+        "order_id": order_id[line_basket[ordl]],
+        "customer_id": cust_ids[basket_cust[line_basket[ordl]]],
+        "product_id": items["ids"][line_item[ordl]],
+        "quantity": quantity[ordl].astype(np.int64),
+        "price": shelf[line_item[ordl]],
+        "ordered_at": np.char.replace(np.datetime_as_string(line_time[ordl], unit="s"), "T", " "),
+    }))}
+
+    online = np.flatnonzero(rng.random(n_b) < _ONLINE_SHARE)  # ascending, so by customer as _draw_lines needs
+    n_extra = rng.poisson(_EXTRA_VIEWS, size=len(online))
+    extra_basket = np.repeat(online, n_extra)
+    extra_item = _draw_lines(rng, u64, v64, b64, outdoor, basket_cust[extra_basket],
+                             _season(doy[basket_day[extra_basket]]))
+    bought = np.isin(line_basket, online)
+    view_basket = np.concatenate([line_basket[bought], extra_basket])
+    view_item = np.concatenate([line_item[bought], extra_item])
+    length = rng.uniform(2.0, _SESSION_MINUTES, size=n_b)  # minutes from a session's first view to its order
+    offset = rng.random(len(view_basket)) * length[view_basket] + 0.5
+    view_time = basket_time[view_basket] - (offset * 60).astype("timedelta64[s]")
+    session = np.empty(n_b, dtype=np.int64)
+    session[online] = np.arange(len(online))
+    ordv = np.lexsort((view_item, view_time, session[view_basket]))
+    paths["views"] = _write_csv(out / "views.csv", pd.DataFrame({
+        "session_id": np.char.add("S", np.char.zfill(session[view_basket[ordv]].astype(str), 7)),
+        "customer_id": cust_ids[basket_cust[view_basket[ordv]]],
+        "product_id": items["ids"][view_item[ordv]],
+        "viewed_at": np.char.replace(np.datetime_as_string(view_time[ordv], unit="s"), "T", " "),
+    }))
+    return paths
+
+
 # ---------------------------------------------------------------- main entry
 
 def generate_store(out_dir, seed: int = 7, n_items: int = 3000, n_customers: int = 4000,
@@ -404,6 +459,10 @@ def generate_store(out_dir, seed: int = 7, n_items: int = 3000, n_customers: int
     n_all = n_items + n_new_items
 
     items = _make_items(rng, n_all, n_items, desc_dim)
+    # The raw exports and the stock flags draw from a generator of their own, so every draw of `rng`
+    # (and so every other file) is what it was before they existed.
+    export_rng = np.random.default_rng([seed, 1])
+    items["in_stock"] = export_rng.random(n_all) >= _OUT_OF_STOCK
     cust = _make_customers(rng, n_customers)
     u, v, b = _plant_vectors(rng, items, cust, n_items, true_rank)
     u64, v64, b64 = u.astype(np.float64), v.astype(np.float64), b.astype(np.float64)
@@ -510,6 +569,9 @@ def generate_store(out_dir, seed: int = 7, n_items: int = 3000, n_customers: int
         "item_b": item_ids.take(pa.array(pair_key % n_items)),
         "times": pa.array(times.astype(np.int64), pa.int64()),
     }))
+
+    paths.update(_write_exports(out, export_rng, items, cust_ids, u64, v64[:n_items], b64[:n_items], outdoor,
+                                basket_cust, basket_time, basket_day, line_basket, line_item, quantity, doy))
 
     truth = out / "truth"
     cust = np.asarray(cust_ids, dtype=np.int64)
