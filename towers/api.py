@@ -14,12 +14,13 @@ from towers.evaluation.protocol import format_table
 from towers.runs.align import align_run, format_drift
 from towers.runs.report import write_report
 from towers.runs.run import Run
+from towers.runs.summary import describe
 from towers.runs.sweep import run_sweep
 from towers.runs.train import train_run
 from towers.runs.tune import run_tune
 from towers.synthetic.demo_store import generate_store
 
-__all__ = ["Run", "align_run", "format_drift", "format_table", "generate_store", "load", "run_sweep", "run_tune",
+__all__ = ["Run", "align_run", "describe", "format_drift", "format_table", "generate_store", "load", "run_sweep", "run_tune",
            "train", "write_report"]
 
 
