@@ -6,6 +6,7 @@ import dataclasses
 import re
 import warnings
 import zipfile
+from collections.abc import Sequence
 from pathlib import Path
 
 import numpy as np
@@ -40,6 +41,7 @@ from towers.errors import TowersError
 from towers.evaluation.protocol import evaluate_slices, oracle_scorer, popularity_scorer, reference_scorers
 from towers.model.bundle import load_bundle
 from towers.model.embed import EMBED_CHUNK, reads_history
+from towers.runs import lists as L
 from towers.runs.folder import EMBEDDINGS, SUBFOLDER_MODELS, TOWERS, RunFolder
 from towers.search.scorer import Scorer, excluded_cells
 
@@ -377,30 +379,22 @@ class Run:
                               "check the id, or retrain with this entity in the feature table")
         return torch.from_numpy(rows.astype(np.int64))
 
-    def _ranked_frame(self, query_ids, idx, scores, item_ids) -> pd.DataFrame:
-        q, n = idx.shape
-        valid = (idx >= 0).numpy().reshape(-1)
-        flat = idx.numpy().reshape(-1)
-        return pd.DataFrame({
-            "query_id": np.repeat(np.asarray(query_ids, dtype=object), n)[valid],
-            "rank": np.tile(np.arange(1, n + 1), q)[valid],
-            "item_id": item_ids[flat[valid]],
-            "score": scores.numpy().reshape(-1)[valid],
-        })
-
-    def recommend(self, user_ids, top: int = 10, exclude_known: bool = True, context: dict | None = None) -> pd.DataFrame:
-        """Top items per user (query_id, rank, item_id, score); the user's training and validation pairs excluded.
+    def recommend(self, user_ids, top: int = 10, exclude_known: bool = True, context: dict | None = None,
+                  columns: Sequence[str] = (), keep: L.ItemFilter | None = None, item_table=None) -> pd.DataFrame:
+        """Top items per user (query_id, rank, item_id, score, then `columns`); the user's training and
+        validation pairs excluded.
 
         context: {column: value} for runs with context columns; without it the users' exported
-        vectors (averaged over the training context mix) are used.
+        vectors (averaged over the training context mix) are used. columns: item table columns added
+        to each listed item; keep: an ItemFilter applied inside the top-N; item_table: the table both
+        read (default: the run's config items.path). See lists.py.
         """
-        if top <= 0:
-            raise TowersError(f"{self.dir}: --top must be a positive whole number, got {top}; ask for at least 1 item")
+        L.check_top(self, top)
         if context and self.context is None:
             raise TowersError(f"{self.dir}: this run was trained without context columns; drop --context")
         q_ids = self.embeddings(self._query_side())[0]
-        i_ids = self.embeddings("item")[0]
         rows = self._rows(q_ids, pd.unique(np.asarray(list(user_ids), dtype=object)), "query" if self.item_item else "user")
+        lists = L.lists_for(self, columns, keep, item_table)
         vectors = None
         if context:
             with torch.no_grad():
@@ -410,19 +404,20 @@ class Run:
             tr, va = self.pairs["train"], self.pairs["valid"]
             ex_r, ex_c = excluded_cells(rows, torch.cat([tr["query"], va["query"]]),
                                         torch.cat([tr["candidate"], va["candidate"]]), exclude_self=self.item_item)
-        idx, scores = self._scorer(TOWERS).for_queries(rows, vectors).top(top, ex_r, ex_c)
-        return self._ranked_frame(q_ids[rows.numpy()], idx, scores, i_ids)
+        idx, scores = lists.top(self._scorer(TOWERS).for_queries(rows, vectors), top, ex_r, ex_c)
+        return lists.frame(q_ids[rows.numpy()], idx, scores)
 
-    def recommend_history(self, item_ids, top: int = 10, context: dict | None = None) -> pd.DataFrame:
+    def recommend_history(self, item_ids, top: int = 10, context: dict | None = None, columns: Sequence[str] = (),
+                          keep: L.ItemFilter | None = None, item_table=None) -> pd.DataFrame:
         """Top items (query_id, rank, item_id, score) for a new user known only by a few items.
 
         The user's vector is the query tower's on an empty feature row (every feature missing, the id
         unknown, as the encoders treat values they never saw) plus this history (item ids, the last
         the latest; embed_users' rules). The given items that are in the run are excluded from the
-        ranking. query_id is "(history)". Needs a run trained with model.history_length > 0.
+        ranking. query_id is "(history)". Needs a run trained with model.history_length > 0. columns,
+        keep, item_table: as recommend.
         """
-        if top <= 0:
-            raise TowersError(f"{self.dir}: --top must be a positive whole number, got {top}; ask for at least 1 item")
+        L.check_top(self, top)
         if self.item_item:
             raise TowersError(f"{self.dir}: this run is item_item: it has no user tower; use similar for items")
         if context and self.context is None:
@@ -432,6 +427,7 @@ class Run:
             raise TowersError(f"{self.dir}: --history needs at least one item id")
         history = (HISTORY, "|")
         self._check_history(history)
+        lists = L.lists_for(self, columns, keep, item_table)
         encoders, tower, bias_table = self._side_parts("users")
         frame = pd.DataFrame({e.name: pd.Series([None], dtype=object) for e in encoders.encoders})
         frame[HISTORY] = pd.Series([items], dtype=object)
@@ -449,26 +445,50 @@ class Run:
         at = pd.Index(i_ids).get_indexer(align_id_types(ids, i_ids))
         given = torch.from_numpy(np.unique(at[at >= 0]).astype(np.int64))  # the given items in the run, left out
         scorer = dataclasses.replace(self._scorer(TOWERS), query_vectors=vectors, query_bias=bias)
-        idx, scores = scorer.top(top, torch.zeros(len(given), dtype=torch.int64), given)
-        return self._ranked_frame(["(history)"], idx, scores, i_ids)
+        idx, scores = lists.top(scorer, top, torch.zeros(len(given), dtype=torch.int64), given)
+        return lists.frame(["(history)"], idx, scores)
 
-    def similar(self, item_ids, top: int = 10) -> pd.DataFrame:
-        """Most similar items (query_id, rank, item_id, score), the item itself excluded.
+    def similar(self, item_ids, top: int = 10, columns: Sequence[str] = (), keep: L.ItemFilter | None = None,
+                item_table=None) -> pd.DataFrame:
+        """Most similar items (query_id, rank, item_id, score, then `columns`), the item itself excluded.
 
         user_item runs: cosine similarity of item embeddings. item_item runs: the trained pair score.
+        columns, keep, item_table: as recommend.
         """
-        if top <= 0:
-            raise TowersError(f"{self.dir}: --top must be a positive whole number, got {top}; ask for at least 1 item")
+        L.check_top(self, top)
         i_ids, i_vec = self.embeddings("item")[:2]
         rows = self._rows(i_ids, item_ids, "item")
+        lists = L.lists_for(self, columns, keep, item_table)
         self_rows = torch.arange(len(rows))
         if self.item_item:
             scorer = self._scorer(TOWERS)
         else:
             unit = torch.nn.functional.normalize(i_vec, dim=1)
             scorer = Scorer(unit, unit)
-        idx, scores = scorer.for_queries(rows).top(top, self_rows, rows)
-        return self._ranked_frame(i_ids[rows.numpy()], idx, scores, i_ids)
+        idx, scores = lists.top(scorer.for_queries(rows), top, self_rows, rows)
+        return lists.frame(i_ids[rows.numpy()], idx, scores)
+
+    def recommend_rows(self, df: pd.DataFrame, top: int = 10, history_column: str | None = None,
+                       columns: Sequence[str] = (), keep: L.ItemFilter | None = None, item_table=None,
+                       separator: str = "|", source: str = "users") -> pd.DataFrame:
+        """Lists for users given by feature rows, not in the run (embed_users' rules; history_column for runs
+        with model.history_length > 0, whose items in the run are left out). query_id: the id column, or
+        "row N" when the rows have none. columns, keep, item_table: as recommend."""
+        return L.recommend_rows(self, df, top, history_column, columns, keep, item_table, separator, source)
+
+    def similar_rows(self, df: pd.DataFrame, top: int = 10, columns: Sequence[str] = (),
+                     keep: L.ItemFilter | None = None, item_table=None, source: str = "items") -> pd.DataFrame:
+        """Lists of the run's items most similar to new items embedded from their feature rows (similar's score);
+        query_id as recommend_rows. columns, keep, item_table: as recommend."""
+        return L.similar_rows(self, df, top, columns, keep, item_table, source)
+
+    def write_lists(self, out: str | Path, user_ids=None, top: int = 10, columns: Sequence[str] = (),
+                    keep: L.ItemFilter | None = None, item_table=None, progress: str = "auto",
+                    source: str = "user_ids") -> int:
+        """Every user's list (recommend's, known pairs excluded), or those of user_ids (ids not in the run
+        skipped with a warning), streamed block by block to a parquet file written atomically and
+        owner-only; returns the rows written. columns, keep, item_table: as recommend."""
+        return L.write_run_lists(self, out, user_ids, top, columns, keep, item_table, progress, source)
 
     # ---- evaluation -----------------------------------------------------------------------------
     def _scorer(self, model: str) -> Scorer:
