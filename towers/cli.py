@@ -109,6 +109,9 @@ def _parser() -> argparse.ArgumentParser:
     v.add_argument("--port", type=int, default=8080, help="port to listen on (default 8080; 0 picks a free one)")
     v.add_argument("--threads", type=int, metavar="N",
                    help="requests answered at once, each on one torch thread (default: one per core)")
+    v.add_argument("--item-table", metavar="FILE",
+                   help="the item table that item columns and filters read, again on each such request (default: the "
+                        "run's config items.path)")
 
     d = sub.add_parser("demo-data", help="generate the fictional hardware-and-garden store data")
     d.add_argument("--out", required=True, help="folder to write the demo tables into")
@@ -198,7 +201,8 @@ def run(args: argparse.Namespace) -> int:
     if args.command == "serve":
         from towers import service  # FastAPI and uvicorn are imported only when a server starts
 
-        service.serve(args.run_dir, args.host, args.port, args.threads, announce=lambda line: print(line, flush=True))
+        service.serve(args.run_dir, args.host, args.port, args.threads, args.item_table,
+                      announce=lambda line: print(line, flush=True))
         return 0
     if args.command == "report":
         print(f"wrote {api.write_report(args.run_dir)}")

@@ -25,6 +25,7 @@ import pytest
 import towers
 import towers.service
 from towers.cli import main as cli
+from towers.runs.lists import ItemFilter
 
 from ..conftest import ROOT
 from ..helpers import read_vectors
@@ -193,6 +194,43 @@ def test_embed_users_with_histories_equals_the_run_api(server, run, small_store,
     assert [e["id"] for e in answer["embeddings"]] == want["id"].tolist()
 
 
+def test_item_columns_and_filters_equal_the_run_api(server, run, ids, small_store):
+    users = [int(u) for u in ids[0][:2]]
+    keep = {"only_values": {"department": ["Garden", "Hand Tools"]}, "never_ids": [ids[1][0]]}
+    body = {"users": users, "top": 5, "columns": ["name", "price", "tags"], "keep": keep}
+    status, answer = server.call("POST", "/recommend", body)
+    assert status == 200
+    want = run.recommend(users, 5, columns=["name", "price", "tags"], keep=ItemFilter.from_dict(keep))
+    assert _rows(answer["lists"]) == _table(want)  # reference: the Run API
+    table = pd.read_parquet(small_store / "items.parquet").set_index("item_id")  # reference: the item table (pandas)
+    for item in (i for each in answer["lists"] for i in each["items"]):
+        row = table.loc[item["item_id"]]
+        assert row["department"] in ("Garden", "Hand Tools") and item["item_id"] != ids[1][0]
+        assert (item["name"], item["price"], item["tags"]) == (row["name"], row["price"], list(row["tags"]))
+
+
+def test_a_new_users_row_and_history_equal_recommend_rows(server, run, small_store, ids):
+    user = pd.read_csv(small_store / "customers.csv").head(1).assign(customer_id=lambda d: d.customer_id + 10**7)
+    history = [ids[1][4], ids[1][6]]
+    body = {"user_row": user.iloc[0].to_dict(), "history": history, "top": 6, "columns": ["department"]}
+    status, answer = server.call("POST", "/recommend", json.loads(json.dumps(body, default=lambda v: v.item())))
+    assert status == 200
+    frame = user.assign(recent=[history])
+    want = run.recommend_rows(frame, 6, history_column="recent", columns=["department"])  # reference: the Run API
+    assert _rows(answer["lists"]) == _table(want)
+    assert not {i["item_id"] for i in answer["lists"][0]["items"]} & set(history)  # the history's items left out
+
+
+def test_a_new_items_row_equals_similar_rows(server, run, small_store):
+    table = pd.read_parquet(small_store / "new_items.parquet").head(1)
+    row = {k: (v.tolist() if isinstance(v, np.ndarray) else v) for k, v in table.iloc[0].to_dict().items()}
+    status, answer = server.call("POST", "/similar", {"item_row": row, "top": 4, "keep": {"never_values": {
+        "department": "Garden"}}})
+    assert status == 200
+    want = run.similar_rows(table, 4, keep=ItemFilter.from_dict({"never_values": {"department": "Garden"}}))
+    assert _rows(answer["lists"]) == _table(want)  # reference: the Run API
+
+
 def test_concurrent_clients_get_their_own_answers_and_notes(server, run, ids):
     """8 clients on keep-alive connections at once: each answer equals the Run API's for its request, and a
     note (a history id left out) reaches only the request that caused it."""
@@ -246,7 +284,7 @@ BAD = [
     ("unknown item", "POST", "/similar", {"items": [UNKNOWN_ITEM]}, None, 422, f"unknown item id '{UNKNOWN_ITEM}'"),
     ("unknown user", "POST", "/recommend", {"users": [1]}, None, 422, "unknown user id 1"),
     ("text id for numeric users", "POST", "/recommend", {"users": ["nobody"]}, None, 422, "not a number"),
-    ("users and history", "POST", "/recommend", {"users": [1], "history": [ITEM]}, None, 422, "give either 'users'"),
+    ("users and history", "POST", "/recommend", {"users": [1], "history": [ITEM]}, None, 422, "give one of 'users'"),
     ("context without context columns", "POST", "/recommend", {"history": [ITEM], "context": {"channel": "app"}},
      None, 422, "without context columns"),
     ("embed without a column", "POST", "/embed", {"side": "items", "rows": [{"item_id": "TR-NEW"}]}, None, 422,
@@ -258,6 +296,17 @@ BAD = [
      None, 422, "finite number"),
     ("history for items", "POST", "/embed", {"side": "items", "rows": [{"item_id": "X"}], "history": [[ITEM]]}, None,
      422, "history"),
+    ("unknown filter key", "POST", "/similar", {"items": [ITEM], "keep": {"sometimes": ["x"]}}, None, 422,
+     "keep.sometimes"),
+    ("unknown item column", "POST", "/similar", {"items": [ITEM], "columns": ["colour"]}, None, 422,
+     "the item table, column 'colour': no such column"),
+    ("a list column's name", "POST", "/similar", {"items": [ITEM], "columns": ["score"]}, None, 422,
+     "already have a column of that name"),
+    ("only_true on text", "POST", "/similar", {"items": [ITEM], "keep": {"only_true": ["department"]}}, None, 422,
+     "not true or false"),
+    ("ids and a row", "POST", "/similar", {"items": [ITEM], "item_row": {"item_id": "X"}}, None, 422, "either 'items'"),
+    ("context with a user row", "POST", "/recommend", {"user_row": {"customer_id": 1}, "context": {"a": 1}}, None, 422,
+     "not with 'user_row'"),
     ("sent as a form", "POST", "/similar", b"items=TR-00001", {"Content-Type": "application/x-www-form-urlencoded"},
      415, "Content-Type: application/json"),
     ("body too large", "POST", "/similar", BIG, None, 413, "larger than 1,048,576 bytes"),
@@ -268,12 +317,12 @@ BAD = [
 
 @pytest.mark.parametrize("case, method, path, body, headers, status, words", BAD, ids=[b[0] for b in BAD])
 def test_a_bad_request_gets_one_line_and_the_server_keeps_serving(server, case, method, path, body, headers, status,
-                                                                   words):
+                                                                   words, tmp_path_factory):
     raw = body if isinstance(body, bytes) else None
     got, answer = server.call(method, path, None if raw is not None else body, raw=raw, headers=headers)
     assert got == status and list(answer) == ["error"]
     assert words in answer["error"] and "\n" not in answer["error"]  # one line: the CLI's error contract
-    assert str(server.log_path.parent) not in answer["error"]  # the server's paths stay on the server
+    assert str(tmp_path_factory.getbasetemp()) not in answer["error"]  # the server's paths (run, tables) stay on it
     assert server.call("POST", "/similar", {"items": [ITEM], "top": 2})[0] == 200  # and it keeps serving
 
 

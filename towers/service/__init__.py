@@ -11,6 +11,7 @@ from __future__ import annotations
 import os
 import socket
 import warnings
+from pathlib import Path
 
 from towers import api
 from towers.errors import TowersError
@@ -45,15 +46,19 @@ def listen(host: str, port: int) -> socket.socket:
     return sock
 
 
-def serve(run_dir, host: str = "127.0.0.1", port: int = 8080, threads: int | None = None, announce=print) -> None:
+def serve(run_dir, host: str = "127.0.0.1", port: int = 8080, threads: int | None = None, item_table=None,
+          announce=print) -> None:
     """Serve a run folder on host:port until Ctrl-C (returns) or SIGTERM (ends the process); blocks.
 
     The run is loaded and warmed up once (towers/service/app.py), then `threads` worker threads
     (default: one per core) answer requests, each running torch on one thread. `announce` gets one
-    line with the address once the server listens.
+    line with the address once the server listens. item_table: the table item columns and filters read
+    (default: the run's config items.path), read again on each request that needs it.
     """
     if threads is not None and threads < 1:
         raise TowersError(f"--threads must be a positive whole number, got {threads}")
+    if item_table is not None and not Path(item_table).is_file():
+        raise TowersError(f"{item_table}: no such file; give --item-table an item table (CSV or parquet)")
     try:
         import uvicorn
 
@@ -66,7 +71,7 @@ def serve(run_dir, host: str = "127.0.0.1", port: int = 8080, threads: int | Non
     try:
         run = api.load(run_dir)
         threads = threads or default_threads()
-        application = service_app.make_app(run, threads)
+        application = service_app.make_app(run, threads, item_table)
     except BaseException:
         sock.close()
         raise

@@ -21,6 +21,7 @@ import json
 import logging
 import threading
 import warnings
+from pathlib import Path
 from typing import Annotated, Any, Literal
 
 import anyio
@@ -34,7 +35,9 @@ from pydantic import BaseModel, ConfigDict, Field, PlainValidator, model_validat
 from starlette.exceptions import HTTPException
 
 from towers import api
+from towers.data.history import HISTORY
 from towers.errors import TowersError
+from towers.runs.lists import LIST_COLUMNS, ItemFilter
 
 MAX_BODY_BYTES = 1 << 20  # 1 MiB
 DRAIN_BYTES = 16 << 20  # a larger body is read and dropped up to this size before the 413 answer
@@ -107,22 +110,56 @@ class _Request(BaseModel):
     model_config = ConfigDict(extra="forbid", strict=True)
 
 
-class RecommendRequest(_Request):
+Columns = Annotated[list[Annotated[str, Field(min_length=1, max_length=MAX_ID_TEXT)]], Field(max_length=MAX_COLUMNS)]
+Values = Annotated[dict[str, Annotated[list[Scalar], Field(max_length=MAX_LIST)] | Scalar], Field(max_length=MAX_COLUMNS)]
+
+
+class KeepRequest(_Request):
+    """An item filter (towers.runs.lists.ItemFilter.from_dict's keys)."""
+
+    only_true: Columns | None = None
+    only_values: Values | None = None
+    never_values: Values | None = None
+    never_ids: Annotated[list[Id], Field(max_length=MAX_HISTORY)] | None = None
+
+
+class _ListRequest(_Request):
+    top: Top = 10
+    columns: Columns = []
+    keep: KeepRequest | None = None
+
+    def list_options(self) -> dict:
+        """columns= and keep= of the run's list methods."""
+        keep = None if self.keep is None else ItemFilter.from_dict(self.keep.model_dump(exclude_none=True))
+        return {"columns": list(self.columns), "keep": keep}
+
+
+class RecommendRequest(_ListRequest):
     users: Ids | None = None
     history: History | None = None
-    top: Top = 10
+    user_row: Row | None = None
     context: Context | None = None
 
     @model_validator(mode="after")
     def _one_query(self):
-        if (self.users is None) == (self.history is None):
-            raise ValueError("give either 'users' (ids of the run's users) or 'history' (item ids of a new user)")
+        if (self.users is None) == (self.history is None and self.user_row is None) or \
+                (self.users is not None and self.history is not None):
+            raise ValueError("give one of 'users' (ids of the run's users), 'history' (item ids of a new user) or "
+                             "'user_row' (a new user's feature row, with or without 'history')")
+        if self.user_row is not None and self.context is not None:
+            raise ValueError("'context' goes with 'users' or 'history', not with 'user_row'")
         return self
 
 
-class SimilarRequest(_Request):
-    items: Ids
-    top: Top = 10
+class SimilarRequest(_ListRequest):
+    items: Ids | None = None
+    item_row: Row | None = None
+
+    @model_validator(mode="after")
+    def _one_query(self):
+        if (self.items is None) == (self.item_row is None):
+            raise ValueError("give either 'items' (ids of the run's items) or 'item_row' (a new item's feature row)")
+        return self
 
 
 class EmbedRequest(_Request):
@@ -139,17 +176,34 @@ class EmbedRequest(_Request):
 
 # ---- answers ------------------------------------------------------------------------------------
 def _plain(value):
-    return value.item() if isinstance(value, np.generic) else value
+    """A value of a list table as JSON takes it: numpy scalars and arrays as Python ones, missing as None."""
+    if isinstance(value, np.ndarray):
+        return [_plain(v) for v in value.tolist()]
+    if isinstance(value, (list, tuple)):
+        return [_plain(v) for v in value]
+    if isinstance(value, np.generic):
+        value = value.item()
+    if value is None or value is pd.NA or value is pd.NaT or (isinstance(value, float) and not np.isfinite(value)):
+        return None
+    if isinstance(value, (pd.Timestamp, np.datetime64)) or hasattr(value, "isoformat"):
+        return value.isoformat()
+    return value
 
 
 def ranked_lists(frame: pd.DataFrame) -> list[dict]:
-    """A recommend or similar table as one list per query, in the table's order (each starts at rank 1)."""
+    """A recommend or similar table as one list per query, in the table's order (each starts at rank 1); the
+    item columns asked for sit beside rank, item_id and score."""
     lists: list[dict] = []
-    for query, rank, item, score in zip(frame["query_id"].tolist(), frame["rank"].tolist(),
-                                        frame["item_id"].tolist(), frame["score"].tolist()):
+    extra = [c for c in frame.columns if c not in LIST_COLUMNS]
+    values = [frame[c].tolist() for c in extra]
+    for at, (query, rank, item, score) in enumerate(zip(frame["query_id"].tolist(), frame["rank"].tolist(),
+                                                        frame["item_id"].tolist(), frame["score"].tolist())):
         if rank == 1:
             lists.append({"query_id": _plain(query), "items": []})
-        lists[-1]["items"].append({"rank": rank, "item_id": _plain(item), "score": score})
+        entry = {"rank": rank, "item_id": _plain(item), "score": score}
+        for name, column in zip(extra, values):
+            entry[name] = _plain(column[at])
+        lists[-1]["items"].append(entry)
     return lists
 
 
@@ -184,9 +238,12 @@ def _validation_message(errors: list[dict]) -> tuple[int, str]:
     return 422, line + (f" (and {more} more problem{'s' if more != 1 else ''})" if more else "")
 
 
-def _towers_message(exc: TowersError, run) -> str:
-    """The library's one line, without the server's run folder path in front."""
-    return str(exc).removeprefix(f"{run.dir}: ").splitlines()[0]
+def _towers_message(exc: TowersError, hidden: dict[str, str]) -> str:
+    """The library's one line, with the server's own paths (hidden: path -> plain words) left out."""
+    text = str(exc).splitlines()[0]
+    for path, words in hidden.items():
+        text = text.removeprefix(f"{path}: ").replace(path, words)
+    return text
 
 
 def collect_notes(previous):
@@ -290,12 +347,15 @@ async def _refuse(send, status: int, message: str) -> None:
     await send({"type": "http.response.body", "body": body})
 
 
-def make_app(run, threads: int) -> FastAPI:
-    """The FastAPI application serving `run` (a loaded towers.Run) on `threads` worker threads."""
+def make_app(run, threads: int, item_table=None) -> FastAPI:
+    """The FastAPI application serving `run` (a loaded towers.Run) on `threads` worker threads; item_table: the
+    table that item columns and filters read (default: the run's config items.path), read on each such request."""
     warm_up(run)
     summary = api.describe(run)
     limiter = anyio.CapacityLimiter(threads)
     rows_lock = threading.Lock()
+    table = item_table if item_table is not None else (run.config.items.path if run.config and run.config.items else None)
+    hidden = {str(run.dir): "the run"} | ({str(Path(table)): "the item table"} if table else {})
     app = FastAPI(title="towers", docs_url=None, redoc_url=None, openapi_url=None)
     app.add_middleware(_BodyCheck, limit=MAX_BODY_BYTES)
 
@@ -309,7 +369,7 @@ def make_app(run, threads: int) -> FastAPI:
         try:
             body = await anyio.to_thread.run_sync(_in_worker, work, limiter=limiter)
         except TowersError as exc:
-            return _error(422, _towers_message(exc, run))
+            return _error(422, _towers_message(exc, hidden))
         except Exception:
             log.exception("internal error answering %s", what)  # the traceback, never the request body
             return _error(500, INTERNAL)
@@ -345,17 +405,32 @@ def make_app(run, threads: int) -> FastAPI:
     @app.post("/recommend")
     async def recommend(req: RecommendRequest):
         def work():
+            options = req.list_options() | {"item_table": item_table}
             if req.users is not None:
-                frame = run.recommend(req.users, req.top, context=req.context)
+                frame = run.recommend(req.users, req.top, context=req.context, **options)
+            elif req.user_row is None:
+                frame = run.recommend_history(req.history, req.top, context=req.context, **options)
             else:
-                frame = run.recommend_history(req.history, req.top, context=req.context)
+                row = pd.DataFrame.from_records([req.user_row])
+                if req.history is not None:
+                    row[HISTORY] = pd.Series([req.history], dtype=object)
+                frame = run.recommend_rows(row, req.top, history_column=HISTORY if req.history is not None else None,
+                                           source="user_row", **options)
             return {"lists": ranked_lists(frame)}
 
-        return await answer(work, "POST /recommend")
+        return await answer(work, "POST /recommend", rows=req.user_row is not None)
 
     @app.post("/similar")
     async def similar(req: SimilarRequest):
-        return await answer(lambda: {"lists": ranked_lists(run.similar(req.items, req.top))}, "POST /similar")
+        def work():
+            options = req.list_options() | {"item_table": item_table}
+            if req.items is not None:
+                frame = run.similar(req.items, req.top, **options)
+            else:
+                frame = run.similar_rows(pd.DataFrame.from_records([req.item_row]), req.top, source="item_row", **options)
+            return {"lists": ranked_lists(frame)}
+
+        return await answer(work, "POST /similar", rows=req.item_row is not None)
 
     @app.post("/embed")
     async def embed(req: EmbedRequest):
