@@ -31,7 +31,9 @@ def default_threads() -> int:
 def listen(host: str, port: int) -> socket.socket:
     """A TCP socket bound to host:port (port 0: a free one) and listening; one line on failure."""
     family = socket.AF_INET6 if ":" in host else socket.AF_INET
-    sock = socket.socket(family, socket.SOCK_STREAM)
+    # IPPROTO_TCP named, not 0: asyncio sets TCP_NODELAY only on sockets whose proto says TCP, and without it
+    # each answer on a kept-alive connection waited about 40 ms (Nagle's algorithm against delayed ACKs)
+    sock = socket.socket(family, socket.SOCK_STREAM, socket.IPPROTO_TCP)
     try:
         sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
         sock.bind((host, port))
