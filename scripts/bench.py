@@ -42,6 +42,9 @@ SIZES = {
     "embed": ({"items": 1_000_000}, {"items": 300_000}),
     "serve": ({"events": 200_000, "items": 20_000, "requests": 2_000},
               {"events": 50_000, "items": 5_000, "requests": 400}),
+    # lists for a slice of the users, timed and extrapolated to all of them (the whole run would take long)
+    "lists": ({"users": 1_000_000, "items": 200_000, "slice": 20_000, "top": 10, "known": 10},
+              {"users": 200_000, "items": 50_000, "slice": 5_000, "top": 10, "known": 10}),
 }
 CASES = tuple(SIZES)
 K = 64  # k, the embedding size, in every case
@@ -776,12 +779,63 @@ def case_serve_run(size: dict, work: Path) -> dict:
     return result
 
 
+def case_lists(size: dict, work: Path) -> dict:
+    """The nightly batch (runs/lists.write_lists: stock filter, one item column, known pairs excluded, parquet
+    out) on random vectors, for a slice of the users, against the plain top-N of the same slice."""
+    import numpy as np
+    import pyarrow as pa
+    import torch
+
+    from towers.runs import lists as L
+    from towers.search import retrieval as R
+    from towers.search.scorer import Scorer
+
+    g = torch.Generator().manual_seed(21)
+    nu, ni, top, part = size["users"], size["items"], size["top"], size["slice"]
+    common = torch.randn(K, generator=g)
+    users = torch.randn(nu, K, generator=g) + 0.3 * common
+    items = (torch.randn(ni, K, generator=g) + 0.3 * common) * torch.rand(ni, 1, generator=g).add(0.5)
+    bias = torch.randn(ni, generator=g) * 0.5
+    scorer = Scorer(users, items, None, bias)
+    known = L.known_by_query(torch.arange(nu).repeat_interleave(size["known"]),
+                             torch.randint(0, ni, (nu * size["known"],), generator=g), nu)
+    rng = np.random.default_rng(21)
+    in_stock = rng.random(ni) < 0.8  # a fifth of the shelf out of stock tonight
+    item_ids = np.asarray([f"SKU-{i:07d}" for i in range(ni)], dtype=object)
+    lists = L.Lists(item_ids, torch.from_numpy(np.flatnonzero(in_stock)), {"price": pa.array(rng.uniform(1, 90, ni))})
+    user_ids = np.arange(10_000_000, 10_000_000 + nu, dtype=np.int64)
+    rows = torch.arange(part)
+    # warm-up: loads the selection kernels and measures, once, whether bfloat16 products are fast here
+    L.write_lists(work / "warm.parquet", scorer, lists, user_ids, torch.arange(L.BATCH_USERS), top, known, False, "plain")
+    ex_r, ex_c = L.block_exclusions(rows, *known)
+    written = []
+    rss_before = status_bytes("VmRSS")
+    peak_ok = reset_peak_rss()
+
+    def batch():
+        written.append(L.write_lists(work / "lists.parquet", scorer, lists, user_ids, rows, top, known, False, "plain"))
+
+    t_lists = [best_time(batch, 1)]
+    peak = status_bytes("VmHWM") if peak_ok else peak_rss_bytes()
+    t_plain = [best_time(lambda: R.top_n(users[:part], items, top, bias, ex_r, ex_c), 1)]
+    t_lists.append(best_time(batch, 1))  # interleaved: both see the same machine; the best of two each
+    t_plain.append(best_time(lambda: R.top_n(users[:part], items, top, bias, ex_r, ex_c), 1))
+    t_lists, t_plain, written = min(t_lists), min(t_plain), written[-1]
+    rate = part / t_lists
+    log(f"lists: {part:,} of {nu:,} users x {ni:,} items, top {top}: {t_lists:.1f} s ({rate:,.0f} users/s, {written:,} "
+        f"rows); plain top-N of the same users {t_plain:.1f} s; EXTRAPOLATED to all {nu:,} users: "
+        f"{nu / rate / 60:.1f} min; peak RSS {peak / 2**30:.2f} GiB (vectors and known pairs of all users held, "
+        f"{(rss_before or 0) / 2**30:.2f} GiB before listing)")
+    return {"lists_vs_top_n": t_plain / t_lists, "lists_users_per_s": rate, "lists_peak_rss_gb": peak / 2 ** 30,
+            "lists_all_users_extrapolated_s": nu / rate, "lists_slice_users": part, "lists_top_n_s": t_plain}
+
+
 CHILDREN = {"id_training": case_id_training, "tower_flops": case_tower_flops, "als": case_als,
             "retrieval": case_retrieval, "scale_data": case_scale_data,
             "scale_small": lambda s, w: case_scale_run(s, w, "small"),
             "scale_large": lambda s, w: case_scale_run(s, w, "large"),
             "embed_setup": case_embed_setup, "embed_run": case_embed_run,
-            "serve_setup": case_serve_setup, "serve_run": case_serve_run}
+            "serve_setup": case_serve_setup, "serve_run": case_serve_run, "lists": case_lists}
 
 
 # ---- the parent ------------------------------------------------------------------------------------
@@ -822,6 +876,7 @@ GOALS = {  # key: (goal, "at least" or "at most")
     "retrieval_float32_vs_bare_matmul": (None, ""),  # the same search with the bfloat16 screen off
     "scale_10m_over_1m": (11, "<="), "peak_rss_gb_10m": (4, "<="), "embed_1m_unseen_peak_rss_gb": (None, ""),
     "serve_p50_1_client_vs_library": (None, ""), "serve_rps_32_vs_1_client": (None, ""),
+    "lists_vs_top_n": (None, ""), "lists_users_per_s": (None, ""), "lists_peak_rss_gb": (None, ""),
 }
 
 

@@ -59,16 +59,37 @@ def _parser() -> argparse.ArgumentParser:
     who.add_argument("--history", nargs="+", metavar="ITEM",
                      help="a new user known only by these item ids (the last the latest), for runs trained with "
                           "model.history_length > 0; the items are excluded")
+    who.add_argument("--user-rows", metavar="FILE",
+                     help="users not in the run, given by feature rows (CSV or parquet); with --history-column for "
+                          "runs trained with model.history_length > 0")
+    r.add_argument("--history-column", metavar="NAME",
+                   help="with --user-rows: the column holding each user's item ids (as embed --history-column)")
+    r.add_argument("--history-separator", default="|", metavar="SEP",
+                   help="what joins the item ids of a text --history-column (default |)")
     r.add_argument("--top", type=int, default=10, help="how many items per user (default 10)")
     r.add_argument("--context", nargs="+", metavar="COLUMN=VALUE",
                    help="the event's context for runs trained with interactions.context, e.g. channel=app hour=20")
-    r.add_argument("--out", help="write CSV or parquet instead of printing")
+    r.add_argument("--out", help="write .csv, .parquet or .pq instead of printing")
+    _list_options(r)
 
     s = sub.add_parser("similar", help="most similar items for items")
     s.add_argument("run_dir")
-    s.add_argument("--items", nargs="+", required=True, help="item ids")
+    which = s.add_mutually_exclusive_group(required=True)
+    which.add_argument("--items", nargs="+", help="item ids")
+    which.add_argument("--item-rows", metavar="FILE",
+                       help="items not in the run, given by feature rows (CSV or parquet)")
     s.add_argument("--top", type=int, default=10, help="how many items per item (default 10)")
-    s.add_argument("--out", help="write CSV or parquet instead of printing")
+    s.add_argument("--out", help="write .csv, .parquet or .pq instead of printing")
+    _list_options(s)
+
+    li = sub.add_parser("lists", help="every user's list (or those in a file) written to parquet, for a nightly batch")
+    li.add_argument("run_dir")
+    li.add_argument("--out", required=True, help="parquet file to write (.parquet or .pq)")
+    li.add_argument("--users", metavar="FILE",
+                    help="only the users in this file: one id per line, or a table of one column (default: every user "
+                         "of the run)")
+    li.add_argument("--top", type=int, default=10, help="how many items per user (default 10)")
+    _list_options(li)
 
     a = sub.add_parser("align", help="rotate a retrained run onto an older run's vectors; every score stays the same")
     a.add_argument("run_dir", help="the new run")
@@ -110,7 +131,7 @@ def _parser() -> argparse.ArgumentParser:
     v.add_argument("--threads", type=int, metavar="N",
                    help="requests answered at once, each on one torch thread (default: one per core)")
     v.add_argument("--item-table", metavar="FILE",
-                   help="the item table that item columns and filters read, again on each such request (default: the "
+                   help="the item table that item columns and filters read, again when the file changes (default: the "
                         "run's config items.path)")
 
     d = sub.add_parser("demo-data", help="generate the fictional hardware-and-garden store data")
@@ -119,13 +140,47 @@ def _parser() -> argparse.ArgumentParser:
     return p
 
 
+def _list_options(p: argparse.ArgumentParser) -> None:
+    """Item columns and item filters, shared by recommend, similar and lists."""
+    p.add_argument("--columns", nargs="+", metavar="NAME", default=(),
+                   help="item table columns to add beside each listed item, e.g. name department price")
+    p.add_argument("--only-true", nargs="+", metavar="COLUMN", default=(),
+                   help="list only items where these boolean item columns are true, e.g. in_stock")
+    p.add_argument("--only", nargs="+", metavar="COLUMN=VALUE", default=(),
+                   help="list only items with one of these values (values of one column are alternatives; "
+                        "different columns must all hold), e.g. department=garden department=tools")
+    p.add_argument("--never", nargs="+", metavar="COLUMN=VALUE", default=(),
+                   help="never list items with these values, e.g. brand=Acme")
+    p.add_argument("--never-ids", metavar="FILE",
+                   help="never list the item ids in this file (one id per line, or a table of one column)")
+    p.add_argument("--item-table", metavar="FILE",
+                   help="the item table that --columns and the filters read (default: the run's config items.path), "
+                        "e.g. today's table with its stock column")
+
+
+def _item_filter(args: argparse.Namespace) -> api.ItemFilter:
+    """The filter options as an ItemFilter."""
+    def pairs(option: str, items) -> list:
+        out = []
+        for item in items:
+            name, sep, value = item.partition("=")
+            if not sep or not name:
+                raise TowersError(f"--{option} {item!r}: expected COLUMN=VALUE, e.g. department=garden")
+            out.append((name, value))
+        return out
+
+    never_ids = api.read_id_file(args.never_ids, "item") if args.never_ids else ()
+    return api.ItemFilter.from_dict({"only_true": list(args.only_true), "only_values": pairs("only", args.only),
+                                     "never_values": pairs("never", args.never), "never_ids": list(never_ids)})
+
+
 FRAME_FORMATS = (".csv", ".parquet", ".pq")
 
 
 def _check_frame_out(out: str) -> None:
     """Refuse an --out we could not write, before any work is done."""
     if Path(out).suffix.lower() not in FRAME_FORMATS:
-        raise TowersError(f"{out}: unsupported output format; use .csv or .parquet")
+        raise TowersError(f"{out}: unsupported output format; use .csv, .parquet or .pq")
 
 
 def _write_frame(df, out: str) -> None:
@@ -213,6 +268,8 @@ def run(args: argparse.Namespace) -> int:
         print(f"aligned run: {args.out}")
         return 0
 
+    if args.command == "lists" and Path(args.out).suffix.lower() not in (".parquet", ".pq"):
+        raise TowersError(f"{args.out}: lists are written as parquet; give an --out ending in .parquet or .pq")
     if args.command in ("recommend", "similar") and args.out:
         _check_frame_out(args.out)
     run_ = api.load(args.run_dir)
@@ -228,18 +285,32 @@ def run(args: argparse.Namespace) -> int:
     if args.command == "embed":
         source = args.items or args.users
         if Path(args.out).suffix.lower() not in (".parquet", ".pq"):
-            raise TowersError(f"{args.out}: embeddings are written as parquet; give an --out ending in .parquet")
+            raise TowersError(f"{args.out}: embeddings are written as parquet; give an --out ending in .parquet or .pq")
         count = run_.embed_file(source, args.out, "items" if args.items else "users", args.history_column,
                                 args.history_separator)
         print(f"embedded {count} {'items' if args.items else 'users'} into {args.out}")
         return 0
+    if args.command == "lists":
+        users = api.read_id_file(args.users, "user") if args.users else None
+        count = run_.write_lists(args.out, users, args.top, args.columns, _item_filter(args), args.item_table,
+                                 source=args.users or "--users")
+        print(f"wrote {count} rows to {args.out}")
+        return 0
     if args.command in ("recommend", "similar"):
-        if args.command == "similar":
-            frame = run_.similar(args.items, args.top)
+        chosen = {"columns": args.columns, "keep": _item_filter(args), "item_table": args.item_table}
+        if args.command == "similar" and args.item_rows:
+            frame = run_.similar_rows(api.read_table(args.item_rows), args.top, source=args.item_rows, **chosen)
+        elif args.command == "similar":
+            frame = run_.similar(args.items, args.top, **chosen)
+        elif args.history_column and not args.user_rows:
+            raise TowersError("--history-column gives the histories of --user-rows; use it with --user-rows")
+        elif args.user_rows:
+            frame = run_.recommend_rows(api.read_table(args.user_rows), args.top, args.history_column,
+                                        separator=args.history_separator, source=args.user_rows, **chosen)
         elif args.history:
-            frame = run_.recommend_history(args.history, args.top, context=_context_pairs(args.context))
+            frame = run_.recommend_history(args.history, args.top, context=_context_pairs(args.context), **chosen)
         else:
-            frame = run_.recommend(args.users, args.top, context=_context_pairs(args.context))
+            frame = run_.recommend(args.users, args.top, context=_context_pairs(args.context), **chosen)
         if args.out:
             _write_frame(frame, args.out)
         else:

@@ -181,14 +181,14 @@ def test_missing_file(store, tmp_path, capsys):
 def test_folder_given_as_a_table(store, tmp_path, capsys):
     (tmp_path / "log_folder.csv").mkdir()
     cfg = change(base_config(store), "interactions", path=str(tmp_path / "log_folder.csv"))
-    train_fails(capsys, tmp_path, cfg, "log_folder.csv", fix=r"is a folder.*give a \.csv or \.parquet file")
+    train_fails(capsys, tmp_path, cfg, "log_folder.csv", fix=r"is a folder.*give a \.csv, \.tsv, \.parquet or \.pq file")
 
 
 def test_unsupported_extension(store, tmp_path, capsys):
     path = tmp_path / "log.xlsx"
     log_frame(store).to_csv(path, index=False)
     cfg = change(base_config(store), "interactions", path=str(path))
-    train_fails(capsys, tmp_path, cfg, "log.xlsx", "'.xlsx'", fix=r"save the table as \.csv or \.parquet")
+    train_fails(capsys, tmp_path, cfg, "log.xlsx", "'.xlsx'", fix=r"save the table as \.csv, \.tsv, \.parquet or \.pq")
 
 
 def test_unreadable_parquet_garbage_bytes(store, tmp_path, capsys):
@@ -602,7 +602,7 @@ def test_unknown_user_for_recommend(trained, tmp_path, capsys):
 def test_recommend_output_with_an_unknown_format(trained, tmp_path, capsys):
     out = tmp_path / "recs.txt"
     expect_error(capsys, ["recommend", trained, "--users", "100493", "--out", out], "recs.txt",
-                 fix=r"use \.csv or \.parquet", gone=[out])
+                 fix=r"use \.csv, \.parquet or \.pq", gone=[out])
 
 
 def test_evaluate_interactions_missing_a_column(trained, store, tmp_path, capsys):

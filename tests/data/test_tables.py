@@ -66,7 +66,8 @@ def test_format_follows_the_extension_not_the_content(tmp_path):
 @pytest.mark.parametrize("name,shown", [("data.xlsx", "'.xlsx'"), ("data.json", "'.json'"), ("data", "'(none)'")])
 def test_unsupported_extension(tmp_path, name, shown):
     f = write_csv(tmp_path / name, "a,b\n1,2\n")
-    with pytest.raises(TowersError, match=rf"unsupported format {re.escape(shown)}; save the table as \.csv or \.parquet"):
+    fix = r"save the table as \.csv, \.tsv, \.parquet or \.pq"
+    with pytest.raises(TowersError, match=rf"unsupported format {re.escape(shown)}; {fix}"):
         T.read_table(f)
 
 

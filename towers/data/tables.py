@@ -68,10 +68,10 @@ def _check_file(path: Path) -> str:
     if not path.exists():
         raise TowersError(f"{path}: file not found; check the path in the config (relative paths start at the config file)")
     if path.is_dir():
-        raise TowersError(f"{path}: is a folder, not a table; give a .csv or .parquet file")
+        raise TowersError(f"{path}: is a folder, not a table; give a .csv, .tsv, .parquet or .pq file")
     suffix = path.suffix.lower()
     if suffix not in READABLE:
-        raise TowersError(f"{path}: unsupported format '{suffix or '(none)'}'; save the table as .csv or .parquet")
+        raise TowersError(f"{path}: unsupported format '{suffix or '(none)'}'; save the table as .csv, .tsv, .parquet or .pq")
     return suffix
 
 

@@ -24,6 +24,7 @@ import pyarrow as pa
 import torch
 
 from towers.atomic import write_atomic
+from towers.data.history import history_ids
 from towers.data.tables import READABLE, align_id_types, check_unique_ids, normalise_ids, read_table, shown
 from towers.errors import TowersError, where
 from towers.search.scorer import Scorer
@@ -117,6 +118,25 @@ def _text(value) -> str:
     return str(value)
 
 
+def _texts(series: pd.Series) -> pd.Series:
+    """A whole column as _text gives each value (missing values stay missing), without a Python call per row."""
+    missing = series.isna().to_numpy()
+    if pd.api.types.is_bool_dtype(series):
+        out = np.where(series.to_numpy(dtype=bool), "true", "false").astype(object)
+    elif pd.api.types.is_float_dtype(series):
+        values = series.to_numpy(dtype=np.float64)
+        out = series.astype(str).to_numpy(dtype=object)
+        with np.errstate(invalid="ignore"):
+            whole = np.isfinite(values) & (values == np.round(values)) & (np.abs(values) < 2.0 ** 63)
+        out[whole] = values[whole].astype(np.int64).astype(str)
+    elif series.dtype == object and series.map(type).isin((bool, np.bool_)).any():
+        out = series.map(_text, na_action="ignore").to_numpy(dtype=object)  # true/false among other values
+    else:
+        out = series.astype(str).to_numpy(dtype=object)
+    out[missing] = None
+    return pd.Series(out, index=series.index, dtype=object)
+
+
 # ---- the item table, aligned on a run's catalog --------------------------------------------------
 
 class ItemTable:
@@ -166,7 +186,7 @@ class ItemTable:
         if pd.api.types.is_bool_dtype(series):
             truth = series.to_numpy(dtype=bool)
         else:
-            text = series.map(_text, na_action="ignore").astype(object).str.lower()
+            text = _texts(series).str.lower()
             known = text.isna() | text.isin(("true", "false", "1", "0"))
             if not known.all():
                 row = int(np.flatnonzero(~known.to_numpy())[0])
@@ -176,8 +196,7 @@ class ItemTable:
         return truth[np.where(self.present, self._rows, 0)] & self.present
 
     def _text(self, name: str) -> pd.Series:
-        series = self._frame[name]
-        text = series.map(_text, na_action="ignore").astype(object)
+        text = _texts(self._frame[name])
         return text.iloc[np.where(self.present, self._rows, 0)].reset_index(drop=True).where(self.present)
 
 
@@ -278,10 +297,11 @@ def _id_array(values: np.ndarray, like: np.ndarray) -> pa.Array:
 
 
 def item_lists(item_ids: np.ndarray, keep: ItemFilter | None, columns: Sequence[str], table_path, id_column,
-               default_note: str) -> Lists:
+               default_note: str, cache: dict | None = None) -> Lists:
     """The allowed items and item columns for a run's catalog (item_ids), reading the item table only when
     `columns` or a table condition of `keep` needs it. table_path / id_column: the table to read;
-    default_note: what to tell the user when no table is known."""
+    default_note: what to tell the user when no table is known. cache: a dict that keeps the last table
+    read, reused while the file's size and modification time stay the same (a service lists many times)."""
     keep = keep or ItemFilter()
     if not isinstance(keep, ItemFilter):
         raise TowersError(f"keep: expected an ItemFilter (ItemFilter.from_dict builds one), got {type(keep).__name__}")
@@ -296,7 +316,7 @@ def item_lists(item_ids: np.ndarray, keep: ItemFilter | None, columns: Sequence[
         if clash:
             raise TowersError(f"column {clash[0]!r}: the lists already have a column of that name; "
                               f"choose item columns other than {', '.join(LIST_COLUMNS)}")
-        table = ItemTable(table_path, id_column, item_ids, needed)
+        table = _cached_table(cache, table_path, id_column, item_ids, needed)
         if keep.columns():
             allowed &= table.allowed(keep)
             lacking = int((~table.present).sum())
@@ -315,6 +335,20 @@ def item_lists(item_ids: np.ndarray, keep: ItemFilter | None, columns: Sequence[
         allowed[at[at >= 0]] = False  # ids not in the run are never listed anyway
     rows = None if allowed.all() else torch.from_numpy(np.flatnonzero(allowed).astype(np.int64))
     return Lists(item_ids, rows, out)
+
+
+def _cached_table(cache: dict | None, path, id_column: str, item_ids: np.ndarray, needed: list[str]) -> ItemTable:
+    try:
+        info = Path(path).stat()
+    except OSError:
+        return ItemTable(path, id_column, item_ids, needed)  # read_table names the problem
+    key = (str(Path(path).resolve()), info.st_mtime_ns, info.st_size, id_column, tuple(sorted(needed)))
+    if cache is None or cache.get("key") != key:
+        table = ItemTable(path, id_column, item_ids, needed)
+        if cache is None:
+            return table
+        cache.update(key=key, table=table)
+    return cache["table"]
 
 
 def _arrow_column(values: pd.Series, path, name: str) -> pa.Array:
@@ -356,7 +390,7 @@ def block_exclusions(rows: torch.Tensor, offsets: torch.Tensor, items: torch.Ten
 
 def write_lists(out: str | Path, scorer: Scorer, lists: Lists, query_ids: np.ndarray, rows: torch.Tensor, top: int,
                 known: tuple[torch.Tensor, torch.Tensor] | None, exclude_self: bool, progress: str = "auto",
-                block: int = BATCH_USERS) -> int:
+                block: int | None = None) -> int:
     """Write the lists of the query rows `rows` to a parquet file, block by block; returns the rows written.
 
     scorer: the run's scorer over its whole catalog; known: known_by_query of the pairs to exclude.
@@ -365,6 +399,7 @@ def write_lists(out: str | Path, scorer: Scorer, lists: Lists, query_ids: np.nda
     import pyarrow.parquet as pq
     from tqdm import tqdm
 
+    block = block or BATCH_USERS
     column = lists.item_column
     schema_done: list[pa.Schema] = []
     written = [0]
@@ -419,7 +454,8 @@ def lists_for(run, columns: Sequence[str] = (), keep: ItemFilter | None = None, 
         id_column = run.config.interactions.candidate_column
     note = (f"{run.dir}: this run has no item table (config items.path), so item columns and column filters have "
             "nothing to read; name one with --item-table FILE (item_table=)")
-    return item_lists(run.embeddings("item")[0], keep, columns, path, id_column, note)
+    cache = run.__dict__.setdefault("_item_table_cache", {})
+    return item_lists(run.embeddings("item")[0], keep, columns, path, id_column, note, cache)
 
 
 def check_top(run, top) -> None:
@@ -451,10 +487,12 @@ def recommend_rows(run, df: pd.DataFrame, top: int, history_column: str | None, 
     df = _row_ids(df.reset_index(drop=True), run.bundle.query_encoders.id_column)
     embedded = run.embed_users(df, source, history_column=history_column, separator=separator)
     ex_r = ex_c = None
-    if history_column is not None:
-        bags, _ = run._bags(df[history_column], source, (history_column, separator))
-        cells = torch.nonzero(bags > 0)  # row-major: sorted by ranking row
-        ex_r, ex_c = cells[:, 0], bags[cells[:, 0], cells[:, 1]] - 1
+    if history_column is not None:  # every given item of the run is left out, as recommend_history does
+        ids, at_row = history_ids(df[history_column], source, history_column, separator)
+        item_ids = run.embeddings("item")[0]
+        at = pd.Index(item_ids).get_indexer(align_id_types(ids, item_ids))
+        cells = np.unique(np.stack([at_row[at >= 0], at[at >= 0]], 1), axis=0)  # sorted by row, each cell once
+        ex_r, ex_c = (torch.from_numpy(np.ascontiguousarray(cells[:, j], dtype=np.int64)) for j in (0, 1))
     idx, scores = lists.top(_run_scorer(run, embedded.attrs["vectors"], embedded.attrs["bias"]), top, ex_r, ex_c)
     return lists.frame(embedded["id"].to_numpy(), idx, scores)
 

@@ -55,7 +55,7 @@ def serve(run_dir, host: str = "127.0.0.1", port: int = 8080, threads: int | Non
     The run is loaded and warmed up once (towers/service/app.py), then `threads` worker threads
     (default: one per core) answer requests, each running torch on one thread. `announce` gets one
     line with the address once the server listens. item_table: the table item columns and filters read
-    (default: the run's config items.path), read again on each request that needs it.
+    (default: the run's config items.path), read again when its file changes.
     """
     if threads is not None and threads < 1:
         raise TowersError(f"--threads must be a positive whole number, got {threads}")

@@ -6,8 +6,9 @@ a body over MAX_BODY_BYTES is refused unread. The run's own methods then do the 
 products and the numba kernels run without it, so requests proceed in parallel. Inference is safe
 across threads: the run's files are read once at start (warm_up), after which a request only reads
 them; grad mode is per thread, and the run's methods switch it off themselves; each worker thread
-runs torch, and so the top-N search, on one thread. Requests that encode feature rows run one at a
-time, because the encoders count unseen values in shared state for their warnings.
+runs torch, and so the top-N search, on one thread. Requests that encode feature rows or read the
+item table (columns, keep) run one at a time: the encoders count unseen values for their warnings,
+and the run keeps the last item table read, in state shared by every thread.
 
 Answers: JSON with the result and `notes` (the library's warnings for this request); errors:
 {"error": one line} with 400 (not JSON), 404 / 405 (no such endpoint), 413 (too large), 415 (not
@@ -127,6 +128,9 @@ class _ListRequest(_Request):
     top: Top = 10
     columns: Columns = []
     keep: KeepRequest | None = None
+
+    def uses_item_table(self) -> bool:
+        return bool(self.columns) or self.keep is not None
 
     def list_options(self) -> dict:
         """columns= and keep= of the run's list methods."""
@@ -349,22 +353,22 @@ async def _refuse(send, status: int, message: str) -> None:
 
 def make_app(run, threads: int, item_table=None) -> FastAPI:
     """The FastAPI application serving `run` (a loaded towers.Run) on `threads` worker threads; item_table: the
-    table that item columns and filters read (default: the run's config items.path), read on each such request."""
+    table that item columns and filters read (default: the run's config items.path), read again when it changes."""
     warm_up(run)
     summary = api.describe(run)
     limiter = anyio.CapacityLimiter(threads)
-    rows_lock = threading.Lock()
+    shared_lock = threading.Lock()
     table = item_table if item_table is not None else (run.config.items.path if run.config and run.config.items else None)
     hidden = {str(run.dir): "the run"} | ({str(Path(table)): "the item table"} if table else {})
     app = FastAPI(title="towers", docs_url=None, redoc_url=None, openapi_url=None)
     app.add_middleware(_BodyCheck, limit=MAX_BODY_BYTES)
 
-    async def answer(work, what: str, rows: bool = False) -> Response:
-        if rows:
+    async def answer(work, what: str, shared: bool = False) -> Response:
+        if shared:  # see the module's docstring
             inner = work
 
             def work():
-                with rows_lock:
+                with shared_lock:
                     return inner()
         try:
             body = await anyio.to_thread.run_sync(_in_worker, work, limiter=limiter)
@@ -418,7 +422,7 @@ def make_app(run, threads: int, item_table=None) -> FastAPI:
                                            source="user_row", **options)
             return {"lists": ranked_lists(frame)}
 
-        return await answer(work, "POST /recommend", rows=req.user_row is not None)
+        return await answer(work, "POST /recommend", shared=req.user_row is not None or req.uses_item_table())
 
     @app.post("/similar")
     async def similar(req: SimilarRequest):
@@ -430,7 +434,7 @@ def make_app(run, threads: int, item_table=None) -> FastAPI:
                 frame = run.similar_rows(pd.DataFrame.from_records([req.item_row]), req.top, source="item_row", **options)
             return {"lists": ranked_lists(frame)}
 
-        return await answer(work, "POST /similar", rows=req.item_row is not None)
+        return await answer(work, "POST /similar", shared=req.item_row is not None or req.uses_item_table())
 
     @app.post("/embed")
     async def embed(req: EmbedRequest):
@@ -439,6 +443,6 @@ def make_app(run, threads: int, item_table=None) -> FastAPI:
             frame = run.embed_items(rows) if req.side == "items" else run.embed_users(rows, history=req.history)
             return {"embeddings": embedded_rows(frame)}
 
-        return await answer(work, "POST /embed", rows=True)
+        return await answer(work, "POST /embed", shared=True)
 
     return app

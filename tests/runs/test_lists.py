@@ -1,0 +1,392 @@
+"""Lists a person can use (towers/runs/lists.py): item columns, item filters inside the top-N, lists for
+users and items given by feature rows, and the nightly batch streamed to parquet."""
+
+from __future__ import annotations
+
+import os
+import stat
+import warnings
+
+import numpy as np
+import pandas as pd
+import pyarrow.parquet as pq
+import pytest
+import torch
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+import towers
+from towers.cli import main as cli
+from towers.errors import TowersError
+from towers.runs.lists import ItemFilter, item_lists
+from towers.search.scorer import Scorer
+
+KEY = ["query_id", "rank"]
+
+
+# ---------------------------------------------------------------- ItemFilter from plain data
+
+def test_filter_from_dict_reads_every_key():
+    f = ItemFilter.from_dict({"only_true": ["in_stock"], "only_values": {"department": ["garden", "tools"]},
+                              "never_values": [["brand", "Acme"], ["price", 2.0]], "never_ids": [3, 4]})
+    assert f.only_true == ("in_stock",)
+    assert f.only_values == (("department", ("garden", "tools")),)
+    assert f.never_values == (("brand", ("Acme",)), ("price", ("2",)))  # a whole float compares as its integer text
+    assert f.never_ids == (3, 4)
+    assert f.columns() == ["in_stock", "department", "brand", "price"]
+    assert not ItemFilter.from_dict({}) and ItemFilter.from_dict(None) == ItemFilter()
+
+
+@pytest.mark.parametrize("bad, words", [
+    ({"only_in": ["x"]}, "unknown key 'only_in'"),
+    ({"only_true": [3]}, "expected a list of column names"),
+    ({"only_values": {"department": {"a": 1}}}, "expected a value or a list of values"),
+    ({"never_values": [["brand"]]}, "expected {column: [values]}"),
+    ({"never_ids": {"a": 1}}, "expected a value or a list of values"),
+    (["in_stock"], "expected a mapping"),
+])
+def test_filter_from_dict_refuses_bad_data_in_one_line(bad, words):
+    with pytest.raises(TowersError, match=None) as exc:
+        ItemFilter.from_dict(bad)
+    assert words in str(exc.value) and "\n" not in str(exc.value)
+
+
+# ---------------------------------------------------------------- filters inside the top-N, against brute force
+
+N_ITEMS = 60
+
+
+@pytest.fixture(scope="module")
+def shop_table(tmp_path_factory):
+    """A fictional hardware-and-garden item table with a stock flag, a department and a brand; items 0..59."""
+    rng = np.random.default_rng(5)
+    table = pd.DataFrame({
+        "item_id": np.arange(N_ITEMS, dtype=np.int64),
+        "in_stock": rng.random(N_ITEMS) < 0.7,
+        "department": rng.choice(["garden", "tools", "paint", "lighting"], N_ITEMS),
+        "brand": rng.choice(["Fernleaf", "Boltwright", "Cobble & Co"], N_ITEMS),
+        "price": np.round(rng.uniform(1, 90, N_ITEMS), 2),
+    })
+    path = tmp_path_factory.mktemp("shop") / "items.parquet"
+    table.to_parquet(path, index=False)
+    return path, table
+
+
+filters = st.builds(
+    lambda only_true, only, never, ids: ItemFilter.from_dict(
+        {"only_true": ["in_stock"] * only_true, "only_values": {"department": only} if only else {},
+         "never_values": {"brand": never} if never else {}, "never_ids": ids}),
+    st.booleans(),
+    st.lists(st.sampled_from(["garden", "tools", "paint", "lighting", "roofing"]), max_size=3),
+    st.lists(st.sampled_from(["Fernleaf", "Boltwright", "Cobble & Co"]), max_size=2),
+    st.lists(st.integers(0, N_ITEMS + 5), max_size=8),
+)
+
+
+@pytest.mark.slow  # about a second for its examples
+@settings(max_examples=40, deadline=None)
+@given(keep=filters, top=st.integers(1, 12), seed=st.integers(0, 2**16))
+def test_filtered_top_equals_brute_force_over_the_allowed_items(shop_table, keep, top, seed):
+    path, table = shop_table
+    lists = item_lists(table["item_id"].to_numpy(), keep, (), path, "item_id", "no table")
+    # outside reference: the filter written directly as pandas boolean indexing
+    ok = np.ones(N_ITEMS, dtype=bool)
+    if keep.only_true:
+        ok &= table["in_stock"].to_numpy()
+    for _, values in keep.only_values:
+        ok &= table["department"].isin(values).to_numpy()
+    for _, values in keep.never_values:
+        ok &= ~table["brand"].isin(values).to_numpy()
+    ok[[i for i in keep.never_ids if i < N_ITEMS]] = False
+    rng = np.random.default_rng(seed)
+    q, c, bias = rng.normal(size=(5, 4)), rng.normal(size=(N_ITEMS, 4)), rng.normal(size=N_ITEMS)
+    known = rng.random((5, N_ITEMS)) < 0.2  # known pairs, excluded as recommend excludes them
+    ex_r, ex_c = (torch.from_numpy(a.astype(np.int64)) for a in np.nonzero(known))
+    scorer = Scorer(torch.tensor(q, dtype=torch.float32), torch.tensor(c, dtype=torch.float32), None,
+                    torch.tensor(bias, dtype=torch.float32))
+    idx, scores = lists.top(scorer, top, ex_r, ex_c)
+    listed = idx.numpy()
+    assert ok[listed[listed >= 0]].all()  # no filtered item ever gets through
+    # outside reference: a brute-force numpy argsort of the float32 scores over the allowed, unknown items
+    full = (np.float32(1) * (scorer.query_vectors @ scorer.item_vectors.T) + scorer.item_bias).numpy()
+    for r in range(5):
+        allowed = np.flatnonzero(ok & ~known[r])
+        best = allowed[np.argsort(-full[r, allowed], kind="stable")[:top]]
+        got = listed[r][listed[r] >= 0]
+        assert got.tolist() == best.tolist()  # a full list whenever enough items pass
+        np.testing.assert_allclose(scores.numpy()[r][:len(got)], full[r, best], rtol=1e-5, atol=1e-5)
+
+
+def test_only_true_refuses_a_column_that_is_not_boolean(shop_table):
+    path, table = shop_table
+    with pytest.raises(TowersError, match=r"column 'department', row 1: .* is not true or false"):
+        item_lists(table["item_id"].to_numpy(), ItemFilter(only_true=("department",)), (), path, "item_id", "")
+
+
+def test_unknown_column_names_the_table_and_lists_its_columns(shop_table):
+    path, table = shop_table
+    with pytest.raises(TowersError) as exc:
+        item_lists(table["item_id"].to_numpy(), None, ["colour"], path, "item_id", "")
+    text = str(exc.value)
+    assert str(path) in text and "'colour'" in text and "in_stock, department, brand, price" in text
+
+
+# ---------------------------------------------------------------- a trained run
+
+@pytest.fixture(scope="module")
+def basket_run(tiny_runs):
+    return tiny_runs.train()
+
+
+@pytest.fixture(scope="module")
+def today(basket_run, small_store, tmp_path_factory):
+    """Today's item table: the run's items without the last five, and a stock flag (every third item out)."""
+    items = pd.read_parquet(small_store / "items.parquet")
+    items = items.iloc[:-5].assign(in_stock=np.arange(len(items) - 5) % 3 != 0)
+    path = tmp_path_factory.mktemp("today") / "items_today.parquet"
+    items.to_parquet(path, index=False)
+    return path, items
+
+
+@pytest.mark.slow  # trains the tiny run on first use
+def test_item_columns_equal_a_pandas_merge(basket_run, small_store):
+    run = towers.load(basket_run)
+    users = run.embeddings("user")[0][:6]
+    got = run.recommend(users, top=7, columns=["name", "department", "price"])
+    plain = run.recommend(users, top=7)
+    items = pd.read_parquet(small_store / "items.parquet")[["item_id", "name", "department", "price"]]
+    expected = plain.merge(items, on="item_id", how="left")  # outside reference: a pandas left merge
+    pd.testing.assert_frame_equal(got.reset_index(drop=True), expected.reset_index(drop=True), check_dtype=False)
+
+
+@pytest.mark.slow
+def test_filter_from_todays_table_keeps_lists_full_and_leaves_out_items_it_lacks(basket_run, today):
+    path, items = today
+    run = towers.load(basket_run)
+    users = run.embeddings("user")[0][:20]
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        got = run.recommend(users, top=10, columns=["in_stock"], keep=ItemFilter(only_true=("in_stock",)),
+                            item_table=path)
+    assert any("5 of the run's 200 items are not in this item table" in str(w.message) for w in caught)
+    stocked = set(items.loc[items["in_stock"], "item_id"])
+    assert set(got["item_id"]) <= stocked and got["in_stock"].all()
+    assert (got.groupby("query_id").size() == 10).all()  # masked before selection: still 10 per user
+    # common practice: the filtered list is the unfiltered full ranking with the filtered items skipped
+    full = run.recommend(users, top=200)
+    for user in users[:5]:
+        ranked = full.loc[full["query_id"] == user, "item_id"]
+        assert got.loc[got["query_id"] == user, "item_id"].tolist() == [i for i in ranked if i in stocked][:10]
+
+
+@pytest.mark.slow
+def test_similar_with_columns_and_never_values(basket_run, small_store):
+    run = towers.load(basket_run)
+    items = pd.read_parquet(small_store / "items.parquet")
+    anchor = items["item_id"].iloc[0]
+    dept = items["department"].iloc[0]
+    keep = ItemFilter.from_dict({"never_values": {"department": [dept]}})
+    got = run.similar([anchor], top=8, columns=["department"], keep=keep)
+    assert len(got) == 8 and (got["department"] != dept).all() and anchor not in set(got["item_id"])
+
+
+# ---------------------------------------------------------------- the nightly batch
+
+@pytest.mark.slow
+def test_batch_lists_equal_recommend_and_are_owner_only(basket_run, today, tmp_path, monkeypatch):
+    import towers.runs.lists as L
+
+    monkeypatch.setattr(L, "BATCH_USERS", 64)  # several blocks on the tiny run's users
+    path, _ = today
+    run = towers.load(basket_run)
+    keep = ItemFilter(only_true=("in_stock",), never_values=(("department", ("paint",)),))
+    out = tmp_path / "lists.pq"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        count = run.write_lists(out, top=6, columns=["name"], keep=keep, item_table=path)
+        users = run.embeddings("user")[0]
+        sample = np.random.default_rng(0).choice(users, 25, replace=False)
+        expected = run.recommend(sample, top=6, columns=["name"], keep=keep, item_table=path)
+    assert stat.S_IMODE(os.stat(out).st_mode) == 0o600  # user lists are personal data
+    got = pd.read_parquet(out)
+    assert count == len(got) and got["query_id"].nunique() == len(users)
+    assert list(got.columns) == ["query_id", "rank", "item_id", "score", "name"]
+    assert pq.ParquetFile(out).metadata.num_row_groups > 1  # streamed block by block
+    part = got[got["query_id"].isin(sample)].set_index(KEY).sort_index()
+    # outside reference: Run.recommend on the same users (its exclusions built by excluded_cells)
+    pd.testing.assert_frame_equal(part, expected.set_index(KEY).sort_index(), check_dtype=False, atol=1e-5)
+
+
+@pytest.mark.slow
+def test_batch_for_the_users_of_a_file_skips_unknown_ids(basket_run, tmp_path, capsys):
+    run = towers.load(basket_run)
+    users = run.embeddings("user")[0][:4]
+    ids = tmp_path / "tonight.txt"
+    ids.write_text("\n".join(str(u) for u in users) + "\n999999999\n", encoding="utf-8")
+    out = tmp_path / "tonight.parquet"
+    assert cli(["lists", str(basket_run), "--out", str(out), "--users", str(ids), "--top", "3"]) == 0
+    err = capsys.readouterr().err
+    assert "1 of 5 user ids are not in this run (e.g. '999999999')" in err
+    got = pd.read_parquet(out)
+    assert got["query_id"].tolist() == np.repeat(users, 3).tolist()
+    expected = run.recommend(users, top=3)  # outside reference: Run.recommend
+    np.testing.assert_array_equal(got["item_id"], expected["item_id"])
+
+
+# ---------------------------------------------------------------- the command line
+
+@pytest.mark.slow
+def test_cli_prints_and_writes_the_same_lists(basket_run, today, tmp_path, capsys):
+    path, _ = today
+    user = str(towers.load(basket_run).embeddings("user")[0][0])
+    args = ["recommend", str(basket_run), "--users", user, "--top", "5", "--columns", "name", "in_stock",
+            "--only-true", "in_stock", "--never", "department=paint", "--item-table", str(path)]
+    assert cli(args) == 0
+    printed = capsys.readouterr().out
+    out = tmp_path / "recs.pq"  # .pq, as README lists it
+    assert cli(args + ["--out", str(out)]) == 0
+    written = pd.read_parquet(out)
+    assert printed == written.to_string(index=False) + "\n"  # common practice: one frame, two renderings
+    assert len(written) == 5 and written["in_stock"].all() and stat.S_IMODE(os.stat(out).st_mode) == 0o600
+
+
+@pytest.mark.slow
+def test_cli_never_ids_and_only_values(basket_run, small_store, tmp_path, capsys):
+    items = pd.read_parquet(small_store / "items.parquet")
+    anchor = items["item_id"].iloc[3]
+    first = towers.load(basket_run).similar([anchor], top=3)["item_id"].tolist()
+    banned = tmp_path / "banned.txt"
+    banned.write_text("\n".join(first) + "\n", encoding="utf-8")
+    dept = items["department"].value_counts().index[0]
+    out = tmp_path / "sim.csv"
+    assert cli(["similar", str(basket_run), "--items", anchor, "--top", "4", "--never-ids", str(banned),
+                "--only", f"department={dept}", "--columns", "department", "--out", str(out)]) == 0
+    got = pd.read_csv(out)
+    assert not set(got["item_id"]) & set(first) and (got["department"] == dept).all() and len(got) == 4
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("args, words", [
+    (["--columns", "colour"], "column 'colour': no such column in the item table; its columns are item_id, name"),
+    (["--only", "department"], "--only 'department': expected COLUMN=VALUE"),
+    (["--out", "recs.txt"], "unsupported output format; use .csv, .parquet or .pq"),
+])
+def test_cli_list_errors_are_one_line(basket_run, args, words, tmp_path, capsys):
+    user = str(towers.load(basket_run).embeddings("user")[0][0])
+    if "--out" in args:
+        args = ["--out", str(tmp_path / args[1])]
+    assert cli(["recommend", str(basket_run), "--users", user] + args) == 2
+    err = capsys.readouterr().err
+    assert words in err and err.count("\n") == 1
+
+
+@pytest.mark.slow
+def test_lists_out_must_be_parquet(basket_run, tmp_path, capsys):
+    assert cli(["lists", str(basket_run), "--out", str(tmp_path / "lists.csv")]) == 2
+    assert "give an --out ending in .parquet or .pq" in capsys.readouterr().err
+    assert not (tmp_path / "lists.csv").exists()
+
+
+# ---------------------------------------------------------------- users and items given by feature rows
+
+@pytest.mark.slow
+def test_similar_rows_of_catalog_items_equal_similar(basket_run, small_store):
+    run = towers.load(basket_run)
+    rows = pd.read_parquet(small_store / "items.parquet").head(4)
+    got = run.similar_rows(rows, top=6, columns=["name"])
+    # outside reference: Run.similar on the same ids (re-embedding the catalog reproduces its vectors)
+    expected = run.similar(rows["item_id"], top=6, columns=["name"])
+    assert got["item_id"].tolist() == expected["item_id"].tolist()
+    np.testing.assert_allclose(got["score"], expected["score"], atol=1e-4)
+
+
+@pytest.mark.slow
+def test_recommend_rows_of_new_users(basket_run, small_store, today):
+    path, items = today
+    run = towers.load(basket_run)
+    users = pd.read_csv(small_store / "customers.csv").head(3)
+    new = users.drop(columns=["customer_id"])
+    got = run.recommend_rows(new, top=4, columns=["in_stock"], keep=ItemFilter(only_true=("in_stock",)),
+                             item_table=path)
+    assert got["query_id"].unique().tolist() == ["row 1", "row 2", "row 3"] and got["in_stock"].all()
+    # outside reference: the embedded vectors scored by hand with the exported item vectors
+    vecs = run.embed_users(new.assign(customer_id=["row 1", "row 2", "row 3"]))
+    _, iv, ib, meta = run.embeddings("item")
+    q = torch.tensor(np.stack(vecs["embedding"]))
+    full = (q @ iv.T / float(meta.get("temperature", 1.0)) + ib + torch.tensor(vecs["bias"].to_numpy())[:, None]
+            + float(meta.get("global_bias", 0.0))).numpy()
+    i_ids = run.embeddings("item")[0]
+    ok = np.isin(i_ids, items.loc[items["in_stock"], "item_id"])
+    for r in range(3):
+        best = np.flatnonzero(ok)[np.argsort(-full[r, ok], kind="stable")[:4]]
+        assert got.loc[got["query_id"] == f"row {r + 1}", "item_id"].tolist() == i_ids[best].tolist()
+
+
+@pytest.mark.slow  # trains a tiny run with histories on first use
+def test_recommend_rows_with_a_history_column_equal_recommend_history(tiny_runs):
+    run = towers.load(tiny_runs.train(model={"history_length": 4}, training={"loss": "softmax", "negatives": 32}))
+    item_ids = run.embeddings("item")[0]
+    histories = [list(item_ids[[3, 40, 7]]), list(item_ids[[11]])]
+    names = [e.name for e in run.bundle.query_encoders.encoders]
+    rows = pd.DataFrame({**{n: pd.Series([None, None], dtype=object) for n in names},
+                         "recent": ["|".join(h) for h in histories]})
+    got = run.recommend_rows(rows, top=len(item_ids), history_column="recent", columns=["name"])  # every item
+    for r, history in enumerate(histories):
+        # outside reference: Run.recommend_history, an empty feature row with the same history
+        expected = run.recommend_history(history, top=len(item_ids), columns=["name"])
+        mine = got[got["query_id"] == f"row {r + 1}"]
+        assert mine["item_id"].tolist() == expected["item_id"].tolist()
+        assert mine["name"].tolist() == expected["name"].tolist()
+        np.testing.assert_allclose(mine["score"], expected["score"], rtol=1e-5, atol=1e-5)
+        assert not set(mine["item_id"]) & set(history)  # the history's items are left out
+
+
+@pytest.mark.slow  # trains a tiny item_item run on first use
+def test_item_item_runs_batch_and_feature_rows(tiny_runs, small_store, tmp_path):
+    run = towers.load(tiny_runs.train(config="store_copurchase.yaml", model={"shared_tower": False, "temperature": 0.5},
+                                      evaluation={"baseline": False}))
+    rows = pd.read_parquet(small_store / "items.parquet").head(5)
+    # outside reference: Run.similar on the same ids (the query side re-embedded gives the exported query vectors)
+    got = run.similar_rows(rows, top=7)
+    expected = run.similar(rows["item_id"], top=7)
+    assert got["item_id"].tolist() == expected["item_id"].tolist()
+    np.testing.assert_allclose(got["score"], expected["score"], rtol=1e-4, atol=1e-4)
+    # the batch of an item_item run: query items, each leaving out its known pairs and itself, as recommend does
+    queries = run.embeddings("query")[0][:30]
+    out = tmp_path / "pairs.parquet"
+    run.write_lists(out, queries, top=5)
+    np.testing.assert_array_equal(pd.read_parquet(out)["item_id"], run.recommend(queries, top=5)["item_id"])
+
+
+@pytest.mark.slow
+def test_cli_feature_rows(basket_run, small_store, tmp_path, capsys):
+    new_items = small_store / "new_items.parquet"
+    out = tmp_path / "arrivals.csv"
+    assert cli(["similar", str(basket_run), "--item-rows", str(new_items), "--top", "2", "--columns", "name",
+                "--out", str(out)]) == 0
+    got = pd.read_csv(out)
+    arrivals = pd.read_parquet(new_items)
+    expected = towers.load(basket_run).similar_rows(arrivals, top=2, columns=["name"])  # the Python API
+    assert got["query_id"].tolist() == expected["query_id"].tolist() and list(got.columns)[-1] == "name"
+    users = tmp_path / "walk_ins.csv"
+    pd.read_csv(small_store / "customers.csv").head(2).drop(columns=["customer_id"]).to_csv(users, index=False)
+    assert cli(["recommend", str(basket_run), "--user-rows", str(users), "--top", "3"]) == 0
+    printed = capsys.readouterr().out
+    assert "row 1" in printed and "row 2" in printed
+    assert cli(["recommend", str(basket_run), "--users", "1", "--history-column", "recent"]) == 2
+    assert "use it with --user-rows" in capsys.readouterr().err
+
+
+@pytest.mark.slow
+def test_a_rewritten_item_table_is_read_again(basket_run, small_store, tmp_path):
+    run = towers.load(basket_run)
+    items = pd.read_parquet(small_store / "items.parquet")[["item_id", "name"]]
+    path = tmp_path / "stock.parquet"
+    user = run.embeddings("user")[0][:1]
+    keep = ItemFilter(only_true=("in_stock",))
+    items.assign(in_stock=True).to_parquet(path, index=False)
+    first = run.recommend(user, top=3, keep=keep, item_table=path)["item_id"].tolist()
+    items.assign(in_stock=~items["item_id"].isin(first)).to_parquet(path, index=False)  # tonight they sold out
+    os.utime(path, ns=(os.stat(path).st_atime_ns, os.stat(path).st_mtime_ns + 10**9))
+    again = run.recommend(user, top=3, keep=keep, item_table=path)["item_id"].tolist()
+    assert not set(first) & set(again)  # common practice: a cache keyed by the file's size and time
