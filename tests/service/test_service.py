@@ -6,6 +6,7 @@ Answers must equal the Run API's (and so the CLI's) for the same requests; every
 
 from __future__ import annotations
 
+import contextlib
 import http.client
 import json
 import logging
@@ -337,19 +338,15 @@ def test_request_bodies_stay_out_of_the_server_log(server):
 
 # ---------------------------------------------------------------- failures of the server itself
 
-def test_a_bug_gets_a_generic_500_and_a_log_line(history_run, caplog):
-    """An exception that is not a TowersError: 500 with a generic line, the traceback only in the server log."""
+@contextlib.contextmanager
+def served_here(run):
+    """`run` served by make_app on a uvicorn thread of this process (warnings are not notes here: pytest keeps
+    them); yields the module's Server client for it."""
     import uvicorn
 
     from towers.service import app as service_app
 
-    run = towers.load(history_run)
     application = service_app.make_app(run, 1)
-
-    def broken(*args, **kwargs):
-        raise RuntimeError("private detail of the failure")
-
-    run.similar = broken
     sock = towers.service.listen("127.0.0.1", 0)
     server = uvicorn.Server(uvicorn.Config(application, log_config=None, access_log=False))
     thread = threading.Thread(target=server.run, kwargs={"sockets": [sock]})
@@ -357,14 +354,45 @@ def test_a_bug_gets_a_generic_500_and_a_log_line(history_run, caplog):
     try:
         while not server.started:
             time.sleep(0.01)
-        client = Server("127.0.0.1", sock.getsockname()[1], None, None)
-        with caplog.at_level(logging.ERROR, logger="uvicorn.error"):
-            status, answer = client.call("POST", "/similar", {"items": [ITEM]})
-        assert status == 500 and answer == {"error": service_app.INTERNAL}  # RFC 9110, 15.6.1
-        logged = [r for r in caplog.records if r.exc_info]
-        assert logged and "POST /similar" in logged[0].getMessage() and logged[0].exc_info[0] is RuntimeError
-        assert client.call("GET", "/health")[0] == 200
+        yield Server("127.0.0.1", sock.getsockname()[1], None, None)
     finally:
         server.should_exit = True
         thread.join(timeout=30)
         sock.close()
+
+
+def test_a_bug_gets_a_generic_500_and_a_log_line(history_run, caplog):
+    """An exception that is not a TowersError: 500 with a generic line, the traceback only in the server log."""
+    from towers.service.app import INTERNAL
+
+    run = towers.load(history_run)
+
+    def broken(*args, **kwargs):
+        raise RuntimeError("private detail of the failure")
+
+    with served_here(run) as client:
+        run.similar = broken  # after the warm-up, which calls it
+        with caplog.at_level(logging.ERROR, logger="uvicorn.error"):
+            status, answer = client.call("POST", "/similar", {"items": [ITEM]})
+        assert status == 500 and answer == {"error": INTERNAL}  # RFC 9110, 15.6.1
+        logged = [r for r in caplog.records if r.exc_info]
+        assert logged and "POST /similar" in logged[0].getMessage() and logged[0].exc_info[0] is RuntimeError
+        assert client.call("GET", "/health")[0] == 200
+
+
+def test_an_item_item_run_is_served_as_the_run_api_answers(tiny_runs):
+    run = towers.load(tiny_runs.train(config="store_copurchase.yaml", model={"shared_tower": False, "temperature": 0.5},
+                                      evaluation={"baseline": False}))
+    items = [str(i) for i in run.embeddings("item")[0][:2]]
+    with served_here(run) as client:
+        status, about = client.call("GET", "/model")
+        assert status == 200 and about["mode"] == "item_item" and about["columns"]["users"] is None
+        assert about["model"]["temperature"] == 0.5  # reference: the config this run was trained with
+        status, answer = client.call("POST", "/recommend", {"users": items, "top": 5})
+        assert status == 200 and _rows(answer["lists"]) == _table(run.recommend(items, 5))  # reference: the Run API
+        status, answer = client.call("POST", "/similar", {"items": items, "top": 5})
+        assert status == 200 and _rows(answer["lists"]) == _table(run.similar(items, 5))  # reference: the Run API
+        status, answer = client.call("POST", "/recommend", {"history": items})
+        assert status == 422 and "item_item" in answer["error"]  # the CLI's message for --history
+        status, answer = client.call("POST", "/embed", {"side": "users", "rows": [{"item_id": items[0]}]})
+        assert status == 422 and "item_item" in answer["error"]
