@@ -1,7 +1,7 @@
 """The HTTP endpoints of `towers serve` (FastAPI): request models, limits, errors, and the worker threads.
 
 Every request is checked by a pydantic model (types, and the limits below) before the run sees it;
-a body over MAX_BODY_BYTES is refused unread. The run's own methods then do the work on one of
+a body over MAX_BODY_BYTES is refused before it is parsed. The run's own methods then do the work on one of
 `threads` worker threads, so the event loop never waits on torch: torch releases the GIL in its
 products and the numba kernels run without it, so requests proceed in parallel. Inference is safe
 across threads: the run's files are read once at start (warm_up), after which a request only reads
@@ -105,14 +105,12 @@ Ids = Annotated[list[Id], Field(min_length=1, max_length=MAX_IDS)]
 History = Annotated[list[Id], Field(min_length=1, max_length=MAX_HISTORY)]
 Row = Annotated[dict[str, Cell], Field(max_length=MAX_COLUMNS)]
 Context = Annotated[dict[str, Scalar], Field(max_length=MAX_COLUMNS)]
+Columns = Annotated[list[Annotated[str, Field(min_length=1, max_length=MAX_ID_TEXT)]], Field(max_length=MAX_COLUMNS)]
+Values = Annotated[dict[str, Annotated[list[Scalar], Field(max_length=MAX_LIST)] | Scalar], Field(max_length=MAX_COLUMNS)]
 
 
 class _Request(BaseModel):
     model_config = ConfigDict(extra="forbid", strict=True)
-
-
-Columns = Annotated[list[Annotated[str, Field(min_length=1, max_length=MAX_ID_TEXT)]], Field(max_length=MAX_COLUMNS)]
-Values = Annotated[dict[str, Annotated[list[Scalar], Field(max_length=MAX_LIST)] | Scalar], Field(max_length=MAX_COLUMNS)]
 
 
 class KeepRequest(_Request):
