@@ -273,6 +273,9 @@ BIG = b'{"items": [' + b'"TR-00001", ' * 100_000 + b'"TR-00001"]}'  # 1.2 MB
 BAD = [
     ("malformed JSON", "POST", "/similar", b'{"items": ["TR-00001"', None, 400, "not valid JSON"),
     ("no body", "POST", "/similar", b"", None, 400, "body is missing"),
+    ("not UTF-8", "POST", "/similar", b'{"items": ["\xff\xfe"]}', None, 400, "could not be read as JSON"),
+    ("nested too deeply", "POST", "/similar", b'{"items": ' + b"[" * 100_000 + b"]" * 100_000 + b"}", None, 400,
+     "could not be read as JSON"),
     ("not an object", "POST", "/similar", [ITEM], None, 422, "JSON object"),
     ("top as text", "POST", "/similar", {"items": [ITEM], "top": "5"}, None, 422, "top: "),
     ("top of zero", "POST", "/similar", {"items": [ITEM], "top": 0}, None, 422, "top: "),

@@ -389,6 +389,9 @@ def make_app(run, threads: int, item_table=None) -> FastAPI:
         if exc.status_code == 405:
             return _error(405, f"{request.method} is not allowed on {request.url.path}; the endpoints are {ENDPOINTS}",
                           exc.headers)
+        if exc.status_code == 400:  # FastAPI could not decode the body (not UTF-8, nested too deep)
+            return _error(400, "request body could not be read as JSON (not UTF-8, or nested too deeply); send a "
+                               "JSON object")
         return _error(exc.status_code, str(exc.detail), exc.headers)
 
     @app.exception_handler(Exception)
