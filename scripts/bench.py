@@ -40,6 +40,8 @@ SIZES = {
     "scale": ({"small": 1_000_000, "large": 10_000_000, "items": 100_000},
               {"small": 200_000, "large": 2_000_000, "items": 50_000}),
     "embed": ({"items": 1_000_000}, {"items": 300_000}),
+    "serve": ({"events": 200_000, "items": 20_000, "requests": 2_000},
+              {"events": 50_000, "items": 5_000, "requests": 400}),
     # lists for a slice of the users, timed and extrapolated to all of them (the whole run would take long)
     "lists": ({"users": 1_000_000, "items": 200_000, "slice": 20_000, "top": 10, "known": 10},
               {"users": 200_000, "items": 50_000, "slice": 5_000, "top": 10, "known": 10}),
@@ -673,6 +675,111 @@ def case_embed_run(size: dict, work: Path) -> dict:
     return {"seconds": seconds, "peak_rss_gb": peak_rss_bytes() / 2 ** 30}
 
 
+SERVE_CLIENTS = (1, 8, 32)
+
+
+def case_serve_setup(size: dict, work: Path) -> dict:
+    """A small trained run (20 events per customer) for `towers serve`."""
+    import yaml
+
+    from towers.runs.train import train_run
+
+    write_item_table(work / "items.parquet", size["items"], seed=15)
+    write_shop_log(work / "log.parquet", size["events"], size["events"] // 20, size["items"], seed=16)
+    cfg = scale_config(work, "x")
+    cfg["interactions"]["path"] = str(work / "log.parquet")
+    cfg["evaluation"]["references"] = False  # the run's lists are what is timed, not its evaluation
+    cfg["report"] = {"enabled": False}
+    (work / "serve.yaml").write_text(yaml.safe_dump(cfg))
+    train_run(work / "serve.yaml", work / "run", overwrite=True)
+    return {}
+
+
+def ask_server(host: str, port: int, shares: list[list[int]]) -> tuple[list[float], float]:
+    """Each share's users asked for top-20 lists by its own thread on one keep-alive connection; (latencies, wall)."""
+    import http.client
+    import threading
+
+    times: list[float] = []
+    lock = threading.Lock()
+
+    def client(mine: list[int]) -> None:
+        conn = http.client.HTTPConnection(host, port, timeout=120)
+        mine_times = []
+        for user in mine:
+            body = json.dumps({"users": [user], "top": 20})
+            t = time.perf_counter()
+            conn.request("POST", "/recommend", body, {"Content-Type": "application/json"})
+            response = conn.getresponse()
+            response.read()
+            mine_times.append(time.perf_counter() - t)
+            if response.status != 200:
+                raise SystemExit(f"towers serve answered {response.status}")
+        conn.close()
+        with lock:
+            times.extend(mine_times)
+
+    threads = [threading.Thread(target=client, args=(mine,)) for mine in shares]
+    t = time.perf_counter()
+    for th in threads:
+        th.start()
+    for th in threads:
+        th.join()
+    return times, time.perf_counter() - t
+
+
+def case_serve_run(size: dict, work: Path) -> dict:
+    """`towers serve` in its own process, asked for top-20 lists of random users by 1, 8 and 32 clients at once
+    (threads, each on its own keep-alive http.client connection); the same requests through Run.recommend in
+    this process, one at a time on one torch thread (as each server worker runs), for the ratio."""
+    import re
+    import signal
+
+    import numpy as np
+    import torch
+
+    import towers
+
+    torch.set_num_threads(1)  # as each of the server's worker threads runs it
+    run = towers.load(work / "run")
+    users = run.embeddings("user")[0]
+    rng = np.random.default_rng(17)
+    asked = [int(u) for u in rng.choice(users, size["requests"])]
+    library = []
+    for user in asked[:200]:
+        t = time.perf_counter()
+        run.recommend([user], 20)
+        library.append(time.perf_counter() - t)
+
+    log_path = work / "serve.log"
+    with open(log_path, "wb") as out:
+        server = subprocess.Popen([sys.executable, "-m", "towers", "serve", str(work / "run"), "--port", "0"],
+                                  stdout=out, stderr=subprocess.STDOUT, cwd=ROOT)
+    try:
+        found = None
+        for _ in range(1200):
+            found = re.search(r"http://([\d.]+):(\d+) with (\d+) worker", log_path.read_text())
+            if found or server.poll() is not None:
+                break
+            time.sleep(0.1)
+        if not found:
+            raise SystemExit(f"towers serve did not start: {log_path.read_text()}")
+        host, port = found.group(1), int(found.group(2))
+        result = {"serve_threads": int(found.group(3)),
+                  "serve_library_p50_ms": 1000 * float(np.median(library))}
+        for clients in SERVE_CLIENTS:
+            times, wall = ask_server(host, port, [asked[i::clients] for i in range(clients)])
+            result[f"serve_p50_ms_{clients}"] = 1000 * float(np.percentile(times, 50))
+            result[f"serve_p99_ms_{clients}"] = 1000 * float(np.percentile(times, 99))
+            result[f"serve_rps_{clients}"] = len(times) / wall
+            log(f"serve, {clients} clients: p50 {result[f'serve_p50_ms_{clients}']:.1f} ms, "
+                f"p99 {result[f'serve_p99_ms_{clients}']:.1f} ms, {result[f'serve_rps_{clients}']:.0f} requests/s")
+    finally:
+        server.send_signal(signal.SIGINT)
+        server.wait(timeout=60)
+    return result
+
+
 def case_lists(size: dict, work: Path) -> dict:
     """The nightly batch (runs/lists.write_lists: stock filter, one item column, known pairs excluded, parquet
     out) on random vectors, for a slice of the users, against the plain top-N of the same slice."""
@@ -783,6 +890,7 @@ CHILDREN = {"id_training": case_id_training, "tower_flops": case_tower_flops, "a
             "scale_small": lambda s, w: case_scale_run(s, w, "small"),
             "scale_large": lambda s, w: case_scale_run(s, w, "large"),
             "embed_setup": case_embed_setup, "embed_run": case_embed_run, "lists": case_lists,
+            "serve_setup": case_serve_setup, "serve_run": case_serve_run,
             "derive_data": case_derive_data, "derive_run": case_derive_run}
 
 
@@ -815,6 +923,11 @@ def run_case(name: str, size: dict, work: Path) -> dict:
         return {"derive_pairs_vs_scan": out["seconds"] / out["scan_s"], "derive_pairs_peak_rss_gb": out["peak_rss_gb"],
                 "derive_pairs_lines_per_s": data["lines"] / out["seconds"], "derive_pairs_s": out["seconds"],
                 "derive_pairs_scan_s": out["scan_s"], "derive_pairs_lines": data["lines"], "derive_pairs_out": out["pairs"]}
+    if name == "serve":
+        child("serve_setup", size, work)
+        out = child("serve_run", size, work)
+        return {"serve_p50_1_client_vs_library": out["serve_p50_ms_1"] / out["serve_library_p50_ms"],
+                "serve_rps_32_vs_1_client": out["serve_rps_32"] / out["serve_rps_1"], **out}
     return child(name, size, work)
 
 
@@ -824,6 +937,7 @@ GOALS = {  # key: (goal, "at least" or "at most")
     "retrieval_vs_bare_matmul": (0.8, ">="),
     "retrieval_float32_vs_bare_matmul": (None, ""),  # the same search with the bfloat16 screen off
     "scale_10m_over_1m": (11, "<="), "peak_rss_gb_10m": (4, "<="), "embed_1m_unseen_peak_rss_gb": (None, ""),
+    "serve_p50_1_client_vs_library": (None, ""), "serve_rps_32_vs_1_client": (None, ""),
     "lists_vs_top_n": (None, ""), "lists_users_per_s": (None, ""), "lists_peak_rss_gb": (None, ""),
     "derive_pairs_vs_scan": (None, ""), "derive_pairs_lines_per_s": (None, ""), "derive_pairs_peak_rss_gb": (4, "<="),
 }

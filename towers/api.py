@@ -16,13 +16,14 @@ from towers.runs.align import align_run, format_drift
 from towers.runs.lists import ItemFilter, read_id_file
 from towers.runs.report import write_report
 from towers.runs.run import Run
+from towers.runs.summary import describe
 from towers.runs.sweep import run_sweep
 from towers.runs.train import train_run
 from towers.runs.tune import run_tune
 from towers.synthetic.demo_store import generate_store
 
-__all__ = ["ItemFilter", "Run", "align_run", "format_drift", "format_table", "generate_store", "load", "read_id_file",
-           "read_table", "run_sweep", "run_tune", "train", "write_report"]
+__all__ = ["ItemFilter", "Run", "align_run", "describe", "format_drift", "format_table", "generate_store", "load",
+           "read_id_file", "read_table", "run_sweep", "run_tune", "train", "write_report"]
 
 
 def load(run_dir: str | Path) -> Run:

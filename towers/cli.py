@@ -123,6 +123,17 @@ def _parser() -> argparse.ArgumentParser:
     u.add_argument("--jobs", type=int, default=1, metavar="N",
                    help="trials at once, each in its own process on cores/N threads (default 1, in this process)")
 
+    v = sub.add_parser("serve", help="answer recommend, similar and embed requests for one run over HTTP (JSON); "
+                                     "needs the serve extra")
+    v.add_argument("run_dir")
+    v.add_argument("--host", default="127.0.0.1", help="address to listen on (default 127.0.0.1, this machine only)")
+    v.add_argument("--port", type=int, default=8080, help="port to listen on (default 8080; 0 picks a free one)")
+    v.add_argument("--threads", type=int, metavar="N",
+                   help="requests answered at once, each on one torch thread (default: one per core)")
+    v.add_argument("--item-table", metavar="FILE",
+                   help="the item table that item columns and filters read, again when the file changes (default: the "
+                        "run's config items.path)")
+
     d = sub.add_parser("demo-data", help="generate the fictional hardware-and-garden store data")
     d.add_argument("--out", required=True, help="folder to write the demo tables into")
     d.add_argument("--seed", type=int, default=7, help="generator seed (default 7)")
@@ -241,6 +252,12 @@ def run(args: argparse.Namespace) -> int:
         changed = ", ".join(f"{k} {_plain(was)} -> {_plain(now)}" for k, (was, now) in result["changed"].items())
         print(f"changed: {changed or 'nothing (the config already held the best values)'}")
         print(f"config: {result['files']['best.yaml']}")
+        return 0
+    if args.command == "serve":
+        from towers import service  # FastAPI and uvicorn are imported only when a server starts
+
+        service.serve(args.run_dir, args.host, args.port, args.threads, args.item_table,
+                      announce=lambda line: print(line, flush=True))
         return 0
     if args.command == "report":
         print(f"wrote {api.write_report(args.run_dir)}")
