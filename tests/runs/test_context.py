@@ -119,4 +119,4 @@ def test_context_errors_are_one_line(context_runs, capsys):
     (folder / "bad.yaml").write_text(yaml.safe_dump(bad))
     assert cli.main(["train", str(folder / "bad.yaml"), "--out", str(folder / "bad_run")]) == 2
     err = capsys.readouterr().err.strip().splitlines()
-    assert len(err) == 1 and "context columns are numeric or categorical" in err[0]
+    assert len(err) == 1 and "context columns are numeric, categorical or date" in err[0]
