@@ -343,12 +343,12 @@ def _cached_table(cache: dict | None, path, id_column: str, item_ids: np.ndarray
     except OSError:
         return ItemTable(path, id_column, item_ids, needed)  # read_table names the problem
     key = (str(Path(path).resolve()), info.st_mtime_ns, info.st_size, id_column, tuple(sorted(needed)))
-    if cache is None or cache.get("key") != key:
-        table = ItemTable(path, id_column, item_ids, needed)
-        if cache is None:
-            return table
-        cache.update(key=key, table=table)
-    return cache["table"]
+    entry = None if cache is None else cache.get("entry")  # (key, table) as one value: threads may share the cache
+    if entry is None or entry[0] != key:
+        entry = (key, ItemTable(path, id_column, item_ids, needed))
+        if cache is not None:
+            cache["entry"] = entry
+    return entry[1]
 
 
 def _arrow_column(values: pd.Series, path, name: str) -> pa.Array:
@@ -454,8 +454,7 @@ def lists_for(run, columns: Sequence[str] = (), keep: ItemFilter | None = None, 
         id_column = run.config.interactions.candidate_column
     note = (f"{run.dir}: this run has no item table (config items.path), so item columns and column filters have "
             "nothing to read; name one with --item-table FILE (item_table=)")
-    cache = run.__dict__.setdefault("_item_table_cache", {})
-    return item_lists(run.embeddings("item")[0], keep, columns, path, id_column, note, cache)
+    return item_lists(run.embeddings("item")[0], keep, columns, path, id_column, note, run.item_table_cache)
 
 
 def check_top(run, top) -> None:

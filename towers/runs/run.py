@@ -100,6 +100,7 @@ class Run:
         self._pairs = None
         self._emb = {}
         self._history_cache = None
+        self.item_table_cache = {}  # lists.py: the item table that columns and filters read, kept while unchanged
 
     # ---- saved state -------------------------------------------------------------------------
     @property

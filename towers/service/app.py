@@ -6,9 +6,10 @@ a body over MAX_BODY_BYTES is refused before it is parsed. The run's own methods
 products and the numba kernels run without it, so requests proceed in parallel. Inference is safe
 across threads: the run's files are read once at start (warm_up), after which a request only reads
 them; grad mode is per thread, and the run's methods switch it off themselves; each worker thread
-runs torch, and so the top-N search, on one thread. Requests that encode feature rows or read the
-item table (columns, keep) run one at a time: the encoders count unseen values for their warnings,
-and the run keeps the last item table read, in state shared by every thread.
+runs torch, and so the top-N search, on one thread. Requests that encode feature rows run one at a
+time: the encoders count unseen values for their warnings in state shared by every thread. The item
+table that columns and filters read is cached as one (key, table) value, replaced whole when the file
+changes, so those requests need no lock.
 
 Answers: JSON with the result and `notes` (the library's warnings for this request); errors:
 {"error": one line} with 400 (not JSON), 404 / 405 (no such endpoint), 413 (too large), 415 (not
@@ -126,9 +127,6 @@ class _ListRequest(_Request):
     top: Top = 10
     columns: Columns = []
     keep: KeepRequest | None = None
-
-    def uses_item_table(self) -> bool:
-        return bool(self.columns) or self.keep is not None
 
     def list_options(self) -> dict:
         """columns= and keep= of the run's list methods."""
@@ -423,7 +421,7 @@ def make_app(run, threads: int, item_table=None) -> FastAPI:
                                            source="user_row", **options)
             return {"lists": ranked_lists(frame)}
 
-        return await answer(work, "POST /recommend", shared=req.user_row is not None or req.uses_item_table())
+        return await answer(work, "POST /recommend", shared=req.user_row is not None)
 
     @app.post("/similar")
     async def similar(req: SimilarRequest):
@@ -435,7 +433,7 @@ def make_app(run, threads: int, item_table=None) -> FastAPI:
                 frame = run.similar_rows(pd.DataFrame.from_records([req.item_row]), req.top, source="item_row", **options)
             return {"lists": ranked_lists(frame)}
 
-        return await answer(work, "POST /similar", shared=req.item_row is not None or req.uses_item_table())
+        return await answer(work, "POST /similar", shared=req.item_row is not None)
 
     @app.post("/embed")
     async def embed(req: EmbedRequest):
