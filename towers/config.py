@@ -138,6 +138,11 @@ class InteractionsSection:
                               'baskets and sessions: one holding more distinct items than this keeps a seeded random '
                               'sample of this many, so one huge order adds at most cap x (cap - 1) pairs',
                               low=2)
+    min_pair_count: int = key('int', 1,
+                              'baskets and sessions: training pairs found in fewer baskets or sessions than this are '
+                              'left out, to save memory on large exports (most pairs are seen once); held-out pairs '
+                              'are all kept',
+                              low=1)
     quantity_column: str | None = key('str', None,
                                       'baskets: a pair counts min(quantity of a, quantity of b) per basket instead '
                                       'of 1; count_repeats: a pair weighs its summed quantity instead of its rows',

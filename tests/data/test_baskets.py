@@ -154,6 +154,28 @@ def test_time_split_places_whole_baskets_and_drops_known_pairs(export):
     assert not train & set(zip(got.a[got.side > 0], got.b[got.side > 0]))
 
 
+@pytest.mark.parametrize("quantity", [False, True])
+def test_min_pair_count_leaves_out_rare_training_pairs_only(export, quantity):
+    folder, df = export
+    ev = {"split": "time", "test_fraction": 0.2, "validation_fraction": 0.25}
+    extra = {"time_column": "ordered_at", "quantity_column": "quantity" if quantity else None, "evaluation": ev}
+    full = frame(derive_pairs(resolve(folder / "orders.csv", **extra), split=True))
+    d = derive_pairs(resolve(folder / "orders.csv", min_pair_count=3, **extra), split=True)
+    got = frame(d)
+    # reference: pandas, the number of training orders holding both items of each training pair
+    first = df.groupby("order_id").ordered_at.min().sort_values()
+    n_train = len(first) - round(0.2 * len(first))
+    n_train -= round(0.25 * n_train)
+    training = df[df.order_id.isin(first.index[:n_train])]
+    orders_per_pair = pandas_pairs(training.assign(quantity=1))  # a count of 1 per order: orders holding the pair
+    common = orders_per_pair[orders_per_pair.w >= 3][["a", "b"]]
+    want_train = full[full.side == 0].merge(common, on=["a", "b"]).reset_index(drop=True)
+    pd.testing.assert_frame_equal(got[got.side == 0].reset_index(drop=True), want_train, check_dtype=False)
+    pd.testing.assert_frame_equal(got[got.side > 0].reset_index(drop=True), full[full.side > 0].reset_index(drop=True))
+    left_out = int((full.side == 0).sum() - len(want_train))
+    assert left_out > 0 and any(f"left out {left_out:,} training pairs" in note for note in d.notes)
+
+
 def test_random_split_counts_baskets_and_is_seeded(export):
     folder, df = export
     cfg = resolve(folder / "orders.csv", evaluation={"test_fraction": 0.2, "validation_fraction": 0.1})

@@ -300,22 +300,26 @@ def derive_pairs(cfg: Config, split: bool) -> DerivedPairs:
         steps.done(f"{len(ids):,} items")
         if sessions:
             window = ic.session_minutes * (60.0 if source.time_numeric else 60e6)
-            con.execute(f"""CREATE TEMP TABLE pairs AS SELECT s.side, p.a, p.c, count(*)::DOUBLE AS w FROM (
+            con.execute(f"""CREATE TEMP TABLE pairs AS SELECT s.side, p.a, p.c, count(*)::DOUBLE AS w, count(*) AS n FROM (
                               SELECT DISTINCT x.b, x.i AS a, y.i AS c FROM lines x JOIN lines y
                               ON x.b = y.b AND x.i <> y.i AND abs(x.t - y.t) <= {window!r}) p
                             JOIN group_sides s ON s.b = p.b GROUP BY ALL""")
         else:
             weight = "sum(least(x.w, y.w))" if "w" in columns else "count(*)"
-            con.execute(f"""CREATE TEMP TABLE pairs AS SELECT s.side, x.i AS a, y.i AS c, {weight}::DOUBLE AS w
-                            FROM lines x JOIN lines y ON x.b = y.b AND x.i <> y.i
+            con.execute(f"""CREATE TEMP TABLE pairs AS SELECT s.side, x.i AS a, y.i AS c, {weight}::DOUBLE AS w,
+                            count(*) AS n FROM lines x JOIN lines y ON x.b = y.b AND x.i <> y.i
                             JOIN group_sides s ON s.b = x.b GROUP BY ALL""")
         steps.done("pairs counted")
         con.execute("CREATE TEMP TABLE first_side AS SELECT a, c, min(side) AS first FROM pairs GROUP BY a, c")
         dropped = dict(con.execute("SELECT p.side, count(*) FROM pairs p JOIN first_side f USING (a, c) "
                                    "WHERE p.side > f.first GROUP BY p.side").fetchall())
-        out = con.execute("""SELECT ca.code AS a, cc.code AS c, p.w, p.side FROM pairs p
+        rare = 0
+        if ic.min_pair_count > 1:  # training pairs only; placed after first_side, so the held-out drops are unchanged
+            rare = con.execute(f"SELECT count(*) FROM pairs WHERE side = {TRAIN} AND n < {ic.min_pair_count}").fetchall()[0][0]
+        out = con.execute(f"""SELECT ca.code AS a, cc.code AS c, p.w, p.side FROM pairs p
                              JOIN first_side f ON p.a = f.a AND p.c = f.c AND p.side = f.first
                              JOIN lines_i_codes ca ON ca.v = p.a JOIN lines_i_codes cc ON cc.v = p.c
+                             WHERE p.side <> {TRAIN} OR p.n >= {ic.min_pair_count}
                              ORDER BY p.side, a, c""").fetchnumpy()
         steps.done(f"{len(out['a']):,} pairs kept")
     notes = [f"pairs from {what}: {n_groups:,} {what} of {ic.path} (training {per_side[0]:,}, validation "
@@ -323,6 +327,9 @@ def derive_pairs(cfg: Config, split: bool) -> DerivedPairs:
     if capped:
         notes.append(f"pairs from {what}: {capped:,} {what} held more than group_item_cap = {ic.group_item_cap} "
                      "distinct items and kept a seeded sample of that many")
+    if rare:
+        notes.append(f"pairs from {what}: left out {rare:,} training pairs found in fewer than min_pair_count = "
+                     f"{ic.min_pair_count} {what}")
     for s in (1, 2):
         if dropped.get(s):
             earlier = "training" if s == 1 else "training or validation"

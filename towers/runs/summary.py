@@ -2,12 +2,15 @@
 
 Everything is read back from the run folder (the bundle, the embeddings files' metadata, pairs.pt,
 metrics.json and history.json), so the summary says what the files say and nothing more. The training
-data's dates are not recorded in a run folder, so the summary has none.
+pairs' time range comes from pairs.pt when the log had a time column: as ISO text when the times were
+dates (nanoseconds since 1970), as the log's own numbers otherwise.
 """
 
 from __future__ import annotations
 
 import math
+
+import pandas as pd
 
 from towers.runs.folder import TOWERS, RunFolder
 from towers.runs.run import Run
@@ -33,6 +36,19 @@ def _columns(encoders) -> list[str] | None:
     if encoders.id_column is None:
         return None
     return [encoders.id_column] + [e.name for e in encoders.encoders]
+
+
+DATES_FROM_NS = 10**17  # a time at or above this, read as nanoseconds, is after 1973: a parsed date, not seconds
+
+
+def time_range(times) -> dict | None:
+    """First and last training time, or None when the log had no time column (see the module docstring)."""
+    if times is None or not len(times):
+        return None
+    first, last = int(times.min()), int(times.max())
+    if first >= DATES_FROM_NS:
+        return {"first": pd.Timestamp(first, unit="ns").isoformat(), "last": pd.Timestamp(last, unit="ns").isoformat()}
+    return {"first": first, "last": last, "unit": "as in the log"}
 
 
 def describe(run: Run) -> dict:
@@ -66,6 +82,7 @@ def describe(run: Run) -> dict:
         "catalog": {"users": None if run.item_item else len(pairs["query_ids"]), "items": len(pairs["item_ids"])},
         "data": {name: len(pairs[key]["query"]) if key in pairs else 0 for key, name in SPLITS.items()},
         "training": {key: history.get(key) for key in ("stop_metric", "best_epoch", "still_improving")},
+        "training_times": time_range(pairs["train"].get("time")) if "train" in pairs else None,
         "metrics": {s: metrics[s] for s in SLICES if s in metrics},
         "notes": metrics.get("notes", {}),
     }
