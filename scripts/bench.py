@@ -45,7 +45,9 @@ SIZES = {
     # lists for a slice of the users, timed and extrapolated to all of them (the whole run would take long)
     "lists": ({"users": 1_000_000, "items": 200_000, "slice": 20_000, "top": 10, "known": 10},
               {"users": 200_000, "items": 50_000, "slice": 5_000, "top": 10, "known": 10}),
-    "derive_pairs": ({"lines": 50_000_000, "items": 100_000}, {"lines": 3_000_000, "items": 50_000}),
+    # full size with min_pair_count 2, the README's setting for large exports (every pair kept would hold ~100M pairs)
+    "derive_pairs": ({"lines": 50_000_000, "items": 100_000, "min_pair_count": 2},
+                     {"lines": 3_000_000, "items": 50_000, "min_pair_count": 1}),
 }
 CASES = tuple(SIZES)
 K = 64  # k, the embedding size, in every case
@@ -868,7 +870,7 @@ def case_derive_run(size: dict, work: Path) -> dict:
     cfg = C.resolve({"run": {"mode": "item_item", "threads": 2},
                      "interactions": {"path": str(work / "orders.csv"), "pairs_from": "baskets", "group_column": "order_id",
                                       "candidate_column": "product_id", "time_column": "ordered_at",
-                                      "quantity_column": "quantity"},
+                                      "quantity_column": "quantity", "min_pair_count": size.get("min_pair_count", 1)},
                      "evaluation": {"split": "time"}, "training": {"progress": "plain"}}, work)
     t = time.perf_counter()
     con = duckdb.connect(config={"threads": 2, "memory_limit": "2GB"})

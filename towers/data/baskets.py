@@ -244,6 +244,27 @@ def _distinct_codes(con, table: str, column: str, path, label: str) -> np.ndarra
     return normalise_ids(pd.Series(values), path, label)
 
 
+FETCH_ROWS = 1 << 20  # rows per batch when a result is read back: DuckDB never materialises it whole
+
+
+def _fetch_sorted(con, sql: str, keys: tuple[str, ...]) -> dict[str, np.ndarray]:
+    """The columns of a query's result as numpy arrays, read back in batches and sorted by `keys` in numpy.
+
+    An ORDER BY would make DuckDB materialise the whole result inside its memory limit (it ran out at 50M
+    order lines); batches of an unordered result stream out, and numpy sorts the arrays once they are here.
+    """
+    relation = con.sql(sql)
+    reader = relation.to_arrow_reader(FETCH_ROWS) if hasattr(relation, "to_arrow_reader") else \
+        relation.fetch_arrow_reader(FETCH_ROWS)  # the name before DuckDB 2
+    parts: dict[str, list[np.ndarray]] = {name: [] for name in reader.schema.names}
+    for batch in reader:
+        for name, column in zip(batch.schema.names, batch.columns):
+            parts[name].append(column.to_numpy(zero_copy_only=False))
+    out = {name: np.concatenate(chunks) if chunks else np.zeros(0) for name, chunks in parts.items()}
+    order = np.lexsort(tuple(out[k] for k in reversed(keys)))  # lexsort's last key is the primary one
+    return {name: values[order] for name, values in out.items()}
+
+
 def _cap_groups(con, cap: int, seed: int) -> int:
     """Replace `lines` by the lines of at most `cap` distinct items per group (a seeded hash picks which);
     returns how many groups were capped."""
@@ -316,11 +337,10 @@ def derive_pairs(cfg: Config, split: bool) -> DerivedPairs:
         rare = 0
         if ic.min_pair_count > 1:  # training pairs only; placed after first_side, so the held-out drops are unchanged
             rare = con.execute(f"SELECT count(*) FROM pairs WHERE side = {TRAIN} AND n < {ic.min_pair_count}").fetchall()[0][0]
-        out = con.execute(f"""SELECT ca.code AS a, cc.code AS c, p.w, p.side FROM pairs p
-                             JOIN first_side f ON p.a = f.a AND p.c = f.c AND p.side = f.first
-                             JOIN lines_i_codes ca ON ca.v = p.a JOIN lines_i_codes cc ON cc.v = p.c
-                             WHERE p.side <> {TRAIN} OR p.n >= {ic.min_pair_count}
-                             ORDER BY p.side, a, c""").fetchnumpy()
+        out = _fetch_sorted(con, f"""SELECT ca.code AS a, cc.code AS c, p.w, p.side FROM pairs p
+                                     JOIN first_side f ON p.a = f.a AND p.c = f.c AND p.side = f.first
+                                     JOIN lines_i_codes ca ON ca.v = p.a JOIN lines_i_codes cc ON cc.v = p.c
+                                     WHERE p.side <> {TRAIN} OR p.n >= {ic.min_pair_count}""", ("side", "a", "c"))
         steps.done(f"{len(out['a']):,} pairs kept")
     notes = [f"pairs from {what}: {n_groups:,} {what} of {ic.path} (training {per_side[0]:,}, validation "
              f"{per_side[1]:,}, test {per_side[2]:,}), {len(out['a']):,} item pairs (both directions)"]
@@ -360,9 +380,9 @@ def collapse_repeats(cfg: Config) -> CollapsedRows:
         group = ", gc.code AS g" if "g" in columns else ""
         join_g = " JOIN (SELECT g, row_number() OVER (ORDER BY g) - 1 AS code FROM (SELECT DISTINCT g FROM rows)) gc " \
                  "ON gc.g = r.g" if "g" in columns else ""
-        out = con.execute(f"""SELECT qc.code AS q, cc.code AS c, r.w{', r.t' if latest else ''}{group} FROM rows r
-                              JOIN rows_q_codes qc ON qc.v = r.q JOIN rows_i_codes cc ON cc.v = r.i{join_g}
-                              ORDER BY q, c{', g' if group else ''}""").fetchnumpy()
+        out = _fetch_sorted(con, f"""SELECT qc.code AS q, cc.code AS c, r.w{', r.t' if latest else ''}{group}
+                                     FROM rows r JOIN rows_q_codes qc ON qc.v = r.q
+                                     JOIN rows_i_codes cc ON cc.v = r.i{join_g}""", ("q", "c", "g") if group else ("q", "c"))
         n_rows = con.execute("SELECT count(*) FROM src").fetchall()[0][0]
         steps.done(f"{n_rows:,} rows read")
     q, c, w = out["q"].astype(np.int64), out["c"].astype(np.int64), out["w"].astype(np.float64)
