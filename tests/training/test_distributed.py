@@ -14,6 +14,8 @@ import sys
 import pytest
 import yaml
 
+from towers.training import distributed as D
+
 pytestmark = pytest.mark.slow  # torchrun processes
 
 
@@ -68,3 +70,23 @@ def test_workers_must_be_positive(tmp_path):
     proc = subprocess.run([sys.executable, "-m", "towers", "train", "x.yaml", "--out", str(tmp_path / "r"),
                            "--workers", "0"], capture_output=True, text=True, timeout=60)
     assert proc.returncode == 2 and proc.stderr.strip().startswith("error: --workers 0")
+
+
+@pytest.mark.parametrize("n, cores, load, free", [(3, 2, 0.0, 2), (2, 4, 3.2, 1), (2, 2, 1.6, 0)])
+def test_more_processes_than_free_cores_get_a_note(n, cores, load, free):
+    note = D.crowding_note(n, cores, load)
+    assert note is not None and "\n" not in note  # one line
+    assert note.startswith(f"note: --workers {n} starts {n} processes but {free} of this machine's {cores} cores are free")
+
+
+@pytest.mark.parametrize("n, cores, load", [(1, 2, 0.0), (2, 2, 0.2), (2, 8, 5.0)])
+def test_enough_free_cores_give_no_note(n, cores, load):
+    assert D.crowding_note(n, cores, load) is None
+
+
+def test_launch_prints_the_note_before_starting(monkeypatch, capsys):
+    started = []
+    monkeypatch.setattr(D, "usable_cores", lambda: 1)
+    monkeypatch.setattr(D.subprocess, "run", lambda cmd, env: started.append(cmd) or subprocess.CompletedProcess(cmd, 0))
+    assert D.launch_workers(2, ["train", "x.yaml", "--out", "r"]) == 0
+    assert "note: --workers 2 starts 2 processes" in capsys.readouterr().err and len(started) == 1

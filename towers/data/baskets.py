@@ -260,9 +260,15 @@ def _fetch_sorted(con, sql: str, keys: tuple[str, ...]) -> dict[str, np.ndarray]
     for batch in reader:
         for name, column in zip(batch.schema.names, batch.columns):
             parts[name].append(column.to_numpy(zero_copy_only=False))
-    out = {name: np.concatenate(chunks) if chunks else np.zeros(0) for name, chunks in parts.items()}
+    out = {}
+    for name in list(parts):  # each column's batches freed as soon as they are joined, to keep the peak low
+        chunks = parts.pop(name)
+        out[name] = np.concatenate(chunks) if chunks else np.zeros(0)
+        del chunks
     order = np.lexsort(tuple(out[k] for k in reversed(keys)))  # lexsort's last key is the primary one
-    return {name: values[order] for name, values in out.items()}
+    for name in out:  # one column at a time: the unsorted copy goes as its sorted one arrives
+        out[name] = out[name][order]
+    return out
 
 
 def _cap_groups(con, cap: int, seed: int) -> int:
@@ -355,8 +361,8 @@ def derive_pairs(cfg: Config, split: bool) -> DerivedPairs:
             earlier = "training" if s == 1 else "training or validation"
             notes.append(f"pairs from {what}: dropped {dropped[s]:,} {SIDE_NAMES[s]} pairs also found among the "
                          f"{earlier} pairs (known pairs are excluded from rankings, so they could not be ranked)")
-    return DerivedPairs(out["a"].astype(np.int64), out["c"].astype(np.int64), ids, out["w"].astype(np.float64),
-                        out["side"].astype(np.int8), notes)
+    return DerivedPairs(out["a"].astype(np.int64, copy=False), out["c"].astype(np.int64, copy=False), ids,
+                        out["w"].astype(np.float64, copy=False), out["side"].astype(np.int8, copy=False), notes)
 
 
 def collapse_repeats(cfg: Config) -> CollapsedRows:

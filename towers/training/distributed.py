@@ -88,10 +88,36 @@ def peer_failure(exc: BaseException) -> TowersError:
                        "no run was written; see that process's error above, fix it and start again")
 
 
+def usable_cores() -> int:
+    """The cores this process may run on (its CPU affinity where the platform tells it)."""
+    try:
+        return len(os.sched_getaffinity(0))
+    except AttributeError:  # not Linux
+        return os.cpu_count() or 1
+
+
+def crowding_note(n: int, cores: int, load: float) -> str | None:
+    """One line when n processes would have fewer free cores than processes, else None.
+
+    Free cores are the usable ones less the load average of the last minute (work already running). With
+    fewer free cores than processes they take turns on the cores, and each step also waits for the
+    slowest process's gradients, so training is slower than in one process.
+    """
+    free = max(0, cores - round(load))
+    if n <= free:
+        return None
+    return (f"note: --workers {n} starts {n} processes but {free} of this machine's {cores} cores are free (load "
+            f"{load:.1f}), so they will share cores and wait for each other at every step: expect it to be slower "
+            f"than one process; data-parallel training pays off with a free core per process, or across machines")
+
+
 def launch_workers(n: int, argv: list[str]) -> int:
     """Run `towers train` in n local processes through torchrun (torch.distributed.run); returns its exit code."""
     if n < 1:
         raise TowersError(f"--workers {n}: give 1 or more processes")
+    note = crowding_note(n, usable_cores(), os.getloadavg()[0] if hasattr(os, "getloadavg") else 0.0)
+    if note:
+        print(note, file=sys.stderr)
     cmd = [sys.executable, "-m", "torch.distributed.run", "--standalone", f"--nproc-per-node={n}", "-m", "towers", *argv]
     env = dict(os.environ)
     env.setdefault("OMP_NUM_THREADS", str(max(1, (os.cpu_count() or 1) // n)))  # the cores shared out
