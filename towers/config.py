@@ -200,6 +200,10 @@ class ModelSection:
                               "user_item runs: the query tower also averages embeddings of up to this many of "
                               "the user's training items (the latest when the log has a time column); 0: off",
                               low=0)
+    history_decay: float = key('float', 1.0,
+                               "history_length > 0: the user's i-th latest item (i = 0, 1, ...) weighs "
+                               "history_decay ** i in the pooled history, weights summing to 1; 1 is a plain mean",
+                               low=0.0, low_open=True, high=1.0)
 
 
 @dataclass(frozen=True)

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
+import numpy as np
 import torch
 
 from towers import config as C
@@ -61,3 +62,25 @@ def test_sparse_and_dense_parameters_partition_the_model():
     assert len(sparse) == 4  # two id tables, two bias tables
 
 
+
+
+def test_history_decay_pools_the_latest_items_with_geometric_weights():
+    from towers.data.history import HISTORY
+    from towers.model.towers import Tower
+
+    bags = torch.tensor([[3, 1, 4, 0, 0], [2, 0, 5, 6, 1], [0, 0, 0, 0, 0]])  # latest first; 0 pads, inner 0 a taken-out target
+    spec = [{"name": HISTORY, "kind": "tokens", "size": 7, "dim": 4}]
+    for decay in (1.0, 0.5):
+        tower = Tower(spec, 1, _model_cfg(use_ids=False, hidden=[], history_decay=decay)).eval()
+        table = tower.tables["f0"].weight.detach().numpy()
+        # reference: a numpy weighted average, weights decay**position over each bag's items, summing to 1
+        pos = np.arange(bags.shape[1])
+        want = []
+        for row in bags.numpy():
+            w = np.where(row != 0, decay ** pos, 0.0)
+            want.append((w[:, None] * table[row]).sum(0) / w.sum() if w.sum() else np.zeros(4))
+        pooled = torch.from_numpy(np.asarray(want, dtype=np.float32))
+        with torch.no_grad():
+            got = tower({HISTORY: bags})
+            expected = tower.mlp(pooled)
+        assert torch.allclose(got, expected, atol=1e-5)

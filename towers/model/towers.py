@@ -11,6 +11,7 @@ import torch.nn as nn
 import torch.nn.functional as F
 
 from towers.config import ModelSection
+from towers.data.history import HISTORY
 
 ACTIVATIONS = {"relu": nn.ReLU, "gelu": nn.GELU, "tanh": nn.Tanh, "silu": nn.SiLU}
 ID_INIT_STD = 0.1  # common practice for factor tables (no source)
@@ -36,6 +37,7 @@ class Tower(nn.Module):
         self.non_negative = model_cfg.non_negative
         self.id_dropout = model_cfg.id_dropout
         self.use_ids = model_cfg.use_ids
+        self.history_decay = model_cfg.history_decay
         hidden = model_cfg.hidden
         # ids only and no hidden layer: the id row is the embedding (plain matrix factorisation)
         self.direct = self.use_ids and not inputs and not hidden
@@ -75,6 +77,14 @@ class Tower(nn.Module):
             ids = torch.where(torch.rand(ids.shape) < self.id_dropout, torch.zeros_like(ids), ids)
         return ids
 
+    def _recent_first(self, bags: torch.Tensor, table: nn.EmbeddingBag) -> torch.Tensor:
+        """The history bags (latest item first, 0 padding) pooled with weights decay**position, summing to 1
+        over each bag's items; an empty bag gives zeros, as the plain mean does."""
+        weights = self.history_decay ** torch.arange(bags.shape[1], dtype=torch.float32)
+        weights = weights.expand(bags.shape[0], -1) * (bags != 0)
+        weights = weights / weights.sum(1, keepdim=True).clamp_min(torch.finfo(torch.float32).tiny)
+        return F.embedding_bag(bags, table.weight, mode="sum", per_sample_weights=weights, padding_idx=0)
+
     def forward(self, block: dict, ids: torch.Tensor | None = None) -> torch.Tensor:
         if ids is None and self.use_ids:
             ids = self.id_rows(block)
@@ -84,7 +94,9 @@ class Tower(nn.Module):
             parts = [self.ids(ids)] if self.use_ids else []
             for pos, spec in enumerate(self.inputs):
                 x = block[spec["name"]]
-                if spec["kind"] in ("categorical", "tokens"):
+                if spec["name"] == HISTORY and self.history_decay < 1.0:
+                    x = self._recent_first(x, self.tables[f"f{pos}"])
+                elif spec["kind"] in ("categorical", "tokens"):
                     x = self.tables[f"f{pos}"](x)
                 parts.append(x)
             out = self.mlp(torch.cat(parts, dim=1))
