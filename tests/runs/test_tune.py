@@ -93,7 +93,8 @@ def test_every_range_is_log_scale_ready_and_explained():
             assert float(r.low).is_integer() and float(r.high).is_integer()
     keys = {r.key for r in S.RANGES}
     assert keys == {"model.dim", "training.id_l2", "training.weight_decay", "training.learning_rate",
-                    "training.batch_size", "training.negatives", "model.temperature", "model.history_length"}
+                    "training.batch_size", "training.negatives", "model.temperature", "model.history_length",
+                    "model.history_decay"}
 
 
 # ---------------------------------------------------------------- the per-epoch report and pruning

@@ -69,6 +69,9 @@ RANGES = (
     Range("model.history_length", 4, 128, True, "user_item runs, in trials that turn the history on",
           "fewer than 4 items average into a noisy vector; every step pays for each item kept, and past 128 "
           "the oldest add little"),
+    Range("model.history_decay", 0.8, 1.0, False, "user_item runs, in trials that turn the history on",
+          "1 averages the history alike; 0.8 leaves the 20th latest item 1% of the latest's weight, about as "
+          "short a memory as a shop's history is worth (0.95 measured best on MovieLens, 0.9 and 0.8 close)"),
 )
 SWITCHES = {
     "model.normalize": "ranking losses (logistic, softmax): on or off, as the config's own choice",
@@ -105,6 +108,8 @@ def suggest(trial, base: C.Config) -> dict:
     if not base.item_item:
         history = trial.suggest_categorical(HISTORY_SWITCH, [False, True])
         values["model.history_length"] = _ask(trial, _range("model.history_length")) if history else 0
+        if history:
+            values["model.history_decay"] = _ask(trial, _range("model.history_decay"))
     return values
 
 
@@ -118,7 +123,7 @@ def searched_keys(base: C.Config) -> list[str]:
     if not base.training.rating_loss or base.model.normalize:
         keys.append("model.temperature")
     if not base.item_item:
-        keys.append("model.history_length")
+        keys += ["model.history_length", "model.history_decay"]
     return keys
 
 
