@@ -21,9 +21,9 @@ from towers.data.history import HISTORY, history_column
 from towers.data.pairs import Pairs, SplitPairs
 from towers.data.splits import HoldOut, Split, make_split
 from towers.data.tables import (
-    align_id_types,
     factorize_ids,
     numeric_column,
+    positions_in,
     read_table,
     time_column,
 )
@@ -190,7 +190,7 @@ def _joint_ids(a: IdColumn, b: IdColumn) -> IdColumn:
 
 def _catalog_rows(ids: IdColumn, catalog_ids: np.ndarray) -> np.ndarray:
     """Each row's position in the catalog (-1 where absent), matched once per distinct id."""
-    return pd.Index(catalog_ids).get_indexer(align_id_types(ids.uniques, catalog_ids))[ids.codes]
+    return positions_in(catalog_ids, ids.uniques)[ids.codes]
 
 
 def prepare(cfg: Config, previous=None) -> Prepared:
@@ -308,7 +308,7 @@ def _learned(ids: np.ndarray, encoders: SideEncoders) -> np.ndarray:
     known = encoders.id_encoder.ids
     if len(known) == 0:
         return np.zeros(len(ids), dtype=bool)
-    return pd.Index(known).get_indexer(align_id_types(ids, known)) >= 0
+    return positions_in(known, ids) >= 0
 
 
 def _check_oracles(cfg: Config, data: Prepared) -> None:

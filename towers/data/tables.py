@@ -197,6 +197,21 @@ def factorize_ids(series: pd.Series, path, column) -> tuple[np.ndarray, np.ndarr
     return codes.astype(np.int64, copy=False), np.asarray(uniques.to_numpy(dtype=object), dtype=object)
 
 
+def given_ids(values) -> np.ndarray:
+    """Ids handed over by a caller (a list or an array): whole numbers as int64, anything else as text."""
+    arr = values if isinstance(values, np.ndarray) else np.asarray(list(values), dtype=object)
+    if arr.dtype.kind in "iu":
+        return arr.astype(np.int64, copy=False)
+    if arr.dtype == object and all(isinstance(v, (int, np.integer)) and not isinstance(v, (bool, np.bool_)) for v in arr):
+        return arr.astype(np.int64)
+    return arr.astype(str).astype(object)
+
+
+def positions_in(catalog: np.ndarray, ids: np.ndarray) -> np.ndarray:
+    """Each id's position in `catalog` (int64, -1 where absent), the id types aligned first."""
+    return pd.Index(catalog).get_indexer(align_id_types(ids, catalog)).astype(np.int64, copy=False)
+
+
 def align_id_types(ids: np.ndarray, reference: np.ndarray) -> np.ndarray:
     """Make `ids` comparable with `reference` ids (an integer log against a text table, say)."""
     if ids.dtype == reference.dtype:

@@ -25,7 +25,16 @@ import torch
 
 from towers.atomic import write_atomic
 from towers.data.history import history_ids
-from towers.data.tables import READABLE, align_id_types, check_unique_ids, normalise_ids, read_table, shown
+from towers.data.tables import (
+    READABLE,
+    align_id_types,
+    check_unique_ids,
+    given_ids,
+    normalise_ids,
+    positions_in,
+    read_table,
+    shown,
+)
 from towers.errors import TowersError, where
 from towers.search.scorer import Scorer
 from towers.training.progress import log, show_bar
@@ -326,12 +335,7 @@ def item_lists(item_ids: np.ndarray, keep: ItemFilter | None, columns: Sequence[
         for name in columns:
             out[name] = _arrow_column(table.column(name), table.path, name)
     if keep.never_ids:
-        given = np.asarray(list(keep.never_ids), dtype=object)
-        if all(isinstance(v, (int, np.integer)) and not isinstance(v, (bool, np.bool_)) for v in given):
-            given = given.astype(np.int64)
-        else:
-            given = given.astype(str).astype(object)
-        at = pd.Index(item_ids).get_indexer(align_id_types(given, item_ids))
+        at = positions_in(item_ids, given_ids(keep.never_ids))
         allowed[at[at >= 0]] = False  # ids not in the run are never listed anyway
     rows = None if allowed.all() else torch.from_numpy(np.flatnonzero(allowed).astype(np.int64))
     return Lists(item_ids, rows, out)
@@ -489,7 +493,7 @@ def recommend_rows(run, df: pd.DataFrame, top: int, history_column: str | None, 
     if history_column is not None:  # every given item of the run is left out, as recommend_history does
         ids, at_row = history_ids(df[history_column], source, history_column, separator)
         item_ids = run.embeddings("item")[0]
-        at = pd.Index(item_ids).get_indexer(align_id_types(ids, item_ids))
+        at = positions_in(item_ids, ids)
         cells = np.unique(np.stack([at_row[at >= 0], at[at >= 0]], 1), axis=0)  # sorted by row, each cell once
         ex_r, ex_c = (torch.from_numpy(np.ascontiguousarray(cells[:, j], dtype=np.int64)) for j in (0, 1))
     idx, scores = lists.top(_run_scorer(run, embedded.attrs["vectors"], embedded.attrs["bias"]), top, ex_r, ex_c)
@@ -516,7 +520,7 @@ def similar_rows(run, df: pd.DataFrame, top: int, columns, keep, item_table, sou
         unit = torch.nn.functional.normalize(i_vec, dim=1)
         scorer = Scorer(torch.nn.functional.normalize(embedded.attrs["vectors"], dim=1), unit)
     ids = embedded["id"].to_numpy()
-    at = torch.from_numpy(pd.Index(i_ids).get_indexer(align_id_types(ids, i_ids)).astype(np.int64))
+    at = torch.from_numpy(positions_in(i_ids, ids))
     own = torch.nonzero(at >= 0).flatten()  # an item of the run given again is not its own neighbour
     idx, scores = lists.top(scorer, top, own, at.index_select(0, own))
     return lists.frame(ids, idx, scores)
@@ -528,12 +532,8 @@ def batch_rows(run, user_ids, what: str, source: str) -> torch.Tensor:
     q_ids = run.embeddings(run._query_side())[0]
     if user_ids is None:
         return torch.arange(len(q_ids))
-    given = np.asarray(user_ids) if isinstance(user_ids, np.ndarray) else np.asarray(list(user_ids), dtype=object)
-    if given.dtype == object and all(isinstance(v, (int, np.integer)) and not isinstance(v, bool) for v in given):
-        given = given.astype(np.int64)
-    elif given.dtype == object or given.dtype.kind == "U":
-        given = given.astype(str).astype(object)
-    at = pd.Index(q_ids).get_indexer(align_id_types(given, q_ids))
+    given = given_ids(user_ids)
+    at = positions_in(q_ids, given)
     if (at < 0).any():
         first = given[np.flatnonzero(at < 0)[0]]
         warnings.warn(f"{source}: {int((at < 0).sum())} of {len(at)} {what} ids are not in this run (e.g. {first!r}); "

@@ -32,7 +32,9 @@ from towers.data.pairs import Pairs
 from towers.data.prepare import read_interactions
 from towers.data.tables import (
     align_id_types,
+    given_ids,
     normalise_ids,
+    positions_in,
     read_table,
     read_table_chunks,
     require_columns,
@@ -360,11 +362,7 @@ class Run:
     # ---- retrieval ------------------------------------------------------------------------------
     def _rows(self, ids_all: np.ndarray, wanted, what: str) -> torch.Tensor:
         """Catalog rows of requested ids, parsed the same way as log ids are matched to tables."""
-        values = list(wanted)
-        if all(isinstance(v, (int, np.integer)) and not isinstance(v, bool) for v in values):
-            given = np.asarray(values, dtype=np.int64)
-        else:
-            given = np.asarray([str(v) for v in values], dtype=object)
+        given = given_ids(wanted)
         wanted = align_id_types(given, ids_all)
         if ids_all.dtype.kind in "iu":
             unparsed = wanted == np.iinfo(np.int64).min  # align_id_types' mark for text that is no whole number
@@ -443,7 +441,7 @@ class Run:
             bias = bias_table(block["id"]).squeeze(1) if bias_table is not None else None
         i_ids = self.embeddings("item")[0]  # the catalog order of pairs.pt and of the history table
         ids, _ = history_ids(frame[HISTORY], "--history", HISTORY)
-        at = pd.Index(i_ids).get_indexer(align_id_types(ids, i_ids))
+        at = positions_in(i_ids, ids)
         given = torch.from_numpy(np.unique(at[at >= 0]).astype(np.int64))  # the given items in the run, left out
         scorer = dataclasses.replace(self._scorer(TOWERS), query_vectors=vectors, query_bias=bias)
         idx, scores = lists.top(scorer, top, torch.zeros(len(given), dtype=torch.int64), given)
@@ -510,7 +508,7 @@ class Run:
             cfg = cfg.with_section("interactions", path=str(Path(interactions).expanduser().resolve()))
             log = read_interactions(cfg)
             q, c, target, weight = log.query, log.candidate, log.target, log.weight
-            qr = pd.Index(query_ids).get_indexer(align_id_types(q, query_ids))
+            qr = positions_in(query_ids, q)
             cr = pd.Index(item_ids).get_indexer(align_id_types(c, item_ids))
             ok = (qr >= 0) & (cr >= 0)
             if (~ok).sum():

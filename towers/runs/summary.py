@@ -12,10 +12,10 @@ import math
 
 import pandas as pd
 
+from towers.evaluation.protocol import SLICES
 from towers.runs.folder import TOWERS, RunFolder
 from towers.runs.run import Run
 
-SLICES = ("warm", "cold", "cold_users")  # the ranked slices of metrics.json, in its order
 SPLITS = {"train": "training_pairs", "valid": "validation_pairs", "test": "test_pairs",
           "cold_test": "cold_item_pairs", "cold_user_test": "cold_user_pairs"}
 
