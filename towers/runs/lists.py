@@ -263,10 +263,15 @@ class Lists:
         column[self.allowed] = torch.arange(len(self.allowed))
         return column
 
+    def restricted(self, scorer: Scorer) -> Scorer:
+        """The scorer over the allowed items only (the whole catalog without a filter)."""
+        return scorer if self.allowed is None else scorer.over_items(self.allowed)
+
     def top(self, scorer: Scorer, n: int, ex_rows: torch.Tensor | None = None, ex_items: torch.Tensor | None = None,
-            item_column: torch.Tensor | None = None) -> tuple[torch.Tensor, torch.Tensor]:
+            item_column: torch.Tensor | None = None, restricted: bool = False) -> tuple[torch.Tensor, torch.Tensor]:
         """Each query's n best allowed items as (catalog item rows, scores), -1 padding; exclusions are
-        (ranking row, catalog item row) cells sorted by row. item_column: self.item_column, if already made."""
+        (ranking row, catalog item row) cells sorted by row. item_column: self.item_column, if already made;
+        restricted: the scorer is self.restricted(...) already (the batch restricts once, not per block)."""
         if self.allowed is None:
             return scorer.top(n, ex_rows, ex_items)
         column = self.item_column if item_column is None else item_column
@@ -274,7 +279,7 @@ class Lists:
             cols = column.index_select(0, ex_items)
             kept = cols >= 0
             ex_rows, ex_items = ex_rows[kept], cols[kept]
-        idx, scores = scorer.over_items(self.allowed).top(n, ex_rows, ex_items)
+        idx, scores = (scorer if restricted else scorer.over_items(self.allowed)).top(n, ex_rows, ex_items)
         rows = self.allowed.index_select(0, idx.clamp(min=0).reshape(-1)).reshape(idx.shape)
         return torch.where(idx >= 0, rows, -1), scores
 
@@ -405,6 +410,7 @@ def write_lists(out: str | Path, scorer: Scorer, lists: Lists, query_ids: np.nda
 
     block = block or BATCH_USERS
     column = lists.item_column
+    allowed_only = lists.restricted(scorer)  # the allowed items' vectors gathered once for every block
     schema_done: list[pa.Schema] = []
     written = [0]
 
@@ -420,7 +426,7 @@ def write_lists(out: str | Path, scorer: Scorer, lists: Lists, query_ids: np.nda
                     offsets, items = known if known is not None else (torch.zeros(len(query_ids) + 1, dtype=torch.int64),
                                                                       torch.zeros(0, dtype=torch.int64))
                     ex_r, ex_c = block_exclusions(part, offsets, items, exclude_self)
-                idx, scores = lists.top(scorer.for_queries(part), top, ex_r, ex_c, column)
+                idx, scores = lists.top(allowed_only.for_queries(part), top, ex_r, ex_c, column, restricted=True)
                 table = lists.table(query_ids[part.numpy()], idx, scores)
                 if writer is None:
                     writer = pq.ParquetWriter(path, table.schema)
