@@ -111,7 +111,9 @@ class RunSection:
 class InteractionsSection:
     """interactions: the log of observed pairs and its columns."""
 
-    path: str | None = key('path', None, 'interaction log, CSV or parquet, one row per observed pair')
+    path: str | None = key('path', None, 'interaction log, CSV or parquet, one row per observed pair; or a folder '
+                           'of such files (all CSV/TSV or all parquet, read in name order as one log, e.g. one '
+                           'export a day; hidden files and names starting with `_` are skipped)')
     query_column: str | None = key('str', None, 'query-side id (a user, or the first item of a pair)')
     candidate_column: str | None = key('str', None, 'candidate-side id (the item)')
     target_column: str | None = key('str', None,

@@ -178,10 +178,18 @@ def test_missing_file(store, tmp_path, capsys):
     train_fails(capsys, tmp_path, cfg, "no_such_log.csv", fix=r"file not found; check the path")
 
 
-def test_folder_given_as_a_table(store, tmp_path, capsys):
-    (tmp_path / "log_folder.csv").mkdir()
-    cfg = change(base_config(store), "interactions", path=str(tmp_path / "log_folder.csv"))
-    train_fails(capsys, tmp_path, cfg, "log_folder.csv", fix=r"is a folder.*give a \.csv, \.tsv, \.parquet or \.pq file")
+def test_folder_given_as_a_feature_table(store, tmp_path, capsys):
+    (tmp_path / "items_folder.parquet").mkdir()
+    cfg = change(base_config(store), "items", path=str(tmp_path / "items_folder.parquet"))
+    train_fails(capsys, tmp_path, cfg, "items_folder.parquet", fix=r"is a folder.*give a \.csv, \.tsv, \.parquet or \.pq file")
+
+
+def test_log_folder_without_tables(store, tmp_path, capsys):
+    """A folder is a valid log (one export a day, say), but it must hold some."""
+    (tmp_path / "log_folder").mkdir()
+    (tmp_path / "log_folder" / "readme.txt").write_text("exports land here")
+    cfg = change(base_config(store), "interactions", path=str(tmp_path / "log_folder"))
+    train_fails(capsys, tmp_path, cfg, "log_folder", fix=r"holds no \.csv, \.tsv, \.parquet or \.pq files; put the log's files")
 
 
 def test_unsupported_extension(store, tmp_path, capsys):

@@ -268,6 +268,31 @@ def test_bad_rows_name_file_column_and_row(tmp_path):
         derive_pairs(resolve(tmp_path / "q.csv", group_column="basket"), split=False)
 
 
+@pytest.mark.parametrize("suffix", ["csv", "parquet"])
+def test_a_folder_of_daily_exports_gives_the_pairs_of_one_export(export, tmp_path, suffix):
+    """Reference: pandas' self-join of the whole export (pandas_pairs), as for one file."""
+    _, df = export
+    days = tmp_path / "days"
+    days.mkdir()
+    cut = df.order_id.isin(df.order_id.unique()[:50])  # whole orders per file, as a daily export has them
+    for name, part in (("a", df[cut]), ("b", df[~cut])):
+        part.to_csv(days / f"{name}.csv", index=False) if suffix == "csv" else part.to_parquet(days / f"{name}.parquet")
+    got = frame(derive_pairs(resolve(days), split=False))
+    pd.testing.assert_frame_equal(got[["a", "b", "w"]], pandas_pairs(df), check_dtype=False)
+
+
+def test_a_bad_row_in_the_second_file_of_a_folder_names_that_file_and_its_row(tmp_path):
+    df = orders(n_orders=10)
+    days = tmp_path / "days"
+    days.mkdir()
+    df.iloc[:20].to_csv(days / "a.csv", index=False)
+    bad = df.iloc[20:].reset_index(drop=True).astype({"order_id": object})
+    bad.loc[4, "order_id"] = None
+    bad.to_csv(days / "b.csv", index=False)
+    with pytest.raises(TowersError, match=r"days/b\.csv, column 'order_id', row 5: missing basket"):
+        derive_pairs(resolve(days), split=False)
+
+
 @pytest.mark.parametrize("change, message", [
     ({"run": {"mode": "user_item"}}, "expected rows in user_item mode"),
     ({"interactions": {"group_column": None}}, "'interactions.group_column' is missing"),

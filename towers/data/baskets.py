@@ -38,7 +38,7 @@ from tqdm import tqdm
 
 from towers.config import Config, InteractionsSection
 from towers.data.splits import TRAIN, connected_units, global_sides
-from towers.data.tables import check_file, normalise_ids, require_columns
+from towers.data.tables import normalise_ids, require_columns, table_files
 from towers.errors import TowersError, where
 
 NUMERIC_TYPES = ("TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT", "UTINYINT", "USMALLINT", "UINTEGER",
@@ -144,15 +144,21 @@ class Source:
 
     def __init__(self, con, path: str, columns: dict[str, str]):
         self.con, self.path = con, Path(path)
-        suffix = check_file(self.path)
-        lit = _text(str(self.path))
+        self.files = table_files(self.path)  # one file, or a folder of files read as one table
+        suffix = self.files[0].suffix.lower()
+        lit = "[" + ", ".join(_text(str(f)) for f in self.files) + "]"
         if suffix in (".parquet", ".pq"):
-            self.reader = f"read_parquet({lit})"
+            options = ""
+            make = "read_parquet"
         else:
             sep = "\\t" if suffix == ".tsv" else ","
             # quantities read as text and converted per row, so a bad value is named, not a failed sniff
             text = f", types = {{{_text(columns['w'])}: 'VARCHAR'}}" if "w" in columns else ""
-            self.reader = f"read_csv({lit}, header = true, delim = E'{sep}'{text})"
+            options = f", header = true, delim = E'{sep}'{text}"
+            make = "read_csv"
+        self.reader = f"{make}({lit}{options})"
+        # the same rows with each one's file beside it, only to name the file of a bad row
+        self.named_reader = f"{make}({lit}{options}, filename = true)"
         try:
             described = con.execute(f"DESCRIBE SELECT * FROM {self.reader}").fetchall()
         except Exception as exc:
@@ -168,7 +174,7 @@ class Source:
 
     def _unreadable(self, exc: Exception) -> TowersError:
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-        kind = self.path.suffix.lower()[1:]
+        kind = self.files[0].suffix.lower()[1:]
         return TowersError(f"{self.path}: cannot be read as {kind} ({first}); check the file is a valid {kind} table")
 
     def _expression(self, name: str, column: str) -> str:
@@ -201,8 +207,8 @@ class Source:
 
     def _raise_at(self, name: str, condition: str) -> None:
         column = self.columns[name]
-        row, value = self._first_bad(_ident(column), condition)
-        here = where(self.path, column, row)
+        file, row, value = self._first_bad(_ident(column), condition)
+        here = where(file, column, row)
         if value is None:
             what = {"g": "missing basket or session id; every row needs one (fill it, e.g. with the row's own order id)",
                     "i": "missing id; every row needs an id (drop or fill such rows)",
@@ -216,14 +222,17 @@ class Source:
                     else f"{value!r} is not a number; quantities must be numbers >= 0")
         raise TowersError(f"{here}: {what}")
 
-    def _first_bad(self, raw: str, condition: str) -> tuple[int, str | None]:
+    def _first_bad(self, raw: str, condition: str) -> tuple[Path, int, str | None]:
+        """The first bad row's file, its row in that file (from 1) and its raw value."""
         self.con.execute("SET preserve_insertion_order = true")  # row_number() in file order
         exprs = ", ".join(f"{e} AS {n}" for n, e in
                           ((n, self._expression(n, c)) for n, c in self.columns.items()))
+        order = "CASE filename " + " ".join(f"WHEN {_text(str(f))} THEN {k}" for k, f in enumerate(self.files)) + " END"
         row = self.con.execute(
-            f"SELECT n, CAST(v AS VARCHAR) FROM (SELECT row_number() OVER () AS n, {raw} AS v, {exprs} "
-            f"FROM {self.reader}) WHERE {condition} ORDER BY n LIMIT 1").fetchall()[0]
-        return int(row[0]), row[1]
+            f"SELECT filename, n, CAST(v AS VARCHAR) FROM (SELECT filename, row_number() OVER (PARTITION BY filename) "
+            f"AS n, {raw} AS v, {exprs} FROM {self.named_reader}) WHERE {condition} ORDER BY {order}, n LIMIT 1"
+        ).fetchall()[0]
+        return Path(row[0]), int(row[1]), row[2]
 
 
 def _is_number(text: str) -> bool:

@@ -21,14 +21,15 @@ from towers.data.history import HISTORY, history_column
 from towers.data.pairs import Pairs, SplitPairs
 from towers.data.splits import HoldOut, Split, make_split
 from towers.data.tables import (
-    factorize_ids,
+    IdPieces,
     numeric_column,
     positions_in,
-    read_table,
+    read_table_chunks,
+    table_files,
     time_column,
 )
 from towers.data.vocabulary import extend_context, extend_side
-from towers.errors import TowersError, where
+from towers.errors import TowersError, rows_after, where
 
 
 @dataclass
@@ -124,47 +125,79 @@ def read_interactions(cfg: Config, split: bool = False) -> Log:
     optional = [ic.target_column, ic.weight_column, ic.time_column, ic.group_column]
     cols = [ic.query_column, ic.candidate_column] + [c for c in optional if c]
     context_cols = [f.name for f in ic.context]
-    df = read_table(path, columns=list(dict.fromkeys(cols + context_cols)))
-    q = IdColumn(*factorize_ids(df[ic.query_column], path, ic.query_column))
-    c = IdColumn(*factorize_ids(df[ic.candidate_column], path, ic.candidate_column))
-    target = weight = when = None
-    if ic.target_column:
-        target = numeric_column(df[ic.target_column], path, ic.target_column, allow_missing=False)
-        if not cfg.training.rating_loss:
-            out = (target < 0) | (target > 1)
-            if out.any():
-                row = int(np.flatnonzero(out)[0])
-                raise TowersError(f"{where(path, ic.target_column, row + 1)}: {cfg.training.loss} targets must lie in [0, 1], "
-                                  f"got "
-                                  f"{target[row]!r}; use loss: squared for ratings, or move counts to weight_column")
-    if ic.weight_column:
-        weight = numeric_column(df[ic.weight_column], path, ic.weight_column, allow_missing=False)
-        neg = weight < 0
-        if neg.any():
-            row = int(np.flatnonzero(neg)[0])
-            raise TowersError(f"{where(path, ic.weight_column, row + 1)}: negative weight {weight[row]!r}; weights must be >= 0")
-    if ic.time_column:
-        when = time_column(df[ic.time_column], path, ic.time_column)
-    group = None
-    if ic.group_column:
-        group = _group_codes(df[ic.group_column], path, ic.group_column)
-    context = None
-    if context_cols:
-        context = df[context_cols].reset_index(drop=True)
-        for spec in ic.context:  # every value checked in file order, so an error names the log's row
-            make_encoder(spec).validate(context[spec.name], path)
-    return Log(q, c, target, weight, when, context, group)
+    wanted = list(dict.fromkeys(cols + context_cols))
+    q, c, groups = IdPieces(), IdPieces(), GroupPieces()
+    columns: dict[str, list[np.ndarray]] = {"target": [], "weight": [], "time": []}
+    contexts: list[pd.DataFrame] = []
+    for file in table_files(path):
+        for start, df in read_table_chunks(file, wanted, LOG_PIECE_ROWS):
+            with rows_after(start):
+                q.add(df[ic.query_column], file, ic.query_column)
+                c.add(df[ic.candidate_column], file, ic.candidate_column)
+                if ic.target_column:
+                    columns["target"].append(_targets(df[ic.target_column], file, ic.target_column, cfg))
+                if ic.weight_column:
+                    columns["weight"].append(_weights(df[ic.weight_column], file, ic.weight_column))
+                if ic.time_column:
+                    columns["time"].append(time_column(df[ic.time_column], file, ic.time_column))
+                if ic.group_column:
+                    groups.add(df[ic.group_column], file, ic.group_column)
+                if context_cols:
+                    piece = df[context_cols].reset_index(drop=True)
+                    for spec in ic.context:  # every value checked in file order, so an error names the log's row
+                        make_encoder(spec).validate(piece[spec.name], file)
+                    contexts.append(piece)
+    joined = {k: np.concatenate(v) if v else None for k, v in columns.items()}
+    context = pd.concat(contexts, ignore_index=True) if contexts else None
+    return Log(IdColumn(*q.finish()), IdColumn(*c.finish()), joined["target"], joined["weight"], joined["time"],
+               context, groups.finish() if ic.group_column else None)
 
 
-def _group_codes(series: pd.Series, path, column) -> np.ndarray:
-    """The group column as int64 codes (equal values, equal codes); a missing value is an error."""
-    codes, _ = pd.factorize(series)
-    missing = codes < 0
-    if missing.any():
-        row = int(np.flatnonzero(missing)[0])
-        raise TowersError(f"{where(path, column, row + 1)}: missing group value; every row needs one (fill it, e.g. "
-                          "with the row's own order or session id)")
-    return codes.astype(np.int64, copy=False)
+LOG_PIECE_ROWS = 1_000_000  # rows of the log read at a time: a piece is tens of MB, not the whole log
+
+
+def _targets(series: pd.Series, path, column: str, cfg: Config) -> np.ndarray:
+    """The target column; in [0, 1] unless the loss fits ratings."""
+    target = numeric_column(series, path, column, allow_missing=False)
+    if not cfg.training.rating_loss:
+        out = (target < 0) | (target > 1)
+        if out.any():
+            row = int(np.flatnonzero(out)[0])
+            raise TowersError(f"{where(path, column, row + 1)}: {cfg.training.loss} targets must lie in [0, 1], got "
+                              f"{float(target[row])!r}; use loss: squared for ratings, or move counts to weight_column")
+    return target
+
+
+def _weights(series: pd.Series, path, column: str) -> np.ndarray:
+    weight = numeric_column(series, path, column, allow_missing=False)
+    neg = weight < 0
+    if neg.any():
+        row = int(np.flatnonzero(neg)[0])
+        raise TowersError(f"{where(path, column, row + 1)}: negative weight {float(weight[row])!r}; weights must be >= 0")
+    return weight
+
+
+class GroupPieces:
+    """The group column read in pieces, as int64 codes (equal values, equal codes, across pieces)."""
+
+    def __init__(self):
+        self.codes: list[np.ndarray] = []
+        self.uniques: list[np.ndarray] = []
+
+    def add(self, series: pd.Series, path, column) -> None:
+        codes, uniques = pd.factorize(series)
+        missing = codes < 0
+        if missing.any():
+            row = int(np.flatnonzero(missing)[0])
+            raise TowersError(f"{where(path, column, row + 1)}: missing group value; every row needs one (fill it, e.g. "
+                              "with the row's own order or session id)")
+        self.codes.append(codes.astype(np.int64, copy=False))
+        self.uniques.append(np.asarray(uniques, dtype=object))
+
+    def finish(self) -> np.ndarray:
+        merged, _ = pd.factorize(np.concatenate(self.uniques))
+        starts = np.cumsum([0] + [len(u) for u in self.uniques])
+        return np.concatenate([merged[a:b][codes] for codes, a, b in zip(self.codes, starts[:-1], starts[1:])])
 
 
 def _as_pairs(qr, cr, target, weight, when) -> Pairs:

@@ -6,6 +6,7 @@ naming the file, the column and (where it applies) the row, plus the fix.
 
 from __future__ import annotations
 
+import contextlib
 import difflib
 from pathlib import Path
 
@@ -24,7 +25,7 @@ def read_table(path: str | Path, columns: list[str] | None = None) -> pd.DataFra
     """
     path = Path(path)
     suffix = check_file(path)
-    try:
+    with _read_errors(path, suffix):
         if suffix in (".parquet", ".pq"):
             import pyarrow.parquet as pq
 
@@ -35,12 +36,20 @@ def read_table(path: str | Path, columns: list[str] | None = None) -> pd.DataFra
         else:
             df = pd.read_csv(path, sep="\t" if suffix == ".tsv" else ",", encoding="utf-8-sig",
                              skipinitialspace=False, low_memory=False)
-            if not isinstance(df.index, pd.RangeIndex):
-                # pandas silently takes the first field as an index when the rows have more fields than the
-                # header, shifting every column one place; refuse rather than read the wrong values
-                raise TowersError(f"{where(path, row=1)}: the data rows have more fields than the header row "
-                                  f"({len(df.columns)} names); add the missing column names or remove trailing "
-                                  "delimiters")
+            _check_fields(df, path)
+    _check_header(df, path)
+    if columns is not None:
+        require_columns(df.columns, columns, path)
+    if len(df) == 0:
+        raise TowersError(f"{path}: the table has a header but no rows; export the data rows too")
+    return df
+
+
+@contextlib.contextmanager
+def _read_errors(path: Path, suffix: str):
+    """Reading errors of pandas and pyarrow as one-line TowersErrors naming the file."""
+    try:
+        yield
     except TowersError:
         raise
     except pd.errors.EmptyDataError:
@@ -52,15 +61,22 @@ def read_table(path: str | Path, columns: list[str] | None = None) -> pd.DataFra
     except Exception as exc:  # pyarrow raises its own ArrowInvalid family
         _raise_if_arrow(exc, path)
         raise
+
+
+def _check_fields(df: pd.DataFrame, path: Path) -> None:
+    """pandas silently takes the first field as an index when the rows have more fields than the header,
+    shifting every column one place; refuse rather than read the wrong values."""
+    if not isinstance(df.index, pd.RangeIndex):
+        raise TowersError(f"{where(path, row=1)}: the data rows have more fields than the header row "
+                          f"({len(df.columns)} names); add the missing column names or remove trailing delimiters")
+
+
+def _check_header(df: pd.DataFrame, path: Path) -> None:
+    """Column names stripped of spaces, each named once."""
     df.columns = [str(c).strip() for c in df.columns]
     repeated = df.columns[df.columns.duplicated()]
     if len(repeated):
         raise TowersError(f"{where(path, shown(repeated[0]))}: the header names this column twice; rename one of them")
-    if columns is not None:
-        require_columns(df.columns, columns, path)
-    if len(df) == 0:
-        raise TowersError(f"{path}: the table has a header but no rows; export the data rows too")
-    return df
 
 
 def check_file(path: Path) -> str:
@@ -95,15 +111,20 @@ def _raise_if_arrow(exc: Exception, path: Path) -> None:
 def read_table_chunks(path: str | Path, columns: list[str], rows: int):
     """Yield (first row, DataFrame of `columns`) pieces of a table, `rows` rows at a time.
 
-    Parquet is read one batch at a time, so only one piece is in memory; a CSV file is read whole
-    and yielded as one piece. The checks and messages are read_table's; an empty table yields nothing.
+    Only one piece is in memory at a time: parquet is read one batch at a time and CSV through pandas'
+    chunked reader (each piece's types inferred on its own rows). The checks and messages are
+    read_table's; an empty table yields nothing (a CSV with a header and no rows is an error, as in
+    read_table).
     """
     path = Path(path)
     suffix = check_file(path)
-    if suffix not in (".parquet", ".pq"):
-        df = read_table(path, columns=columns)
-        yield 0, df[columns]
-        return
+    if suffix in (".parquet", ".pq"):
+        yield from _parquet_pieces(path, suffix, columns, rows)
+    else:
+        yield from _csv_pieces(path, suffix, columns, rows)
+
+
+def _parquet_pieces(path: Path, suffix: str, columns: list[str], rows: int):
     import pyarrow.parquet as pq
 
     try:
@@ -132,6 +153,77 @@ def read_table_chunks(path: str | Path, columns: list[str], rows: int):
         df.columns = [str(c).strip() for c in df.columns]
         yield start, df[[str(c).strip() for c in columns]]
         start += len(df)
+
+
+def _csv_pieces(path: Path, suffix: str, columns: list[str], rows: int):
+    start = 0
+    with _read_errors(path, suffix), pd.read_csv(path, sep="\t" if suffix == ".tsv" else ",", encoding="utf-8-sig",
+                                                 skipinitialspace=False, chunksize=rows) as reader:
+        for df in reader:  # the reader is closed however the loop ends, a caller's error included
+            _check_fields(df, path)
+            if start == 0:
+                _check_header(df, path)
+                require_columns(df.columns, columns, path)
+            else:
+                df.columns = [str(c).strip() for c in df.columns]
+            df = df[columns].reset_index(drop=True)
+            yield start, df
+            start += len(df)
+    if start == 0:
+        raise TowersError(f"{path}: the table has a header but no rows; export the data rows too")
+
+
+def table_files(path: str | Path) -> list[Path]:
+    """The files of a table given as one file or as a folder of files (read in name order).
+
+    A folder lets a shop drop one export a day beside the others; hidden files and files of other
+    kinds (a _SUCCESS marker, say) are skipped, and its files must all be CSV/TSV or all parquet.
+    """
+    path = Path(path)
+    if not path.is_dir():
+        check_file(path)
+        return [path]
+    files = sorted(f for f in path.iterdir()
+                   if f.is_file() and not f.name.startswith((".", "_")) and f.suffix.lower() in READABLE)
+    if not files:
+        raise TowersError(f"{path}: the folder holds no .csv, .tsv, .parquet or .pq files; put the log's files there "
+                          "or give one file")
+    kinds = {f.suffix.lower() in (".parquet", ".pq") for f in files}
+    if len(kinds) > 1:
+        raise TowersError(f"{path}: the folder mixes parquet and CSV files; convert them to one format")
+    return files
+
+
+class IdPieces:
+    """A long id column read in pieces, factorized piece by piece and merged at the end.
+
+    The result equals factorize_ids on the whole column: codes plus distinct ids in order of first
+    appearance. Only each piece's distinct ids are kept beside its int32 codes, never one Python
+    object per row. Pieces of different types (numbers in one file, text in another) are merged as text.
+    """
+
+    def __init__(self):
+        self.codes: list[np.ndarray] = []
+        self.uniques: list[np.ndarray] = []
+
+    def add(self, series: pd.Series, path, column) -> None:
+        codes, uniques = factorize_ids(series, path, column)
+        self.codes.append(codes.astype(np.int32 if len(uniques) < 2 ** 31 else np.int64))
+        self.uniques.append(uniques)
+
+    def finish(self) -> tuple[np.ndarray, np.ndarray]:
+        if len(self.uniques) == 1:
+            return self.codes[0].astype(np.int64), self.uniques[0]
+        text = any(u.dtype == object for u in self.uniques)
+        pieces = [u.astype(str).astype(object) if text and u.dtype != object else u for u in self.uniques]
+        merged, uniques = pd.factorize(np.concatenate(pieces) if pieces else np.zeros(0, np.int64))
+        out = np.empty(sum(len(c) for c in self.codes), dtype=np.int64)
+        at = done = 0
+        for codes, u in zip(self.codes, pieces):
+            out[at:at + len(codes)] = merged[done:done + len(u)][codes]
+            at, done = at + len(codes), done + len(u)
+        self.codes, self.uniques = [], []
+        return out, np.asarray(uniques, dtype=object if text else np.int64)
 
 
 def shown(name: str) -> str:
