@@ -9,6 +9,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 import torch
 
 from towers.config import Config
@@ -147,6 +148,8 @@ def read_interactions(cfg: Config, split: bool = False) -> Log:
                     for spec in ic.context:  # every value checked in file order, so an error names the log's row
                         make_encoder(spec).validate(piece[spec.name], file)
                     contexts.append(piece)
+    # arrow keeps the pieces' freed buffers in its own pool, which numpy cannot reuse: give them back
+    pa.default_memory_pool().release_unused()
     joined = {k: np.concatenate(v) if v else None for k, v in columns.items()}
     context = pd.concat(contexts, ignore_index=True) if contexts else None
     return Log(IdColumn(*q.finish()), IdColumn(*c.finish()), joined["target"], joined["weight"], joined["time"],
@@ -202,8 +205,13 @@ class GroupPieces:
 
 def _as_pairs(qr, cr, target, weight, when) -> Pairs:
     f32 = lambda a: None if a is None else torch.from_numpy(np.asarray(a, dtype=np.float32))  # noqa: E731
-    return Pairs(torch.from_numpy(qr.astype(np.int64)), torch.from_numpy(cr.astype(np.int64)), f32(target), f32(weight),
-                 None if when is None else torch.from_numpy(when.astype(np.int64)))
+    i64 = lambda a: torch.from_numpy(a.astype(np.int64, copy=False))  # noqa: E731
+    return Pairs(i64(qr), i64(cr), f32(target), f32(weight), None if when is None else i64(when))
+
+
+def _kept(values: np.ndarray, keep: np.ndarray) -> np.ndarray:
+    """values[keep], without a copy of the whole column when every row is kept (the usual case)."""
+    return values if keep.all() else values[keep]
 
 
 def _train_entities(ids: np.ndarray, rows: np.ndarray) -> np.ndarray:
@@ -251,18 +259,21 @@ def prepare(cfg: Config, previous=None) -> Prepared:
         keep = keep_both[:n] & keep_both[n:]
         q_ids, q_table = c_ids, c_table
         rows_both = _catalog_rows(both, c_ids)
-        q_rows, c_rows = rows_both[:n][keep], rows_both[n:][keep]
+        q_rows, c_rows = _kept(rows_both[:n], keep), _kept(rows_both[n:], keep)
+        both = rows_both = None
     else:
         user_side = SideTable(cfg.users.path, cfg.users.id_column, cfg.users.features, cfg.users.missing_rows)
         q_ids, q_table, keep_q = user_side.catalog(q_log.uniques, source, ic.query_column, codes=q_log.codes)
         c_ids, c_table, keep_c = item_side.catalog(c_log.uniques, source, ic.candidate_column, codes=c_log.codes)
         keep = keep_q & keep_c
-        q_rows, c_rows = _catalog_rows(q_log, q_ids)[keep], _catalog_rows(c_log, c_ids)[keep]
+        q_rows, c_rows = _kept(_catalog_rows(q_log, q_ids), keep), _kept(_catalog_rows(c_log, c_ids), keep)
+    q_log = c_log = log.query_ids = log.candidate_ids = None  # the codes are rows now: free them
     dropped = int((~keep).sum())
     if dropped:
         notes.append(f"dropped {dropped} interaction rows whose ids have no feature row (missing_rows: drop)")
-    sel = lambda a: None if a is None else a[keep]  # noqa: E731
+    sel = lambda a: None if a is None else _kept(a, keep)  # noqa: E731
     pairs = _as_pairs(q_rows, c_rows, sel(target), sel(weight), sel(when))
+    q_rows = c_rows = target = weight = when = log.target = log.weight = log.time = None  # held by `pairs` now
     groups = sel(log.group)
     if len(pairs) == 0:
         raise TowersError(f"{ic.path}: no interaction rows are left after matching ids to the feature tables; "
