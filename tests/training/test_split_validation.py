@@ -3,7 +3,9 @@ validation queries, must each report exactly what one process reports for the sa
 
 The processes are started with torch.multiprocessing and join a gloo group as torchrun's would; each
 prepares the data from the same config and seed, builds the same untrained towers (seeded), and calls
-validation_metrics with distributed.evaluation_share(), as EarlyStopping does every round.
+validation_metrics with distributed.evaluation_share(), as EarlyStopping does every round. The
+ratings config checks the squared-loss path under a share too (there every process computes the
+errors whole).
 """
 
 from __future__ import annotations
