@@ -48,6 +48,9 @@ SIZES = {
     # full size with min_pair_count 2, the README's setting for large exports (every pair kept would hold ~100M pairs)
     "derive_pairs": ({"lines": 50_000_000, "items": 100_000, "min_pair_count": 2},
                      {"lines": 3_000_000, "items": 50_000, "min_pair_count": 1}),
+    # two machines rehearsed on this one (two torchrun invocations, one process and one thread each) and one process
+    "two_nodes": ({"events": 1_000_000, "items": 20_000, "epochs": 2},
+                  {"events": 200_000, "items": 5_000, "epochs": 2}),
 }
 CASES = tuple(SIZES)
 K = 64  # k, the embedding size, in every case
@@ -887,24 +890,107 @@ def case_derive_run(size: dict, work: Path) -> dict:
     return {"seconds": seconds, "scan_s": scan, "pairs": len(pairs.weight), "peak_rss_gb": peak_rss_bytes() / 2 ** 30}
 
 
+# ---- two machines rehearsed on one ---------------------------------------------------------------------
+
+def case_two_nodes_data(size: dict, work: Path) -> dict:
+    """The item table, a shop log (20 events a customer) and scale_config's towers on one thread a process, validated
+    every epoch (training.validate_queries, 2,000 queries), without the reference models or the report."""
+    import yaml
+
+    write_item_table(work / "items.parquet", size["items"], seed=17)
+    write_shop_log(work / "log_two_nodes.parquet", size["events"], size["events"] // 20, size["items"], seed=18)
+    cfg = scale_config(work, "two_nodes")
+    cfg["run"]["threads"] = 1
+    cfg["training"]["epochs"] = size["epochs"]
+    cfg["evaluation"]["references"] = False
+    cfg["report"] = {"enabled": False}
+    (work / "two_nodes.yaml").write_text(yaml.safe_dump(cfg))
+    return {}
+
+
+def timed_command(argv: list[str]) -> dict:
+    """Run `towers` (or torchrun around it) to its end: wall seconds, exit code and the peak resident memory of
+    its largest process (ru_maxrss of waited-for children: the training process, larger than torchrun's agent)."""
+    env = dict(os.environ, OMP_NUM_THREADS="1", PYTHONPATH=os.pathsep.join([str(ROOT), os.environ.get("PYTHONPATH", "")]))
+    t = time.perf_counter()
+    code = subprocess.run(argv, env=env, cwd=ROOT, stdout=subprocess.DEVNULL).returncode  # the training log stays on stderr
+    seconds = time.perf_counter() - t
+    return {"seconds": seconds, "code": code,
+            "peak_rss_gb": resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss * 1024 / 2 ** 30}
+
+
+def case_two_nodes_one(size: dict, work: Path) -> dict:
+    """`towers train` in one process."""
+    return timed_command([sys.executable, "-m", "towers", "train", str(work / "two_nodes.yaml"), "--out", str(work / "one")])
+
+
+def case_two_nodes_node(size: dict, work: Path) -> dict:
+    """One of the two torchrun invocations of the rehearsal (the README's commands, at size["endpoint"])."""
+    from towers.training.distributed import node_command
+
+    argv = ["train", str(work / "two_nodes.yaml"), "--out", str(work / "two")]
+    return timed_command(node_command(size["node"], 2, size["endpoint"], argv))
+
+
+def two_nodes_figures(one: dict, nodes: list[dict], work: Path) -> dict:
+    """Wall time, training pairs a second per core and validation of the rehearsal, each over one process's."""
+    if one["code"] or any(n["code"] for n in nodes):
+        raise SystemExit(f"bench: two_nodes: exit codes {one['code']} (one process), {[n['code'] for n in nodes]} (nodes)")
+    runs = {}
+    for tag, cores in (("one", 1), ("two", 2)):  # one thread a process
+        history = json.loads((work / tag / "history.json").read_text())
+        metric, epochs = history["stop_metric"], history["epochs"]["towers"]
+        best = next(row for row in epochs if row["epoch"] == history["best_epoch"])
+        test = json.loads((work / tag / "metrics.json").read_text())["warm"]["towers"][metric]
+        rate = sum(row["pairs_per_s"] for row in epochs) / len(epochs)  # all pairs of an epoch over its time
+        runs[tag] = {"per_core": rate / cores, "valid": best[f"valid_{metric}"], "test": test}
+    wall = max(n["seconds"] for n in nodes)  # the nodes end together (torchrun's exit barrier)
+    log(f"two_nodes: wall {wall:.1f} s against {one['seconds']:.1f} s; pairs/s per core {runs['two']['per_core']:,.0f} "
+        f"against {runs['one']['per_core']:,.0f}; peak RSS per process {nodes[0]['peak_rss_gb']:.2f} and "
+        f"{nodes[1]['peak_rss_gb']:.2f} GiB against {one['peak_rss_gb']:.2f} GiB; valid {metric} {runs['two']['valid']:.4f} "
+        f"against {runs['one']['valid']:.4f}, test {runs['two']['test']:.4f} against {runs['one']['test']:.4f}")
+    return {"two_nodes_wall_vs_one": wall / one["seconds"],
+            "two_nodes_pairs_per_core_vs_one": runs["two"]["per_core"] / runs["one"]["per_core"],
+            "two_nodes_peak_rss_vs_one": max(n["peak_rss_gb"] for n in nodes) / one["peak_rss_gb"],
+            "two_nodes_valid_vs_one": runs["two"]["valid"] / runs["one"]["valid"],
+            "two_nodes_test_vs_one": runs["two"]["test"] / runs["one"]["test"],
+            "two_nodes_wall_s": wall, "two_nodes_one_wall_s": one["seconds"],
+            "two_nodes_pairs_per_s_per_core": runs["two"]["per_core"],
+            "two_nodes_one_pairs_per_s_per_core": runs["one"]["per_core"],
+            "two_nodes_peak_rss_gb": [n["peak_rss_gb"] for n in nodes], "two_nodes_one_peak_rss_gb": one["peak_rss_gb"],
+            "two_nodes_valid": runs["two"]["valid"], "two_nodes_one_valid": runs["one"]["valid"],
+            "two_nodes_test": runs["two"]["test"], "two_nodes_one_test": runs["one"]["test"], "two_nodes_metric": metric}
+
+
 CHILDREN = {"id_training": case_id_training, "tower_flops": case_tower_flops, "als": case_als,
             "retrieval": case_retrieval, "scale_data": case_scale_data,
             "scale_small": lambda s, w: case_scale_run(s, w, "small"),
             "scale_large": lambda s, w: case_scale_run(s, w, "large"),
             "embed_setup": case_embed_setup, "embed_run": case_embed_run, "lists": case_lists,
             "serve_setup": case_serve_setup, "serve_run": case_serve_run,
-            "derive_data": case_derive_data, "derive_run": case_derive_run}
+            "derive_data": case_derive_data, "derive_run": case_derive_run,
+            "two_nodes_data": case_two_nodes_data, "two_nodes_one": case_two_nodes_one,
+            "two_nodes_node": case_two_nodes_node}
 
 
 # ---- the parent ------------------------------------------------------------------------------------
 
+def children(jobs: list[tuple[str, dict]], work: Path) -> list[dict]:
+    """Run measurements (name, size) each in a fresh process, all at once; returns their JSON results in order."""
+    procs = [(name, subprocess.Popen([sys.executable, __file__, "--child", name, "--size", json.dumps(size), "--work",
+                                      str(work)], stdout=subprocess.PIPE, text=True, cwd=ROOT)) for name, size in jobs]
+    results = []
+    for name, proc in procs:
+        out, _ = proc.communicate()
+        if proc.returncode != 0:
+            raise SystemExit(f"bench: case {name} failed (exit {proc.returncode})")
+        results.append(json.loads(out.strip().splitlines()[-1]))
+    return results
+
+
 def child(name: str, size: dict, work: Path) -> dict:
     """Run one measurement in a fresh process; returns its JSON result."""
-    cmd = [sys.executable, __file__, "--child", name, "--size", json.dumps(size), "--work", str(work)]
-    proc = subprocess.run(cmd, stdout=subprocess.PIPE, text=True, cwd=ROOT)
-    if proc.returncode != 0:
-        raise SystemExit(f"bench: case {name} failed (exit {proc.returncode})")
-    return json.loads(proc.stdout.strip().splitlines()[-1])
+    return children([(name, size)], work)[0]
 
 
 def run_case(name: str, size: dict, work: Path) -> dict:
@@ -925,6 +1011,14 @@ def run_case(name: str, size: dict, work: Path) -> dict:
         return {"derive_pairs_vs_scan": out["seconds"] / out["scan_s"], "derive_pairs_peak_rss_gb": out["peak_rss_gb"],
                 "derive_pairs_lines_per_s": data["lines"] / out["seconds"], "derive_pairs_s": out["seconds"],
                 "derive_pairs_scan_s": out["scan_s"], "derive_pairs_lines": data["lines"], "derive_pairs_out": out["pairs"]}
+    if name == "two_nodes":
+        from towers.training.distributed import rehearsal_endpoint
+
+        child("two_nodes_data", size, work)
+        one = child("two_nodes_one", size, work)
+        endpoint = rehearsal_endpoint()
+        return two_nodes_figures(one, children([("two_nodes_node", {**size, "node": r, "endpoint": endpoint})
+                                                for r in range(2)], work), work)
     if name == "serve":
         child("serve_setup", size, work)
         out = child("serve_run", size, work)
@@ -942,6 +1036,8 @@ GOALS = {  # key: (goal, "at least" or "at most")
     "serve_p50_1_client_vs_library": (None, ""), "serve_rps_32_vs_1_client": (None, ""),
     "lists_vs_top_n": (None, ""), "lists_users_per_s": (None, ""), "lists_peak_rss_gb": (None, ""),
     "derive_pairs_vs_scan": (None, ""), "derive_pairs_lines_per_s": (None, ""), "derive_pairs_peak_rss_gb": (4, "<="),
+    "two_nodes_wall_vs_one": (None, ""), "two_nodes_pairs_per_core_vs_one": (None, ""), "two_nodes_peak_rss_vs_one": (None, ""),
+    "two_nodes_valid_vs_one": (None, ""), "two_nodes_test_vs_one": (None, ""),
 }
 
 

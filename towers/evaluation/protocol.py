@@ -22,6 +22,7 @@ from towers.data.prepare import Prepared
 from towers.evaluation import metrics as M
 from towers.evaluation import references as R
 from towers.evaluation.references import ReferenceScorer
+from towers.evaluation.shares import Share
 from towers.model.embed import reads_context
 from towers.model.towers import TwoTowerModel
 from towers.search import rank_counts as RC
@@ -71,6 +72,14 @@ class HeldOut:
     columns: torch.Tensor  # (P,) each positive's column
     ex_rows: torch.Tensor  # excluded (ranking row, column) cells, sorted by row
     ex_cols: torch.Tensor
+
+    def part(self, share: Share) -> "HeldOut":
+        """This process's share: every world-th query from the rank-th, with its positives and exclusions,
+        query positions renumbered within the share (positive and exclusion order kept)."""
+        keep_p, keep_x = share.mine(self.q_index), share.mine(self.ex_rows)
+        return HeldOut(self.queries[share.mine(torch.arange(len(self.queries)))], self.q_index[keep_p] // share.world,
+                       self.items[keep_p], self.cand_rows, self.columns[keep_p], self.ex_rows[keep_x] // share.world,
+                       self.ex_cols[keep_x])
 
 
 def held_out(test: Pairs, known: Pairs, candidate_mask: torch.Tensor, seed: int = 0, max_queries: int | None = None,
@@ -152,14 +161,18 @@ def _reference_ranks(scorer: ReferenceScorer, h: HeldOut, k_max: int = 0):
     return ahead, tied, candidates, (torch.cat(tops) if k_max else None)
 
 
-def rank_positives(scorer, h: HeldOut) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
+def rank_positives(scorer, h: HeldOut, share: Share | None = None) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
     """(ahead, tied, candidates): for each positive the competing items scored above it and level with it
     (itself not counted), and each query's competing items.
 
     Vector models are counted tile by tile (rank_counts.py), from float32 scores
     ((scale q.x + item bias) + query bias) + global bias, without building the query x item score matrix;
-    history-based references from dense blocks of their scores.
+    history-based references from dense blocks of their scores. share: count only this process's
+    queries and gather the other processes' counts (shares.py); the result is the same.
     """
+    if share is not None:
+        ahead, tied, candidates = rank_positives(scorer, h.part(share))
+        return tuple(share.whole([(h.q_index, ahead), (h.q_index, tied), (torch.arange(len(h.queries)), candidates)]))
     if isinstance(scorer, ReferenceScorer):
         return _reference_ranks(scorer, h)[:3]
     over = scorer.over_items(h.cand_rows)
@@ -170,19 +183,21 @@ def rank_positives(scorer, h: HeldOut) -> tuple[torch.Tensor, torch.Tensor, torc
 
 
 def ranking_metrics(scorer, test: Pairs, known: Pairs, candidate_mask: torch.Tensor, ks,
-                    tie_seed: int = 0, max_queries: int | None = None, exclude_self: bool = False) -> dict[str, float]:
+                    tie_seed: int = 0, max_queries: int | None = None, exclude_self: bool = False,
+                    share: Share | None = None) -> dict[str, float]:
     """Full-catalog ranking metrics of held-out positives, averaged over queries.
 
     candidate_mask: bool (n_items,) items that compete in the ranking. known: the pairs whose items
     are excluded from each query's ranking (its training positives). Test pairs that are also known,
     or whose item is not a candidate, are dropped. Items scored level with a positive count as in a
     random order: each metric is its exact expected value over those orders (metrics.per_query_ranking).
-    tie_seed seeds only the sample of max_queries queries.
+    tie_seed seeds only the sample of max_queries queries. share: this process ranks only its share of
+    the (sampled) queries and the counts are gathered (shares.py): the same metrics, on every process.
     """
     h = held_out(test, known, candidate_mask, tie_seed, max_queries, exclude_self)
     if h is None:
         return {}
-    ahead, tied, n_candidates = rank_positives(scorer, h)
+    ahead, tied, n_candidates = rank_positives(scorer, h, share)
     per_q = M.per_query_ranking(ahead, h.q_index, len(h.queries), n_candidates, ks, tied=tied)
     out = M.mean_over_queries(per_q)
     out["queries"] = int(len(h.queries))
@@ -406,11 +421,14 @@ def _group_table(column: str, models: dict) -> list[str]:
 
 
 def validation_metrics(scorer: Scorer, data: Prepared, cfg: Config, pairs: Pairs,
-                       model: TwoTowerModel | None = None) -> dict[str, float]:
+                       model: TwoTowerModel | None = None, share: Share | None = None) -> dict[str, float]:
     """Metrics of `pairs` (validation or test) in the warm setting.
 
     With context columns every pair is its own query event (see context.py); `model` then gives the
-    events' query vectors when its query tower reads the context.
+    events' query vectors when its query tower reads the context. share: in data-parallel training,
+    this process ranks only its share of the queries and every process gets the whole result
+    (shares.py); rating errors cost one product a pair, no more than gathering them, so every process
+    computes them whole.
     """
     known = data.train.positives()
     if pairs.context is not None:
@@ -423,4 +441,4 @@ def validation_metrics(scorer: Scorer, data: Prepared, cfg: Config, pairs: Pairs
         return rating_metrics(scorer, pairs)
     return ranking_metrics(scorer, pairs, known, data.warm_items, cfg.evaluation.top_k,
                            tie_seed=cfg.run.seed, max_queries=cfg.training.validate_queries,
-                           exclude_self=data.item_item)
+                           exclude_self=data.item_item, share=share)

@@ -4,13 +4,16 @@ Every process reads the same log and tables and builds the same catalogs, encode
 same seed, so ids and vocabularies agree without any exchange. Each epoch's shuffled order is the same
 on every process; each takes every N-th pair of each global batch, and DistributedDataParallel
 averages the gradients (sparse id-table gradients included), so the processes step in lockstep with
-the single-process batch size. Only process 0 writes files.
+the single-process batch size. Each round's validation is divided too: every process ranks its share
+of the validation queries and the exact counts are gathered (evaluation/shares.py), so every process
+holds the one-process metric and all stop at the same round. Only process 0 writes files.
 """
 
 from __future__ import annotations
 
 import datetime
 import os
+import socket
 import subprocess
 import sys
 
@@ -20,6 +23,7 @@ import torch.nn as nn
 from torch.nn.parallel import DistributedDataParallel
 
 from towers.errors import TowersError
+from towers.evaluation.shares import Share
 
 TIMEOUT = datetime.timedelta(minutes=30)  # a peer silent this long counts as gone
 
@@ -55,6 +59,31 @@ def mean_over_processes(value: float) -> float:
     t = torch.tensor([value], dtype=torch.float64)
     dist.all_reduce(t)
     return float(t) / dist.get_world_size()
+
+
+def gather_all(part: torch.Tensor) -> list[torch.Tensor]:
+    """Every process's 1-D tensor (lengths may differ), in rank order; every process must call it together.
+
+    A peer that is gone surfaces as peer_failure's one line instead of gloo's error.
+    """
+    world = dist.get_world_size()
+    try:
+        lengths = [torch.zeros(1, dtype=torch.int64) for _ in range(world)]
+        dist.all_gather(lengths, torch.tensor([len(part)], dtype=torch.int64))
+        longest = int(max(lengths))
+        padded = torch.zeros(longest, dtype=part.dtype)
+        padded[:len(part)] = part
+        pieces = [torch.empty(longest, dtype=part.dtype) for _ in range(world)]
+        dist.all_gather(pieces, padded)
+    except RuntimeError as exc:  # only the collectives are in here: gloo reports a peer gone this way
+        raise peer_failure(exc) from None
+    return [piece[:int(n)] for piece, n in zip(pieces, lengths)]
+
+
+def evaluation_share() -> Share | None:
+    """This process's share of validation work when several processes train, else None (it does it all)."""
+    rank, world = rank_and_size()
+    return Share(rank, world, gather_all) if world > 1 else None
 
 
 def threads_per_process(configured: int) -> int:
@@ -109,6 +138,24 @@ def crowding_note(n: int, cores: int, load: float) -> str | None:
     return (f"note: --workers {n} starts {n} processes but {free} of this machine's {cores} cores are free (load "
             f"{load:.1f}), so they will share cores and wait for each other at every step: expect it to be slower "
             f"than one process; data-parallel training pays off with a free core per process, or across machines")
+
+
+def node_command(node_rank: int, nodes: int, endpoint: str, argv: list[str]) -> list[str]:
+    """torchrun's command for one machine of `nodes`, one process each, meeting at endpoint HOST:PORT.
+
+    The README's two-machine commands; the tests and scripts/bench start both on one machine (127.0.0.1)
+    as a rehearsal. c10d rendezvous ignores node_rank (torchrun prints a warning saying so) and numbers
+    the machines by host name, then process id: process 0, which writes the run, is on the first.
+    """
+    return [sys.executable, "-m", "torch.distributed.run", "--nnodes", str(nodes), "--nproc-per-node", "1",
+            "--node-rank", str(node_rank), "--rdzv-backend", "c10d", "--rdzv-endpoint", endpoint, "-m", "towers", *argv]
+
+
+def rehearsal_endpoint() -> str:
+    """A rendezvous endpoint on this machine (127.0.0.1 and a port free now) for node_command's rehearsal."""
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return f"127.0.0.1:{s.getsockname()[1]}"
 
 
 def launch_workers(n: int, argv: list[str]) -> int:

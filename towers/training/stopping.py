@@ -19,6 +19,7 @@ from towers.errors import TowersError
 from towers.evaluation.protocol import validation_metrics
 from towers.model.embed import model_scorer
 from towers.model.towers import TwoTowerModel
+from towers.training.distributed import evaluation_share
 from towers.training.progress import log
 
 
@@ -101,11 +102,13 @@ class EarlyStopping:
     def _record(self, model: TwoTowerModel, data: Prepared, cfg: Config, step: int, loss: float, rate: float,
                 checkpoint_dir: Path | None) -> tuple[float | None, bool]:
         """Append the round's history row; keep and save the best weights. With no validation pairs every
-        round counts as the best."""
+        round counts as the best. In data-parallel training each process validates its share of the
+        queries and every process gets the whole, identical value (distributed.evaluation_share)."""
         result, metric = self.result, self.result.stop_metric
         value = None
         if len(data.valid):
-            value = validation_metrics(model_scorer(model, data), data, cfg, data.valid, model).get(metric)
+            value = validation_metrics(model_scorer(model, data), data, cfg, data.valid, model,
+                                       share=evaluation_share()).get(metric)
         row = {"epoch": step, "loss": loss, "pairs_per_s": rate}
         if value is not None:
             row[f"valid_{metric}"] = value
