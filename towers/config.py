@@ -193,6 +193,14 @@ class ModelSection:
                             'share of training rows whose id is replaced by the unknown row, so features learn '
                             'to carry new entities (ignored for id-only towers)',
                             low=0.0, high=1.0)
+    id_table_rows: int = key('int', 0,
+                             '> 0: a side with more ids than this composes each id row from two tables of at most '
+                             'this many rows (quotient-remainder), for very large id spaces, at an accuracy cost '
+                             '(README, "Bounded id tables"); 0: one row per id',
+                             low=0)
+    id_table_combine: str = key('choice', 'product',
+                                'id_table_rows: how the two rows of an id combine, element-wise product or sum',
+                                choices=('product', 'sum'))
     normalize: bool = key('bool', False, "L2-normalise each tower's output")
     temperature: float = key('float', 1.0, 'scores are divided by this (useful with normalize)', low=0.0, low_open=True)
     non_negative: bool = key('bool', False, 'softplus on the output so every embedding entry is >= 0')
@@ -734,6 +742,10 @@ def _check_baseline_solver(cfg: dict) -> None:
                           "(weighted_als is for implicit events; als fits ratings)")
     if solver != "gradient" and cfg["training"]["id_l2"] <= 0:
         raise TowersError(f"{here}; expected gradient while training.id_l2 is 0 (ALS row solves need lambda > 0; raise id_l2)")
+    if solver != "gradient" and cfg["model"]["id_table_rows"]:
+        raise TowersError(f"{here}; expected gradient with model.id_table_rows > 0 (ALS solves one row per id, the "
+                          "bounded tables compose each id's row from two shared ones; set baseline_solver: gradient, "
+                          "or id_table_rows: 0)")
     if solver != "gradient" and cfg["run"]["mode"] == "item_item" and cfg["model"]["shared_tower"]:
         raise TowersError(f"{here}; expected gradient with model.shared_tower: true "
                           "(ALS alternates between two separate id tables; set shared_tower: false)")

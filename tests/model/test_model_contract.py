@@ -44,6 +44,10 @@ KINDS = {
     "bilinear-item-item": ("item_item", "bilinear", {"shared_tower": False}),
     "bilinear-shared-tower": ("item_item", "bilinear", {"shared_tower": True}),
     "linear-factor-item-item": ("item_item", "linear_factor", {}),
+    # bounded id tables (model/id_tables.py): 50 users and 40 items in two tables of at most 10 rows each
+    "towers-bounded-ids": ("user_item", "towers", {"id_table_rows": 10}),
+    "linear-factor-bounded-ids-sum": ("user_item", "linear_factor", {"id_table_rows": 10, "id_table_combine": "sum"}),
+    "towers-shared-tower-bounded-ids": ("item_item", "towers", {"shared_tower": True, "id_table_rows": 10}),
 }
 
 

@@ -21,7 +21,7 @@ from towers.training.loop import Trainer
 from towers.training.negatives import NegativeSampler
 
 
-def _data(tmp_path, hidden, features: bool, sampling: str = "popularity"):
+def _data(tmp_path, hidden, features: bool, sampling: str = "popularity", id_table_rows: int = 0):
     rng = np.random.default_rng(0)
     n = 600
     pd.DataFrame({"u": rng.integers(0, 40, n), "i": rng.integers(0, 30, n)}).to_parquet(tmp_path / "log.parquet")
@@ -29,7 +29,7 @@ def _data(tmp_path, hidden, features: bool, sampling: str = "popularity"):
                   "weight": rng.normal(size=30)}).to_parquet(tmp_path / "items.parquet")
     raw = {
         "interactions": {"path": str(tmp_path / "log.parquet"), "query_column": "u", "candidate_column": "i"},
-        "model": {"dim": 6, "hidden": hidden, "id_dropout": 0.0},
+        "model": {"dim": 6, "hidden": hidden, "id_dropout": 0.0, "id_table_rows": id_table_rows},
         "training": {"loss": "logistic", "negatives": 3, "id_l2": 0.7, "negative_sampling": sampling},
         "evaluation": {"test_fraction": 0.0, "validation_fraction": 0.0, "baseline": False},
     }
@@ -70,11 +70,16 @@ def _grads(model) -> dict[str, torch.Tensor]:
     return out
 
 
-@pytest.mark.parametrize("hidden,features", [([], False), ([8], True)], ids=["linear-factor", "mlp-with-features"])
-def test_batch_loss_and_gradients_match_the_written_out_objective(tmp_path, hidden, features):
-    cfg, data = _data(tmp_path, hidden, features)
+@pytest.mark.parametrize("hidden,features,id_table_rows", [([], False, 0), ([8], True, 0), ([], False, 8), ([8], True, 8)],
+                         ids=["linear-factor", "mlp-with-features", "linear-factor-bounded-ids",
+                              "mlp-with-features-bounded-ids"])
+def test_batch_loss_and_gradients_match_the_written_out_objective(tmp_path, hidden, features, id_table_rows):
+    # bounded ids (model.id_table_rows 8 for 40 users and 30 items): the reference penalises each id's
+    # composed vector, looked up afresh through the two tables
+    cfg, data = _data(tmp_path, hidden, features, id_table_rows=id_table_rows)
     torch.manual_seed(0)
     model = build_model(data, cfg)
+    assert (type(model.query_tower.ids).__name__ == "QRTable") == bool(id_table_rows)
     with torch.no_grad():  # biases away from their zero start, so their penalty and gradients count
         model.query_bias.weight.normal_(0, 0.3)
         model.candidate_bias.weight.normal_(0, 0.3)
@@ -109,10 +114,11 @@ def test_uniform_sampler_draws_warm_items_uniformly(tmp_path):
     assert (share - 0.1).abs().max() < 5 * (0.1 * 0.9 / len(draws)) ** 0.5
 
 
-@pytest.mark.parametrize("loss,negatives,biases,id_l2", [("logistic", 2, True, 0.4), ("logistic", 0, False, 0.0),
-                                                        ("squared", 0, True, 0.3)],
-                         ids=["logistic-soft-labels", "logistic-no-negatives", "squared"])
-def test_closed_form_id_row_objective_equals_the_general_path(tmp_path, loss, negatives, biases, id_l2):
+@pytest.mark.parametrize("loss,negatives,biases,id_l2,id_table_rows",
+                         [("logistic", 2, True, 0.4, 0), ("logistic", 0, False, 0.0, 0), ("squared", 0, True, 0.3, 0),
+                          ("logistic", 2, True, 0.4, 7)],
+                         ids=["logistic-soft-labels", "logistic-no-negatives", "squared", "bounded-ids"])
+def test_closed_form_id_row_objective_equals_the_general_path(tmp_path, loss, negatives, biases, id_l2, id_table_rows):
     # reference: the general autograd path of batch_loss (itself checked against torch's BCE above),
     # on a log with targets in [0, 1] (or ratings) and pair weights, so every term is present
     rng = np.random.default_rng(5)
@@ -123,7 +129,7 @@ def test_closed_form_id_row_objective_equals_the_general_path(tmp_path, loss, ne
     cfg = C.resolve({
         "interactions": {"path": str(tmp_path / "log.parquet"), "query_column": "u", "candidate_column": "i",
                          "target_column": "y", "weight_column": "w"},
-        "model": {"dim": 5, "hidden": [], "id_dropout": 0.0, "biases": biases},
+        "model": {"dim": 5, "hidden": [], "id_dropout": 0.0, "biases": biases, "id_table_rows": id_table_rows},
         "training": {"loss": loss, "negatives": negatives, "id_l2": id_l2},
         "evaluation": {"test_fraction": 0.0, "validation_fraction": 0.0, "baseline": False},
     }, tmp_path)

@@ -4,6 +4,12 @@ The encoders grow first (data/vocabulary.py), keeping every earlier index. Table
 are copied; a new user's or item's id row starts as the earlier run's unknown row, so the tower
 first embeds it from its features alone (what the earlier run did for a cold entity). Id-only tables
 (the linear factor model) have no features to start from: new rows keep their fresh random start.
+
+Bounded id tables (model.id_table_rows, model/id_tables.py) keep their remainder table as it was, so
+every earlier id keeps its two rows; the quotient table grows, its new rows starting fresh. A new id's
+vector is then composed from rows it shares with earlier ids, not the unknown row: composed rows have
+no row of their own to start from. A remainder table that changed size (another id_table_rows, or a
+side that crossed it) would move every earlier id to other rows, so it is refused.
 """
 
 from __future__ import annotations
@@ -34,6 +40,7 @@ def grow_weights(model, old_state: dict, source: Path) -> dict:
     state = model.state_dict()
     direct = {"query_tower.": model.query_tower.direct, "candidate_tower.": model.candidate_tower.direct}
     copied, grown = 0, {}
+    _check_id_layout(old_state, state, source)
     for key, old in old_state.items():
         if key not in state:
             raise TowersError(f"{source}: the earlier model has weights '{key}' this config's model lacks; keep the "
@@ -54,3 +61,24 @@ def grow_weights(model, old_state: dict, source: Path) -> dict:
         copied += 1
     model.load_state_dict(state)
     return {"tensors_copied": copied, "rows_added": grown}
+
+
+def _check_id_layout(old_state: dict, state: dict, source: Path) -> None:
+    """Both models keep each tower's ids the same way (one row per id, or the same bounded tables)."""
+    for tower in ("query_tower", "candidate_tower"):
+        full, remainder = f"{tower}.ids.weight", f"{tower}.ids.remainder.weight"
+        old_layout = "one row per id" if full in old_state else "bounded" if remainder in old_state else None
+        new_layout = "one row per id" if full in state else "bounded" if remainder in state else None
+        if None in (old_layout, new_layout):
+            continue
+        side = "item" if tower == "candidate_tower" else "query-side"
+        if old_layout != new_layout:
+            raise TowersError(f"{source}: the earlier model keeps its {side} ids {old_layout}, this one "
+                              f"{new_layout} (model.id_table_rows, and whether the ids now exceed it); a warm start "
+                              "cannot move learned rows between the two; train afresh, or set id_table_rows so that "
+                              "both runs keep them the same way")
+        if new_layout == "bounded" and old_state[remainder].shape != state[remainder].shape:
+            raise TowersError(f"{source}: the earlier model's bounded {side} id tables have "
+                              f"{old_state[remainder].shape[0]:,} remainder rows, this one "
+                              f"{state[remainder].shape[0]:,}; keep model.id_table_rows the same to warm-start "
+                              "(every earlier id would move to other rows)")

@@ -12,24 +12,16 @@ import torch.nn.functional as F
 
 from towers.config import ModelSection
 from towers.data.history import HISTORY
+from towers.model.id_tables import id_table, sparse_table
 
 ACTIVATIONS = {"relu": nn.ReLU, "gelu": nn.GELU, "tanh": nn.Tanh, "silu": nn.SiLU}
 ID_INIT_STD = 0.1  # common practice for factor tables (no source)
 
 
-def _sparse_table(rows: int, dim: int, std: float) -> nn.Embedding:
-    """An id table with sparse gradients; row 0 (the unknown id) starts at zero."""
-    table = nn.Embedding(rows, dim, sparse=True)
-    with torch.no_grad():
-        table.weight.normal_(0.0, std)
-        table.weight[0].zero_()
-    return table
-
-
 class Tower(nn.Module):
     """Maps one side's encoded features (a FeatureBlock batch) to k-dim embeddings."""
 
-    def __init__(self, inputs: list[dict], id_rows: int, model_cfg: ModelSection):
+    def __init__(self, inputs: list[dict], id_rows: int, model_cfg: ModelSection, side: str = "id"):
         super().__init__()
         dim = model_cfg.dim
         self.inputs = inputs
@@ -44,7 +36,9 @@ class Tower(nn.Module):
         if self.direct:
             self.id_dropout = 0.0
         id_dim = dim if self.direct else (model_cfg.id_dim or dim)
-        self.ids = _sparse_table(id_rows, id_dim, ID_INIT_STD) if self.use_ids else None
+        # one row per id, or two bounded tables composing each id's row (model/id_tables.py); forward(ids) either way
+        self.ids = id_table(id_rows, id_dim, model_cfg.id_table_rows, model_cfg.id_table_combine, ID_INIT_STD,
+                            side) if self.use_ids else None
         self.tables = nn.ModuleDict()
         width = id_dim if self.use_ids else 0
         # tables are keyed by position: column names may hold characters torch refuses in module names
@@ -114,13 +108,13 @@ class TwoTowerModel(nn.Module):
                  model_cfg: ModelSection, shared: bool = False):
         super().__init__()
         self.temperature = model_cfg.temperature
-        self.candidate_tower = Tower(cand_inputs, cand_ids, model_cfg)
+        self.candidate_tower = Tower(cand_inputs, cand_ids, model_cfg, "item id")
         self.shared = shared
-        self.query_tower = self.candidate_tower if shared else Tower(query_inputs, query_ids, model_cfg)
+        self.query_tower = self.candidate_tower if shared else Tower(query_inputs, query_ids, model_cfg, "query-side id")
         self.use_biases = model_cfg.biases
         if self.use_biases:
-            self.candidate_bias = _sparse_table(cand_ids, 1, 0.0)
-            self.query_bias = self.candidate_bias if shared else _sparse_table(query_ids, 1, 0.0)
+            self.candidate_bias = sparse_table(cand_ids, 1, 0.0)
+            self.query_bias = self.candidate_bias if shared else sparse_table(query_ids, 1, 0.0)
             self.global_bias = nn.Parameter(torch.zeros(()))
 
     def query_bias_of(self, ids: torch.Tensor) -> torch.Tensor:

@@ -29,6 +29,7 @@ from towers.data.embeddings_file import read_embeddings, write_embeddings
 from towers.data.tables import align_id_types
 from towers.errors import TowersError
 from towers.model.bundle import LoadedBundle, load_payload
+from towers.model.id_tables import is_bounded
 from towers.runs.folder import (
     EMBEDDINGS,
     SUBFOLDER_MODELS,
@@ -97,8 +98,15 @@ def _towers_of(bundle: LoadedBundle) -> list[tuple[str, nn.Module, list[dict]]]:
 def _rotate_tower(tower: nn.Module, r: torch.Tensor, path: Path) -> None:
     """Make the tower output out @ r: id table @ r, or W' = r^T W and b' = b r on the last linear layer."""
     if tower.direct:
-        w = tower.ids.weight
-        w.copy_((w.double() @ r).to(w.dtype))
+        if is_bounded(tower.ids) and tower.ids.combine == "product":
+            raise TowersError(f"{path}: this id-only model composes each id's vector as the element-wise product of "
+                              "two table rows (model.id_table_rows with id_table_combine: product), which no rotation "
+                              "of the tables reproduces; align it without the bounded tables, or use "
+                              "id_table_combine: sum")
+        # one table, or two whose rows are summed: (a + b) r = a r + b r
+        tables = [tower.ids.quotient, tower.ids.remainder] if is_bounded(tower.ids) else [tower.ids]
+        for t in tables:
+            t.weight.copy_((t.weight.double() @ r).to(t.weight.dtype))
         return
     last = tower.mlp[-1] if len(tower.mlp) else None
     if not isinstance(last, nn.Linear) or last.out_features != r.shape[0]:
@@ -107,6 +115,15 @@ def _rotate_tower(tower: nn.Module, r: torch.Tensor, path: Path) -> None:
     last.weight.copy_((r.T @ last.weight.double()).to(last.weight.dtype))
     if last.bias is not None:
         last.bias.copy_((last.bias.double() @ r).to(last.bias.dtype))
+
+
+def _product_tables(path: Path) -> str | None:
+    """Why an id-only model cannot be rotated (its id vectors are products of two table rows), or None."""
+    bundle = LoadedBundle(load_payload(path), path)
+    if any(t.direct and is_bounded(t.ids) and t.ids.combine == "product" for _, t, _ in _towers_of(bundle)):
+        return ("its id vectors are element-wise products of two table rows (model.id_table_rows, id_table_combine: "
+                "product), which no rotation of the tables reproduces")
+    return None
 
 
 def _probe_block(tower: nn.Module, generator: torch.Generator) -> dict:
@@ -227,7 +244,11 @@ def align_run(run_dir: str | Path, reference: str | Path, out_dir: str | Path, o
     for name in SUBFOLDER_MODELS:  # each reference model is aligned on its own against the reference's
         if not (new / name / MODEL).is_file():
             continue
-        if (ref / name / SIDE_FILES["items"]).is_file():
+        product = _product_tables(new / name / MODEL)
+        if product is not None:
+            record[name] = {"aligned": False, "reason": f"{product}; copied unrotated"}
+            notes.append(f"{new / name}: {product}; copied unrotated")
+        elif (ref / name / SIDE_FILES["items"]).is_file():
             plans[name] = _plan(new / name, ref / name, ref_label / name)
             record[name] = _record(plans[name], ref_label / name)
             notes += plans[name]["notes"]

@@ -31,6 +31,7 @@ from towers.model.build import baseline_model, build_model
 from towers.model.bundle import LoadedBundle, save_bundle
 from towers.model.embed import model_scorer, reads_context
 from towers.model.grow import grow_weights
+from towers.model.id_tables import describe as describe_id_tables
 from towers.model.towers import TwoTowerModel
 from towers.runs.folder import BILINEAR, EMBEDDINGS, LINEAR_FACTOR, TOWERS, RunFolder
 from towers.runs.report import write_report
@@ -186,6 +187,11 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
         f"{len(data.queries.ids):,} queries, {len(data.candidates.ids):,} items")
 
     model = build_model(data, cfg)
+    note = describe_id_tables({("query items" if data.item_item else "users"): model.query_tower.ids,
+                               "items": model.candidate_tower.ids} if not model.shared else
+                              {"items": model.candidate_tower.ids})
+    if note:
+        log(note)
     if previous is not None:  # before anything is written, so a mismatch leaves no folder behind
         started_from[TOWERS] = grow_weights(model, previous.model.state_dict(), previous.path)
     if not resuming:

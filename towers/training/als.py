@@ -64,6 +64,7 @@ from towers.data.prepare import Prepared
 from towers.errors import TowersError
 from towers.evaluation.protocol import validation_metrics
 from towers.model.embed import model_scorer
+from towers.model.id_tables import is_bounded
 from towers.model.towers import ID_INIT_STD, TwoTowerModel
 from towers.training.progress import log, show_bar
 from towers.training.stopping import (
@@ -216,6 +217,9 @@ class Factors:
 def check_linear(model: TwoTowerModel) -> None:
     if not (model.query_tower.direct and model.candidate_tower.direct):
         raise TowersError("ALS solves the linear factor model only (ids only, no hidden layer, no features)")
+    if is_bounded(model.query_tower.ids) or is_bounded(model.candidate_tower.ids):
+        raise TowersError("config key 'model.id_table_rows': ALS solves one row per id, but this model composes id "
+                          "rows from two shared tables; use evaluation.baseline_solver: gradient, or id_table_rows: 0")
     if model.shared or model.temperature != 1.0 or model.query_tower.normalize or model.query_tower.non_negative:
         raise TowersError("ALS needs separate query and item id tables, temperature 1, and no normalize or "
                           "softplus; set model.shared_tower: false or use evaluation.baseline_solver: gradient")

@@ -71,6 +71,7 @@ import torch
 
 from towers.config import Config, lower_is_better
 from towers.data.prepare import Prepared
+from towers.model.id_tables import is_bounded
 from towers.model.towers import TwoTowerModel
 from towers.training.als import Cells, Factors, cell_scores, cells_of, penalty_search
 
@@ -150,6 +151,9 @@ def certify(model: TwoTowerModel, data: Prepared, cfg: Config, history: list[dic
         return not_applicable("non-negative factors: the certificate covers unconstrained factors only")
     if model.shared:
         return not_applicable("a shared tower scores u_i . u_j, which is not a free product U V^T")
+    if is_bounded(model.query_tower.ids) or is_bounded(model.candidate_tower.ids):
+        return not_applicable("model.id_table_rows: id rows composed from two shared tables are not free factors "
+                              "U, V; the certificate covers one row per id")
     cells = cells_of(data, dtype=torch.float64)
     factors = Factors.of_model(model, torch.float64)
     cert = certificate(factors, cells, tcfg.id_l2, ev.certificate_gap)
