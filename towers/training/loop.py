@@ -30,10 +30,10 @@ from towers.model.bundle import load_payload
 from towers.model.losses import in_batch_softmax_loss, logistic_loss, squared_loss
 from towers.model.towers import Tower, TwoTowerModel
 from towers.training.distributed import (
+    GradientExchange,
     mean_over_processes,
     peer_failure,
     rank_and_size,
-    wrap,
 )
 from towers.training.memory import reuse_freed_memory
 from towers.training.negatives import NegativeSampler, log_batch_share
@@ -100,7 +100,8 @@ class Trainer:
             self.c_inv = id_counts(c_ids, data.candidates.encoders.id_encoder.size)
         self.lam = self.tcfg.id_l2
         self.stop = StopRequest(self.world)
-        self.step_loss = self.batch_loss if self.world == 1 else wrap(self)
+        # several processes: their gradients averaged after each backward pass (distributed.py)
+        self.exchange = GradientExchange(model) if self.world > 1 else None
 
     def _penalty(self, tower: Tower, bias, ids: torch.Tensor, inv: torch.Tensor, rows: torch.Tensor | None = None,
                  bias_rows: torch.Tensor | None = None) -> torch.Tensor:
@@ -270,7 +271,7 @@ class Trainer:
             idx = perm[s * bs:(s + 1) * bs]
             if self.world > 1:  # this process's share of the global batch (distributed.py)
                 idx = idx[self.rank::self.world]
-            loss = self.step_loss(idx)
+            loss = self.batch_loss(idx)
             if not torch.isfinite(loss):
                 progress.close()
                 raise TrainingDiverged(
@@ -282,6 +283,8 @@ class Trainer:
             for opt in self.optimizers:
                 opt.zero_grad(set_to_none=True)
             loss.backward()
+            if self.exchange is not None:
+                self.exchange()
             for opt in self.optimizers:
                 opt.step()
             total += float(loss.detach()) * len(idx)
