@@ -343,3 +343,15 @@ def test_parquet_pieces_equal_the_whole_table(small_store):
 def test_pieces_refuse_a_missing_column(small_store):
     with pytest.raises(TowersError, match="column 'colour': no such column"):
         list(T.read_table_chunks(small_store / "items.parquet", ["item_id", "colour"], 10))
+
+
+def test_table_columns_reads_the_header_alone_as_read_table_names_it(tmp_path):
+    """Reference: the columns of the table read whole (read_table), for CSV with a byte-order mark and padded
+    names, TSV and parquet."""
+    (tmp_path / "a.csv").write_bytes("\ufeffid, colour ,in_stock\n1,red,true\n".encode("utf-8"))
+    (tmp_path / "a.tsv").write_text("id\tcolour\n1\tred\n")
+    pd.DataFrame({"id": [1], "colour": ["red"]}).to_parquet(tmp_path / "a.parquet")
+    for name in ("a.csv", "a.tsv", "a.parquet"):
+        assert T.table_columns(tmp_path / name) == list(T.read_table(tmp_path / name).columns)
+    with pytest.raises(TowersError, match="file not found"):
+        T.table_columns(tmp_path / "missing.csv")

@@ -13,7 +13,7 @@ import pandas as pd
 import torch
 
 from towers.config import Config
-from towers.data.tables import align_id_types, normalise_ids, read_table
+from towers.data.tables import align_id_types, normalise_ids, read_table, table_columns
 from towers.errors import TowersError
 
 MOST_GROUPS = 100  # more distinct values than this is not a grouping a table can show
@@ -31,7 +31,7 @@ class Groups:
 
 
 def _table_columns(path: str | None) -> list[str]:
-    return list(read_table(path).columns) if path else []
+    return table_columns(path) if path else []
 
 
 def group_labels(cfg: Config, query_ids: np.ndarray, item_ids: np.ndarray) -> list[Groups]:

@@ -153,7 +153,7 @@ def read_interactions(cfg: Config, split: bool = False) -> Log:
     joined = {k: np.concatenate(v) if v else None for k, v in columns.items()}
     context = pd.concat(contexts, ignore_index=True) if contexts else None
     return Log(IdColumn(*q.finish()), IdColumn(*c.finish()), joined["target"], joined["weight"], joined["time"],
-               context, groups.finish() if ic.group_column else None)
+               context, groups.finish()[0] if ic.group_column else None)
 
 
 LOG_PIECE_ROWS = 1_000_000  # rows of the log read at a time: a piece is tens of MB, not the whole log
@@ -180,27 +180,18 @@ def _weights(series: pd.Series, path, column: str) -> np.ndarray:
     return weight
 
 
-class GroupPieces:
-    """The group column read in pieces, as int64 codes (equal values, equal codes, across pieces)."""
+class GroupPieces(IdPieces):
+    """The group column read in pieces: equal values get equal codes across pieces (IdPieces' merge), and
+    any value may be a group, but none may be missing."""
 
-    def __init__(self):
-        self.codes: list[np.ndarray] = []
-        self.uniques: list[np.ndarray] = []
-
-    def add(self, series: pd.Series, path, column) -> None:
+    def factorize(self, series: pd.Series, path, column) -> tuple[np.ndarray, np.ndarray]:
         codes, uniques = pd.factorize(series)
         missing = codes < 0
         if missing.any():
             row = int(np.flatnonzero(missing)[0])
             raise TowersError(f"{where(path, column, row + 1)}: missing group value; every row needs one (fill it, e.g. "
                               "with the row's own order or session id)")
-        self.codes.append(codes.astype(np.int64, copy=False))
-        self.uniques.append(np.asarray(uniques, dtype=object))
-
-    def finish(self) -> np.ndarray:
-        merged, _ = pd.factorize(np.concatenate(self.uniques))
-        starts = np.cumsum([0] + [len(u) for u in self.uniques])
-        return np.concatenate([merged[a:b][codes] for codes, a, b in zip(self.codes, starts[:-1], starts[1:])])
+        return codes, np.asarray(uniques, dtype=object)
 
 
 def _as_pairs(qr, cr, target, weight, when) -> Pairs:

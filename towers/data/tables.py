@@ -45,6 +45,21 @@ def read_table(path: str | Path, columns: list[str] | None = None) -> pd.DataFra
     return df
 
 
+def table_columns(path: str | Path) -> list[str]:
+    """A table's column names, read from its header alone (the parquet schema, the CSV's first line), with
+    read_table's checks and messages."""
+    path = Path(path)
+    suffix = check_file(path)
+    with _read_errors(path, suffix):
+        if suffix in (".parquet", ".pq"):
+            import pyarrow.parquet as pq
+
+            return [str(c).strip() for c in pq.read_schema(path).names]
+        df = pd.read_csv(path, sep="\t" if suffix == ".tsv" else ",", encoding="utf-8-sig", nrows=0)
+    _check_header(df, path)
+    return list(df.columns)
+
+
 @contextlib.contextmanager
 def _read_errors(path: Path, suffix: str):
     """Reading errors of pandas and pyarrow as one-line TowersErrors naming the file."""
@@ -207,9 +222,13 @@ class IdPieces:
         self.uniques: list[np.ndarray] = []
 
     def add(self, series: pd.Series, path, column) -> None:
-        codes, uniques = factorize_ids(series, path, column)
+        codes, uniques = self.factorize(series, path, column)
         self.codes.append(codes.astype(np.int32 if len(uniques) < 2 ** 31 else np.int64))
         self.uniques.append(uniques)
+
+    def factorize(self, series: pd.Series, path, column) -> tuple[np.ndarray, np.ndarray]:
+        """One piece as (codes, distinct values in order of first appearance), checked; ids by default."""
+        return factorize_ids(series, path, column)
 
     def finish(self) -> tuple[np.ndarray, np.ndarray]:
         if len(self.uniques) == 1:

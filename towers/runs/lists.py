@@ -34,6 +34,7 @@ from towers.data.tables import (
     positions_in,
     read_table,
     shown,
+    table_columns,
 )
 from towers.errors import TowersError, where
 from towers.search.scorer import Scorer
@@ -156,7 +157,7 @@ class ItemTable:
 
     def __init__(self, path: str | Path, id_column: str, item_ids: np.ndarray, columns: Sequence[str]):
         self.path = Path(path)
-        names = read_table_columns(self.path)
+        names = table_columns(self.path)
         wanted = list(dict.fromkeys([id_column] + list(columns)))
         for name in wanted:
             if name not in names:
@@ -207,18 +208,6 @@ class ItemTable:
     def _text(self, name: str) -> pd.Series:
         text = _texts(self._frame[name])
         return text.iloc[np.where(self.present, self._rows, 0)].reset_index(drop=True).where(self.present)
-
-
-def read_table_columns(path: Path) -> list[str]:
-    """The column names of a table file, without reading its rows where the format allows."""
-    if path.suffix.lower() in (".parquet", ".pq") and path.is_file():
-        import pyarrow.parquet as pq
-
-        try:
-            return [str(c) for c in pq.read_schema(path).names]
-        except Exception:  # noqa: BLE001 - read_table below turns a damaged file into its one-line error
-            pass
-    return [str(c) for c in read_table(path).columns]
 
 
 def read_id_file(path: str | Path, what: str) -> np.ndarray:

@@ -100,10 +100,10 @@ class GradientExchange:
     tensors (the networks) and sparse ones (id and bias tables: one entry per id a step looked up).
     Every parameter's gradient goes into one flat float32 buffer per process: dense ones whole, sparse
     ones as their raw entries (indices carried bit for bit as pairs of float32 words, then values),
-    uncoalesced: the optimiser coalesces them once, as it does in one process. One all_gather of the
-    buffers (after one of their lengths) replaces DDP's per-bucket all-reduces and its sparse
+    uncoalesced: the optimiser coalesces them once, as it does in one process. One gather_all of the
+    buffers (an all_gather of their lengths, then of the buffers) replaces DDP's per-bucket all-reduces and its sparse
     all-reduce, which coalesces before and after sending; on 2 cores that took an epoch from 2.97 s
-    to 2.14 s (scripts/bench two_nodes's config, 1M events; a single process takes 1.5 s of compute).
+    to 2.07-2.33 s (scripts/bench two_nodes's config, 1M events; with no exchange at all the two took 1.50 s).
     A parameter no process gave a gradient (the query biases under the softmax, which cancel) keeps
     none, so the optimiser leaves it alone, as DDP's find_unused_parameters does.
     """
@@ -118,7 +118,7 @@ class GradientExchange:
 
     def __call__(self) -> None:
         world = dist.get_world_size()
-        parts, header = [], []
+        header, parts = [], []
         for q, sparse in zip(self.params, self.sparse):
             g = q.grad
             header.append(-1 if g is None else (g._nnz() if sparse else g.numel()))
@@ -128,19 +128,17 @@ class GradientExchange:
                 parts += [g._indices()[0].contiguous().view(torch.float32), g._values().reshape(-1)]
             else:
                 parts.append(g.reshape(-1).float())
-        buf = torch.cat(parts) if parts else torch.zeros(0)
-        headers = self._gather(torch.tensor([len(buf), *header], dtype=torch.int64))
-        longest = max(int(h[0]) for h in headers)
-        bufs = self._gather(torch.cat([buf, buf.new_zeros(longest - len(buf))]))
-        pieces: list[list[torch.Tensor]] = [[] for _ in self.params]
-        for h, b in zip(headers, bufs):
-            at = 0
-            for k, (q, sparse) in enumerate(zip(self.params, self.sparse)):
-                n = int(h[k + 1])
+        # the header (each parameter's entry count, -1 for none) leads the buffer, as int64 bits in float32 words
+        head = torch.tensor(header, dtype=torch.int64).view(torch.float32)
+        pieces: list[list] = [[] for _ in self.params]
+        for b in gather_all(torch.cat([head, *parts])):
+            counts = b[:len(head)].clone().view(torch.int64).tolist()
+            at = len(head)
+            for k, (q, sparse, n) in enumerate(zip(self.params, self.sparse, counts)):
                 if n < 0:
                     continue
                 if sparse:
-                    width = q.shape[1] if q.dim() > 1 else 1
+                    width = q[0].numel()
                     idx = b[at:at + 2 * n].clone().view(torch.int64)  # clone: an odd offset cannot be viewed as int64
                     at += 2 * n
                     pieces[k].append((idx, b[at:at + n * width].view(n, *q.shape[1:])))
@@ -158,12 +156,6 @@ class GradientExchange:
             else:
                 total = torch.stack(pieces[k]).sum(0) / world
                 q.grad = total.to(q.dtype) if q.grad is None else q.grad.copy_(total)
-
-    @staticmethod
-    def _gather(part: torch.Tensor) -> list[torch.Tensor]:
-        out = [torch.empty_like(part) for _ in range(dist.get_world_size())]
-        dist.all_gather(out, part)
-        return out
 
 
 def peer_failure(exc: BaseException) -> TowersError:
