@@ -321,7 +321,7 @@ def derive_pairs(cfg: Config, split: bool) -> DerivedPairs:
             t = con.execute("SELECT t FROM groups ORDER BY b").fetchnumpy()["t"] if "t" in columns else None
             t = None if t is None else np.asarray(t, dtype=np.float64)
             # a generator of its own: the cold items are drawn from seed + 1 in splits.make_split
-            side = global_sides(np.arange(n_groups), t, ev, np.random.default_rng(seed + 2)).astype(np.int8)
+            side = global_sides(n_groups, t, ev, np.random.default_rng(seed + 2)).astype(np.int8)
         con.register("group_sides", pa.table({"b": np.arange(n_groups, dtype=np.int64), "side": side}))
         per_side = np.bincount(side, minlength=3)
         steps.done(f"{n_groups:,} {what} placed")

@@ -24,16 +24,44 @@ class Pairs:
         return len(self.query)
 
     def subset(self, idx) -> "Pairs":
-        idx = torch.as_tensor(idx, dtype=torch.int64)
+        idx = _index(idx)
         pick = lambda t: None if t is None else t.index_select(0, idx)  # noqa: E731
         return Pairs(pick(self.query), pick(self.candidate), pick(self.target), pick(self.weight), pick(self.time),
                      None if self.context is None else take(self.context, idx))
+
+    def divide(self, parts: list) -> list["Pairs"]:
+        """self.subset(idx) for each index array of `parts`, taken column by column; self is emptied on the way.
+
+        Each column is dropped once its parts are taken, so at most one column is held twice: with a
+        long log, the split costs the pairs plus one column, not the pairs twice.
+        """
+        parts = [_index(idx) for idx in parts]
+        out = [Pairs(None, None) for _ in parts]
+        for name in ("query", "candidate", "target", "weight", "time"):
+            column = getattr(self, name)
+            setattr(self, name, None)
+            for pairs, idx in zip(out, parts):
+                setattr(pairs, name, None if column is None else column.index_select(0, idx))
+            del column
+        block, self.context = self.context, None
+        for name in list(block or ()):
+            column = block.pop(name)
+            for pairs, idx in zip(out, parts):
+                pairs.context = (pairs.context or {}) | {name: column.index_select(0, idx)}
+            del column
+        return out
 
     def positives(self) -> "Pairs":
         """Rows that count as positive events (target > 0, or every row when there is no target)."""
         if self.target is None:
             return self
         return self.subset(torch.nonzero(self.target > 0).flatten())
+
+
+def _index(idx) -> torch.Tensor:
+    """Row positions as an index tensor: int32 arrays stay int32 (half the memory of int64 for a long split)."""
+    idx = torch.as_tensor(idx)
+    return idx if idx.dtype in (torch.int32, torch.int64) else idx.to(torch.int64)
 
 
 @dataclass

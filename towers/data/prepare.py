@@ -9,7 +9,6 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
-import pyarrow as pa
 import torch
 
 from towers.config import Config
@@ -17,15 +16,17 @@ from towers.data.baskets import collapse_repeats, derive_pairs
 from towers.data.context import ContextEncoders
 from towers.data.embeddings_file import TrueVectors, true_vectors
 from towers.data.encoders import make_encoder
-from towers.data.features import FeatureBlock, SideEncoders, SideTable
+from towers.data.features import FeatureBlock, SideEncoders, SideTable, take
 from towers.data.history import HISTORY, history_column
 from towers.data.pairs import Pairs, SplitPairs
 from towers.data.splits import HoldOut, Split, make_split
 from towers.data.tables import (
     IdPieces,
+    code_type,
     numeric_column,
     positions_in,
     read_table_chunks,
+    release_read_buffers,
     table_files,
     time_column,
 )
@@ -74,7 +75,7 @@ class Prepared:
 class IdColumn:
     """A log's id column as codes into its distinct ids (ids == uniques[codes]): memory-light for text ids."""
 
-    codes: np.ndarray  # int64, one per row
+    codes: np.ndarray  # int32 (int64 past 2**31 distinct ids), one per row
     uniques: np.ndarray  # int64 or str objects, in order of first appearance
 
     def values(self) -> np.ndarray:
@@ -148,8 +149,7 @@ def read_interactions(cfg: Config, split: bool = False) -> Log:
                     for spec in ic.context:  # every value checked in file order, so an error names the log's row
                         make_encoder(spec).validate(piece[spec.name], file)
                     contexts.append(piece)
-    # arrow keeps the pieces' freed buffers in its own pool, which numpy cannot reuse: give them back
-    pa.default_memory_pool().release_unused()
+    release_read_buffers()
     joined = {k: np.concatenate(v) if v else None for k, v in columns.items()}
     context = pd.concat(contexts, ignore_index=True) if contexts else None
     return Log(IdColumn(*q.finish()), IdColumn(*c.finish()), joined["target"], joined["weight"], joined["time"],
@@ -216,13 +216,15 @@ def _joint_ids(a: IdColumn, b: IdColumn) -> IdColumn:
     if ua.dtype != ub.dtype:  # an integer column and a text column: compare as text
         ua, ub = ua.astype(str).astype(object), ub.astype(str).astype(object)
     inverse, uniques = pd.factorize(np.concatenate([ua, ub]))
-    codes = np.concatenate([inverse[:len(ua)][a.codes], inverse[len(ua):][b.codes]]).astype(np.int64)
+    codes = np.concatenate([inverse[:len(ua)][a.codes], inverse[len(ua):][b.codes]]).astype(code_type(len(uniques)))
     return IdColumn(codes, np.asarray(uniques, dtype=ua.dtype))
 
 
 def _catalog_rows(ids: IdColumn, catalog_ids: np.ndarray) -> np.ndarray:
-    """Each row's position in the catalog (-1 where absent), matched once per distinct id."""
-    return positions_in(catalog_ids, ids.uniques)[ids.codes]
+    """Each row's position in the catalog (-1 where absent), matched once per distinct id; int32 while the
+    catalog allows, so a long log costs 4 bytes a row here, not 8."""
+    return positions_in(catalog_ids, ids.uniques).astype(code_type(len(catalog_ids)))[ids.codes]
+
 
 
 def prepare(cfg: Config, previous=None) -> Prepared:
@@ -292,7 +294,9 @@ def prepare(cfg: Config, previous=None) -> Prepared:
         frame = log.context.iloc[np.flatnonzero(keep)].reset_index(drop=True)
         context_encoders = ContextEncoders.fit(frame, ic.context, np.asarray(split.train), ic.path)
         pairs.context = context_encoders.encode(frame, ic.path)
-    train = pairs.subset(split.train)
+    slices = [split.train, split.valid, split.test, split.cold_test, split.cold_user_test]
+    train, valid, test, cold_test, cold_user_test = pairs.divide(slices)
+    pairs = groups = None
 
     tq, tc = train.query.numpy(), train.candidate.numpy()
     if item_item:
@@ -313,9 +317,10 @@ def prepare(cfg: Config, previous=None) -> Prepared:
         else:
             q_enc, started_from["users"] = extend_side(q_enc, previous.query_encoders, "user")
         context_encoders, started_from["context"] = extend_context(context_encoders, previous.extra.get("context"))
-        if context_encoders is not None:
-            pairs.context = context_encoders.encode(frame, ic.path)
-            train = pairs.subset(split.train)
+        if context_encoders is not None:  # the context encoded again with the extended encoders
+            encoded = context_encoders.encode(frame, ic.path)
+            for part, rows in zip((train, valid, test, cold_test, cold_user_test), slices):
+                part.context = take(encoded, torch.as_tensor(rows, dtype=torch.int64))
     c_block = c_enc.encode(c_ids, c_table, cfg.items.path)
     c_side = Side(c_ids, c_enc, c_block, has_item_features)
     if item_item:
@@ -331,8 +336,7 @@ def prepare(cfg: Config, previous=None) -> Prepared:
     if item_item:
         warm[train.query] = True
     _warn_small_data(cfg, train, len(q_ids), len(c_ids), notes)
-    prepared = Prepared(q_side, c_side, train, pairs.subset(split.valid), pairs.subset(split.test),
-                        pairs.subset(split.cold_test), split.cold_items, pairs.subset(split.cold_user_test),
+    prepared = Prepared(q_side, c_side, train, valid, test, cold_test, split.cold_items, cold_user_test,
                         split.cold_users, warm, item_item, notes, context=context_encoders, started_from=started_from)
     _check_oracles(cfg, prepared)
     return prepared

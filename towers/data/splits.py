@@ -25,7 +25,7 @@ PER_USER_SPLITS = ("user_share", "user_recent", "user_last")
 
 @dataclass
 class Split:
-    """Index arrays into the pair list, and which catalog rows are held out whole."""
+    """Index arrays into the pair list (int32 below 2**31 pairs), and which catalog rows are held out whole."""
 
     train: np.ndarray
     valid: np.ndarray
@@ -78,15 +78,20 @@ def make_split(pairs, n_items: int, ev: EvaluationSection, seed: int, cold_eligi
     touches_cold = cold_items[c] | cold_q
     cold_test = np.flatnonzero(cold_items[c] & ~cold_q)
     cold_user_test = np.flatnonzero(cold_users[q] & ~cold_items[c])
-    rest = np.flatnonzero(~touches_cold)
+    # int32 positions while the log allows: the slices' indices cost half as much for a long log
+    rest = np.flatnonzero(~touches_cold).astype(np.int32 if len(q) < 2 ** 31 else np.int64)
+    # the warm rows' columns: the columns themselves when no row is cold (no copy of a long log)
+    of_rest = (lambda a: a) if len(rest) == len(q) else (lambda a: a[rest])  # noqa: E731
     if sides is not None:
-        side = sides[rest]
+        side = of_rest(sides)
         return Split(rest[side == TRAIN], rest[side == VALID], rest[side == TEST], cold_test,
                      torch.from_numpy(cold_items), cold_user_test, torch.from_numpy(cold_users))
-    unit = split_units(q[rest], c[rest], None if groups is None else groups[rest], item_item)
-    when = None if pairs.time is None else pairs.time.numpy()[rest]
+    # each row its own unit unless pairs or groups join rows: then a code per row (split_units)
+    unit = split_units(of_rest(q), of_rest(c), None if groups is None else of_rest(groups), item_item) \
+        if item_item or groups is not None else len(rest)
+    when = None if pairs.time is None else of_rest(pairs.time.numpy())
     per_user = ev.split in PER_USER_SPLITS
-    side = _per_user_sides(unit, q[rest], when, ev, rng) if per_user else global_sides(unit, when, ev, rng)
+    side = _per_user_sides(unit, of_rest(q), when, ev, rng) if per_user else global_sides(unit, when, ev, rng)
     return Split(rest[side == TRAIN], rest[side == VALID], rest[side == TEST], cold_test, torch.from_numpy(cold_items),
                  cold_user_test, torch.from_numpy(cold_users))
 
@@ -158,23 +163,33 @@ def connected_units(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     return rank[inverse.reshape(-1)]
 
 
-def _unit_first_row(unit: np.ndarray, n_units: int) -> np.ndarray:
+def _unit_count(unit: np.ndarray | int) -> int:
+    """Units of a unit array (codes 0..k-1), or `unit` itself when given as a row count: one unit a row."""
+    return unit if isinstance(unit, int) else int(unit.max(initial=-1)) + 1
+
+
+def _unit_first_row(unit: np.ndarray | int, n_units: int) -> np.ndarray:
+    if isinstance(unit, int):
+        return np.arange(unit, dtype=np.int64)
     first = np.full(n_units, len(unit), dtype=np.int64)
     np.minimum.at(first, unit, np.arange(len(unit), dtype=np.int64))
     return first
 
 
-def _unit_time(unit: np.ndarray, n_units: int, when: np.ndarray) -> np.ndarray:
+def _unit_time(unit: np.ndarray | int, n_units: int, when: np.ndarray) -> np.ndarray:
     """Each unit's earliest event time."""
+    if isinstance(unit, int):
+        return when.astype(np.int64, copy=False)
     t = np.full(n_units, np.iinfo(np.int64).max, dtype=np.int64)
     np.minimum.at(t, unit, when.astype(np.int64))
     return t
 
 
-def global_sides(unit: np.ndarray, when: np.ndarray | None, ev: EvaluationSection, rng) -> np.ndarray:
+def global_sides(unit: np.ndarray | int, when: np.ndarray | None, ev: EvaluationSection, rng) -> np.ndarray:
     """Random or time split of the units, the fractions applied to units: test first, then validation
-    from the rest. Returns each row's side (unit = arange(n) places n units: data/baskets.py)."""
-    n_units = int(unit.max(initial=-1)) + 1
+    from the rest. Returns each row's side. unit: each row's unit code, or the row count when every row
+    is its own unit (data/baskets.py places its n baskets so)."""
+    n_units = _unit_count(unit)
     if ev.split == "time" and when is not None:
         order = np.argsort(_unit_time(unit, n_units, when), kind="stable")
     else:
@@ -188,10 +203,11 @@ def global_sides(unit: np.ndarray, when: np.ndarray | None, ev: EvaluationSectio
     else:
         unit_side[order[:n_test]] = TEST
         unit_side[order[n_test:n_test + n_valid]] = VALID
-    return unit_side[unit]
+    return unit_side if isinstance(unit, int) else unit_side[unit]
 
 
-def _per_user_sides(unit: np.ndarray, q: np.ndarray, when: np.ndarray | None, ev: EvaluationSection, rng) -> np.ndarray:
+def _per_user_sides(unit: np.ndarray | int, q: np.ndarray, when: np.ndarray | None, ev: EvaluationSection,
+                    rng) -> np.ndarray:
     """Each user's units split apart, every user keeping at least one training unit; returns each row's side.
 
     A unit belongs to the user of its first row. user_share: of a user's k units, round(test_fraction x k)
@@ -202,7 +218,7 @@ def _per_user_sides(unit: np.ndarray, q: np.ndarray, when: np.ndarray | None, ev
     left - 1) before them validation. By time, a unit is at its earliest event and among equal times the
     later row counts as later.
     """
-    n_units = int(unit.max(initial=-1)) + 1
+    n_units = _unit_count(unit)
     first = _unit_first_row(unit, n_units)
     owner = q[first].astype(np.int64)
     by_time = ev.split in ("user_recent", "user_last")
@@ -227,4 +243,4 @@ def _per_user_sides(unit: np.ndarray, q: np.ndarray, when: np.ndarray | None, ev
     sorted_side = np.where(pos < n_test, TEST, np.where(pos < n_test + n_valid, VALID, TRAIN)).astype(np.int8)
     unit_side = np.empty(n_units, dtype=np.int8)
     unit_side[order] = sorted_side
-    return unit_side[unit]
+    return unit_side if isinstance(unit, int) else unit_side[unit]

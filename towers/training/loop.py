@@ -90,14 +90,14 @@ class Trainer:
                               "use loss: logistic for events without a target")
         self.sampler = NegativeSampler(train, block_len(data.candidates.block), data.warm_items, self.tcfg,
                                        self.negative_generator) if self.n_neg else None
-        q_ids = data.queries.block["id"][train.query]
-        c_ids = data.candidates.block["id"][train.candidate]
+        q_rows = torch.bincount(train.query, minlength=block_len(data.queries.block))
+        c_rows = torch.bincount(train.candidate, minlength=block_len(data.candidates.block))
         if model.shared:
-            both = torch.cat([q_ids, c_ids])
-            self.q_inv = self.c_inv = id_counts(both, data.candidates.encoders.id_encoder.size)
+            self.q_inv = self.c_inv = id_counts(data.candidates.block["id"], q_rows + c_rows,
+                                                data.candidates.encoders.id_encoder.size)
         else:
-            self.q_inv = id_counts(q_ids, data.queries.encoders.id_encoder.size)
-            self.c_inv = id_counts(c_ids, data.candidates.encoders.id_encoder.size)
+            self.q_inv = id_counts(data.queries.block["id"], q_rows, data.queries.encoders.id_encoder.size)
+            self.c_inv = id_counts(data.candidates.block["id"], c_rows, data.candidates.encoders.id_encoder.size)
         self.lam = self.tcfg.id_l2
         self.stop = StopRequest(self.world)
         # several processes: their gradients averaged after each backward pass (distributed.py)
@@ -258,8 +258,8 @@ class Trainer:
         self.model.train()
         n = len(self.data.train)
         bs = self.tcfg.batch_size
-        if perm is None:
-            perm = torch.randperm(n, generator=self.generator)
+        if perm is None:  # int32 (the same order as int64 from the same generator): half the memory for a long log
+            perm = torch.randperm(n, generator=self.generator, dtype=torch.int32 if n < 2 ** 31 else torch.int64)
         steps = math.ceil(n / bs)
         progress = tqdm(total=n, initial=min(n, start_step * bs), desc=f"{self.label} epoch {epoch}", unit="pairs",
                         leave=False, file=sys.stderr, disable=not bar, mininterval=0.5)

@@ -106,7 +106,11 @@ def output_is_id_row(tower: Tower) -> bool:
     return tower.direct and not tower.normalize and not tower.non_negative
 
 
-def id_counts(ids: torch.Tensor, rows: int) -> torch.Tensor:
-    """Training positives per id row; 1/count spreads a row's penalty over its pairs."""
-    c = torch.bincount(ids, minlength=rows).float()
+def id_counts(ids: torch.Tensor, pairs: torch.Tensor, rows: int) -> torch.Tensor:
+    """1 / (training pairs per id row), 0 for rows with none: spreads a row's penalty over its pairs.
+
+    ids: each catalog entity's id row; pairs: each entity's training pairs. Counted per entity first,
+    so no id is gathered per pair (a long log would need a copy of its length).
+    """
+    c = torch.bincount(ids, weights=pairs.double(), minlength=rows).float()
     return torch.where(c > 0, 1.0 / c.clamp(min=1), torch.zeros_like(c))
