@@ -105,6 +105,9 @@ class RunSection:
     reuse_memory: bool = key('bool', True,
                              'training keeps memory it frees for its next steps (glibc malloc settings) instead'
                              ' of handing it back to the system and faulting it in again each step')
+    spill_folder: str | None = key('path', None, 'a folder where the columns with one entry per event (ids as codes, '
+                                   'times, weights, the split pairs) live as memory-mapped files instead of in memory, '
+                                   'for a log larger than memory; empty keeps them in memory', nullable=True)
 
 
 @dataclass(frozen=True)
@@ -260,6 +263,9 @@ class TrainingSection:
                                   'validation metric for early stopping (default rmse for squared, recall@K '
                                   'otherwise)',
                                   nullable=True)
+    shuffle_window: int = key('int', 1 << 20, 'with run.spill_folder, pairs mixed together at a time: the epoch '
+                              'visits blocks of 8,192 consecutive pairs in a random order and mixes this many at once',
+                              low=8192)
     validate_queries: int = key('int', 2000, 'at most this many validation queries are ranked each epoch', low=1)
     progress: str = key('choice', 'auto',
                         'progress bar: auto (only on a terminal), bar, or plain log lines',

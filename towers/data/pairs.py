@@ -7,6 +7,7 @@ from dataclasses import dataclass
 import torch
 
 from towers.data.features import FeatureBlock, take
+from towers.data.spill import Spill
 
 
 @dataclass
@@ -29,19 +30,27 @@ class Pairs:
         return Pairs(pick(self.query), pick(self.candidate), pick(self.target), pick(self.weight), pick(self.time),
                      None if self.context is None else take(self.context, idx))
 
-    def divide(self, parts: list) -> list["Pairs"]:
+    def divide(self, parts: list, spill: Spill | None = None) -> list["Pairs"]:
         """self.subset(idx) for each index array of `parts`, taken column by column; self is emptied on the way.
 
         Each column is dropped once its parts are taken, so at most one column is held twice: with a
-        long log, the split costs the pairs plus one column, not the pairs twice.
+        long log, the split costs the pairs plus one column, not the pairs twice. With a spill on disk
+        the parts are spill arrays (data/spill.py).
         """
         parts = [_index(idx) for idx in parts]
         out = [Pairs(None, None) for _ in parts]
+
+        def pick(column: torch.Tensor, idx: torch.Tensor) -> torch.Tensor:
+            if spill is None or not spill.on_disk:
+                return column.index_select(0, idx)
+            into = torch.from_numpy(spill.empty(len(idx), column.numpy().dtype).reshape(len(idx), *column.shape[1:]))
+            return torch.index_select(column, 0, idx, out=into)
+
         for name in ("query", "candidate", "target", "weight", "time"):
             column = getattr(self, name)
             setattr(self, name, None)
             for pairs, idx in zip(out, parts):
-                setattr(pairs, name, None if column is None else column.index_select(0, idx))
+                setattr(pairs, name, None if column is None else pick(column, idx))
             del column
         block, self.context = self.context, None
         for name in list(block or ()):

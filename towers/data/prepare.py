@@ -19,10 +19,10 @@ from towers.data.encoders import make_encoder
 from towers.data.features import FeatureBlock, SideEncoders, SideTable, take
 from towers.data.history import HISTORY, history_column
 from towers.data.pairs import Pairs, SplitPairs
+from towers.data.spill import CHUNK, Column, Spill
 from towers.data.splits import HoldOut, Split, make_split
 from towers.data.tables import (
     IdPieces,
-    code_type,
     numeric_column,
     positions_in,
     read_table_chunks,
@@ -64,6 +64,8 @@ class Prepared:
     oracle: TrueVectors | None = None  # the planted truth, when the config names oracle files
     context: ContextEncoders | None = None  # encoders of interactions.context, fitted on training events
     started_from: dict | None = None  # warm start: ids and values added to the earlier run's encoders
+    # ranking problems of validation, kept between epochs (evaluation/protocol.ranking_metrics' cache)
+    rankings: dict = field(default_factory=dict)
 
     @property
     def split(self) -> SplitPairs:
@@ -107,13 +109,15 @@ class Log:
         return self.candidate_ids.values()
 
 
-def read_interactions(cfg: Config, split: bool = False) -> Log:
+def read_interactions(cfg: Config, split: bool = False, spill: Spill | None = None) -> Log:
     """The log's id arrays, optional target / weight / time / group arrays and context columns, validated.
 
     With interactions.pairs_from baskets or sessions the rows are the derived item pairs (data/baskets.py);
     split: place whole baskets on the sides first (each row then carries its side), else all on training.
-    With count_repeats each distinct (query, candidate) is one row weighted by its count.
+    With count_repeats each distinct (query, candidate) is one row weighted by its count. spill: where
+    the columns of a log read from files go (data/spill.py; default in memory).
     """
+    spill = spill or Spill()
     ic = cfg.interactions
     path = ic.path
     if ic.pairs_from != "rows":
@@ -128,8 +132,9 @@ def read_interactions(cfg: Config, split: bool = False) -> Log:
     cols = [ic.query_column, ic.candidate_column] + [c for c in optional if c]
     context_cols = [f.name for f in ic.context]
     wanted = list(dict.fromkeys(cols + context_cols))
-    q, c, groups = IdPieces(), IdPieces(), GroupPieces()
-    columns: dict[str, list[np.ndarray]] = {"target": [], "weight": [], "time": []}
+    q, c, groups = IdPieces(spill), IdPieces(spill), GroupPieces(spill)
+    columns = {"target": Column(spill, np.float64), "weight": Column(spill, np.float64),
+               "time": Column(spill, np.int64)}
     contexts: list[pd.DataFrame] = []
     for file in table_files(path):
         for start, df in read_table_chunks(file, wanted, LOG_PIECE_ROWS):
@@ -137,11 +142,11 @@ def read_interactions(cfg: Config, split: bool = False) -> Log:
                 q.add(df[ic.query_column], file, ic.query_column)
                 c.add(df[ic.candidate_column], file, ic.candidate_column)
                 if ic.target_column:
-                    columns["target"].append(_targets(df[ic.target_column], file, ic.target_column, cfg))
+                    columns["target"].add(_targets(df[ic.target_column], file, ic.target_column, cfg))
                 if ic.weight_column:
-                    columns["weight"].append(_weights(df[ic.weight_column], file, ic.weight_column))
+                    columns["weight"].add(_weights(df[ic.weight_column], file, ic.weight_column))
                 if ic.time_column:
-                    columns["time"].append(time_column(df[ic.time_column], file, ic.time_column))
+                    columns["time"].add(time_column(df[ic.time_column], file, ic.time_column))
                 if ic.group_column:
                     groups.add(df[ic.group_column], file, ic.group_column)
                 if context_cols:
@@ -150,7 +155,8 @@ def read_interactions(cfg: Config, split: bool = False) -> Log:
                         make_encoder(spec).validate(piece[spec.name], file)
                     contexts.append(piece)
     release_read_buffers()
-    joined = {k: np.concatenate(v) if v else None for k, v in columns.items()}
+    wanted_columns = {"target": ic.target_column, "weight": ic.weight_column, "time": ic.time_column}
+    joined = {k: v.finish() if wanted_columns[k] else None for k, v in columns.items()}
     context = pd.concat(contexts, ignore_index=True) if contexts else None
     return Log(IdColumn(*q.finish()), IdColumn(*c.finish()), joined["target"], joined["weight"], joined["time"],
                context, groups.finish()[0] if ic.group_column else None)
@@ -194,15 +200,12 @@ class GroupPieces(IdPieces):
         return codes, np.asarray(uniques, dtype=object)
 
 
-def _as_pairs(qr, cr, target, weight, when) -> Pairs:
-    f32 = lambda a: None if a is None else torch.from_numpy(np.asarray(a, dtype=np.float32))  # noqa: E731
-    i64 = lambda a: torch.from_numpy(a.astype(np.int64, copy=False))  # noqa: E731
-    return Pairs(i64(qr), i64(cr), f32(target), f32(weight), None if when is None else i64(when))
-
-
-def _kept(values: np.ndarray, keep: np.ndarray) -> np.ndarray:
-    """values[keep], without a copy of the whole column when every row is kept (the usual case)."""
-    return values if keep.all() else values[keep]
+def _as_pairs(qr, cr, target, weight, when, spill: Spill) -> Pairs:
+    """The columns as a Pairs' tensors, converted a chunk at a time into spill arrays."""
+    def convert(a, dtype):
+        return None if a is None else torch.from_numpy(a if a.dtype == dtype else spill.copy(a, dtype))
+    return Pairs(convert(qr, np.int64), convert(cr, np.int64), convert(target, np.float32), convert(weight, np.float32),
+                 convert(when, np.int64))
 
 
 def _train_entities(ids: np.ndarray, rows: np.ndarray) -> np.ndarray:
@@ -210,20 +213,25 @@ def _train_entities(ids: np.ndarray, rows: np.ndarray) -> np.ndarray:
     return ids[np.flatnonzero(np.bincount(rows, minlength=len(ids)))]
 
 
-def _joint_ids(a: IdColumn, b: IdColumn) -> IdColumn:
+def _joint_ids(a: IdColumn, b: IdColumn, spill: Spill) -> IdColumn:
     """Both columns one after another as one IdColumn (item_item mode), distinct ids in order of first appearance."""
     ua, ub = a.uniques, b.uniques
     if ua.dtype != ub.dtype:  # an integer column and a text column: compare as text
         ua, ub = ua.astype(str).astype(object), ub.astype(str).astype(object)
     inverse, uniques = pd.factorize(np.concatenate([ua, ub]))
-    codes = np.concatenate([inverse[:len(ua)][a.codes], inverse[len(ua):][b.codes]]).astype(code_type(len(uniques)))
+    inverse = inverse.astype(np.int32)
+    codes = spill.empty(len(a.codes) + len(b.codes), np.int32)
+    for at, table, part in ((0, inverse[:len(ua)], a.codes), (len(a.codes), inverse[len(ua):], b.codes)):
+        for lo in range(0, len(part), CHUNK):
+            piece = part[lo:lo + CHUNK]
+            codes[at + lo:at + lo + len(piece)] = table[piece]
     return IdColumn(codes, np.asarray(uniques, dtype=ua.dtype))
 
 
-def _catalog_rows(ids: IdColumn, catalog_ids: np.ndarray) -> np.ndarray:
-    """Each row's position in the catalog (-1 where absent), matched once per distinct id; int32 while the
-    catalog allows, so a long log costs 4 bytes a row here, not 8."""
-    return positions_in(catalog_ids, ids.uniques).astype(code_type(len(catalog_ids)))[ids.codes]
+def _catalog_rows(ids: IdColumn, catalog_ids: np.ndarray, spill: Spill) -> np.ndarray:
+    """Each row's position in the catalog (-1 where absent), matched once per distinct id; int32, so a long
+    log costs 4 bytes a row here, not 8."""
+    return spill.lookup(positions_in(catalog_ids, ids.uniques).astype(np.int32), ids.codes)
 
 
 
@@ -235,7 +243,8 @@ def prepare(cfg: Config, previous=None) -> Prepared:
     """
     ic = cfg.interactions
     item_item = cfg.item_item
-    log = read_interactions(cfg, split=True)
+    spill = Spill(cfg.run.spill_folder)
+    log = read_interactions(cfg, split=True, spill=spill)
     q_log, c_log, target, weight, when = log.query_ids, log.candidate_ids, log.target, log.weight, log.time
     notes: list[str] = list(log.notes)
     # rows derived from an export (baskets, sessions, count_repeats) are not the file's rows: errors say so
@@ -244,28 +253,29 @@ def prepare(cfg: Config, previous=None) -> Prepared:
     item_side = SideTable(cfg.items.path, cfg.items.id_column, cfg.items.features, cfg.items.missing_rows)
     # ids are matched once per distinct id and mapped to rows through the codes (see IdColumn)
     if item_item:
-        both = _joint_ids(q_log, c_log)
+        both = _joint_ids(q_log, c_log, spill)
         c_ids, c_table, keep_both = item_side.catalog(both.uniques, source,
                                                       (ic.query_column or ic.candidate_column, ic.candidate_column),
                                                       codes=both.codes)
         n = len(q_log.codes)
         keep = keep_both[:n] & keep_both[n:]
         q_ids, q_table = c_ids, c_table
-        rows_both = _catalog_rows(both, c_ids)
-        q_rows, c_rows = _kept(rows_both[:n], keep), _kept(rows_both[n:], keep)
+        rows_both = _catalog_rows(both, c_ids, spill)
+        q_rows, c_rows = spill.where(rows_both[:n], keep), spill.where(rows_both[n:], keep)
         both = rows_both = None
     else:
         user_side = SideTable(cfg.users.path, cfg.users.id_column, cfg.users.features, cfg.users.missing_rows)
         q_ids, q_table, keep_q = user_side.catalog(q_log.uniques, source, ic.query_column, codes=q_log.codes)
         c_ids, c_table, keep_c = item_side.catalog(c_log.uniques, source, ic.candidate_column, codes=c_log.codes)
         keep = keep_q & keep_c
-        q_rows, c_rows = _kept(_catalog_rows(q_log, q_ids), keep), _kept(_catalog_rows(c_log, c_ids), keep)
+        q_rows = spill.where(_catalog_rows(q_log, q_ids, spill), keep)
+        c_rows = spill.where(_catalog_rows(c_log, c_ids, spill), keep)
     q_log = c_log = log.query_ids = log.candidate_ids = None  # the codes are rows now: free them
     dropped = int((~keep).sum())
     if dropped:
         notes.append(f"dropped {dropped} interaction rows whose ids have no feature row (missing_rows: drop)")
-    sel = lambda a: None if a is None else _kept(a, keep)  # noqa: E731
-    pairs = _as_pairs(q_rows, c_rows, sel(target), sel(weight), sel(when))
+    sel = lambda a: None if a is None else spill.where(a, keep)  # noqa: E731
+    pairs = _as_pairs(q_rows, c_rows, sel(target), sel(weight), sel(when), spill)
     q_rows = c_rows = target = weight = when = log.target = log.weight = log.time = None  # held by `pairs` now
     groups = sel(log.group)
     if len(pairs) == 0:
@@ -295,7 +305,7 @@ def prepare(cfg: Config, previous=None) -> Prepared:
         context_encoders = ContextEncoders.fit(frame, ic.context, np.asarray(split.train), ic.path)
         pairs.context = context_encoders.encode(frame, ic.path)
     slices = [split.train, split.valid, split.test, split.cold_test, split.cold_user_test]
-    train, valid, test, cold_test, cold_user_test = pairs.divide(slices)
+    train, valid, test, cold_test, cold_user_test = pairs.divide(slices, spill)
     pairs = groups = None
 
     tq, tc = train.query.numpy(), train.candidate.numpy()

@@ -16,6 +16,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from towers.data.spill import Column, Spill
 from towers.errors import TowersError, where
 
 READABLE = (".csv", ".parquet", ".pq", ".tsv")
@@ -235,23 +236,23 @@ class IdPieces:
     """A long id column read in pieces, each piece's codes turned into codes of the whole column at once.
 
     The result equals factorize_ids on the whole column: codes plus distinct ids in order of first
-    appearance. Kept between pieces: int32 codes (int64 past 2**31 distinct ids) and one entry per
-    distinct id seen so far, never one Python object per row nor a piece's distinct ids again.
+    appearance. Kept between pieces: int32 codes (in a spill file with a spill, data/spill.py) and one
+    entry per distinct id seen so far, never one Python object per row nor a piece's distinct ids again.
     Pieces of different types (numbers in one file, text in another) are merged as text.
 
     The distinct ids sit in two indexes: `settled` and the ids added since (`recent`); recent joins
     settled once it is as long, so each id is hashed again only about log2(pieces) times, not once a piece.
     """
 
-    def __init__(self):
-        self.codes: list[np.ndarray] = []
+    def __init__(self, spill: Spill | None = None):
+        self.codes = Column(spill or Spill(), np.int32)
         self.settled = self.recent = None  # _Ids each, once the first piece is in
 
     def add(self, series: pd.Series, path, column) -> None:
         codes, uniques = self.factorize(series, path, column)
         if self.settled is None:
             self.settled, self.recent = _Ids(uniques), _Ids(uniques[:0])
-            self.codes.append(codes.astype(code_type(len(uniques))))
+            self.codes.add(codes)
             return
         if (uniques.dtype == object) != (self.settled.ids.dtype == object):  # numbers beside text: all as text
             self.settled, self.recent = self.settled.as_text(), self.recent.as_text()
@@ -269,22 +270,23 @@ class IdPieces:
             if len(self.recent.ids) >= len(self.settled.ids):
                 self.settled = _Ids(np.concatenate([self.settled.ids, self.recent.ids]))
                 self.recent = _Ids(self.recent.ids[:0])
-        self.codes.append(at.astype(code_type(len(self.settled.ids) + len(self.recent.ids)))[codes])
+            if len(self.settled.ids) + len(self.recent.ids) >= 2 ** 31:
+                raise TowersError(f"{where(path, column)}: more than 2**31 distinct values; no id table could hold "
+                                  "them (hash them into fewer ids first)")
+        self.codes.add(at.astype(np.int32)[codes])
 
     def factorize(self, series: pd.Series, path, column) -> tuple[np.ndarray, np.ndarray]:
         """One piece as (codes, distinct values in order of first appearance), checked; ids by default."""
         return factorize_ids(series, path, column)
 
     def finish(self) -> tuple[np.ndarray, np.ndarray]:
-        """(codes, distinct ids): int32 codes (int64 past 2**31 distinct ids), half the memory of int64 per row."""
+        """(codes, distinct ids): int32 codes, half the memory of int64 a row (a spill array with a spill)."""
+        codes = self.codes.finish()
         if self.settled is None:
-            return np.zeros(0, np.int32), np.zeros(0, np.int64)
+            return codes, np.zeros(0, np.int64)
         uniques = np.concatenate([self.settled.ids, self.recent.ids])
-        text = uniques.dtype == object
-        codes = self.codes[0] if len(self.codes) == 1 else np.concatenate(self.codes).astype(
-            code_type(len(uniques)), copy=False)
-        self.codes, self.settled, self.recent = [], None, None
-        return codes, np.asarray(uniques, dtype=object if text else np.int64)
+        self.settled = self.recent = None
+        return codes, np.asarray(uniques, dtype=object if uniques.dtype == object else np.int64)
 
 
 class _Ids:
@@ -301,11 +303,6 @@ class _Ids:
 
     def as_text(self) -> "_Ids":
         return _Ids(self.ids.astype(str).astype(object))
-
-
-def code_type(n: int):
-    """The narrowest of int32 / int64 that numbers n things."""
-    return np.int32 if n < 2 ** 31 else np.int64
 
 
 def shown(name: str) -> str:

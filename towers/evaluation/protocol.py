@@ -97,8 +97,7 @@ def held_out(test: Pairs, known: Pairs, candidate_mask: torch.Tensor, seed: int 
         ok = (tq != tc).numpy()
         tq, tc = tq[ok], tc[ok]
     keys = np.unique(_pair_keys(tq, tc, n_items))
-    known_keys = np.unique(_pair_keys(known.query, known.candidate, n_items))
-    keys = keys[~np.isin(keys, known_keys, assume_unique=True)]
+    keys = keys[~_known_among(keys, known, n_items)]
     if len(keys) == 0:
         return None
     pq = torch.from_numpy(keys // n_items)
@@ -115,9 +114,38 @@ def held_out(test: Pairs, known: Pairs, candidate_mask: torch.Tensor, seed: int 
     col_of = torch.full((n_items,), -1, dtype=torch.int64)
     col_of[cand_rows] = torch.arange(len(cand_rows))
     # excluded (query row, column) cells: the queries' known pairs and, for item-item data, each query item itself
+    known_keys = _known_of(queries, known, n_items)
     ex_rows, ex_cols = excluded_cells(queries, torch.from_numpy(known_keys // n_items),
                                       torch.from_numpy(known_keys % n_items), col_of, exclude_self)
     return HeldOut(queries, q_index, pc, cand_rows, col_of[pc], ex_rows, ex_cols)
+
+
+KNOWN_CHUNK = 1 << 20  # known pairs looked at a time: the training pairs may be longer than memory (spill.py)
+
+
+def _known_among(keys: np.ndarray, known: Pairs, n_items: int) -> np.ndarray:
+    """bool per sorted distinct pair key: whether `known` holds that pair, the known pairs read a chunk at a time."""
+    found = np.zeros(len(keys), dtype=bool)
+    if len(keys) == 0:
+        return found
+    for lo in range(0, len(known), KNOWN_CHUNK):
+        part = _pair_keys(known.query[lo:lo + KNOWN_CHUNK], known.candidate[lo:lo + KNOWN_CHUNK], n_items)
+        at = np.minimum(np.searchsorted(keys, part), len(keys) - 1)
+        found[at[keys[at] == part]] = True
+    return found
+
+
+def _known_of(queries: torch.Tensor, known: Pairs, n_items: int) -> np.ndarray:
+    """The distinct known pair keys of `queries` (sorted distinct rows), the known pairs read a chunk at a time."""
+    wanted = queries.numpy().astype(np.int64)
+    kept = []
+    if len(wanted):
+        for lo in range(0, len(known), KNOWN_CHUNK):
+            q = known.query[lo:lo + KNOWN_CHUNK].numpy().astype(np.int64)
+            at = np.minimum(np.searchsorted(wanted, q), len(wanted) - 1)
+            hit = wanted[at] == q
+            kept.append(q[hit] * n_items + known.candidate[lo:lo + KNOWN_CHUNK].numpy()[hit].astype(np.int64))
+    return np.unique(np.concatenate(kept)) if kept else np.zeros(0, np.int64)
 
 
 # Cells of one dense score block of a reference model, and of one comparison block of its positives
@@ -184,7 +212,7 @@ def rank_positives(scorer, h: HeldOut, share: Share | None = None) -> tuple[torc
 
 def ranking_metrics(scorer, test: Pairs, known: Pairs, candidate_mask: torch.Tensor, ks,
                     tie_seed: int = 0, max_queries: int | None = None, exclude_self: bool = False,
-                    share: Share | None = None) -> dict[str, float]:
+                    share: Share | None = None, cache: dict | None = None) -> dict[str, float]:
     """Full-catalog ranking metrics of held-out positives, averaged over queries.
 
     candidate_mask: bool (n_items,) items that compete in the ranking. known: the pairs whose items
@@ -193,8 +221,16 @@ def ranking_metrics(scorer, test: Pairs, known: Pairs, candidate_mask: torch.Ten
     random order: each metric is its exact expected value over those orders (metrics.per_query_ranking).
     tie_seed seeds only the sample of max_queries queries. share: this process ranks only its share of
     the (sampled) queries and the counts are gathered (shares.py): the same metrics, on every process.
+    cache: a dict that keeps the ranking problem between calls with the same arguments (validation
+    asks the same each epoch, and finding the known pairs reads every training pair).
     """
-    h = held_out(test, known, candidate_mask, tie_seed, max_queries, exclude_self)
+    key = (id(test), id(candidate_mask), tie_seed, max_queries, exclude_self)
+    if cache is not None and key in cache:
+        h = cache[key]
+    else:
+        h = held_out(test, known, candidate_mask, tie_seed, max_queries, exclude_self)
+        if cache is not None:
+            cache[key] = h
     if h is None:
         return {}
     ahead, tied, n_candidates = rank_positives(scorer, h, share)
@@ -441,4 +477,4 @@ def validation_metrics(scorer: Scorer, data: Prepared, cfg: Config, pairs: Pairs
         return rating_metrics(scorer, pairs)
     return ranking_metrics(scorer, pairs, known, data.warm_items, cfg.evaluation.top_k,
                            tie_seed=cfg.run.seed, max_queries=cfg.training.validate_queries,
-                           exclude_self=data.item_item, share=share)
+                           exclude_self=data.item_item, share=share, cache=data.rankings)

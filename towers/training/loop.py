@@ -44,6 +44,7 @@ from towers.training.objectives import (
     output_is_id_row,
 )
 from towers.training.optimizers import make_optimizers, rate_factor, set_rates
+from towers.training.order import Shuffled, Windowed, restore
 from towers.training.progress import log, show_bar
 from towers.training.stopping import (
     EarlyStopping,
@@ -79,7 +80,8 @@ class Trainer:
         self.warm_rows = torch.nonzero(data.warm_items).flatten()
         # both towers output their id rows (the linear factor model): the closed-form objective node
         self.id_rows_only = output_is_id_row(model.query_tower) and output_is_id_row(model.candidate_tower)
-        if self.id_rows_only:  # each pair's id-table rows, looked up once instead of twice per step
+        self.pair_q_ids = self.pair_c_ids = None
+        if self.id_rows_only and not cfg.run.spill_folder:  # each pair's id-table rows, looked up once, not each step
             self.pair_q_ids = data.queries.block["id"].index_select(0, data.train.query)
             self.pair_c_ids = data.candidates.block["id"].index_select(0, data.train.candidate)
         train = data.train
@@ -216,10 +218,14 @@ class Trainer:
         """batch_loss for a model whose towers both output their id rows, through IdRowObjective."""
         m, d, train = self.model, self.data, self.data.train
         b = len(idx)
-        c_codes = self.pair_c_ids.index_select(0, idx)
+        if self.pair_q_ids is not None:
+            q_codes, c_codes = self.pair_q_ids.index_select(0, idx), self.pair_c_ids.index_select(0, idx)
+        else:  # pairs on disk: no copy of their length in memory
+            q_codes = d.queries.block["id"].index_select(0, train.query.index_select(0, idx))
+            c_codes = d.candidates.block["id"].index_select(0, train.candidate.index_select(0, idx))
         if self.n_neg:
             c_codes = torch.cat([c_codes, d.candidates.block["id"].index_select(0, self.sampler(b * self.n_neg))])
-        q_ids = m.query_tower.id_rows({"id": self.pair_q_ids.index_select(0, idx)})
+        q_ids = m.query_tower.id_rows({"id": q_codes})
         c_ids = m.candidate_tower.id_rows({"id": c_codes})
         q, c = m.query_tower.ids(q_ids), m.candidate_tower.ids(c_ids)
         g = m.global_bias if m.use_biases else torch.zeros(())
@@ -248,18 +254,19 @@ class Trainer:
         self.n_neg = keep_neg
         return total / n + 0.5 * self.tcfg.weight_decay * dense
 
-    def run_epoch(self, epoch: int, bar: bool, perm: torch.Tensor | None = None, start_step: int = 0,
+    def run_epoch(self, epoch: int, bar: bool, order: Shuffled | Windowed | None = None, start_step: int = 0,
                   done_loss: float = 0.0) -> float:
         """One pass over the shuffled training pairs; returns the mean batch loss.
 
-        perm/start_step/done_loss continue an epoch that was interrupted part-way. A stop request
+        order/start_step/done_loss continue an epoch that was interrupted part-way. A stop request
         (Ctrl-C) is honoured between steps, never inside one, so the saved state is consistent.
         """
         self.model.train()
         n = len(self.data.train)
         bs = self.tcfg.batch_size
-        if perm is None:  # int32 (the same order as int64 from the same generator): half the memory for a long log
-            perm = torch.randperm(n, generator=self.generator, dtype=torch.int32 if n < 2 ** 31 else torch.int64)
+        if order is None:  # pairs on disk: blocks a window at a time, else one permutation (order.py)
+            order = Windowed.draw(n, self.tcfg.shuffle_window, self.generator) if self.cfg.run.spill_folder \
+                else Shuffled.draw(n, self.generator)
         steps = math.ceil(n / bs)
         progress = tqdm(total=n, initial=min(n, start_step * bs), desc=f"{self.label} epoch {epoch}", unit="pairs",
                         leave=False, file=sys.stderr, disable=not bar, mininterval=0.5)
@@ -267,8 +274,8 @@ class Trainer:
         for s in range(start_step, steps):
             if self.stop.requested:
                 progress.close()
-                raise Interrupted(epoch, s, perm, total)
-            idx = perm[s * bs:(s + 1) * bs]
+                raise Interrupted(epoch, s, order, total)
+            idx = order.batch(s, bs)
             if self.world > 1:  # this process's share of the global batch (distributed.py)
                 idx = idx[self.rank::self.world]
             loss = self.batch_loss(idx)
@@ -302,9 +309,9 @@ class Trainer:
 class Interrupted(Exception):
     """Raised between steps after a stop request, carrying the position to resume from."""
 
-    def __init__(self, epoch: int, step: int, perm: torch.Tensor, loss_so_far: float):
+    def __init__(self, epoch: int, step: int, order: Shuffled | Windowed, loss_so_far: float):
         super().__init__(f"interrupted at epoch {epoch}, step {step}")
-        self.epoch, self.step, self.perm, self.loss_so_far = epoch, step, perm, loss_so_far
+        self.epoch, self.step, self.order, self.loss_so_far = epoch, step, order, loss_so_far
 
 
 def fit(model: TwoTowerModel, data: Prepared, cfg: Config, checkpoint_dir: Path | None, label: str,
@@ -322,7 +329,7 @@ def fit(model: TwoTowerModel, data: Prepared, cfg: Config, checkpoint_dir: Path 
     bar = show_bar(tcfg.progress)
     result = TrainResult(stop_metric=cfg.stop_metric)
     stopping = EarlyStopping(result, tcfg.patience, label, "epoch", tcfg.epochs, on_round=on_round)
-    epoch, perm, start_step, done_loss = 1, None, 0, 0.0
+    epoch, order, start_step, done_loss = 1, None, 0, 0.0
     last_path = checkpoint_dir / "last.pt" if checkpoint_dir is not None else None
 
     def save(finished: bool, position: tuple | None = None) -> None:
@@ -336,7 +343,7 @@ def fit(model: TwoTowerModel, data: Prepared, cfg: Config, checkpoint_dir: Path 
                  "optimizers": [o.state_dict() for o in trainer.optimizers],
                  "generator": trainer.generator.get_state(), "global_rng": torch.get_rng_state()}
         if p is not None:
-            state["perm"] = p
+            state["perm"] = p.saved()  # the epoch's order: a permutation, or what draws a windowed one
         write_atomic(last_path, lambda f: torch.save(state, f))
 
     if resume and last_path is not None and last_path.is_file():
@@ -350,7 +357,7 @@ def fit(model: TwoTowerModel, data: Prepared, cfg: Config, checkpoint_dir: Path 
         torch.set_rng_state(st["global_rng"])
         result.history, result.best_value, result.best_epoch = st["history"], st["best_value"], st["best_epoch"]
         result.best_state, stopping.stale = st["best_model"], st["stale"]
-        epoch, start_step, perm, done_loss = st["epoch"], st["step"], st.get("perm"), st["loss_so_far"]
+        epoch, start_step, order, done_loss = st["epoch"], st["step"], restore(st.get("perm")), st["loss_so_far"]
         if st["finished"]:
             stopping.restore_best(model)
             log(f"{label}: already trained in the interrupted run; loaded its best weights")
@@ -360,16 +367,16 @@ def fit(model: TwoTowerModel, data: Prepared, cfg: Config, checkpoint_dir: Path 
     with trainer.stop:
         while epoch <= tcfg.epochs:
             try:
-                loss = trainer.run_epoch(epoch, bar, perm, start_step, done_loss)
+                loss = trainer.run_epoch(epoch, bar, order, start_step, done_loss)
             except RuntimeError as exc:  # a collective failed: a peer process is gone
                 if trainer.world > 1:
                     raise peer_failure(exc) from None
                 raise
             except Interrupted as stop:
-                save(False, (stop.epoch, stop.step, stop.perm, stop.loss_so_far))
+                save(False, (stop.epoch, stop.step, stop.order, stop.loss_so_far))
                 raise TrainingInterrupted(f"{label} training interrupted at epoch {stop.epoch}, step {stop.step}; "
                                           "checkpoint written") from None
-            perm, start_step, done_loss = None, 0, 0.0
+            order, start_step, done_loss = None, 0, 0.0
             finished = stopping.after_round(model, data, cfg, epoch, loss, trainer.last_rate, checkpoint_dir)
             epoch += 1
             if finished:
