@@ -13,6 +13,7 @@ described in DEVELOPERS.md, "Benchmarking".
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import os
 import platform
@@ -51,6 +52,9 @@ SIZES = {
     # full size with min_pair_count 2, the README's setting for large exports (every pair kept would hold ~100M pairs)
     "derive_pairs": ({"lines": 50_000_000, "items": 100_000, "min_pair_count": 2},
                      {"lines": 3_000_000, "items": 50_000, "min_pair_count": 1}),
+    # a log trained under a memory limit it does not fit in (a memory cgroup), spilled to disk, against in memory
+    "memory_limit": ({"events": 30_000_000, "users": 150_000, "items": 50_000, "chunk": 10_000_000, "test_queries": 20_000},
+                     {"events": 4_000_000, "users": 20_000, "items": 20_000, "chunk": 2_000_000, "test_queries": 5_000}),
     # two machines rehearsed on this one (two torchrun invocations, one process and one thread each) and one process
     "two_nodes": ({"events": 1_000_000, "items": 20_000, "epochs": 2},
                   {"events": 200_000, "items": 5_000, "epochs": 2}),
@@ -947,6 +951,126 @@ def timed_command(argv: list[str]) -> dict:
             "peak_rss_gb": resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss * 1024 / 2 ** 30}
 
 
+def memory_cgroup(limit_bytes: int | None) -> Path | None:
+    """A fresh memory cgroup (v2, or v1's memory controller) under this process's own, with a limit; None
+    where none can be made (not root, no writable cgroup file system). Swap is not counted: none is set up here."""
+    import uuid
+
+    own = Path("/proc/self/cgroup").read_text().splitlines() if Path("/proc/self/cgroup").exists() else []
+    for line in own:
+        _, controllers, rel = line.split(":", 2)
+        if controllers == "" and Path("/sys/fs/cgroup/cgroup.controllers").exists():
+            base, limit_file = Path("/sys/fs/cgroup") / rel.lstrip("/"), "memory.max"
+        elif "memory" in controllers.split(","):
+            base, limit_file = Path("/sys/fs/cgroup/memory") / rel.lstrip("/"), "memory.limit_in_bytes"
+        else:
+            continue
+        group = base / f"towers-bench-{uuid.uuid4().hex[:8]}"
+        try:
+            group.mkdir()
+            if limit_bytes is not None:
+                (group / limit_file).write_text(str(limit_bytes))
+            return group
+        except OSError:
+            with contextlib.suppress(OSError):
+                group.rmdir()
+    return None
+
+
+def anonymous_bytes(group: Path) -> int:
+    """The cgroup's anonymous memory now (what no eviction can take back; file pages are reclaimable)."""
+    stat = dict(line.split() for line in (group / "memory.stat").read_text().splitlines())
+    return int(stat.get("anon", stat.get("rss", 0)))
+
+
+def run_in_cgroup(argv: list[str], limit_bytes: int | None) -> dict:
+    """argv in a fresh memory cgroup with the limit: exit code, wall seconds, peak anonymous memory (sampled
+    every 20 ms) and whether the kernel's memory limit killed it."""
+    import threading
+
+    group = memory_cgroup(limit_bytes)
+    if group is None:
+        return {"skipped": "no writable memory cgroup (needs root and a cgroup file system)"}
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join([str(ROOT), os.environ.get("PYTHONPATH", "")]))
+    peak, done = [0], threading.Event()
+
+    def watch():
+        while not done.is_set():
+            with contextlib.suppress(OSError, ValueError):
+                peak[0] = max(peak[0], anonymous_bytes(group))
+            time.sleep(0.02)
+
+    t = time.perf_counter()
+    proc = subprocess.Popen(argv, env=env, cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True,
+                            preexec_fn=lambda: (group / "cgroup.procs").write_text(str(os.getpid())))
+    watcher = threading.Thread(target=watch, daemon=True)
+    watcher.start()
+    _, err = proc.communicate()
+    done.set()
+    watcher.join()
+    seconds = time.perf_counter() - t
+    for _ in range(50):  # the group empties a moment after its last process ends
+        try:
+            group.rmdir()
+            break
+        except OSError:
+            time.sleep(0.1)
+    return {"code": proc.returncode, "seconds": seconds, "peak_anon_gb": peak[0] / 2 ** 30,
+            "killed": proc.returncode in (-9, 137), "last_line": (err.strip().splitlines() or [""])[-1][:200]}
+
+
+def case_memory_limit(size: dict, work: Path) -> dict:
+    """Four `towers train` runs of one log: in memory and spilled, each without a limit and then under one
+    halfway between their peaks of anonymous memory. The spilled run under the limit must end with the
+    metrics of the spilled run without it; the in-memory run under the limit is expected to be killed."""
+    import yaml
+
+    write_item_table(work / "limit_items.parquet", size["items"], seed=10)
+    write_shop_log_chunks(work / "limit_log.parquet", size["events"], size["users"], size["items"], seed=12,
+                          chunk=size["chunk"])
+    (work / "spill").mkdir(exist_ok=True)
+    cfg = scale_config(work, "x")
+    cfg["interactions"]["path"] = str(work / "limit_log.parquet")
+    cfg["items"]["path"] = str(work / "limit_items.parquet")
+    cfg["evaluation"] = {"baseline": False, "references": False, "test_queries": size["test_queries"]}
+    cfg["report"] = {"enabled": False}
+    cfg["training"]["progress"] = "plain"
+    configs = {}
+    for kind in ("memory", "spilled"):
+        if kind == "spilled":
+            cfg["run"]["spill_folder"] = str(work / "spill")
+        configs[kind] = work / f"limit_{kind}.yaml"
+        configs[kind].write_text(yaml.safe_dump(cfg))
+    runs = {}
+
+    def train(kind: str, limit: int | None) -> dict:
+        out = work / f"limit_run_{kind}_{'limited' if limit else 'free'}"
+        got = run_in_cgroup([sys.executable, "-m", "towers", "train", str(configs[kind]), "--out", str(out),
+                             "--overwrite"], limit)
+        metrics = out / "metrics.json"
+        got["warm"] = json.loads(metrics.read_text())["warm"]["towers"] if metrics.exists() else None
+        log(f"memory_limit {kind}, limit {'none' if not limit else f'{limit / 2**30:.2f} GiB'}: {got}")
+        return got
+
+    runs["memory_free"], runs["spilled_free"] = train("memory", None), train("spilled", None)
+    if "skipped" in runs["memory_free"]:
+        return {"memory_limit_skipped": 1.0}
+    limit = int((runs["memory_free"]["peak_anon_gb"] + runs["spilled_free"]["peak_anon_gb"]) / 2 * 2 ** 30)
+    runs["memory_limited"], runs["spilled_limited"] = train("memory", limit), train("spilled", limit)
+    (work / "memory_limit.json").write_text(json.dumps(runs, indent=1))
+    same = runs["spilled_limited"]["warm"] is not None and runs["spilled_limited"]["warm"] == runs["spilled_free"]["warm"]
+    return {"memory_limit_gb": limit / 2 ** 30, "memory_limit_spilled_ok": float(runs["spilled_limited"]["code"] == 0),
+            "memory_limit_spilled_same_metrics": float(same),
+            "memory_limit_in_memory_killed": float(runs["memory_limited"]["killed"]),
+            "memory_limit_peak_anon_gb_memory": runs["memory_free"]["peak_anon_gb"],
+            "memory_limit_peak_anon_gb_spilled": runs["spilled_free"]["peak_anon_gb"],
+            "memory_limit_seconds_memory": runs["memory_free"]["seconds"],
+            "memory_limit_seconds_spilled": runs["spilled_free"]["seconds"],
+            "memory_limit_seconds_spilled_limited": runs["spilled_limited"]["seconds"],
+            "memory_limit_recall_memory": runs["memory_free"]["warm"]["recall@20"],
+            "memory_limit_recall_spilled": runs["spilled_free"]["warm"]["recall@20"]}
+
+
 def case_two_nodes_one(size: dict, work: Path) -> dict:
     """`towers train` in one process."""
     return timed_command([sys.executable, "-m", "towers", "train", str(work / "two_nodes.yaml"), "--out", str(work / "one")])
@@ -1001,7 +1125,7 @@ CHILDREN = {"id_training": case_id_training, "tower_flops": case_tower_flops, "a
             "serve_setup": case_serve_setup, "serve_run": case_serve_run,
             "derive_data": case_derive_data, "derive_run": case_derive_run,
             "two_nodes_data": case_two_nodes_data, "two_nodes_one": case_two_nodes_one,
-            "two_nodes_node": case_two_nodes_node}
+            "two_nodes_node": case_two_nodes_node, "memory_limit": case_memory_limit}
 
 
 # ---- the parent ------------------------------------------------------------------------------------
@@ -1077,6 +1201,9 @@ GOALS = {  # key: (goal, "at least" or "at most")
     "serve_p50_1_client_vs_library": (None, ""), "serve_rps_32_vs_1_client": (None, ""),
     "lists_vs_top_n": (None, ""), "lists_users_per_s": (None, ""), "lists_peak_rss_gb": (None, ""),
     "derive_pairs_vs_scan": (None, ""), "derive_pairs_lines_per_s": (None, ""), "derive_pairs_peak_rss_gb": (4, "<="),
+    "memory_limit_spilled_ok": (1, ">="), "memory_limit_spilled_same_metrics": (1, ">="),
+    "memory_limit_in_memory_killed": (None, ""), "memory_limit_gb": (None, ""),
+    "memory_limit_peak_anon_gb_memory": (None, ""), "memory_limit_peak_anon_gb_spilled": (None, ""),
     "two_nodes_wall_vs_one": (None, ""), "two_nodes_pairs_per_core_vs_one": (None, ""), "two_nodes_peak_rss_vs_one": (None, ""),
     "two_nodes_valid_vs_one": (None, ""), "two_nodes_test_vs_one": (None, ""),
 }

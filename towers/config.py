@@ -312,6 +312,9 @@ class EvaluationSection:
     cold_user_fraction: float = key('float', 0.0,
                                     'share of users (with features) held out whole for the cold_users slice',
                                     low=0.0, high=0.9)
+    test_queries: int = key('int', 0, 'at most this many queries of each held-out slice are ranked, a seeded '
+                            'sample (0: all); for logs with millions of users, where ranking every one is slow and '
+                            'their known pairs are many', low=0)
     top_k: tuple[int, ...] = key('int_list', (20,), 'K values for recall@K, ndcg@K, coverage@K and popularity_pct@K')
     group_metrics_by: tuple[str, ...] = key('str_list', (),
                                             'columns of the users or items table (a segment, a category ...): '

@@ -103,6 +103,20 @@ def test_a_missing_spill_folder_is_named_with_the_fix(tmp_path):
         Spill(tmp_path / "nope")
 
 
+def test_a_full_spill_disk_is_a_clear_error_not_a_crash(tmp_path, monkeypatch):
+    import errno
+    import os
+
+    def full(*args):
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+    monkeypatch.setattr(os, "posix_fallocate", full, raising=False)
+    with pytest.raises(TowersError, match=r"run.spill_folder .*: cannot hold 0.0 GiB more \(No space left on device\); "
+                                          r"free room there"):
+        Spill(tmp_path).empty(1000, np.int64)
+    assert list(tmp_path.iterdir()) == []
+
+
 def test_spill_arrays_and_columns_hold_what_was_put_in(tmp_path, monkeypatch):
     monkeypatch.setattr("towers.data.spill.CHUNK", 7)
     spill = Spill(tmp_path)
@@ -150,3 +164,47 @@ def test_an_in_memory_epoch_is_one_permutation_kept_by_the_checkpoint():
     assert torch.equal(torch.sort(order.perm.long()).values, torch.arange(1000))
     assert torch.equal(O.restore(order.saved()).batch(3, 64), order.batch(3, 64))
     assert O.restore(None) is None
+
+
+@pytest.mark.slow
+def test_a_spilled_run_trains_evaluates_and_resumes_like_a_run_in_memory(tiny_runs, tmp_path):
+    """`towers train` with run.spill_folder on the shipped co-purchase config: it ends, leaves its folder empty, and its
+    run folder is read back by `towers evaluate` to the same figures (reference: the run's own metrics.json).
+    The same run stopped in the middle of its first epoch and resumed ends with the very weights of the
+    uninterrupted one (the checkpoint keeps what draws the windowed order)."""
+    import json
+
+    import towers
+    from towers.training import loop, stopping
+
+    spill = tmp_path / "spill"
+    spill.mkdir()
+    config = tiny_runs.config(tmp_path, config="store_copurchase.yaml", oracle=False, run={"spill_folder": str(spill)},
+                              training={"epochs": 2, "batch_size": 256, "patience": 10, "shuffle_window": 16384},
+                              evaluation={"references": False})
+    run = tmp_path / "run"
+    towers.train(config, run)
+    assert list(spill.iterdir()) == []
+    written = json.loads((run / "metrics.json").read_text())
+    assert written["warm"]["towers"]["recall@20"] > 0
+    again = towers.load(run).evaluate()
+    assert again["metrics"]["warm"]["towers"]["recall@20"] == pytest.approx(written["warm"]["towers"]["recall@20"])
+
+    calls = []
+    real = loop.Trainer.batch_loss
+
+    def stop_mid_epoch(self, idx):
+        calls.append(1)
+        if len(calls) == 20:  # step 20 of the first epoch's 25: as Ctrl-C would, between two steps
+            self.stop.requested = True
+        return real(self, idx)
+
+    resumed = tmp_path / "resumed"
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setattr(loop.Trainer, "batch_loss", stop_mid_epoch)
+        with pytest.raises(stopping.TrainingInterrupted, match="epoch 1, step 20"):
+            towers.train(config, resumed)
+    towers.train(config, resumed, resume=True)
+    a = torch.load(run / "model.pt", weights_only=True)["state_dict"]
+    b = torch.load(resumed / "model.pt", weights_only=True)["state_dict"]
+    assert a.keys() == b.keys() and all(torch.equal(a[k], b[k]) for k in a)

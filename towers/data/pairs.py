@@ -89,5 +89,9 @@ class SplitPairs:
 
     def known(self) -> Pairs:
         """Positives a query is known to have (training and validation): excluded from its test ranking."""
-        tr, va = self.train.positives(), self.valid.positives()
+        tr, va = self.known_parts()
         return Pairs(torch.cat([tr.query, va.query]), torch.cat([tr.candidate, va.candidate]))
+
+    def known_parts(self) -> list[Pairs]:
+        """known() as its two parts, not joined: a long log's training pairs are not copied."""
+        return [self.train.positives(), self.valid.positives()]

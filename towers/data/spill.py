@@ -43,7 +43,10 @@ class Spill:
             return np.empty(n, dtype)
         fd, name = tempfile.mkstemp(prefix="towers-", suffix=".bin", dir=self.folder)  # mode 0600
         try:
-            os.ftruncate(fd, n * dtype.itemsize)
+            if hasattr(os, "posix_fallocate"):  # blocks reserved now: a full disk is an error here, not a crash
+                os.posix_fallocate(fd, 0, n * dtype.itemsize)  # (SIGBUS) when a mapped page is first written
+            else:
+                os.ftruncate(fd, n * dtype.itemsize)
             return np.memmap(name, dtype=dtype, mode="r+", shape=(n,))
         except OSError as exc:
             raise TowersError(f"run.spill_folder {self.folder}: cannot hold {n * dtype.itemsize / 2**30:.1f} GiB more "

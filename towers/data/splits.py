@@ -193,7 +193,8 @@ def global_sides(unit: np.ndarray | int, when: np.ndarray | None, ev: Evaluation
     if ev.split == "time" and when is not None:
         order = np.argsort(_unit_time(unit, n_units, when), kind="stable")
     else:
-        order = rng.permutation(n_units)
+        # int32 where it fits: the same order as rng.permutation(n_units), half the memory for a long log
+        order = rng.permutation(np.arange(n_units, dtype=np.int32 if n_units < 2 ** 31 else np.int64))
     n_test = int(round(ev.test_fraction * n_units))
     n_valid = int(round(ev.validation_fraction * (n_units - n_test)))
     unit_side = np.full(n_units, TRAIN, dtype=np.int8)

@@ -82,12 +82,12 @@ class HeldOut:
                        self.ex_cols[keep_x])
 
 
-def held_out(test: Pairs, known: Pairs, candidate_mask: torch.Tensor, seed: int = 0, max_queries: int | None = None,
-             exclude_self: bool = False) -> HeldOut | None:
+def held_out(test: Pairs, known: Pairs | list[Pairs], candidate_mask: torch.Tensor, seed: int = 0,
+             max_queries: int | None = None, exclude_self: bool = False) -> HeldOut | None:
     """The positives of `test` to rank, or None when none is left.
 
-    Test pairs that are also known, or whose item does not compete, are dropped; with max_queries
-    a seeded sample of that many queries is kept.
+    Test pairs that are also known (known: pairs, or a list of parts), or whose item does not compete,
+    are dropped; with max_queries a seeded sample of that many queries is kept.
     """
     n_items = len(candidate_mask)
     test = test.positives()
@@ -123,28 +123,35 @@ def held_out(test: Pairs, known: Pairs, candidate_mask: torch.Tensor, seed: int 
 KNOWN_CHUNK = 1 << 20  # known pairs looked at a time: the training pairs may be longer than memory (spill.py)
 
 
-def _known_among(keys: np.ndarray, known: Pairs, n_items: int) -> np.ndarray:
+def _known_chunks(known: Pairs | list[Pairs]):
+    """(query rows, candidate rows) of the known pairs, KNOWN_CHUNK at a time, part after part."""
+    for part in known if isinstance(known, list) else [known]:
+        for lo in range(0, len(part), KNOWN_CHUNK):
+            yield part.query[lo:lo + KNOWN_CHUNK], part.candidate[lo:lo + KNOWN_CHUNK]
+
+
+def _known_among(keys: np.ndarray, known: Pairs | list[Pairs], n_items: int) -> np.ndarray:
     """bool per sorted distinct pair key: whether `known` holds that pair, the known pairs read a chunk at a time."""
     found = np.zeros(len(keys), dtype=bool)
     if len(keys) == 0:
         return found
-    for lo in range(0, len(known), KNOWN_CHUNK):
-        part = _pair_keys(known.query[lo:lo + KNOWN_CHUNK], known.candidate[lo:lo + KNOWN_CHUNK], n_items)
+    for q, c in _known_chunks(known):
+        part = _pair_keys(q, c, n_items)
         at = np.minimum(np.searchsorted(keys, part), len(keys) - 1)
         found[at[keys[at] == part]] = True
     return found
 
 
-def _known_of(queries: torch.Tensor, known: Pairs, n_items: int) -> np.ndarray:
+def _known_of(queries: torch.Tensor, known: Pairs | list[Pairs], n_items: int) -> np.ndarray:
     """The distinct known pair keys of `queries` (sorted distinct rows), the known pairs read a chunk at a time."""
     wanted = queries.numpy().astype(np.int64)
     kept = []
     if len(wanted):
-        for lo in range(0, len(known), KNOWN_CHUNK):
-            q = known.query[lo:lo + KNOWN_CHUNK].numpy().astype(np.int64)
+        for q, c in _known_chunks(known):
+            q = q.numpy().astype(np.int64)
             at = np.minimum(np.searchsorted(wanted, q), len(wanted) - 1)
             hit = wanted[at] == q
-            kept.append(q[hit] * n_items + known.candidate[lo:lo + KNOWN_CHUNK].numpy()[hit].astype(np.int64))
+            kept.append(q[hit] * n_items + c.numpy()[hit].astype(np.int64))
     return np.unique(np.concatenate(kept)) if kept else np.zeros(0, np.int64)
 
 
@@ -355,7 +362,9 @@ def evaluate_slices(scorers: dict, data: SplitPairs, cfg: Config, event_vectors:
     explicit = cfg.training.rating_loss
     ks, seed = cfg.evaluation.top_k, cfg.run.seed
     empty = Pairs(torch.zeros(0, dtype=torch.int64), torch.zeros(0, dtype=torch.int64))
-    slices = {"warm": (data.test, data.known(), data.warm_items)}
+    # with context columns the known pairs become events (event_pairs): joined, else read part by part
+    known = data.known() if data.test.context is not None else data.known_parts()
+    slices = {"warm": (data.test, known, data.warm_items)}
     if len(data.cold_test):
         slices["cold"] = (data.cold_test, empty, data.cold_items)
     if len(data.cold_user_test):  # users held out whole: ranked over the warm items, nothing known of them
@@ -372,7 +381,8 @@ def evaluate_slices(scorers: dict, data: SplitPairs, cfg: Config, event_vectors:
         raw = pairs
         if pairs.context is not None:
             pairs, known, users = event_pairs(pairs, known)
-        h = None if explicit else held_out(pairs, known, candidates, seed, exclude_self=data.item_item)
+        h = None if explicit else held_out(pairs, known, candidates, seed, cfg.evaluation.test_queries or None,
+                                           exclude_self=data.item_item)
         for name in MODEL_ORDER:
             if name not in scorers or (isinstance(scorers[name], ReferenceScorer) and slice_name != "warm"):
                 continue
