@@ -1,7 +1,7 @@
 """Speed benchmarks for towers: each figure is a ratio of two timings taken in the same run.
 
     scripts/bench            full sizes (the sizes named in each case below)
-    scripts/bench --quick    smaller sizes, the same figures, under 3 minutes on 2 cores
+    scripts/bench --quick    smaller sizes, the same figures, under 5 minutes on 2 cores
     scripts/bench --only retrieval als       some cases only
 
 Every case runs in its own child process (`bench.py --child CASE`), so one measurement's memory
@@ -1229,7 +1229,7 @@ def load_average() -> list[float] | None:
 
 def main(argv=None) -> int:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    p.add_argument("--quick", action="store_true", help="smaller sizes, the same figures (under 3 minutes)")
+    p.add_argument("--quick", action="store_true", help="smaller sizes, the same figures (under 5 minutes)")
     p.add_argument("--only", nargs="+", choices=CASES, help="run only these cases")
     p.add_argument("--out", default=str(ROOT / "bench.json"), help="where to write the figures (default bench.json)")
     p.add_argument("--child", help=argparse.SUPPRESS)
