@@ -263,9 +263,11 @@ class TrainingSection:
                                   'validation metric for early stopping (default rmse for squared, recall@K '
                                   'otherwise)',
                                   nullable=True)
-    shuffle_window: int = key('int', 1 << 20, 'with run.spill_folder, pairs mixed together at a time: the epoch '
-                              'visits blocks of 8,192 consecutive pairs in a random order and mixes this many at once',
-                              low=8192)
+    epoch_order: str = key('choice', 'auto', 'how an epoch orders the pairs: permutation (one random permutation of '
+                           'all pairs), windowed (blocks of 8,192 consecutive pairs in a random order, mixed '
+                           'shuffle_window at a time: reads pairs on disk a block at a time), auto (windowed with '
+                           'run.spill_folder, else permutation)', choices=('auto', 'permutation', 'windowed'))
+    shuffle_window: int = key('int', 1 << 20, 'pairs mixed together at a time in the windowed epoch order', low=8192)
     validate_queries: int = key('int', 2000, 'at most this many validation queries are ranked each epoch', low=1)
     progress: str = key('choice', 'auto',
                         'progress bar: auto (only on a terminal), bar, or plain log lines',

@@ -208,3 +208,27 @@ def test_a_spilled_run_trains_evaluates_and_resumes_like_a_run_in_memory(tiny_ru
     a = torch.load(run / "model.pt", weights_only=True)["state_dict"]
     b = torch.load(resumed / "model.pt", weights_only=True)["state_dict"]
     assert a.keys() == b.keys() and all(torch.equal(a[k], b[k]) for k in a)
+
+
+@pytest.mark.slow
+def test_a_spilled_run_ends_with_the_weights_of_the_same_run_in_memory(tiny_runs, tmp_path):
+    """Reference: the same config trained in memory with the same (windowed) epoch order. The spill changes where
+    the pairs live, so every weight and every figure must be equal, bit for bit."""
+    import json
+
+    import towers
+
+    spill = tmp_path / "spill"
+    spill.mkdir()
+    runs = {}
+    for kind, run in (("memory", {}), ("spilled", {"spill_folder": str(spill)})):
+        config = tiny_runs.config(tmp_path, name=f"{kind}.yaml", config="store_copurchase.yaml", oracle=False, run=run,
+                                  training={"epochs": 2, "batch_size": 256, "patience": 10, "epoch_order": "windowed",
+                                            "shuffle_window": 8192},
+                                  evaluation={"references": False})
+        towers.train(config, tmp_path / kind)
+        runs[kind] = (torch.load(tmp_path / kind / "model.pt", weights_only=True)["state_dict"],
+                      json.loads((tmp_path / kind / "metrics.json").read_text()))
+    (a, ma), (b, mb) = runs["memory"], runs["spilled"]
+    assert a.keys() == b.keys() and all(torch.equal(a[k], b[k]) for k in a)
+    assert ma == mb

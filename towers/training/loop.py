@@ -265,7 +265,8 @@ class Trainer:
         n = len(self.data.train)
         bs = self.tcfg.batch_size
         if order is None:  # pairs on disk: blocks a window at a time, else one permutation (order.py)
-            order = Windowed.draw(n, self.tcfg.shuffle_window, self.generator) if self.cfg.run.spill_folder \
+            windowed = self.tcfg.epoch_order == "windowed" or (self.tcfg.epoch_order == "auto" and self.cfg.run.spill_folder)
+            order = Windowed.draw(n, self.tcfg.shuffle_window, self.generator) if windowed \
                 else Shuffled.draw(n, self.generator)
         steps = math.ceil(n / bs)
         progress = tqdm(total=n, initial=min(n, start_step * bs), desc=f"{self.label} epoch {epoch}", unit="pairs",

@@ -9,8 +9,9 @@ and batches are drawn from them in that order. The file is then read a block at 
 the pages of about one window, and every batch still mixes pairs from all over the log (a window
 of 1,048,576 pairs joins 128 blocks from anywhere in it).
 
-Either order is fixed by what the checkpoint keeps (`saved`), so an interrupted epoch resumes at
-the same step with the same batches.
+training.epoch_order picks one (auto: windowed with a spill folder, else the permutation); the same
+order in memory and on disk gives the same run to the bit. Either order is fixed by what the
+checkpoint keeps (`saved`), so an interrupted epoch resumes at the same step with the same batches.
 """
 
 from __future__ import annotations
