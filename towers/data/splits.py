@@ -221,27 +221,33 @@ def _per_user_sides(unit: np.ndarray | int, q: np.ndarray, when: np.ndarray | No
     """
     n_units = _unit_count(unit)
     first = _unit_first_row(unit, n_units)
-    owner = q[first].astype(np.int64)
+    narrow = np.int32 if max(n_units, int(q.max(initial=0)) + 1) < 2 ** 31 else np.int64  # 4 bytes a unit where it fits
+    owner = q[first].astype(narrow)
     by_time = ev.split in ("user_recent", "user_last")
     # by time, ascending by (owner, earliest time, first row), so a user's latest units come last; else a
     # random order within each user
-    within = (first, _unit_time(unit, n_units, when)) if by_time else (rng.random(n_units),)
+    within = (first.astype(narrow), _unit_time(unit, n_units, when)) if by_time else (rng.random(n_units),)
     order = np.lexsort((*within, owner))
+    first = within = None
     owners_sorted = owner[order]
     starts = np.flatnonzero(np.r_[True, owners_sorted[1:] != owners_sorted[:-1]])
-    counts = np.diff(np.r_[starts, n_units])
-    k = np.repeat(counts, counts)  # units of each sorted unit's owner
-    pos = np.arange(n_units) - np.repeat(starts, counts)  # place within the owner's units
-    if by_time:
-        pos = k - 1 - pos  # 0 is the latest
+    owners_sorted = None
+    counts = np.diff(np.r_[starts, n_units])  # each owner's units, in owner order
+    # the counts of test and validation units, once per owner, then compared with each unit's place
     if ev.split == "user_last":
-        n_test = np.minimum(ev.last_n, k - 1)
-        n_valid = np.minimum(ev.last_n, k - 1 - n_test) if ev.validation_fraction > 0 else np.zeros_like(k)
+        n_test = np.minimum(ev.last_n, counts - 1)
+        n_valid = np.minimum(ev.last_n, counts - 1 - n_test) if ev.validation_fraction > 0 else np.zeros_like(counts)
     else:
-        n_test = np.minimum(np.floor(ev.test_fraction * k + 0.5).astype(np.int64), k - 1)
-        left = k - n_test
+        n_test = np.minimum(np.floor(ev.test_fraction * counts + 0.5).astype(np.int64), counts - 1)
+        left = counts - n_test
         n_valid = np.minimum(np.floor(ev.validation_fraction * left + 0.5).astype(np.int64), left - 1)
-    sorted_side = np.where(pos < n_test, TEST, np.where(pos < n_test + n_valid, VALID, TRAIN)).astype(np.int8)
+    group = np.repeat(np.arange(len(starts), dtype=narrow), counts)  # each sorted unit's owner, 0..owners-1
+    pos = np.arange(n_units, dtype=narrow) - starts.astype(narrow)[group]  # place within the owner's units
+    if by_time:
+        pos = counts.astype(narrow)[group] - 1 - pos  # 0 is the latest
+    sorted_side = np.full(n_units, TRAIN, dtype=np.int8)
+    sorted_side[pos < (n_test + n_valid).astype(narrow)[group]] = VALID
+    sorted_side[pos < n_test.astype(narrow)[group]] = TEST
     unit_side = np.empty(n_units, dtype=np.int8)
     unit_side[order] = sorted_side
     return unit_side if isinstance(unit, int) else unit_side[unit]
