@@ -940,10 +940,15 @@ def case_two_nodes_data(size: dict, work: Path) -> dict:
     return {}
 
 
+def towers_env() -> dict:
+    """This process's environment with the checkout first on PYTHONPATH, for `python -m towers` children."""
+    return dict(os.environ, PYTHONPATH=os.pathsep.join([str(ROOT), os.environ.get("PYTHONPATH", "")]))
+
+
 def timed_command(argv: list[str]) -> dict:
     """Run `towers` (or torchrun around it) to its end: wall seconds, exit code and the peak resident memory of
     its largest process (ru_maxrss of waited-for children: the training process, larger than torchrun's agent)."""
-    env = dict(os.environ, OMP_NUM_THREADS="1", PYTHONPATH=os.pathsep.join([str(ROOT), os.environ.get("PYTHONPATH", "")]))
+    env = dict(towers_env(), OMP_NUM_THREADS="1")
     t = time.perf_counter()
     code = subprocess.run(argv, env=env, cwd=ROOT, stdout=subprocess.DEVNULL).returncode  # the training log stays on stderr
     seconds = time.perf_counter() - t
@@ -991,7 +996,7 @@ def run_in_cgroup(argv: list[str], limit_bytes: int | None) -> dict:
     group = memory_cgroup(limit_bytes)
     if group is None:
         return {"skipped": "no writable memory cgroup (needs root and a cgroup file system)"}
-    env = dict(os.environ, PYTHONPATH=os.pathsep.join([str(ROOT), os.environ.get("PYTHONPATH", "")]))
+    env = towers_env()
     peak, done = [0], threading.Event()
 
     def watch():

@@ -76,7 +76,6 @@ def test_a_spilled_log_prepares_to_the_same_pairs_and_leaves_no_file(tmp_path, m
     spill.mkdir()
     monkeypatch.setattr(P, "LOG_PIECE_ROWS", 700)  # several pieces, so codes are written piece by piece
     monkeypatch.setattr("towers.data.spill.CHUNK", 333)  # and copied in several chunks
-    monkeypatch.setattr("towers.data.prepare.CHUNK", 333)
     in_memory = P.prepare(_config(tmp_path, split))
     on_disk = P.prepare(_config(tmp_path, split, spill))
     _same_prepared(in_memory, on_disk)

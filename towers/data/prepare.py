@@ -19,7 +19,7 @@ from towers.data.encoders import make_encoder
 from towers.data.features import FeatureBlock, SideEncoders, SideTable, take
 from towers.data.history import HISTORY, history_column
 from towers.data.pairs import Pairs, SplitPairs
-from towers.data.spill import CHUNK, Column, Spill
+from towers.data.spill import Column, Spill
 from towers.data.splits import HoldOut, Split, make_split
 from towers.data.tables import (
     IdPieces,
@@ -77,7 +77,7 @@ class Prepared:
 class IdColumn:
     """A log's id column as codes into its distinct ids (ids == uniques[codes]): memory-light for text ids."""
 
-    codes: np.ndarray  # int32 (int64 past 2**31 distinct ids), one per row
+    codes: np.ndarray  # int32, one per row (IdPieces refuses more than 2**31 distinct ids)
     uniques: np.ndarray  # int64 or str objects, in order of first appearance
 
     def values(self) -> np.ndarray:
@@ -133,8 +133,9 @@ def read_interactions(cfg: Config, split: bool = False, spill: Spill | None = No
     context_cols = [f.name for f in ic.context]
     wanted = list(dict.fromkeys(cols + context_cols))
     q, c, groups = IdPieces(spill), IdPieces(spill), GroupPieces(spill)
-    columns = {"target": Column(spill, np.float64), "weight": Column(spill, np.float64),
-               "time": Column(spill, np.int64)}
+    columns = {name: Column(spill, dtype) for name, column, dtype in (
+        ("target", ic.target_column, np.float64), ("weight", ic.weight_column, np.float64),
+        ("time", ic.time_column, np.int64)) if column}
     contexts: list[pd.DataFrame] = []
     for file in table_files(path):
         for start, df in read_table_chunks(file, wanted, LOG_PIECE_ROWS):
@@ -155,8 +156,7 @@ def read_interactions(cfg: Config, split: bool = False, spill: Spill | None = No
                         make_encoder(spec).validate(piece[spec.name], file)
                     contexts.append(piece)
     release_read_buffers()
-    wanted_columns = {"target": ic.target_column, "weight": ic.weight_column, "time": ic.time_column}
-    joined = {k: v.finish() if wanted_columns[k] else None for k, v in columns.items()}
+    joined = {name: columns[name].finish() if name in columns else None for name in ("target", "weight", "time")}
     context = pd.concat(contexts, ignore_index=True) if contexts else None
     return Log(IdColumn(*q.finish()), IdColumn(*c.finish()), joined["target"], joined["weight"], joined["time"],
                context, groups.finish()[0] if ic.group_column else None)
@@ -221,10 +221,8 @@ def _joint_ids(a: IdColumn, b: IdColumn, spill: Spill) -> IdColumn:
     inverse, uniques = pd.factorize(np.concatenate([ua, ub]))
     inverse = inverse.astype(np.int32)
     codes = spill.empty(len(a.codes) + len(b.codes), np.int32)
-    for at, table, part in ((0, inverse[:len(ua)], a.codes), (len(a.codes), inverse[len(ua):], b.codes)):
-        for lo in range(0, len(part), CHUNK):
-            piece = part[lo:lo + CHUNK]
-            codes[at + lo:at + lo + len(piece)] = table[piece]
+    spill.lookup(inverse[:len(ua)], a.codes, out=codes[:len(a.codes)])
+    spill.lookup(inverse[len(ua):], b.codes, out=codes[len(a.codes):])
     return IdColumn(codes, np.asarray(uniques, dtype=ua.dtype))
 
 
@@ -232,7 +230,6 @@ def _catalog_rows(ids: IdColumn, catalog_ids: np.ndarray, spill: Spill) -> np.nd
     """Each row's position in the catalog (-1 where absent), matched once per distinct id; int32, so a long
     log costs 4 bytes a row here, not 8."""
     return spill.lookup(positions_in(catalog_ids, ids.uniques).astype(np.int32), ids.codes)
-
 
 
 def prepare(cfg: Config, previous=None) -> Prepared:

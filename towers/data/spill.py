@@ -30,7 +30,7 @@ class Spill:
         self.folder = None if folder is None else Path(folder)
         if self.folder is not None and not self.folder.is_dir():
             raise TowersError(f"run.spill_folder {self.folder}: no such folder; create it on a disk with room "
-                              "(about 40 bytes an event), or remove the key to keep the log in memory")
+                              "(at most about 50 bytes an event), or remove the key to keep the log in memory")
 
     @property
     def on_disk(self) -> bool:
@@ -74,9 +74,9 @@ class Spill:
             at += len(part)
         return out
 
-    def lookup(self, table: np.ndarray, codes: np.ndarray) -> np.ndarray:
-        """table[codes] as a long array, a chunk at a time."""
-        out = self.empty(len(codes), table.dtype)
+    def lookup(self, table: np.ndarray, codes: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+        """table[codes] as a long array (or into `out`, of the same length), a chunk at a time."""
+        out = self.empty(len(codes), table.dtype) if out is None else out
         for lo in range(0, len(codes), CHUNK):
             out[lo:lo + CHUNK] = table[codes[lo:lo + CHUNK]]
         return out

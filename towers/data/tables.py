@@ -7,10 +7,7 @@ naming the file, the column and (where it applies) the row, plus the fix.
 from __future__ import annotations
 
 import contextlib
-import ctypes
-import ctypes.util
 import difflib
-import sys
 from pathlib import Path
 
 import numpy as np
@@ -18,6 +15,7 @@ import pandas as pd
 
 from towers.data.spill import Column, Spill
 from towers.errors import TowersError, where
+from towers.memory import trim_freed_memory
 
 READABLE = (".csv", ".parquet", ".pq", ".tsv")
 
@@ -227,9 +225,7 @@ def release_read_buffers() -> None:
     import pyarrow as pa
 
     pa.default_memory_pool().release_unused()
-    if sys.platform.startswith("linux"):
-        with contextlib.suppress(OSError, AttributeError):  # not glibc (musl, say): nothing to trim
-            ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6").malloc_trim(0)
+    trim_freed_memory()
 
 
 class IdPieces:

@@ -26,6 +26,7 @@ from towers.data.features import block_len, take
 from towers.data.history import HISTORY, without_targets
 from towers.data.prepare import Prepared
 from towers.errors import TowersError
+from towers.memory import reuse_freed_memory
 from towers.model.bundle import load_payload
 from towers.model.losses import in_batch_softmax_loss, logistic_loss, squared_loss
 from towers.model.towers import Tower, TwoTowerModel
@@ -35,7 +36,6 @@ from towers.training.distributed import (
     peer_failure,
     rank_and_size,
 )
-from towers.training.memory import reuse_freed_memory
 from towers.training.negatives import NegativeSampler, log_batch_share
 from towers.training.objectives import (
     IdRowObjective,
@@ -45,6 +45,7 @@ from towers.training.objectives import (
 )
 from towers.training.optimizers import make_optimizers, rate_factor, set_rates
 from towers.training.order import Shuffled, Windowed, restore
+from towers.training.order import draw as draw_order
 from towers.training.progress import log, show_bar
 from towers.training.stopping import (
     EarlyStopping,
@@ -264,10 +265,8 @@ class Trainer:
         self.model.train()
         n = len(self.data.train)
         bs = self.tcfg.batch_size
-        if order is None:  # pairs on disk: blocks a window at a time, else one permutation (order.py)
-            windowed = self.tcfg.epoch_order == "windowed" or (self.tcfg.epoch_order == "auto" and self.cfg.run.spill_folder)
-            order = Windowed.draw(n, self.tcfg.shuffle_window, self.generator) if windowed \
-                else Shuffled.draw(n, self.generator)
+        if order is None:  # a new epoch: its own order (order.py)
+            order = draw_order(n, self.tcfg, bool(self.cfg.run.spill_folder), self.generator)
         steps = math.ceil(n / bs)
         progress = tqdm(total=n, initial=min(n, start_step * bs), desc=f"{self.label} epoch {epoch}", unit="pairs",
                         leave=False, file=sys.stderr, disable=not bar, mininterval=0.5)

@@ -52,9 +52,9 @@ class Windowed:
         sizes = torch.full((n_blocks,), BLOCK, dtype=torch.int64)
         if n_blocks:
             sizes[-1] = n - (n_blocks - 1) * BLOCK
-        sizes = sizes.index_select(0, self.blocks)  # in visiting order
-        self.window_ends = torch.cumsum(torch.stack([part.sum() for part in sizes.split(self.per_window)]), 0) \
-            if n_blocks else torch.zeros(0, dtype=torch.int64)
+        ends = torch.cumsum(sizes.index_select(0, self.blocks), 0)  # pairs up to each block, in visiting order
+        last_blocks = torch.arange(self.per_window - 1, n_blocks + self.per_window - 1, self.per_window)
+        self.window_ends = ends[last_blocks.clamp(max=max(0, n_blocks - 1))] if n_blocks else ends
         self._cached = (-1, None)
 
     @classmethod
@@ -84,6 +84,13 @@ class Windowed:
 
     def saved(self) -> dict:
         return {"windowed": self.seed, "window": self.per_window * BLOCK, "pairs": self.n}
+
+
+def draw(n: int, tcfg, spilled: bool, generator: torch.Generator) -> Shuffled | Windowed:
+    """A new epoch's order, as training.epoch_order says (auto: windowed for pairs on disk)."""
+    if tcfg.epoch_order == "windowed" or (tcfg.epoch_order == "auto" and spilled):
+        return Windowed.draw(n, tcfg.shuffle_window, generator)
+    return Shuffled.draw(n, generator)
 
 
 def restore(saved) -> Shuffled | Windowed | None:

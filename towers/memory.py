@@ -1,11 +1,13 @@
-"""Process memory settings for the training loop: keep freed memory in the process for reuse.
+"""Process memory settings of glibc's malloc: keep freed memory for reuse, or hand it back.
 
 Every training step allocates and frees tensors of a few megabytes. glibc's malloc hands blocks of
 that size back to the system (mmap, then trimming the heap), so the next step faults the same
 pages in again; on virtual machines a page fault is expensive and this alone can slow a step
 several times. Raising the mmap threshold to its maximum (32 MiB) and the trim threshold keeps such
-blocks in the heap for the next step. Peak memory is unchanged (it is the same high-water mark);
-memory is returned to the system when the process ends. Elsewhere than glibc this does nothing.
+blocks in the heap for the next step (`reuse_freed_memory`, training's run.reuse_memory). Peak
+memory is unchanged (it is the same high-water mark). Reading a long log is the opposite case: its
+freed pieces are not reused by the later arrays of the log's length, so `trim_freed_memory` hands
+them back. Elsewhere than glibc both do nothing.
 """
 
 from __future__ import annotations
@@ -21,18 +23,31 @@ TRIM_THRESHOLD = 1 << 30
 _applied = False
 
 
+def _glibc_function(name: str):
+    """A function of glibc by name, or None off Linux or with another C library (musl, say)."""
+    if not sys.platform.startswith("linux"):
+        return None
+    try:
+        return getattr(ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6"), name)
+    except (OSError, AttributeError):
+        return None
+
+
 def reuse_freed_memory() -> bool:
     """Apply the settings once per process; True when they are in effect (glibc on Linux)."""
     global _applied
     if _applied:
         return True
-    if not sys.platform.startswith("linux"):
-        return False
-    try:
-        libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6")
-        mallopt = libc.mallopt
-    except (OSError, AttributeError):
-        return False  # not glibc (musl, say): nothing to set
+    mallopt = _glibc_function("mallopt")
+    if mallopt is None:
+        return False  # nothing to set
     mallopt.argtypes, mallopt.restype = [ctypes.c_int, ctypes.c_int], ctypes.c_int
     _applied = bool(mallopt(M_MMAP_THRESHOLD, MMAP_THRESHOLD)) and bool(mallopt(M_TRIM_THRESHOLD, TRIM_THRESHOLD))
     return _applied
+
+
+def trim_freed_memory() -> None:
+    """Hand the heap's free pages back to the system (malloc_trim)."""
+    trim = _glibc_function("malloc_trim")
+    if trim is not None:
+        trim(0)
