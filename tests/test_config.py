@@ -142,7 +142,7 @@ def test_unknown_key_without_close_match_lists_the_known_keys(tmp_path):
         C.resolve(minimal(run={"zzzzzz": 1}), tmp_path)
     msg = str(err.value)
     assert "did you mean" not in msg
-    assert "known keys: mode, reuse_memory, seed, spill_folder, threads" in msg
+    assert "known keys: divide_log, mode, reuse_memory, seed, spill_folder, threads" in msg
 
 
 def test_top_level_must_be_a_mapping(tmp_path):

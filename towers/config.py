@@ -108,6 +108,10 @@ class RunSection:
     spill_folder: str | None = key('path', None, 'a folder where the columns with one entry per event (ids as codes, '
                                    'times, weights, the split pairs) live as memory-mapped files instead of in memory, '
                                    'for a log larger than memory; empty keeps them in memory', nullable=True)
+    divide_log: bool = key('bool', True, 'data-parallel training (several processes): each process reads and keeps '
+                           'only its share of the users and their events (by a hash of the user id), so memory and work '
+                           'are divided; false: every process reads the whole log. user_item runs with pairs_from: rows '
+                           'and no context columns; other runs read the whole log in every process')
 
 
 @dataclass(frozen=True)

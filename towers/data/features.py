@@ -119,27 +119,33 @@ class SideTable:
         return self.table is not None
 
     def catalog(self, interaction_ids: np.ndarray, log_path, log_column: str | tuple[str, ...],
-                codes: np.ndarray | None = None) -> tuple[np.ndarray, pd.DataFrame | None, np.ndarray]:
+                codes: np.ndarray | None = None, file_rows: bool = True) -> tuple[np.ndarray, pd.DataFrame | None, np.ndarray]:
         """The side's entity universe: table ids plus (per missing_rows) ids only seen in the log.
 
         `log_column` names the log column the ids came from; a tuple of names means the ids are those
         columns one after another, equally long (item_item mode), so errors name the right column and row.
         With `codes`, interaction_ids are the log's distinct ids and row r of the log holds
         interaction_ids[codes[r]] (data/prepare.IdColumn): every check runs once per distinct id.
-        Returns (catalog ids, feature rows aligned with them or None, keep-mask over the log's rows).
+        file_rows false: the rows are not the file's (a data-parallel process's share), so errors name
+        the id and column but no row. Returns (catalog ids, feature rows aligned with them or None,
+        keep-mask over the log's rows).
         """
         columns = (log_column,) if isinstance(log_column, str) else tuple(log_column)
         n_rows = len(interaction_ids) if codes is None else len(codes)
         per_column = max(1, n_rows // len(columns))
 
-        def locate(i: int) -> str:
+        def locate(i: int | None) -> str:
+            if i is None:
+                return where(log_path, columns[0])
             return where(log_path, columns[min(i // per_column, len(columns) - 1)], i % per_column + 1)
 
         def per_row(mask: np.ndarray) -> np.ndarray:
             return mask if codes is None else mask[codes]
 
-        def first_row(mask: np.ndarray) -> tuple[int, int]:
-            """(log row, index into interaction_ids) of the first row where mask holds."""
+        def first_row(mask: np.ndarray) -> tuple[int | None, int]:
+            """(log row, index into interaction_ids) of the first row where mask holds (row None: not named)."""
+            if not file_rows:
+                return None, int(np.flatnonzero(mask)[0])
             row = int(np.flatnonzero(per_row(mask))[0])
             return row, row if codes is None else int(codes[row])
 

@@ -21,11 +21,12 @@ from towers.errors import TowersError, where
 HISTORY = "(history)"  # the block column; the parentheses keep it apart from any table column name
 
 
-def history_column(train: Pairs, n_queries: int, n_items: int, limit: int) -> torch.Tensor:
+def history_column(train: Pairs, n_queries: int, n_items: int, limit: int, widest=lambda w: w) -> torch.Tensor:
     """(n_queries, L) int64: each query's distinct training items (row + 1), at most `limit`, 0-padded.
 
     With event times the latest `limit` items are kept, else those seen last in the log. L is the
-    longest kept history (at least 1).
+    longest kept history (at least 1); widest maps it to the one every process uses (collective.largest
+    when the log is divided among processes).
     """
     pos = train.positives()
     q, c = pos.query.numpy().astype(np.int64), pos.candidate.numpy().astype(np.int64)
@@ -39,7 +40,7 @@ def history_column(train: Pairs, n_queries: int, n_items: int, limit: int) -> to
     starts = np.searchsorted(q, q, side="left")
     place = np.arange(len(q)) - starts
     keep = place < limit
-    width = max(1, int(place[keep].max(initial=-1)) + 1)
+    width = widest(max(1, int(place[keep].max(initial=-1)) + 1))
     out = torch.zeros(n_queries, width, dtype=torch.int64)
     out[torch.from_numpy(q[keep]), torch.from_numpy(place[keep])] = torch.from_numpy(c[keep] + 1)
     return out

@@ -11,6 +11,7 @@ import numpy as np
 import pandas as pd
 import torch
 
+from towers.collective import largest, rank_and_size, summed
 from towers.config import Config
 from towers.data.baskets import collapse_repeats, derive_pairs
 from towers.data.context import ContextEncoders
@@ -19,10 +20,12 @@ from towers.data.encoders import make_encoder
 from towers.data.features import FeatureBlock, SideEncoders, SideTable, take
 from towers.data.history import HISTORY, history_column
 from towers.data.pairs import Pairs, SplitPairs
+from towers.data.shards import Shard, log_shard, whole_log_reason
 from towers.data.spill import Column, Spill
 from towers.data.splits import HoldOut, Split, make_split
 from towers.data.tables import (
     IdPieces,
+    factorize_ids,
     numeric_column,
     positions_in,
     read_table_chunks,
@@ -66,6 +69,7 @@ class Prepared:
     started_from: dict | None = None  # warm start: ids and values added to the earlier run's encoders
     # ranking problems of validation, kept between epochs (evaluation/protocol.ranking_metrics' cache)
     rankings: dict = field(default_factory=dict)
+    divided: bool = False  # data-parallel with the log divided by user (shards.py): the pairs are this process's
 
     @property
     def split(self) -> SplitPairs:
@@ -109,13 +113,14 @@ class Log:
         return self.candidate_ids.values()
 
 
-def read_interactions(cfg: Config, split: bool = False, spill: Spill | None = None) -> Log:
+def read_interactions(cfg: Config, split: bool = False, spill: Spill | None = None, shard: Shard | None = None) -> Log:
     """The log's id arrays, optional target / weight / time / group arrays and context columns, validated.
 
     With interactions.pairs_from baskets or sessions the rows are the derived item pairs (data/baskets.py);
     split: place whole baskets on the sides first (each row then carries its side), else all on training.
     With count_repeats each distinct (query, candidate) is one row weighted by its count. spill: where
-    the columns of a log read from files go (data/spill.py; default in memory).
+    the columns of a log read from files go (data/spill.py; default in memory). shard: keep only the rows
+    of this process's users (data/shards.py); every row is still checked, so errors name the file's row.
     """
     spill = spill or Spill()
     ic = cfg.interactions
@@ -140,16 +145,17 @@ def read_interactions(cfg: Config, split: bool = False, spill: Spill | None = No
     for file in table_files(path):
         for start, df in read_table_chunks(file, wanted, LOG_PIECE_ROWS):
             with rows_after(start):
-                q.add(df[ic.query_column], file, ic.query_column)
-                c.add(df[ic.candidate_column], file, ic.candidate_column)
+                mine = None if shard is None else shard.mine(*factorize_ids(df[ic.query_column], file, ic.query_column))
+                q.add(df[ic.query_column], file, ic.query_column, mine)
+                c.add(df[ic.candidate_column], file, ic.candidate_column, mine)
                 if ic.target_column:
-                    columns["target"].add(_targets(df[ic.target_column], file, ic.target_column, cfg))
+                    columns["target"].add(_kept(_targets(df[ic.target_column], file, ic.target_column, cfg), mine))
                 if ic.weight_column:
-                    columns["weight"].add(_weights(df[ic.weight_column], file, ic.weight_column))
+                    columns["weight"].add(_kept(_weights(df[ic.weight_column], file, ic.weight_column), mine))
                 if ic.time_column:
-                    columns["time"].add(time_column(df[ic.time_column], file, ic.time_column))
+                    columns["time"].add(_kept(time_column(df[ic.time_column], file, ic.time_column), mine))
                 if ic.group_column:
-                    groups.add(df[ic.group_column], file, ic.group_column)
+                    groups.add(df[ic.group_column], file, ic.group_column, mine)
                 if context_cols:
                     piece = df[context_cols].reset_index(drop=True)
                     for spec in ic.context:  # every value checked in file order, so an error names the log's row
@@ -163,6 +169,11 @@ def read_interactions(cfg: Config, split: bool = False, spill: Spill | None = No
 
 
 LOG_PIECE_ROWS = 1_000_000  # rows of the log read at a time: a piece is tens of MB, not the whole log
+
+
+def _kept(values: np.ndarray, mine: np.ndarray | None) -> np.ndarray:
+    """A checked column's values on this process's rows (all rows when the log is not divided)."""
+    return values if mine is None else values[mine]
 
 
 def _targets(series: pd.Series, path, column: str, cfg: Config) -> np.ndarray:
@@ -209,8 +220,8 @@ def _as_pairs(qr, cr, target, weight, when, spill: Spill) -> Pairs:
 
 
 def _train_entities(ids: np.ndarray, rows: np.ndarray) -> np.ndarray:
-    """The catalog ids that have rows among `rows`, in catalog order (a bincount: linear, not a sort)."""
-    return ids[np.flatnonzero(np.bincount(rows, minlength=len(ids)))]
+    """The catalog ids that have rows among `rows` in any process, in catalog order (a bincount: linear, not a sort)."""
+    return ids[np.flatnonzero(summed(np.bincount(rows, minlength=len(ids)) > 0))]
 
 
 def _joint_ids(a: IdColumn, b: IdColumn, spill: Spill) -> IdColumn:
@@ -241,9 +252,12 @@ def prepare(cfg: Config, previous=None) -> Prepared:
     ic = cfg.interactions
     item_item = cfg.item_item
     spill = Spill(cfg.run.spill_folder)
-    log = read_interactions(cfg, split=True, spill=spill)
+    shard = log_shard(cfg)
+    log = read_interactions(cfg, split=True, spill=spill, shard=shard)
     q_log, c_log, target, weight, when = log.query_ids, log.candidate_ids, log.target, log.weight, log.time
     notes: list[str] = list(log.notes)
+    if shard is None and rank_and_size()[1] > 1:
+        notes.append(f"every process reads the whole log: {whole_log_reason(cfg)}")
     # rows derived from an export (baskets, sessions, count_repeats) are not the file's rows: errors say so
     source = ic.path if ic.pairs_from == "rows" and not ic.count_repeats else f"{ic.path} (derived rows)"
 
@@ -262,13 +276,16 @@ def prepare(cfg: Config, previous=None) -> Prepared:
         both = rows_both = None
     else:
         user_side = SideTable(cfg.users.path, cfg.users.id_column, cfg.users.features, cfg.users.missing_rows)
-        q_ids, q_table, keep_q = user_side.catalog(q_log.uniques, source, ic.query_column, codes=q_log.codes)
-        c_ids, c_table, keep_c = item_side.catalog(c_log.uniques, source, ic.candidate_column, codes=c_log.codes)
+        # divided: a process's rows are not the file's rows, so errors name the id, not a row
+        q_ids, q_table, keep_q = user_side.catalog(q_log.uniques, source, ic.query_column, codes=q_log.codes,
+                                                   file_rows=shard is None)
+        c_ids, c_table, keep_c = item_side.catalog(c_log.uniques, source, ic.candidate_column, codes=c_log.codes,
+                                                   file_rows=shard is None)
         keep = keep_q & keep_c
         q_rows = spill.where(_catalog_rows(q_log, q_ids, spill), keep)
         c_rows = spill.where(_catalog_rows(c_log, c_ids, spill), keep)
     q_log = c_log = log.query_ids = log.candidate_ids = None  # the codes are rows now: free them
-    dropped = int((~keep).sum())
+    dropped = int(summed(np.array([(~keep).sum()]))[0])
     if dropped:
         notes.append(f"dropped {dropped} interaction rows whose ids have no feature row (missing_rows: drop)")
     sel = lambda a: None if a is None else spill.where(a, keep)  # noqa: E731
@@ -293,8 +310,8 @@ def prepare(cfg: Config, previous=None) -> Prepared:
         cold_users = HoldOut(user_has_row, None if previous is None else _learned(q_ids, previous.query_encoders))
     split: Split = make_split(pairs, len(c_ids), cfg.evaluation, cfg.run.seed, cold_eligible=cold_items,
                               item_item=item_item, groups=groups, n_queries=len(q_ids), cold_user_eligible=cold_users,
-                              sides=sel(log.side))
-    if len(split.train) == 0:
+                              sides=sel(log.side), everywhere=summed)
+    if summed(np.array([len(split.train)]))[0] == 0:
         raise TowersError(f"{ic.path}: the split leaves no training pairs; lower evaluation fractions or add data")
     context_encoders = None
     if log.context is not None:
@@ -334,17 +351,20 @@ def prepare(cfg: Config, previous=None) -> Prepared:
         q_side = c_side
     else:
         q_block = q_enc.encode(q_ids, q_table, cfg.users.path)
-        if cfg.model.history_length:
-            q_block[HISTORY] = history_column(train, len(q_ids), len(c_ids), cfg.model.history_length)
+        if cfg.model.history_length:  # a user's history lies in one process: the others' rows are zeros
+            q_block[HISTORY] = summed(history_column(train, len(q_ids), len(c_ids), cfg.model.history_length,
+                                                     widest=largest))
         q_side = Side(q_ids, q_enc, q_block, bool(cfg.users.features))
 
     warm = torch.zeros(len(c_ids), dtype=torch.bool)
     warm[train.candidate] = True
     if item_item:
         warm[train.query] = True
-    _warn_small_data(cfg, train, len(q_ids), len(c_ids), notes)
+    warm = summed(warm)
+    _warn_small_data(cfg, int(summed(np.array([len(train)]))[0]), len(q_ids), len(c_ids), notes)
     prepared = Prepared(q_side, c_side, train, valid, test, cold_test, split.cold_items, cold_user_test,
-                        split.cold_users, warm, item_item, notes, context=context_encoders, started_from=started_from)
+                        split.cold_users, warm, item_item, notes, context=context_encoders, started_from=started_from,
+                        divided=shard is not None)
     _check_oracles(cfg, prepared)
     return prepared
 
@@ -362,10 +382,10 @@ def _check_oracles(cfg: Config, data: Prepared) -> None:
     data.oracle = true_vectors(cfg, data.queries.ids, data.candidates.ids, item_item=data.item_item)
 
 
-def _warn_small_data(cfg: Config, train: Pairs, n_queries: int, n_items: int, notes: list[str]) -> None:
+def _warn_small_data(cfg: Config, n_train: int, n_queries: int, n_items: int, notes: list[str]) -> None:
     """k beyond what the data can identify: more factors than the smaller side has entities."""
     k = cfg.model.dim
-    limit = min(n_queries, n_items, max(1, len(train) // max(1, n_queries + n_items)))
+    limit = min(n_queries, n_items, max(1, n_train // max(1, n_queries + n_items)))
     if k > min(n_queries, n_items):
         notes.append(f"warning: model.dim = {k} exceeds min(#queries, #items) = {min(n_queries, n_items)}; "
                      "extra dimensions cannot be identified from this data")

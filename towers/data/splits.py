@@ -47,7 +47,8 @@ class HoldOut:
 
 def make_split(pairs, n_items: int, ev: EvaluationSection, seed: int, cold_eligible: HoldOut | None,
                item_item: bool, groups: np.ndarray | None = None, n_queries: int | None = None,
-               cold_user_eligible: HoldOut | None = None, sides: np.ndarray | None = None) -> Split:
+               cold_user_eligible: HoldOut | None = None, sides: np.ndarray | None = None,
+               everywhere=lambda seen: seen) -> Split:
     """Split pairs per the evaluation config; the same seed and data always give the same split.
 
     groups: one code per pair (the log's group column), or None. n_queries: rows of the query catalog
@@ -55,7 +56,9 @@ def make_split(pairs, n_items: int, ev: EvaluationSection, seed: int, cold_eligi
     cold_user_eligible: which items / users may be held out whole (None: none may). Cold items are
     drawn first, then cold users, then the warm split, all from one seeded generator. sides: each pair's
     side given already (pairs derived from baskets placed whole, data/baskets.py), used for the warm pairs
-    instead of a split by units.
+    instead of a split by units. everywhere: which entities have pairs in any process, from this
+    process's (collective.summed when the log is divided among processes, data/shards.py), so every
+    process holds out the same entities.
     """
     rng = np.random.default_rng(seed + 1)
     q = pairs.query.numpy()
@@ -68,12 +71,12 @@ def make_split(pairs, n_items: int, ev: EvaluationSection, seed: int, cold_eligi
         seen[c] = True
         if item_item:
             seen[q] = True
-        cold_items = _held_out(seen, cold_eligible, ev.cold_item_fraction, rng, "item")
+        cold_items = _held_out(everywhere(seen), cold_eligible, ev.cold_item_fraction, rng, "item")
     cold_users = np.zeros(n_queries, dtype=bool)
     if ev.cold_user_fraction > 0 and cold_user_eligible is not None and not item_item:
         seen = np.zeros(n_queries, dtype=bool)
         seen[q] = True
-        cold_users = _held_out(seen, cold_user_eligible, ev.cold_user_fraction, rng, "user")
+        cold_users = _held_out(everywhere(seen), cold_user_eligible, ev.cold_user_fraction, rng, "user")
     cold_q = cold_items[q] if item_item else cold_users[q]
     touches_cold = cold_items[c] | cold_q
     cold_test = np.flatnonzero(cold_items[c] & ~cold_q)

@@ -244,8 +244,11 @@ class IdPieces:
         self.codes = Column(spill or Spill(), np.int32)
         self.settled = self.recent = None  # _Ids each, once the first piece is in
 
-    def add(self, series: pd.Series, path, column) -> None:
+    def add(self, series: pd.Series, path, column, keep: np.ndarray | None = None) -> None:
+        """One piece: all its distinct ids are numbered, the codes of its `keep` rows kept (default all)."""
         codes, uniques = self.factorize(series, path, column)
+        if keep is not None:
+            codes = codes[keep]
         if self.settled is None:
             self.settled, self.recent = _Ids(uniques), _Ids(uniques[:0])
             self.codes.add(codes)

@@ -13,6 +13,7 @@ from dataclasses import dataclass
 import numpy as np
 import torch
 
+from towers.collective import joined, summed
 from towers.config import Config
 from towers.data.context import event_pairs, vectors_with_context
 from towers.data.embeddings_file import TrueVectors
@@ -33,27 +34,35 @@ SLICES = ("warm", "cold", "cold_users")  # the keys of metrics.json that hold a 
 
 
 def popularity_scorer(train: Pairs, n_queries: int, n_items: int, explicit: bool, item_item: bool = False) -> Scorer:
-    """Popularity: training counts for ranking; for ratings, each item's mean target damped toward the global mean."""
+    """Popularity: training counts for ranking; for ratings, each item's mean target damped toward the global mean.
+
+    The counts and sums are of every process's pairs when the log is divided among processes (summed).
+    """
     ones = torch.ones(n_queries, 1)
     if not explicit:
         counts = torch.bincount(train.candidate, minlength=n_items).float()
         if item_item:
             counts += torch.bincount(train.query, minlength=n_items).float()
-        return Scorer(ones, counts.unsqueeze(1))
+        return Scorer(ones, summed(counts).unsqueeze(1))
     damping = 5.0  # prior strength in pseudo-ratings: common practice (no source)
     y = train.target.double()
-    mean = float(y.mean())
-    sums = torch.zeros(n_items, dtype=torch.float64).index_add_(0, train.candidate, y)
-    counts = torch.bincount(train.candidate, minlength=n_items).double()
+    total = summed(torch.tensor([float(y.sum()), float(len(y))], dtype=torch.float64))
+    mean = float(total[0] / total[1])
+    sums = summed(torch.zeros(n_items, dtype=torch.float64).index_add_(0, train.candidate, y))
+    counts = summed(torch.bincount(train.candidate, minlength=n_items).double())
     damped = ((sums + damping * mean) / (counts + damping)).float()
     return Scorer(torch.zeros(n_queries, 1), torch.zeros(n_items, 1), item_bias=damped)
 
 
-def rating_metrics(scorer: Scorer, test: Pairs) -> dict[str, float]:
-    """RMSE and MAE of predicted targets on held-out pairs."""
+def rating_metrics(scorer: Scorer, test: Pairs, share: Share | None = None) -> dict[str, float]:
+    """RMSE and MAE of predicted targets on held-out pairs (share.divided: of every process's pairs)."""
+    pred = scorer.pairs(test.query, test.candidate)
+    if share is not None and share.divided:
+        w = test.weight if test.weight is not None else torch.ones(len(test))
+        pred, target, weight = (share.joined(t.float()) for t in (pred, test.target, w))
+        test = Pairs(torch.zeros(len(pred), dtype=torch.int64), torch.zeros(len(pred), dtype=torch.int64), target, weight)
     if len(test) == 0:
         return {}
-    pred = scorer.pairs(test.query, test.candidate)
     return {"rmse": M.rmse(pred, test.target, test.weight), "mae": M.mae(pred, test.target, test.weight)}
 
 
@@ -118,6 +127,44 @@ def held_out(test: Pairs, known: Pairs | list[Pairs], candidate_mask: torch.Tens
     ex_rows, ex_cols = excluded_cells(queries, torch.from_numpy(known_keys // n_items),
                                       torch.from_numpy(known_keys % n_items), col_of, exclude_self)
     return HeldOut(queries, q_index, pc, cand_rows, col_of[pc], ex_rows, ex_cols)
+
+
+def _empty_held_out(candidate_mask: torch.Tensor) -> HeldOut:
+    """A ranking problem with no queries: a process of a divided log whose users left none still joins in."""
+    none = torch.zeros(0, dtype=torch.int64)
+    return HeldOut(none, none, none, torch.nonzero(candidate_mask).flatten(), none, none, none)
+
+
+def joined_ranks(share: Share, h: HeldOut, ahead, tied, candidates, top=None):
+    """(h, ahead, tied, candidates, top) of every process joined in rank order, when the log is divided and
+    each process ranked its own queries (shares.py): query positions are renumbered past the earlier
+    processes' queries; the exclusions, used up by the ranking, are left out."""
+    sizes = share.gather(torch.tensor([len(h.queries)], dtype=torch.int64))
+    offset = int(sum(int(n) for n in sizes[:share.rank]))
+    j, none = share.joined, torch.zeros(0, dtype=torch.int64)
+    whole = HeldOut(j(h.queries), j(h.q_index + offset), j(h.items), h.cand_rows, j(h.columns), none, none)
+    top = None if top is None else j(top.reshape(-1)).view(-1, top.shape[1])
+    return whole, j(ahead), j(tied), j(candidates), top
+
+
+def _ranked(scorer, h: HeldOut | None, candidate_mask: torch.Tensor, share: Share | None, k_max: int = 0):
+    """(h, ahead, tied, candidates, top or None) of one ranking problem, or None when it has no query.
+
+    share: data-parallel; each process ranks its share of the queries, or its own queries when the log
+    is divided, and every process gets the whole (shares.py). k_max: also each query's top-k_max columns.
+    """
+    divided = share is not None and share.divided
+    if h is None and divided:
+        h = _empty_held_out(candidate_mask)
+    if h is None:
+        return None
+    if divided:
+        counts = _ranks_and_lists(scorer, h, k_max) if k_max else (*rank_positives(scorer, h), None)
+        h, *counts = joined_ranks(share, h, *counts)
+        return (h, *counts) if len(h.queries) else None
+    if k_max:
+        return (h, *_ranks_and_lists(scorer, h, k_max))
+    return (h, *rank_positives(scorer, h, share), None)
 
 
 KNOWN_CHUNK = 1 << 20  # known pairs looked at a time: the training pairs may be longer than memory (spill.py)
@@ -227,7 +274,8 @@ def ranking_metrics(scorer, test: Pairs, known: Pairs, candidate_mask: torch.Ten
     or whose item is not a candidate, are dropped. Items scored level with a positive count as in a
     random order: each metric is its exact expected value over those orders (metrics.per_query_ranking).
     tie_seed seeds only the sample of max_queries queries. share: this process ranks only its share of
-    the (sampled) queries and the counts are gathered (shares.py): the same metrics, on every process.
+    the (sampled) queries and the counts are gathered (shares.py): the same metrics, on every process;
+    with a divided log (share.divided) each process samples and ranks its own queries.
     cache: a dict that keeps the ranking problem between calls with the same arguments (validation
     asks the same each epoch, and finding the known pairs reads every training pair).
     """
@@ -235,12 +283,14 @@ def ranking_metrics(scorer, test: Pairs, known: Pairs, candidate_mask: torch.Ten
     if cache is not None and key in cache:
         h = cache[key]
     else:
-        h = held_out(test, known, candidate_mask, tie_seed, max_queries, exclude_self)
+        h = held_out(test, known, candidate_mask, tie_seed, share.quota(max_queries) if share else max_queries,
+                     exclude_self)
         if cache is not None:
             cache[key] = h
-    if h is None:
+    ranked = _ranked(scorer, h, candidate_mask, share)
+    if ranked is None:
         return {}
-    ahead, tied, n_candidates = rank_positives(scorer, h, share)
+    h, ahead, tied, n_candidates, _ = ranked
     per_q = M.per_query_ranking(ahead, h.q_index, len(h.queries), n_candidates, ks, tied=tied)
     out = M.mean_over_queries(per_q)
     out["queries"] = int(len(h.queries))
@@ -252,22 +302,28 @@ def oracle_scorer(truth: TrueVectors) -> Scorer:
     return Scorer(truth.query_vectors, truth.item_vectors, truth.query_bias, truth.item_bias)
 
 
-def reference_scorers(data: SplitPairs, n_queries: int, n_items: int, cfg: Config, log=None) -> tuple[dict, dict]:
+def reference_scorers(data: SplitPairs, n_queries: int, n_items: int, cfg: Config, log=None,
+                      share: Share | None = None) -> tuple[dict, dict]:
     """EASE and item-kNN fitted on the training positives, each with the setting the validation pairs prefer.
 
     Returns ({name: ReferenceScorer}, {name: what was chosen and tried, or why it was skipped}).
-    Implicit runs only (a rating run has no ranking to compare them on).
+    Implicit runs only (a rating run has no ranking to compare them on). share: data-parallel evaluation
+    (shares.py); with a divided log the co-occurrence counts are summed over processes, and each
+    process's history rows are its own users'.
     """
     ev = cfg.evaluation
     if cfg.training.rating_loss or not ev.references:
         return {}, {}
     known = data.train.positives()  # the history, and what validation leaves out of each ranking
     history = R.History.from_pairs(known.query, known.candidate, n_queries, n_items, include_self=data.item_item)
+    if share is not None and share.divided:
+        history.everywhere = _summed_sparse
     metric = cfg.stop_metric
 
     def judge(scorer) -> float:
         got = ranking_metrics(scorer, data.valid, known, data.warm_items, ev.top_k, tie_seed=cfg.run.seed,
-                              max_queries=cfg.training.validate_queries, exclude_self=data.item_item).get(metric)
+                              max_queries=cfg.training.validate_queries, exclude_self=data.item_item,
+                              share=share).get(metric)
         return got if got is not None and math.isfinite(got) else -math.inf
 
     scorers, info = {}, {}
@@ -285,11 +341,18 @@ def reference_scorers(data: SplitPairs, n_queries: int, n_items: int, cfg: Confi
     scorers[R.ITEM_KNN], tries = R.choose_knn(history, judge)
     info[R.ITEM_KNN] = {**scorers[R.ITEM_KNN].setting, "by": f"validation {metric}", "tries": tries}
     for name in scorers:
-        if not len(data.valid):
+        if not len(data.valid) and share is None:
             info[name]["by"] = "no validation pairs: the default setting"
         for t in info[name]["tries"]:  # JSON has no infinity: an unjudged try is null
             t["score"] = t["score"] if math.isfinite(t["score"]) else None
     return scorers, info
+
+
+def _summed_sparse(c: torch.Tensor) -> torch.Tensor:
+    """A sparse COO matrix summed over processes (their entries joined, then coalesced)."""
+    (rows, cols), values = c.indices(), c.values()
+    return torch.sparse_coo_tensor(torch.stack([joined(rows), joined(cols)]), joined(values), c.shape,
+                                   check_invariants=False).coalesce()
 
 
 def _empty_reason(slice_name: str, pairs: Pairs, cfg: Config) -> str:
@@ -349,7 +412,8 @@ def _group_metrics(groups: list[Groups], h: HeldOut, per_q: dict, ahead, tied, n
 
 
 def evaluate_slices(scorers: dict, data: SplitPairs, cfg: Config, event_vectors: dict | None = None,
-                    reference_info: dict | None = None, groups: list[Groups] | None = None) -> dict:
+                    reference_info: dict | None = None, groups: list[Groups] | None = None,
+                    share: Share | None = None) -> dict:
     """{slice: {model: {metric: value}}} for the warm test pairs and, if any, the cold ones, plus "notes".
 
     Implicit runs also get each model's catalog coverage@K and popularity percentile@K. The
@@ -357,7 +421,9 @@ def evaluate_slices(scorers: dict, data: SplitPairs, cfg: Config, event_vectors:
     no history give them nothing to score. A slice with nothing to score is empty, and "notes" says why.
     With context columns each held-out event is its own query (context.py); event_vectors maps a
     model name to a function giving its query vectors for a slice's events (context-aware towers).
-    groups: columns whose groups get warm-slice metrics of their own, under "groups".
+    groups: columns whose groups get warm-slice metrics of their own, under "groups". share: data-parallel
+    with a divided log (shares.py): every process ranks its own users' queries, every process gets the
+    whole result.
     """
     explicit = cfg.training.rating_loss
     ks, seed = cfg.evaluation.top_k, cfg.run.seed
@@ -365,14 +431,17 @@ def evaluate_slices(scorers: dict, data: SplitPairs, cfg: Config, event_vectors:
     # with context columns the known pairs become events (event_pairs): joined, else read part by part
     known = data.known() if data.test.context is not None else data.known_parts()
     slices = {"warm": (data.test, known, data.warm_items)}
-    if len(data.cold_test):
+    pairs_in = (lambda p: len(p)) if share is None else (lambda p: int(summed(torch.tensor([len(p)]))[0]))  # noqa: E731
+    if pairs_in(data.cold_test):
         slices["cold"] = (data.cold_test, empty, data.cold_items)
-    if len(data.cold_user_test):  # users held out whole: ranked over the warm items, nothing known of them
+    if pairs_in(data.cold_user_test):  # users held out whole: ranked over the warm items, nothing known of them
         slices["cold_users"] = (data.cold_user_test, empty, data.warm_items)
     n_items = len(data.warm_items)
     counts = torch.bincount(data.train.positives().candidate, minlength=n_items).double()
     if data.item_item:
         counts += torch.bincount(data.train.positives().query, minlength=n_items).double()
+    counts = summed(counts)
+    test_queries = cfg.evaluation.test_queries or None
     out: dict = {name: {} for name in slices}
     notes: dict = {}
     by_group: dict = {}
@@ -381,7 +450,8 @@ def evaluate_slices(scorers: dict, data: SplitPairs, cfg: Config, event_vectors:
         raw = pairs
         if pairs.context is not None:
             pairs, known, users = event_pairs(pairs, known)
-        h = None if explicit else held_out(pairs, known, candidates, seed, cfg.evaluation.test_queries or None,
+        h = None if explicit else held_out(pairs, known, candidates, seed,
+                                           share.quota(test_queries) if share else test_queries,
                                            exclude_self=data.item_item)
         for name in MODEL_ORDER:
             if name not in scorers or (isinstance(scorers[name], ReferenceScorer) and slice_name != "warm"):
@@ -390,16 +460,17 @@ def evaluate_slices(scorers: dict, data: SplitPairs, cfg: Config, event_vectors:
             if users is not None:
                 fn = (event_vectors or {}).get(name)
                 s = s.for_queries(users, fn(raw) if fn else None)
+            ranked = None if explicit else _ranked(s, h, candidates, share, min(max(ks), int(candidates.sum())))
             if explicit:
-                out[slice_name][name] = rating_metrics(s, pairs)
-            elif h is not None:
-                ahead, tied, n_candidates, top = _ranks_and_lists(s, h, min(max(ks), len(h.cand_rows)))
-                per_q = M.per_query_ranking(ahead, h.q_index, len(h.queries), n_candidates, ks, tied=tied)
+                out[slice_name][name] = rating_metrics(s, pairs, share)
+            elif ranked is not None:
+                hr, ahead, tied, n_candidates, top = ranked
+                per_q = M.per_query_ranking(ahead, hr.q_index, len(hr.queries), n_candidates, ks, tied=tied)
                 out[slice_name][name] = M.mean_over_queries(per_q) | _list_metrics(
-                    top, len(h.cand_rows), ks, counts.index_select(0, h.cand_rows))
-                out[slice_name][name]["queries"] = int(len(h.queries))
+                    top, len(hr.cand_rows), ks, counts.index_select(0, hr.cand_rows))
+                out[slice_name][name]["queries"] = int(len(hr.queries))
                 if groups and slice_name == "warm" and users is None:
-                    for column, rows in _group_metrics(groups, h, per_q, ahead, tied, n_candidates, ks).items():
+                    for column, rows in _group_metrics(groups, hr, per_q, ahead, tied, n_candidates, ks).items():
                         by_group.setdefault(column, {})[name] = rows
             else:
                 out[slice_name][name] = {}
@@ -484,7 +555,7 @@ def validation_metrics(scorer: Scorer, data: Prepared, cfg: Config, pairs: Pairs
         pairs, known, users = event_pairs(pairs, known)
         scorer = scorer.for_queries(users, vectors)
     if cfg.training.rating_loss:
-        return rating_metrics(scorer, pairs)
+        return rating_metrics(scorer, pairs, share)
     return ranking_metrics(scorer, pairs, known, data.warm_items, cfg.evaluation.top_k,
                            tie_seed=cfg.run.seed, max_queries=cfg.training.validate_queries,
                            exclude_self=data.item_item, share=share, cache=data.rankings)

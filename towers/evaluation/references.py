@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import math
 import warnings
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -36,6 +37,8 @@ class History:
     starts: np.ndarray  # int64 (n_queries + 1,)
     items: np.ndarray  # int64 (nnz,), sorted within each row, no repeats
     n_items: int
+    # the co-occurrence counts of every process from this one's (a log divided among processes)
+    everywhere: Callable[[torch.Tensor], torch.Tensor] = lambda c: c
 
     @classmethod
     def from_pairs(cls, query: torch.Tensor, item: torch.Tensor, n_queries: int, n_items: int,
@@ -86,13 +89,14 @@ class History:
         return block
 
     def cooccurrence(self) -> torch.Tensor:
-        """c = X^T X as a coalesced sparse COO float32 tensor (n_items, n_items): queries holding both items."""
+        """c = X^T X as a coalesced sparse COO float32 tensor (n_items, n_items): queries holding both items
+        (of every process, when `everywhere` sums them)."""
         idx = torch.from_numpy(np.stack([self.rows(), self.items]))
         x = torch.sparse_coo_tensor(idx, torch.ones(idx.shape[1]), (self.n_queries, self.n_items),
                                     is_coalesced=True, check_invariants=False)
         with warnings.catch_warnings():  # torch calls its sparse product "beta"; it is exact, and tested here
             warnings.simplefilter("ignore", UserWarning)
-            return torch.sparse.mm(x.t().coalesce(), x).coalesce()
+            return self.everywhere(torch.sparse.mm(x.t().coalesce(), x).coalesce())
 
 
 def ease_bytes(n_items: int) -> int:

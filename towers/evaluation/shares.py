@@ -10,6 +10,10 @@ holds the very numbers one process computes, to the last bit, so all make the sa
 decisions. Gathering counts, not sums of per-query metrics, is what keeps that exact (a sum of
 floats depends on its order); it moves 8 bytes per positive twice and per query once, little next
 to the ranking, and the metrics computed from the counts cost little next to the ranking too.
+
+When the log itself is divided by user (data/shards.py) each process holds only its own users'
+held-out pairs, so it ranks all of its own queries (`divided`), and the counts of every process are
+joined in rank order (protocol.joined_ranks): every process again holds the same numbers and metrics.
 """
 
 from __future__ import annotations
@@ -31,10 +35,21 @@ class Share:
     rank: int
     world: int
     gather: Callable[[torch.Tensor], list[torch.Tensor]]
+    divided: bool = False  # the log is divided: every query this process holds is its own
 
     def mine(self, owner: torch.Tensor) -> torch.Tensor:
         """bool mask of the entries this process takes, owner (n,) being each entry's position in the whole list."""
         return owner % self.world == self.rank
+
+    def quota(self, total: int | None) -> int | None:
+        """This process's part of a query sample of `total` (None: all) when the log is divided, else total."""
+        if total is None or not self.divided:
+            return total
+        return total // self.world + (self.rank < total % self.world)
+
+    def joined(self, part: torch.Tensor) -> torch.Tensor:
+        """Every process's 1-D tensor one after another, in rank order."""
+        return torch.cat(self.gather(part))
 
     def whole(self, parts: list[tuple[torch.Tensor, torch.Tensor]]) -> list[torch.Tensor]:
         """Whole tensors in one-process order from every process's parts, in one exchange.

@@ -15,9 +15,11 @@ from pathlib import Path
 import torch
 
 from towers import config as C
+from towers.collective import gathered_at_first, summed
 from towers.data.context import sample_contexts, vectors_with_context
 from towers.data.embeddings_file import write_embeddings
 from towers.data.groups import group_labels
+from towers.data.pairs import Pairs, SplitPairs
 from towers.data.prepare import Prepared, prepare
 from towers.errors import TowersError
 from towers.evaluation.protocol import (
@@ -182,9 +184,14 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
     started_from = None if previous is None else {"run": str(Path(init_from).resolve()), "encoders": data.started_from}
     for note in data.notes:
         log(note)
-    log(f"data: {len(data.train):,} training, {len(data.valid):,} validation, {len(data.test):,} test, "
-        f"{len(data.cold_test):,} cold-start pairs, {len(data.cold_user_test):,} cold-user pairs; "
-        f"{len(data.queries.ids):,} queries, {len(data.candidates.ids):,} items")
+    sizes = [len(p) for p in (data.train, data.valid, data.test, data.cold_test, data.cold_user_test)]
+    if data.divided:  # every process's pairs counted
+        sizes = summed(torch.tensor(sizes)).tolist()
+    log(f"data: {sizes[0]:,} training, {sizes[1]:,} validation, {sizes[2]:,} test, "
+        f"{sizes[3]:,} cold-start pairs, {sizes[4]:,} cold-user pairs; "
+        f"{len(data.queries.ids):,} queries, {len(data.candidates.ids):,} items"
+        + (f"; the users and their events divided among {distributed.rank_and_size()[1]} processes"
+           if data.divided else ""))
 
     model = build_model(data, cfg)
     note = describe_id_tables({("query items" if data.item_item else "users"): model.query_tower.ids,
@@ -222,20 +229,26 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
     except TrainingDiverged:
         partial.remove()  # a diverged run leaves nothing behind
         raise
-    if not primary:
+    # a divided log (data/shards.py): every process evaluates its own users and all get the whole result
+    share = distributed.evaluation_share(divided=True) if data.divided else None
+    if not primary and share is None:
         return {"metrics": None, "out": out.path, "table": ""}
     if data.oracle is not None:
         scorers["oracle"] = oracle_scorer(data.oracle)
     event_vectors = {name: _event_vectors(m.query_tower, data) for name, m in context_models.items()
                      if reads_context(m.query_tower, data)}
-    references, reference_info = reference_scorers(data.split, len(data.queries.ids), len(data.candidates.ids), cfg, log)
-    metrics = evaluate_slices(scorers | references, data.split, cfg, event_vectors, reference_info, groups)
+    references, reference_info = reference_scorers(data.split, len(data.queries.ids), len(data.candidates.ids), cfg, log,
+                                                   share)
+    metrics = evaluate_slices(scorers | references, data.split, cfg, event_vectors, reference_info, groups, share)
+    split = whole_split(data.split) if data.divided else data.split
+    if not primary:
+        return {"metrics": None, "out": out.path, "table": ""}
     if result.still_improving:
         metrics.setdefault("notes", {})["towers_training"] = ("towers: the best epoch was the last one run; validation "
                                                                "was still improving (raise training.epochs)")
     _save_model(partial, TOWERS, model, cfg.model, data)
     files = export_run(partial, model, data, cfg, TOWERS, scorers[TOWERS])
-    partial.write_pairs(data.queries.ids, data.candidates.ids, data.split)
+    partial.write_pairs(data.queries.ids, data.candidates.ids, split)
     partial.write_json(RunFolder.METRICS, metrics)
     if started_from is not None:
         partial.write_json(RunFolder.STARTED_FROM, started_from)
@@ -248,6 +261,19 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
     table = format_table(metrics)
     log(f"run written to {out.path} in {time.perf_counter() - started:.1f} s ({', '.join(files.values())})")
     return {"metrics": metrics, "out": out.path, "table": table}
+
+
+def whole_split(split: SplitPairs) -> SplitPairs | None:
+    """Every process's split pairs joined at process 0, for its pairs file (None in the other processes)."""
+    def whole(p: Pairs) -> Pairs | None:
+        columns = [None if c is None else gathered_at_first(c) for c in (p.query, p.candidate, p.target, p.weight, p.time)]
+        return None if columns[0] is None else Pairs(*columns)
+    parts = [whole(p) for p in (split.train, split.valid, split.test, split.cold_test, split.cold_user_test)]
+    if parts[0] is None:
+        return None
+    train, valid, test, cold_test, cold_user_test = parts
+    return SplitPairs(train, valid, test, cold_test, split.warm_items, split.cold_items, split.item_item,
+                      cold_user_test, split.cold_users)
 
 
 def _event_vectors(tower, data: Prepared):

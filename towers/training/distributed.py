@@ -21,6 +21,7 @@ import torch
 import torch.distributed as dist
 import torch.nn as nn
 
+from towers.collective import gather_all, peer_failure, rank_and_size  # noqa: F401  (re-exported for training)
 from towers.errors import TowersError
 from towers.evaluation.shares import Share
 
@@ -41,12 +42,6 @@ def stop() -> None:
         dist.destroy_process_group()
 
 
-def rank_and_size() -> tuple[int, int]:
-    if dist.is_initialized():
-        return dist.get_rank(), dist.get_world_size()
-    return 0, 1
-
-
 def is_primary() -> bool:
     return rank_and_size()[0] == 0
 
@@ -60,29 +55,11 @@ def mean_over_processes(value: float) -> float:
     return float(t) / dist.get_world_size()
 
 
-def gather_all(part: torch.Tensor) -> list[torch.Tensor]:
-    """Every process's 1-D tensor (lengths may differ), in rank order; every process must call it together.
-
-    A peer that is gone surfaces as peer_failure's one line instead of gloo's error.
-    """
-    world = dist.get_world_size()
-    try:
-        lengths = [torch.zeros(1, dtype=torch.int64) for _ in range(world)]
-        dist.all_gather(lengths, torch.tensor([len(part)], dtype=torch.int64))
-        longest = int(max(lengths))
-        padded = torch.zeros(longest, dtype=part.dtype)
-        padded[:len(part)] = part
-        pieces = [torch.empty(longest, dtype=part.dtype) for _ in range(world)]
-        dist.all_gather(pieces, padded)
-    except RuntimeError as exc:  # only the collectives are in here: gloo reports a peer gone this way
-        raise peer_failure(exc) from None
-    return [piece[:int(n)] for piece, n in zip(pieces, lengths)]
-
-
-def evaluation_share() -> Share | None:
-    """This process's share of validation work when several processes train, else None (it does it all)."""
+def evaluation_share(divided: bool = False) -> Share | None:
+    """This process's share of evaluation work when several processes train, else None (it does it all).
+    divided: the log is divided by user (data/shards.py), so each process ranks its own queries."""
     rank, world = rank_and_size()
-    return Share(rank, world, gather_all) if world > 1 else None
+    return Share(rank, world, gather_all, divided) if world > 1 else None
 
 
 def threads_per_process(configured: int) -> int:
@@ -152,16 +129,10 @@ class GradientExchange:
             if sparse:
                 idx = torch.cat([i for i, _ in pieces[k]])
                 val = torch.cat([v for _, v in pieces[k]]) / world
-                q.grad = torch.sparse_coo_tensor(idx.unsqueeze(0), val, q.shape)
+                q.grad = torch.sparse_coo_tensor(idx.unsqueeze(0), val, q.shape, check_invariants=False)
             else:
                 total = torch.stack(pieces[k]).sum(0) / world
                 q.grad = total.to(q.dtype) if q.grad is None else q.grad.copy_(total)
-
-
-def peer_failure(exc: BaseException) -> TowersError:
-    rank, size = rank_and_size()
-    return TowersError(f"training process {rank} of {size}: another process stopped ({str(exc).splitlines()[0][:160]}); "
-                       "no run was written; see that process's error above, fix it and start again")
 
 
 def usable_cores() -> int:

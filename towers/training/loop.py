@@ -21,6 +21,7 @@ import torch
 from tqdm import tqdm
 
 from towers.atomic import write_atomic
+from towers.collective import largest, summed
 from towers.config import Config
 from towers.data.features import block_len, take
 from towers.data.history import HISTORY, without_targets
@@ -86,15 +87,16 @@ class Trainer:
             self.pair_q_ids = data.queries.block["id"].index_select(0, data.train.query)
             self.pair_c_ids = data.candidates.block["id"].index_select(0, data.train.candidate)
         train = data.train
-        self.log_q = log_batch_share(train.candidate, block_len(data.candidates.block)) \
+        self.divided = data.divided  # this process holds only its users' pairs (data/shards.py)
+        self.log_q = log_batch_share(train.candidate, block_len(data.candidates.block), summed) \
             if self.softmax and self.tcfg.logq_correction else None
         if self.tcfg.rating_loss and train.target is None:
             raise TowersError("config key 'training.loss': squared loss needs interactions.target_column (ratings); "
                               "use loss: logistic for events without a target")
         self.sampler = NegativeSampler(train, block_len(data.candidates.block), data.warm_items, self.tcfg,
-                                       self.negative_generator) if self.n_neg else None
-        q_rows = torch.bincount(train.query, minlength=block_len(data.queries.block))
-        c_rows = torch.bincount(train.candidate, minlength=block_len(data.candidates.block))
+                                       self.negative_generator, summed) if self.n_neg else None
+        q_rows = summed(torch.bincount(train.query, minlength=block_len(data.queries.block)))
+        c_rows = summed(torch.bincount(train.candidate, minlength=block_len(data.candidates.block)))
         if model.shared:
             self.q_inv = self.c_inv = id_counts(data.candidates.block["id"], q_rows + c_rows,
                                                 data.candidates.encoders.id_encoder.size)
@@ -166,6 +168,19 @@ class Trainer:
         if self.data.train.context is not None:
             qb = qb | take(self.data.train.context, idx)
         return qb
+
+    def epoch_generator(self, epoch: int) -> torch.Generator:
+        """What draws one epoch's order in this process when the log is divided: from the seed, the process
+        and the epoch alone, so a resumed process draws the very order it was in."""
+        return torch.Generator().manual_seed((self.cfg.run.seed * 1_000_003 + self.rank) * 1_000_003 + epoch)
+
+    def empty_step(self) -> None:
+        """A step with no pairs of this process's own: no gradient, but the exchange the others wait on."""
+        for opt in self.optimizers:
+            opt.zero_grad(set_to_none=True)
+        self.exchange()
+        for opt in self.optimizers:
+            opt.step()
 
     def batch_loss(self, idx: torch.Tensor) -> torch.Tensor:
         """Mean objective over one minibatch of training pairs (see module docstring)."""
@@ -265,9 +280,13 @@ class Trainer:
         self.model.train()
         n = len(self.data.train)
         bs = self.tcfg.batch_size
-        if order is None:  # a new epoch: its own order (order.py)
+        if self.divided:  # each process its own order of its own pairs, drawn again on resume (checkpoints are process 0's)
+            order = draw_order(n, self.tcfg, bool(self.cfg.run.spill_folder), self.epoch_generator(epoch))
+        elif order is None:  # a new epoch: its own order (order.py)
             order = draw_order(n, self.tcfg, bool(self.cfg.run.spill_folder), self.generator)
         steps = math.ceil(n / bs)
+        if self.divided:  # every process takes as many steps as the one with the most pairs needs at bs / N a step
+            steps = math.ceil(largest(n) * self.world / bs)
         progress = tqdm(total=n, initial=min(n, start_step * bs), desc=f"{self.label} epoch {epoch}", unit="pairs",
                         leave=False, file=sys.stderr, disable=not bar, mininterval=0.5)
         start, total = time.perf_counter(), done_loss
@@ -275,9 +294,13 @@ class Trainer:
             if self.stop.requested:
                 progress.close()
                 raise Interrupted(epoch, s, order, total)
-            idx = order.batch(s, bs)
-            if self.world > 1:  # this process's share of the global batch (distributed.py)
+            # divided: its own pairs cut into `steps` batches as even as can be
+            idx = order.span(s * n // steps, (s + 1) * n // steps) if self.divided else order.batch(s, bs)
+            if self.world > 1 and not self.divided:  # this process's share of the global batch (distributed.py)
                 idx = idx[self.rank::self.world]
+            if len(idx) == 0:  # a process with fewer pairs than steps: no gradient this step, the exchange still runs
+                self.empty_step()
+                continue
             loss = self.batch_loss(idx)
             if not torch.isfinite(loss):
                 progress.close()
@@ -301,6 +324,8 @@ class Trainer:
                 progress.set_postfix(loss=f"{float(loss.detach()):.4f}", pairs_s=f"{rate:,.0f}")
         progress.close()
         self.last_rate = (n - min(n, start_step * bs)) / max(1e-9, time.perf_counter() - start)
+        if self.divided:
+            return mean_over_processes(total / max(1, n))
         if self.world > 1:
             return mean_over_processes(total * self.world / n)
         return total / n

@@ -12,13 +12,15 @@ from towers.data.pairs import Pairs
 class NegativeSampler:
     """Draws negative candidate rows as one tensor op: uniform or proportional to popularity^alpha."""
 
-    def __init__(self, train: Pairs, n_items: int, warm: torch.Tensor, tcfg: TrainingSection, generator: torch.Generator):
+    def __init__(self, train: Pairs, n_items: int, warm: torch.Tensor, tcfg: TrainingSection, generator: torch.Generator,
+                 everywhere=lambda counts: counts):
+        """everywhere: the item counts of every process from this one's (collective.summed for a divided log)."""
         self.generator = generator
         self.cdf = None
         if tcfg.negative_sampling == "uniform":
             self.rows = torch.nonzero(warm).flatten()  # uniform: one randint, no search
             return
-        counts = torch.bincount(train.candidate, minlength=n_items).double()
+        counts = everywhere(torch.bincount(train.candidate, minlength=n_items).double())
         weights = counts.pow(tcfg.popularity_exponent) * warm.double()
         self.cdf = torch.cumsum(weights / weights.sum(), 0)
         self.cdf[-1] = 1.0
@@ -30,7 +32,10 @@ class NegativeSampler:
         return torch.searchsorted(self.cdf, u, right=True).clamp_(max=len(self.cdf) - 1)
 
 
-def log_batch_share(candidates: torch.Tensor, n_items: int) -> torch.Tensor:
-    """log of each item's share of training positives: its chance to be any given in-batch candidate."""
-    counts = torch.bincount(candidates, minlength=n_items).double()
-    return torch.log(counts.clamp(min=1) / len(candidates)).float()
+def log_batch_share(candidates: torch.Tensor, n_items: int, everywhere=lambda counts: counts) -> torch.Tensor:
+    """log of each item's share of training positives: its chance to be any given in-batch candidate.
+
+    everywhere: the item counts of every process from this one's (collective.summed for a divided log).
+    """
+    counts = everywhere(torch.bincount(candidates, minlength=n_items).double())
+    return torch.log(counts.clamp(min=1) / counts.sum()).float()

@@ -35,7 +35,11 @@ class Shuffled:
         return cls(torch.randperm(n, generator=generator, dtype=torch.int32 if n < 2 ** 31 else torch.int64))
 
     def batch(self, step: int, size: int) -> torch.Tensor:
-        return self.perm[step * size:(step + 1) * size]
+        return self.span(step * size, (step + 1) * size)
+
+    def span(self, lo: int, hi: int) -> torch.Tensor:
+        """The pairs at places lo..hi-1 of the order."""
+        return self.perm[lo:hi]
 
     def saved(self):
         return self.perm
@@ -72,7 +76,11 @@ class Windowed:
         return self._cached[1]
 
     def batch(self, step: int, size: int) -> torch.Tensor:
-        lo, hi = step * size, min(self.n, (step + 1) * size)
+        return self.span(step * size, (step + 1) * size)
+
+    def span(self, lo: int, hi: int) -> torch.Tensor:
+        """The pairs at places lo..hi-1 of the order."""
+        hi = min(self.n, hi)
         parts = []
         while lo < hi:
             w = int(torch.searchsorted(self.window_ends, torch.tensor(lo), right=True))

@@ -106,9 +106,9 @@ class EarlyStopping:
         queries and every process gets the whole, identical value (distributed.evaluation_share)."""
         result, metric = self.result, self.result.stop_metric
         value = None
-        if len(data.valid):
+        if len(data.valid) or data.divided:  # divided: every process takes part, its own share empty or not
             value = validation_metrics(model_scorer(model, data), data, cfg, data.valid, model,
-                                       share=evaluation_share()).get(metric)
+                                       share=evaluation_share(data.divided)).get(metric)
         row = {"epoch": step, "loss": loss, "pairs_per_s": rate}
         if value is not None:
             row[f"valid_{metric}"] = value

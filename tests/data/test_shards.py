@@ -1,0 +1,175 @@
+"""The log divided among data-parallel processes by user (towers/data/shards.py).
+
+Reference for the two-process checks: one process preparing the same config (the project's own
+path, itself checked against numpy and scikit-learn elsewhere). Under the per-user time split
+(`user_recent`) a user's sides depend on that user's events alone, so the divided split must be the
+one-process split pair for pair, and everything summed over processes (which entities have training
+events, the held-out entities, the query histories) must equal the one-process value exactly.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from collections import Counter
+
+import numpy as np
+import pandas as pd
+import pytest
+import torch
+import yaml
+
+from towers import config as C
+from towers.data.prepare import prepare, read_interactions
+from towers.data.shards import Shard, owners, whole_log_reason
+from towers.evaluation.protocol import evaluate_slices, popularity_scorer, reference_scorers
+from towers.training.distributed import rehearsal_endpoint
+
+from ..conftest import ROOT
+
+
+def _config(store, folder, **evaluation) -> C.Config:
+    cfg = {
+        "run": {"seed": 2, "threads": 1},
+        "interactions": {"path": str(store / "orders.csv"), "query_column": "customer_id",
+                         "candidate_column": "product_id", "time_column": "ordered_at"},
+        "items": {"path": str(store / "items.parquet"), "id_column": "item_id",
+                  "features": [{"name": "department", "kind": "categorical"}, {"name": "price", "kind": "numeric"}]},
+        "users": {"path": str(store / "customers.csv"), "id_column": "customer_id",
+                  "features": [{"name": "age_band", "kind": "categorical"}]},
+        "model": {"dim": 8, "hidden": [16], "history_length": 6},
+        "training": {"loss": "softmax", "epochs": 1, "validate_queries": 100000},
+        "evaluation": {"split": "user_recent", "cold_item_fraction": 0.1, "cold_user_fraction": 0.1,
+                       "baseline": True, **evaluation},
+        "report": {"enabled": False},
+    }
+    path = folder / "divided.yaml"
+    path.write_text(yaml.safe_dump(cfg))
+    return C.load(path)
+
+
+def test_every_row_goes_to_one_process_and_a_user_never_spans_two():
+    ids = np.array([f"c{i % 997}" for i in range(20000)], dtype=object)
+    codes, uniques = pd.factorize(ids)
+    masks = [Shard(r, 3).mine(codes, np.asarray(uniques, dtype=object)) for r in range(3)]
+    assert (np.sum(masks, axis=0) == 1).all()
+    for m in masks:  # whole users: a user's rows all in one mask
+        inside, outside = set(ids[m]), set(ids[~m])
+        assert not inside & outside
+    # the hash spreads 997 users about evenly: each share within 4 standard deviations of 997/3
+    # (binomial, sd = sqrt(997 * 1/3 * 2/3) = 14.9)
+    sizes = [len(set(ids[m])) for m in masks]
+    assert all(abs(s - 997 / 3) < 4 * 14.9 for s in sizes), sizes
+
+
+def test_owners_agree_for_the_same_ids_in_any_order_or_piece():
+    ids = np.arange(5000, dtype=np.int64) * 7919
+    whole = owners(ids, 4)
+    shuffled = np.random.default_rng(0).permutation(len(ids))
+    assert (owners(ids[shuffled], 4) == whole[shuffled]).all()
+    assert (owners(ids[:100], 4) == whole[:100]).all()
+    assert set(np.unique(whole)) == {0, 1, 2, 3}
+
+
+def test_shards_read_the_whole_log_between_them_with_the_one_process_numbering(small_store, tmp_path):
+    cfg = _config(small_store, tmp_path)
+    whole = read_interactions(cfg)
+    rows = Counter()
+    for r in range(3):
+        part = read_interactions(cfg, shard=Shard(r, 3))
+        # every process numbers every distinct id alike: the one-process numbering
+        assert (part.query_ids.uniques == whole.query_ids.uniques).all()
+        assert (part.candidate_ids.uniques == whole.candidate_ids.uniques).all()
+        rows.update(zip(part.query.tolist(), part.candidate.tolist(), part.time.tolist()))
+    assert rows == Counter(zip(whole.query.tolist(), whole.candidate.tolist(), whole.time.tolist()))
+
+
+def test_runs_that_need_every_event_read_the_whole_log(small_store, tmp_path):
+    cfg = _config(small_store, tmp_path)
+    assert whole_log_reason(cfg) is None  # the gradient baseline divides
+    assert "ALS" in whole_log_reason(cfg.with_section("evaluation", baseline_solver="weighted_als"))
+    assert whole_log_reason(cfg.with_section("run", divide_log=False)) == "run.divide_log is false"
+    assert "item_item" in whole_log_reason(cfg.with_section("run", mode="item_item"))
+
+
+# each process prepares the config and evaluates popularity and the references with the divided share,
+# then saves what the test compares with one process
+_PROCESS = r"""
+import sys, torch
+from towers import config as C
+from towers.data.prepare import prepare
+from towers.evaluation.protocol import evaluate_slices, popularity_scorer, reference_scorers
+from towers.training import distributed
+distributed.start()
+cfg = C.load(sys.argv[1])
+data = prepare(cfg)
+share = distributed.evaluation_share(divided=data.divided)
+n_q, n_c = len(data.queries.ids), len(data.candidates.ids)
+scorers = {"popularity": popularity_scorer(data.train, n_q, n_c, False)}
+refs, info = reference_scorers(data.split, n_q, n_c, cfg, share=share)
+metrics = evaluate_slices(scorers | refs, data.split, cfg, reference_info=info, share=share)
+s = data.split
+torch.save({"divided": data.divided, "metrics": metrics, "history": data.queries.block["(history)"],
+            "warm": s.warm_items, "cold_items": s.cold_items, "cold_users": s.cold_users,
+            "pairs": {n: torch.stack([getattr(s, n).query, getattr(s, n).candidate, getattr(s, n).time])
+                      for n in ("train", "valid", "test", "cold_test", "cold_user_test")}},
+           sys.argv[2])
+distributed.stop()
+"""
+
+
+@pytest.fixture(scope="module")
+def two_processes(small_store, tmp_path_factory):
+    folder = tmp_path_factory.mktemp("divided")
+    cfg = _config(small_store, folder)
+    host, port = rehearsal_endpoint().split(":")
+    procs = []
+    for rank in range(2):
+        env = dict(os.environ, RANK=str(rank), WORLD_SIZE="2", LOCAL_WORLD_SIZE="2", MASTER_ADDR=host,
+                   MASTER_PORT=port, OMP_NUM_THREADS="1",
+                   PYTHONPATH=os.pathsep.join([str(ROOT), os.environ.get("PYTHONPATH", "")]))
+        procs.append(subprocess.Popen([sys.executable, "-c", _PROCESS, str(folder / "divided.yaml"),
+                                       str(folder / f"rank{rank}.pt")], env=env, stderr=subprocess.PIPE, text=True))
+    errors = [p.communicate(timeout=300)[1] for p in procs]
+    assert [p.returncode for p in procs] == [0, 0], [e[-2000:] for e in errors]
+    return cfg, [torch.load(folder / f"rank{r}.pt", weights_only=False) for r in range(2)]
+
+
+def _rows(t: torch.Tensor) -> Counter:
+    return Counter(map(tuple, t.T.tolist()))
+
+
+def test_divided_split_is_the_one_process_split_pair_for_pair(two_processes):
+    cfg, parts = two_processes
+    one = prepare(cfg)
+    assert all(p["divided"] for p in parts)
+    for name in ("train", "valid", "test", "cold_test", "cold_user_test"):
+        mine = [_rows(p["pairs"][name]) for p in parts]
+        assert not set(mine[0]) & set(mine[1])  # no pair in both processes
+        ref = getattr(one.split, name)
+        assert mine[0] + mine[1] == _rows(torch.stack([ref.query, ref.candidate, ref.time])), name
+    for p in parts:  # summed over processes: every process holds the one-process masks and histories
+        assert torch.equal(p["warm"], one.warm_items)
+        assert torch.equal(p["cold_items"], one.split.cold_items)
+        assert torch.equal(p["cold_users"], one.split.cold_users)
+        assert torch.equal(p["history"], one.queries.block["(history)"])
+
+
+def test_divided_evaluation_gives_every_process_the_one_process_metrics(two_processes):
+    """Popularity, EASE and item-kNN on every slice: the same counts, so the same metrics up to the
+    order in which per-query values are summed (the reference is one process evaluating everything)."""
+    cfg, parts = two_processes
+    one = prepare(cfg)
+    n_q, n_c = len(one.queries.ids), len(one.candidates.ids)
+    refs, info = reference_scorers(one.split, n_q, n_c, cfg)
+    expected = evaluate_slices({"popularity": popularity_scorer(one.train, n_q, n_c, False)} | refs, one.split, cfg,
+                               reference_info=info)
+    assert parts[0]["metrics"] == parts[1]["metrics"]  # every process holds the same numbers
+    got = parts[0]["metrics"]
+    assert json.dumps(got["references"], sort_keys=True) == json.dumps(expected["references"], sort_keys=True)
+    for slice_name in ("warm", "cold", "cold_users"):
+        assert set(got[slice_name]) == set(expected[slice_name]), slice_name
+        for model, values in expected[slice_name].items():
+            assert got[slice_name][model] == pytest.approx(values, rel=1e-9, abs=1e-12), (slice_name, model)

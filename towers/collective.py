@@ -1,0 +1,112 @@
+"""The few exchanges between data-parallel processes that data, evaluation and training need.
+
+torch.distributed (gloo, CPU) carries them once training/distributed.py has joined the process
+group; with one process every function returns its input, so callers run one piece of code. Each is
+a collective: every process must call it, in the same order. A peer that is gone surfaces as
+peer_failure's one line instead of gloo's error.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import torch
+import torch.distributed as dist
+
+from towers.errors import TowersError
+
+
+def rank_and_size() -> tuple[int, int]:
+    """(this process's number, the number of processes); (0, 1) outside a process group."""
+    if dist.is_available() and dist.is_initialized():
+        return dist.get_rank(), dist.get_world_size()
+    return 0, 1
+
+
+def peer_failure(exc: BaseException) -> TowersError:
+    rank, size = rank_and_size()
+    return TowersError(f"training process {rank} of {size}: another process stopped ({str(exc).splitlines()[0][:160]}); "
+                       "no run was written; see that process's error above, fix it and start again")
+
+
+def _collective(call):
+    try:
+        return call()
+    except RuntimeError as exc:  # only collectives are in here: gloo reports a peer gone this way
+        raise peer_failure(exc) from None
+
+
+def _padded(part: torch.Tensor) -> tuple[list[int], torch.Tensor]:
+    """(every process's length, this process's tensor padded to the longest): what all_gather and gather need."""
+    world = dist.get_world_size()
+    lengths = [torch.zeros(1, dtype=torch.int64) for _ in range(world)]
+    dist.all_gather(lengths, torch.tensor([len(part)], dtype=torch.int64))
+    padded = torch.zeros(int(max(lengths)), dtype=part.dtype)
+    padded[:len(part)] = part
+    return [int(n) for n in lengths], padded
+
+
+def gather_all(part: torch.Tensor) -> list[torch.Tensor]:
+    """Every process's 1-D tensor (lengths may differ), in rank order."""
+    if rank_and_size()[1] == 1:
+        return [part]
+
+    def call():
+        lengths, padded = _padded(part)
+        pieces = [torch.empty_like(padded) for _ in lengths]
+        dist.all_gather(pieces, padded)
+        return [piece[:n] for piece, n in zip(pieces, lengths)]
+    return _collective(call)
+
+
+def joined(part: torch.Tensor) -> torch.Tensor:
+    """Every process's 1-D tensor one after another, in rank order."""
+    pieces = gather_all(part)
+    return pieces[0] if len(pieces) == 1 else torch.cat(pieces)
+
+
+def summed(values):
+    """The element-wise sum over processes of a numpy array or tensor (a copy; bool arrays: any process's True)."""
+    if rank_and_size()[1] == 1:
+        return values
+    as_numpy = isinstance(values, np.ndarray)
+    t = torch.from_numpy(np.ascontiguousarray(values)) if as_numpy else values
+    kind = t.dtype
+    work = t.to(torch.int32 if kind == torch.bool else kind).clone()
+    _collective(lambda: dist.all_reduce(work))
+    out = work > 0 if kind == torch.bool else work
+    return out.numpy() if as_numpy else out
+
+
+def largest(value: int) -> int:
+    """The largest of one whole number over processes."""
+    if rank_and_size()[1] == 1:
+        return value
+    t = torch.tensor([value], dtype=torch.int64)
+    _collective(lambda: dist.all_reduce(t, op=dist.ReduceOp.MAX))
+    return int(t)
+
+
+def gather_objects(value) -> list:
+    """Every process's value (plain data: arrays of ids, numbers), in rank order. Pickled between the
+    processes of one run only, never read from a file."""
+    rank, world = rank_and_size()
+    if world == 1:
+        return [value]
+    out = [None] * world
+    _collective(lambda: dist.all_gather_object(out, value))
+    return out
+
+
+def gathered_at_first(part: torch.Tensor) -> torch.Tensor | None:
+    """Every process's 1-D tensor one after another, in rank order, at process 0 only (None elsewhere):
+    what only process 0 writes, without a copy of all of it in every process."""
+    rank, world = rank_and_size()
+    if world == 1:
+        return part
+
+    def call():
+        lengths, padded = _padded(part)
+        pieces = [torch.empty_like(padded) for _ in lengths] if rank == 0 else None
+        dist.gather(padded, pieces, dst=0)
+        return None if rank else torch.cat([piece[:n] for piece, n in zip(pieces, lengths)])
+    return _collective(call)
