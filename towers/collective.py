@@ -110,3 +110,13 @@ def gathered_at_first(part: torch.Tensor) -> torch.Tensor | None:
         dist.gather(padded, pieces, dst=0)
         return None if rank else torch.cat([piece[:n] for piece, n in zip(pieces, lengths)])
     return _collective(call)
+
+
+def _as_is(values):
+    return values
+
+
+def across(divided: bool):
+    """`summed` when each process holds its own part of the data (a divided log), else the identity:
+    processes that each hold everything already have the whole value."""
+    return summed if divided else _as_is

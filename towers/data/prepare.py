@@ -11,7 +11,7 @@ import numpy as np
 import pandas as pd
 import torch
 
-from towers.collective import largest, rank_and_size, summed
+from towers.collective import across, largest, rank_and_size
 from towers.config import Config
 from towers.data.baskets import collapse_repeats, derive_pairs
 from towers.data.context import ContextEncoders
@@ -219,9 +219,9 @@ def _as_pairs(qr, cr, target, weight, when, spill: Spill) -> Pairs:
                  convert(when, np.int64))
 
 
-def _train_entities(ids: np.ndarray, rows: np.ndarray) -> np.ndarray:
+def _train_entities(ids: np.ndarray, rows: np.ndarray, everywhere) -> np.ndarray:
     """The catalog ids that have rows among `rows` in any process, in catalog order (a bincount: linear, not a sort)."""
-    return ids[np.flatnonzero(summed(np.bincount(rows, minlength=len(ids)) > 0))]
+    return ids[np.flatnonzero(everywhere(np.bincount(rows, minlength=len(ids)) > 0))]
 
 
 def _joint_ids(a: IdColumn, b: IdColumn, spill: Spill) -> IdColumn:
@@ -253,6 +253,7 @@ def prepare(cfg: Config, previous=None) -> Prepared:
     item_item = cfg.item_item
     spill = Spill(cfg.run.spill_folder)
     shard = log_shard(cfg)
+    everywhere = across(shard is not None)  # a process's own part summed with the others' (divided log)
     log = read_interactions(cfg, split=True, spill=spill, shard=shard)
     q_log, c_log, target, weight, when = log.query_ids, log.candidate_ids, log.target, log.weight, log.time
     notes: list[str] = list(log.notes)
@@ -285,7 +286,7 @@ def prepare(cfg: Config, previous=None) -> Prepared:
         q_rows = spill.where(_catalog_rows(q_log, q_ids, spill), keep)
         c_rows = spill.where(_catalog_rows(c_log, c_ids, spill), keep)
     q_log = c_log = log.query_ids = log.candidate_ids = None  # the codes are rows now: free them
-    dropped = int(summed(np.array([(~keep).sum()]))[0])
+    dropped = int(everywhere(np.array([(~keep).sum()]))[0])
     if dropped:
         notes.append(f"dropped {dropped} interaction rows whose ids have no feature row (missing_rows: drop)")
     sel = lambda a: None if a is None else spill.where(a, keep)  # noqa: E731
@@ -310,8 +311,8 @@ def prepare(cfg: Config, previous=None) -> Prepared:
         cold_users = HoldOut(user_has_row, None if previous is None else _learned(q_ids, previous.query_encoders))
     split: Split = make_split(pairs, len(c_ids), cfg.evaluation, cfg.run.seed, cold_eligible=cold_items,
                               item_item=item_item, groups=groups, n_queries=len(q_ids), cold_user_eligible=cold_users,
-                              sides=sel(log.side), everywhere=summed)
-    if summed(np.array([len(split.train)]))[0] == 0:
+                              sides=sel(log.side), everywhere=everywhere)
+    if everywhere(np.array([len(split.train)]))[0] == 0:
         raise TowersError(f"{ic.path}: the split leaves no training pairs; lower evaluation fractions or add data")
     context_encoders = None
     if log.context is not None:
@@ -324,14 +325,14 @@ def prepare(cfg: Config, previous=None) -> Prepared:
 
     tq, tc = train.query.numpy(), train.candidate.numpy()
     if item_item:
-        c_train_ids = _train_entities(c_ids, np.concatenate([tq, tc]))
+        c_train_ids = _train_entities(c_ids, np.concatenate([tq, tc]), everywhere)
         c_enc = SideEncoders.fit(c_table, cfg.items.path, cfg.items.id_column, cfg.items.features, c_train_ids)
         q_enc = c_enc
     else:
         q_enc = SideEncoders.fit(q_table, cfg.users.path, cfg.users.id_column, cfg.users.features,
-                                 _train_entities(q_ids, tq))
+                                 _train_entities(q_ids, tq, everywhere))
         c_enc = SideEncoders.fit(c_table, cfg.items.path, cfg.items.id_column, cfg.items.features,
-                                 _train_entities(c_ids, tc))
+                                 _train_entities(c_ids, tc, everywhere))
     started_from = None
     if previous is not None:
         started_from = {}
@@ -352,16 +353,16 @@ def prepare(cfg: Config, previous=None) -> Prepared:
     else:
         q_block = q_enc.encode(q_ids, q_table, cfg.users.path)
         if cfg.model.history_length:  # a user's history lies in one process: the others' rows are zeros
-            q_block[HISTORY] = summed(history_column(train, len(q_ids), len(c_ids), cfg.model.history_length,
-                                                     widest=largest))
+            q_block[HISTORY] = everywhere(history_column(train, len(q_ids), len(c_ids), cfg.model.history_length,
+                                                         widest=largest if shard else lambda w: w))
         q_side = Side(q_ids, q_enc, q_block, bool(cfg.users.features))
 
     warm = torch.zeros(len(c_ids), dtype=torch.bool)
     warm[train.candidate] = True
     if item_item:
         warm[train.query] = True
-    warm = summed(warm)
-    _warn_small_data(cfg, int(summed(np.array([len(train)]))[0]), len(q_ids), len(c_ids), notes)
+    warm = everywhere(warm)
+    _warn_small_data(cfg, int(everywhere(np.array([len(train)]))[0]), len(q_ids), len(c_ids), notes)
     prepared = Prepared(q_side, c_side, train, valid, test, cold_test, split.cold_items, cold_user_test,
                         split.cold_users, warm, item_item, notes, context=context_encoders, started_from=started_from,
                         divided=shard is not None)

@@ -13,7 +13,7 @@ from dataclasses import dataclass
 import numpy as np
 import torch
 
-from towers.collective import joined, summed
+from towers.collective import across, joined
 from towers.config import Config
 from towers.data.context import event_pairs, vectors_with_context
 from towers.data.embeddings_file import TrueVectors
@@ -33,11 +33,13 @@ MODEL_ORDER = ("popularity", "linear_factor", R.ITEM_KNN, R.EASE, "bilinear", "t
 SLICES = ("warm", "cold", "cold_users")  # the keys of metrics.json that hold a slice's {model: metrics}
 
 
-def popularity_scorer(train: Pairs, n_queries: int, n_items: int, explicit: bool, item_item: bool = False) -> Scorer:
+def popularity_scorer(train: Pairs, n_queries: int, n_items: int, explicit: bool, item_item: bool = False,
+                      divided: bool = False) -> Scorer:
     """Popularity: training counts for ranking; for ratings, each item's mean target damped toward the global mean.
 
-    The counts and sums are of every process's pairs when the log is divided among processes (summed).
+    divided: the log is divided among processes; the counts and sums are of every process's pairs.
     """
+    summed = across(divided)
     ones = torch.ones(n_queries, 1)
     if not explicit:
         counts = torch.bincount(train.candidate, minlength=n_items).float()
@@ -431,7 +433,8 @@ def evaluate_slices(scorers: dict, data: SplitPairs, cfg: Config, event_vectors:
     # with context columns the known pairs become events (event_pairs): joined, else read part by part
     known = data.known() if data.test.context is not None else data.known_parts()
     slices = {"warm": (data.test, known, data.warm_items)}
-    pairs_in = (lambda p: len(p)) if share is None else (lambda p: int(summed(torch.tensor([len(p)]))[0]))  # noqa: E731
+    everywhere = across(share is not None and share.divided)  # a process's own part summed with the others'
+    pairs_in = lambda p: int(everywhere(torch.tensor([len(p)]))[0])  # noqa: E731
     if pairs_in(data.cold_test):
         slices["cold"] = (data.cold_test, empty, data.cold_items)
     if pairs_in(data.cold_user_test):  # users held out whole: ranked over the warm items, nothing known of them
@@ -440,7 +443,7 @@ def evaluate_slices(scorers: dict, data: SplitPairs, cfg: Config, event_vectors:
     counts = torch.bincount(data.train.positives().candidate, minlength=n_items).double()
     if data.item_item:
         counts += torch.bincount(data.train.positives().query, minlength=n_items).double()
-    counts = summed(counts)
+    counts = everywhere(counts)
     test_queries = cfg.evaluation.test_queries or None
     out: dict = {name: {} for name in slices}
     notes: dict = {}

@@ -214,7 +214,7 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
         result = fit(model, data, cfg, partial.checkpoints(), TOWERS, resume=resuming, on_round=on_round)
         scorers: dict[str, Scorer] = {
             "popularity": popularity_scorer(data.train, len(data.queries.ids), len(data.candidates.ids),
-                                            cfg.training.rating_loss, data.item_item),
+                                            cfg.training.rating_loss, data.item_item, data.divided),
             TOWERS: model_scorer(model, data),
         }
         histories = {TOWERS: result.history}

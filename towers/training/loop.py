@@ -21,7 +21,7 @@ import torch
 from tqdm import tqdm
 
 from towers.atomic import write_atomic
-from towers.collective import largest, summed
+from towers.collective import across, largest
 from towers.config import Config
 from towers.data.features import block_len, take
 from towers.data.history import HISTORY, without_targets
@@ -88,15 +88,16 @@ class Trainer:
             self.pair_c_ids = data.candidates.block["id"].index_select(0, data.train.candidate)
         train = data.train
         self.divided = data.divided  # this process holds only its users' pairs (data/shards.py)
-        self.log_q = log_batch_share(train.candidate, block_len(data.candidates.block), summed) \
+        everywhere = across(self.divided)  # a process's own counts summed with the others' (divided log)
+        self.log_q = log_batch_share(train.candidate, block_len(data.candidates.block), everywhere) \
             if self.softmax and self.tcfg.logq_correction else None
         if self.tcfg.rating_loss and train.target is None:
             raise TowersError("config key 'training.loss': squared loss needs interactions.target_column (ratings); "
                               "use loss: logistic for events without a target")
         self.sampler = NegativeSampler(train, block_len(data.candidates.block), data.warm_items, self.tcfg,
-                                       self.negative_generator, summed) if self.n_neg else None
-        q_rows = summed(torch.bincount(train.query, minlength=block_len(data.queries.block)))
-        c_rows = summed(torch.bincount(train.candidate, minlength=block_len(data.candidates.block)))
+                                       self.negative_generator, everywhere) if self.n_neg else None
+        q_rows = everywhere(torch.bincount(train.query, minlength=block_len(data.queries.block)))
+        c_rows = everywhere(torch.bincount(train.candidate, minlength=block_len(data.candidates.block)))
         if model.shared:
             self.q_inv = self.c_inv = id_counts(data.candidates.block["id"], q_rows + c_rows,
                                                 data.candidates.encoders.id_encoder.size)
