@@ -22,6 +22,7 @@ import torch
 import yaml
 
 from towers import config as C
+from towers.data.groups import group_labels
 from towers.data.prepare import prepare, read_interactions
 from towers.data.shards import Shard, owners, whole_log_reason
 from towers.evaluation.protocol import evaluate_slices, popularity_scorer, reference_scorers
@@ -102,6 +103,7 @@ import sys, torch
 from towers import config as C
 from towers.data.prepare import prepare
 from towers.evaluation.protocol import evaluate_slices, popularity_scorer, reference_scorers
+from towers.data.groups import group_labels
 from towers.training import distributed
 distributed.start()
 cfg = C.load(sys.argv[1])
@@ -111,8 +113,11 @@ n_q, n_c = len(data.queries.ids), len(data.candidates.ids)
 scorers = {"popularity": popularity_scorer(data.train, n_q, n_c, False, divided=data.divided)}
 refs, info = reference_scorers(data.split, n_q, n_c, cfg, share=share)
 metrics = evaluate_slices(scorers | refs, data.split, cfg, reference_info=info, share=share)
+groups = group_labels(cfg.with_section("evaluation", group_metrics_by=["age_band", "department"]), data.queries.ids,
+                      data.candidates.ids)
+grouped = evaluate_slices(scorers | refs, data.split, cfg, reference_info=info, groups=groups, share=share)
 s = data.split
-torch.save({"divided": data.divided, "metrics": metrics, "history": data.queries.block["(history)"],
+torch.save({"divided": data.divided, "metrics": metrics, "grouped": grouped, "history": data.queries.block["(history)"],
             "warm": s.warm_items, "cold_items": s.cold_items, "cold_users": s.cold_users,
             "pairs": {n: torch.stack([getattr(s, n).query, getattr(s, n).candidate, getattr(s, n).time])
                       for n in ("train", "valid", "test", "cold_test", "cold_user_test")}},
@@ -167,13 +172,24 @@ def test_divided_evaluation_gives_every_process_the_one_process_metrics(two_proc
     refs, info = reference_scorers(one.split, n_q, n_c, cfg)
     expected = evaluate_slices({"popularity": popularity_scorer(one.train, n_q, n_c, False)} | refs, one.split, cfg,
                                reference_info=info)
-    assert parts[0]["metrics"] == parts[1]["metrics"]  # every process holds the same numbers
-    got = parts[0]["metrics"]
-    assert json.dumps(got["references"], sort_keys=True) == json.dumps(expected["references"], sort_keys=True)
-    for slice_name in ("warm", "cold", "cold_users"):
-        assert set(got[slice_name]) == set(expected[slice_name]), slice_name
-        for model, values in expected[slice_name].items():
-            assert got[slice_name][model] == pytest.approx(values, rel=1e-9, abs=1e-12), (slice_name, model)
+    groups = group_labels(cfg.with_section("evaluation", group_metrics_by=["age_band", "department"]), one.queries.ids,
+                          one.candidates.ids)
+    grouped = evaluate_slices({"popularity": popularity_scorer(one.train, n_q, n_c, False)} | refs, one.split, cfg,
+                              reference_info=info, groups=groups)
+    # without groups each process's sums are summed; with groups the rankings are joined (protocol.py)
+    for key, want in (("metrics", expected), ("grouped", grouped)):
+        assert parts[0][key] == parts[1][key]  # every process holds the same numbers
+        got = parts[0][key]
+        assert json.dumps(got["references"], sort_keys=True) == json.dumps(want["references"], sort_keys=True)
+        for slice_name in ("warm", "cold", "cold_users"):
+            assert set(got[slice_name]) == set(want[slice_name]), slice_name
+            for model, values in want[slice_name].items():
+                assert got[slice_name][model] == pytest.approx(values, rel=1e-9, abs=1e-12), (key, slice_name, model)
+    assert grouped["groups"]["age_band"] and grouped["groups"]["department"]
+    for column, models in grouped["groups"].items():
+        for model, rows in models.items():
+            for group, values in rows.items():
+                assert parts[0]["grouped"]["groups"][column][model][group] == pytest.approx(values, rel=1e-9), group
 
 
 @pytest.mark.slow  # torchrun processes

@@ -232,7 +232,7 @@ def catalog_coverage(top_items: torch.Tensor, n_candidates: int) -> float:
     top_items: (Q, K) int64 column indices in [0, n_candidates), -1 for padding (a list shorter
     than K). Returns a float in [0, 1]; NaN when there are no candidates.
     """
-    flat = _recommended(top_items, n_candidates)
+    flat = recommended(top_items, n_candidates)
     if n_candidates == 0:
         return math.nan
     shown = torch.zeros(n_candidates, dtype=torch.bool)
@@ -253,17 +253,22 @@ def popularity_percentile(top_items: torch.Tensor, counts: torch.Tensor) -> floa
     counts = counts.to(torch.float64)
     if not torch.isfinite(counts).all():
         raise ValueError("counts must be finite")
-    flat = _recommended(top_items, len(counts))
+    flat = recommended(top_items, len(counts))
     if flat.numel() == 0:
         return math.nan
+    return float(percentiles(counts)[flat].mean())
+
+
+def percentiles(counts: torch.Tensor) -> torch.Tensor:
+    """float64 (n,): each candidate's popularity percentile among `counts` (popularity_percentile's)."""
+    counts = counts.to(torch.float64)
     ordered = torch.sort(counts).values
     below = torch.searchsorted(ordered, counts, right=False)  # candidates with a smaller count
     at_or_below = torch.searchsorted(ordered, counts, right=True)
-    percentile = 50.0 * (below + at_or_below).to(torch.float64) / len(counts)
-    return float(percentile[flat].mean())
+    return 50.0 * (below + at_or_below).to(torch.float64) / len(counts)
 
 
-def _recommended(top_items: torch.Tensor, n_candidates: int) -> torch.Tensor:
+def recommended(top_items: torch.Tensor, n_candidates: int) -> torch.Tensor:
     """The non-padding entries of a (Q, K) top_items table, flattened, checked to lie in [0, n_candidates)."""
     if top_items.dim() != 2:
         raise ValueError(f"top_items must be 2-D (queries, K), got shape {tuple(top_items.shape)}")

@@ -13,7 +13,7 @@ from dataclasses import dataclass
 import numpy as np
 import torch
 
-from towers.collective import across, joined
+from towers.collective import across, joined, summed
 from towers.config import Config
 from towers.data.context import event_pairs, vectors_with_context
 from towers.data.embeddings_file import TrueVectors
@@ -386,6 +386,34 @@ def _list_metrics(top: torch.Tensor, n_columns: int, ks, counts: torch.Tensor) -
     return out
 
 
+def _summed_metrics(per_q: dict, top: torch.Tensor, n_columns: int, ks, counts: torch.Tensor, n_queries: int) -> dict:
+    """mean_over_queries and _list_metrics of every process's queries from this process's own (a divided log's
+    final evaluation): each metric's sum and count, each list's shown columns and percentile sums, summed over
+    processes, so no process holds another's rankings. Equal to the one-process figures up to summation order."""
+    pct = M.percentiles(counts)
+    parts, shown = [], []
+    for values in per_q.values():
+        v = values.to(torch.float64)
+        ok = ~torch.isnan(v)
+        parts += [float(v[ok].sum()), float(ok.sum())]
+    for k in ks:
+        flat = M.recommended(top[:, :k], n_columns)
+        parts += [float(pct[flat].sum()), float(flat.numel())]
+        mask = torch.zeros(n_columns, dtype=torch.bool)
+        mask[flat] = True
+        shown.append(mask)
+    total = summed(torch.tensor(parts + [float(n_queries)], dtype=torch.float64)).tolist()
+    shown = summed(torch.stack(shown)) if shown else shown
+    mean = lambda s, n: s / n if n else math.nan  # noqa: E731
+    out = {name: mean(total[2 * i], total[2 * i + 1]) for i, name in enumerate(per_q)}
+    at = 2 * len(per_q)
+    for j, k in enumerate(ks):
+        out[f"coverage@{k}"] = float(shown[j].sum()) / n_columns if n_columns else math.nan
+        out[f"popularity_pct@{k}"] = mean(total[at + 2 * j], total[at + 2 * j + 1])
+    out["queries"] = int(total[-1])
+    return out
+
+
 def _group_metrics(groups: list[Groups], h: HeldOut, per_q: dict, ahead, tied, n_candidates, ks) -> dict:
     """{column: {group name: {recall@K, ndcg@K, queries}}} of one model on one slice.
 
@@ -456,6 +484,10 @@ def evaluate_slices(scorers: dict, data: SplitPairs, cfg: Config, event_vectors:
         h = None if explicit else held_out(pairs, known, candidates, seed,
                                            share.quota(test_queries) if share else test_queries,
                                            exclude_self=data.item_item)
+        # a divided log without group columns: each process's figures summed, no process holds all rankings
+        summing = share is not None and share.divided and not groups and not explicit
+        if summing and h is None:
+            h = _empty_held_out(candidates)
         for name in MODEL_ORDER:
             if name not in scorers or (isinstance(scorers[name], ReferenceScorer) and slice_name != "warm"):
                 continue
@@ -463,7 +495,15 @@ def evaluate_slices(scorers: dict, data: SplitPairs, cfg: Config, event_vectors:
             if users is not None:
                 fn = (event_vectors or {}).get(name)
                 s = s.for_queries(users, fn(raw) if fn else None)
-            ranked = None if explicit else _ranked(s, h, candidates, share, min(max(ks), int(candidates.sum())))
+            k_max = min(max(ks), int(candidates.sum()))
+            if summing:
+                ahead, tied, n_candidates, top = _ranks_and_lists(s, h, k_max)
+                per_q = M.per_query_ranking(ahead, h.q_index, len(h.queries), n_candidates, ks, tied=tied)
+                got = _summed_metrics(per_q, top, len(h.cand_rows), ks, counts.index_select(0, h.cand_rows),
+                                      len(h.queries))
+                out[slice_name][name] = got if got["queries"] else {}
+                continue
+            ranked = None if explicit else _ranked(s, h, candidates, share, k_max)
             if explicit:
                 out[slice_name][name] = rating_metrics(s, pairs, share)
             elif ranked is not None:

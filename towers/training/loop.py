@@ -21,7 +21,7 @@ import torch
 from tqdm import tqdm
 
 from towers.atomic import write_atomic
-from towers.collective import across, largest
+from towers.collective import across, largest, summed
 from towers.config import Config
 from towers.data.features import block_len, take
 from towers.data.history import HISTORY, without_targets
@@ -325,7 +325,8 @@ class Trainer:
                 progress.set_postfix(loss=f"{float(loss.detach()):.4f}", pairs_s=f"{rate:,.0f}")
         progress.close()
         self.last_rate = (n - min(n, start_step * bs)) / max(1e-9, time.perf_counter() - start)
-        if self.divided:
+        if self.divided:  # every process's pairs over this epoch's time: the rate of the whole run, as in one process
+            self.last_rate = float(summed(torch.tensor([self.last_rate], dtype=torch.float64))[0])
             return mean_over_processes(total / max(1, n))
         if self.world > 1:
             return mean_over_processes(total * self.world / n)
