@@ -240,15 +240,17 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
     references, reference_info = reference_scorers(data.split, len(data.queries.ids), len(data.candidates.ids), cfg, log,
                                                    share)
     metrics = evaluate_slices(scorers | references, data.split, cfg, event_vectors, reference_info, groups, share)
-    split = whole_split(data.split) if data.divided else data.split
+    references = None
     if not primary:
+        whole_split(data.split)  # process 0 writes every process's pairs
         return {"metrics": None, "out": out.path, "table": ""}
     if result.still_improving:
         metrics.setdefault("notes", {})["towers_training"] = ("towers: the best epoch was the last one run; validation "
                                                                "was still improving (raise training.epochs)")
     _save_model(partial, TOWERS, model, cfg.model, data)
     files = export_run(partial, model, data, cfg, TOWERS, scorers[TOWERS])
-    partial.write_pairs(data.queries.ids, data.candidates.ids, split)
+    scorers = None  # every vector is written: what they held is free before the pairs are gathered
+    partial.write_pairs(data.queries.ids, data.candidates.ids, whole_split(data.split) if data.divided else data.split)
     partial.write_json(RunFolder.METRICS, metrics)
     if started_from is not None:
         partial.write_json(RunFolder.STARTED_FROM, started_from)

@@ -411,4 +411,5 @@ def fit(model: TwoTowerModel, data: Prepared, cfg: Config, checkpoint_dir: Path 
             save(False)
     stopping.restore_best(model)
     save(True)
+    result.best_state = None  # in the model now, and in the finished checkpoint: a copy of the weights less to hold
     return result
