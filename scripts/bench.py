@@ -1118,7 +1118,8 @@ def two_nodes_figures(one: dict, nodes: list[dict], base: dict, work: Path) -> d
     log(f"two_nodes: wall {wall:.1f} s against {one['seconds']:.1f} s; pairs/s per core {runs['two']['per_core']:,.0f} "
         f"against {runs['one']['per_core']:,.0f}; peak RSS per process {nodes[0]['peak_rss_gb']:.2f} and "
         f"{nodes[1]['peak_rss_gb']:.2f} GiB against {one['peak_rss_gb']:.2f} GiB (data {data_two[0]:.2f} and "
-        f"{data_two[1]:.2f} GiB against {data_one:.2f} GiB over {fixed:.2f} GiB of libraries); valid {metric} {runs['two']['valid']:.4f} "
+        f"{data_two[1]:.2f} GiB against {data_one:.2f} GiB over {fixed:.2f} GiB of libraries); "
+        f"valid {metric} {runs['two']['valid']:.4f} "
         f"against {runs['one']['valid']:.4f}, test {runs['two']['test']:.4f} against {runs['one']['test']:.4f}")
     return {"two_nodes_wall_vs_one": wall / one["seconds"],
             "two_nodes_pairs_per_core_vs_one": runs["two"]["per_core"] / runs["one"]["per_core"],

@@ -110,8 +110,10 @@ class RunSection:
                                    'for a log larger than memory; empty keeps them in memory', nullable=True)
     divide_log: bool = key('bool', True, 'data-parallel training (several processes): each process reads and keeps '
                            'only its share of the users and their events (by a hash of the user id), so memory and work '
-                           'are divided; false: every process reads the whole log. user_item runs with pairs_from: rows '
-                           'and no context columns; other runs read the whole log in every process')
+                           'are divided; false: every process reads the whole log. Applies to user_item runs whose rows '
+                           'are the pairs (pairs_from: rows, no count_repeats), without context columns, an ALS or '
+                           'squared-loss linear factor model, or the bilinear reference; other runs read the whole log '
+                           'in every process, and the log says why')
 
 
 @dataclass(frozen=True)

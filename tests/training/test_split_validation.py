@@ -37,7 +37,8 @@ def _configs(folder):
     n = 6000
     items = np.minimum(rng.zipf(1.4, n), 150) - 1  # long-tailed popularity: popularity ties many items
     pd.DataFrame({"u": rng.integers(0, 400, n), "i": items, "stars": rng.integers(1, 6, n)}).to_parquet(folder / "log.parquet")
-    base = {"run": {"seed": 2, "threads": 1},
+    # every process holds every pair here (tests/data/test_shards.py checks the log divided by user)
+    base = {"run": {"seed": 2, "threads": 1, "divide_log": False},
             "interactions": {"path": "log.parquet", "query_column": "u", "candidate_column": "i"},
             "model": {"dim": 8, "hidden": [16]},
             "training": {"loss": "logistic", "validate_queries": 151},  # a sample, odd so the shares differ in size
