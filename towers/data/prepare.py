@@ -25,7 +25,6 @@ from towers.data.spill import Column, Spill
 from towers.data.splits import HoldOut, Split, make_split
 from towers.data.tables import (
     IdPieces,
-    factorize_ids,
     numeric_column,
     positions_in,
     read_table_chunks,
@@ -145,8 +144,7 @@ def read_interactions(cfg: Config, split: bool = False, spill: Spill | None = No
     for file in table_files(path):
         for start, df in read_table_chunks(file, wanted, LOG_PIECE_ROWS):
             with rows_after(start):
-                mine = None if shard is None else shard.mine(*factorize_ids(df[ic.query_column], file, ic.query_column))
-                q.add(df[ic.query_column], file, ic.query_column, mine)
+                mine = q.add(df[ic.query_column], file, ic.query_column, None if shard is None else shard.mine)
                 c.add(df[ic.candidate_column], file, ic.candidate_column, mine)
                 if ic.target_column:
                     columns["target"].add(_kept(_targets(df[ic.target_column], file, ic.target_column, cfg), mine))

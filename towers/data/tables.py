@@ -244,15 +244,21 @@ class IdPieces:
         self.codes = Column(spill or Spill(), np.int32)
         self.settled = self.recent = None  # _Ids each, once the first piece is in
 
-    def add(self, series: pd.Series, path, column, keep: np.ndarray | None = None) -> None:
-        """One piece: all its distinct ids are numbered, the codes of its `keep` rows kept (default all)."""
+    def add(self, series: pd.Series, path, column, keep=None) -> np.ndarray | None:
+        """One piece: all its distinct ids are numbered, the codes of its `keep` rows kept (default all).
+
+        keep: a bool mask over the piece's rows, or a function of the piece's (codes, distinct ids) giving
+        one (a data-parallel process's own users, data/shards.py). Returns the mask used.
+        """
         codes, uniques = self.factorize(series, path, column)
+        if callable(keep):
+            keep = keep(codes, uniques)
         if keep is not None:
             codes = codes[keep]
         if self.settled is None:
             self.settled, self.recent = _Ids(uniques), _Ids(uniques[:0])
             self.codes.add(codes)
-            return
+            return keep
         if (uniques.dtype == object) != (self.settled.ids.dtype == object):  # numbers beside text: all as text
             self.settled, self.recent = self.settled.as_text(), self.recent.as_text()
             uniques = uniques.astype(str).astype(object)
@@ -273,6 +279,7 @@ class IdPieces:
                 raise TowersError(f"{where(path, column)}: more than 2**31 distinct values; no id table could hold "
                                   "them (hash them into fewer ids first)")
         self.codes.add(at.astype(np.int32)[codes])
+        return keep
 
     def factorize(self, series: pd.Series, path, column) -> tuple[np.ndarray, np.ndarray]:
         """One piece as (codes, distinct values in order of first appearance), checked; ids by default."""
