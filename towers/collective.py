@@ -77,6 +77,12 @@ def summed(values):
     return out.numpy() if as_numpy else out
 
 
+def from_first(tensor: torch.Tensor) -> None:
+    """Overwrite the tensor in place with process 0's (every process starts from the same weights)."""
+    if rank_and_size()[1] > 1:
+        _collective(lambda: dist.broadcast(tensor, 0))
+
+
 def largest(value: int) -> int:
     """The largest of one whole number over processes."""
     if rank_and_size()[1] == 1:
@@ -84,17 +90,6 @@ def largest(value: int) -> int:
     t = torch.tensor([value], dtype=torch.int64)
     _collective(lambda: dist.all_reduce(t, op=dist.ReduceOp.MAX))
     return int(t)
-
-
-def gather_objects(value) -> list:
-    """Every process's value (plain data: arrays of ids, numbers), in rank order. Pickled between the
-    processes of one run only, never read from a file."""
-    rank, world = rank_and_size()
-    if world == 1:
-        return [value]
-    out = [None] * world
-    _collective(lambda: dist.all_gather_object(out, value))
-    return out
 
 
 def gathered_at_first(part: torch.Tensor) -> torch.Tensor | None:

@@ -21,7 +21,7 @@ import torch
 import torch.distributed as dist
 import torch.nn as nn
 
-from towers.collective import gather_all, peer_failure, rank_and_size  # noqa: F401  (re-exported for training)
+from towers.collective import from_first, gather_all, peer_failure, rank_and_size, summed  # noqa: F401  (re-exported)
 from towers.errors import TowersError
 from towers.evaluation.shares import Share
 
@@ -50,9 +50,7 @@ def mean_over_processes(value: float) -> float:
     """The mean of a number over all processes (the epoch loss each one saw on its shard)."""
     if not dist.is_initialized():
         return value
-    t = torch.tensor([value], dtype=torch.float64)
-    dist.all_reduce(t)
-    return float(t) / dist.get_world_size()
+    return float(summed(torch.tensor([value], dtype=torch.float64))[0]) / dist.get_world_size()
 
 
 def evaluation_share(divided: bool = False) -> Share | None:
@@ -91,7 +89,7 @@ class GradientExchange:
         self.sparse = [id(q) in sparse for q in self.params]
         with torch.no_grad():  # every process starts from process 0's weights, as DDP makes sure of
             for q in self.params:
-                dist.broadcast(q.data, 0)
+                from_first(q.data)
 
     def __call__(self) -> None:
         world = dist.get_world_size()

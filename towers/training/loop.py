@@ -34,7 +34,6 @@ from towers.model.towers import Tower, TwoTowerModel
 from towers.training.distributed import (
     GradientExchange,
     mean_over_processes,
-    peer_failure,
     rank_and_size,
 )
 from towers.training.negatives import NegativeSampler, log_batch_share
@@ -393,12 +392,8 @@ def fit(model: TwoTowerModel, data: Prepared, cfg: Config, checkpoint_dir: Path 
 
     with trainer.stop:
         while epoch <= tcfg.epochs:
-            try:
+            try:  # a peer process gone surfaces from the collectives as peer_failure's line (collective.py)
                 loss = trainer.run_epoch(epoch, bar, order, start_step, done_loss)
-            except RuntimeError as exc:  # a collective failed: a peer process is gone
-                if trainer.world > 1:
-                    raise peer_failure(exc) from None
-                raise
             except Interrupted as stop:
                 save(False, (stop.epoch, stop.step, stop.order, stop.loss_so_far))
                 raise TrainingInterrupted(f"{label} training interrupted at epoch {stop.epoch}, step {stop.step}; "
