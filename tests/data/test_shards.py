@@ -223,3 +223,28 @@ def test_two_workers_train_on_divided_data_like_one_process(small_store, tmp_pat
         for metric in ("recall@20", "ndcg@20"):
             a, b = m1["warm"][model][metric], m2["warm"][model][metric]
             assert abs(b - a) / a < 0.10, (model, metric, a, b)
+
+
+@pytest.mark.slow  # torchrun processes
+def test_a_process_without_users_of_its_own_still_takes_part(tmp_path):
+    """One user in the whole log: one process holds every pair, the other none; the run ends as one process's
+    does (the same held-out pairs counted, the same note about them)."""
+    rng = np.random.default_rng(0)
+    n = 400
+    pd.DataFrame({"u": ["solo"] * n, "i": rng.integers(0, 60, n), "t": np.arange(n)}).to_csv(tmp_path / "log.csv",
+                                                                                          index=False)
+    (tmp_path / "solo.yaml").write_text(yaml.safe_dump({
+        "run": {"seed": 1, "threads": 1},
+        "interactions": {"path": "log.csv", "query_column": "u", "candidate_column": "i", "time_column": "t"},
+        "model": {"dim": 4, "hidden": [8]}, "training": {"loss": "softmax", "epochs": 2, "batch_size": 64},
+        "evaluation": {"split": "user_recent"}, "report": {"enabled": False}}))
+    env = dict(os.environ, OMP_NUM_THREADS="1", PYTHONPATH=os.pathsep.join([str(ROOT), os.environ.get("PYTHONPATH", "")]))
+    out = {}
+    for name, extra in (("one", []), ("two", ["--workers", "2"])):
+        proc = subprocess.run([sys.executable, "-m", "towers", "train", "solo.yaml", "--out", name, *extra],
+                              capture_output=True, text=True, timeout=600, env=env, cwd=tmp_path)
+        assert proc.returncode == 0, proc.stderr[-2000:]
+        out[name] = json.loads((tmp_path / name / "metrics.json").read_text())
+    assert out["two"]["notes"] == out["one"]["notes"]
+    assert out["two"]["warm"] == out["one"]["warm"]
+    assert not any(out["two"]["warm"].values())  # nothing left to rank: every item of the user is known

@@ -291,7 +291,7 @@ def prepare(cfg: Config, previous=None) -> Prepared:
     pairs = _as_pairs(q_rows, c_rows, sel(target), sel(weight), sel(when), spill)
     q_rows = c_rows = target = weight = when = log.target = log.weight = log.time = None  # held by `pairs` now
     groups = sel(log.group)
-    if len(pairs) == 0:
+    if everywhere(np.array([len(pairs)]))[0] == 0:
         raise TowersError(f"{ic.path}: no interaction rows are left after matching ids to the feature tables; "
                           f"check the id columns")
 

@@ -242,7 +242,8 @@ def _reference_ranks(scorer: ReferenceScorer, h: HeldOut, k_max: int = 0):
         if k_max:
             val, idx = torch.topk(s, k_max, dim=1)
             tops.append(torch.where(val > float("-inf"), idx, -1))
-    return ahead, tied, candidates, (torch.cat(tops) if k_max else None)
+    top = (torch.cat(tops) if tops else torch.zeros(0, k_max, dtype=torch.int64)) if k_max else None
+    return ahead, tied, candidates, top
 
 
 def rank_positives(scorer, h: HeldOut, share: Share | None = None) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
@@ -357,10 +358,10 @@ def _summed_sparse(c: torch.Tensor) -> torch.Tensor:
                                    check_invariants=False).coalesce()
 
 
-def _empty_reason(slice_name: str, pairs: Pairs, cfg: Config) -> str:
-    """Why a slice has nothing to score, in words a user can act on."""
+def _empty_reason(slice_name: str, n_pairs: int, cfg: Config) -> str:
+    """Why a slice of n_pairs held-out pairs (of every process) has nothing to score, in words a user can act on."""
     ev = cfg.evaluation
-    if not len(pairs):
+    if not n_pairs:
         if slice_name == "warm" and ev.test_fraction == 0:
             return "no test pairs: evaluation.test_fraction is 0; raise it to measure the models"
         return "no test pairs: the split held none out; raise evaluation.test_fraction or add data"
@@ -518,7 +519,7 @@ def evaluate_slices(scorers: dict, data: SplitPairs, cfg: Config, event_vectors:
             else:
                 out[slice_name][name] = {}
         if not any(out[slice_name].values()):
-            notes[slice_name] = _empty_reason(slice_name, raw, cfg)
+            notes[slice_name] = _empty_reason(slice_name, pairs_in(raw), cfg)
     for name, info in (reference_info or {}).items():
         if "skipped" in info:
             notes[name] = f"{name} skipped: {info['skipped']}"
