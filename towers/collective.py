@@ -92,6 +92,35 @@ def largest(value: int) -> int:
     return int(t)
 
 
+def gather_objects(value) -> list:
+    """Every process's value (plain data: arrays of ids and numbers), in rank order. Pickled between the
+    processes of one run only, never read from a file."""
+    rank, world = rank_and_size()
+    if world == 1:
+        return [value]
+    out = [None] * world
+    _collective(lambda: dist.all_gather_object(out, value))
+    return out
+
+
+class Exchange:
+    """Rows sent to the process that owns them: each process gets the rows it owns from every process,
+    in rank order, each process's rows in their order there (one all_to_all a column)."""
+
+    def __init__(self, owner: np.ndarray):
+        rank, world = rank_and_size()
+        self.order = np.argsort(owner, kind="stable")
+        self.send = np.bincount(owner, minlength=world).tolist()
+        sent = gather_all(torch.tensor(self.send, dtype=torch.int64))  # what every process sends to every process
+        self.receive = [int(counts[rank]) for counts in sent]
+
+    def __call__(self, values: np.ndarray) -> np.ndarray:
+        part = torch.from_numpy(np.ascontiguousarray(values[self.order]))
+        out = torch.empty(sum(self.receive), dtype=part.dtype)
+        _collective(lambda: dist.all_to_all_single(out, part, self.receive, self.send))
+        return out.numpy()
+
+
 def gathered_at_first(part: torch.Tensor) -> torch.Tensor | None:
     """Every process's 1-D tensor one after another, in rank order, at process 0 only (None elsewhere):
     what only process 0 writes, without a copy of all of it in every process."""

@@ -52,18 +52,21 @@ def _config(store, folder, **evaluation) -> C.Config:
     return C.load(path)
 
 
-def test_every_row_goes_to_one_process_and_a_user_never_spans_two():
-    ids = np.array([f"c{i % 997}" for i in range(20000)], dtype=object)
-    codes, uniques = pd.factorize(ids)
-    masks = [Shard(r, 3).mine(codes, np.asarray(uniques, dtype=object)) for r in range(3)]
-    assert (np.sum(masks, axis=0) == 1).all()
-    for m in masks:  # whole users: a user's rows all in one mask
-        inside, outside = set(ids[m]), set(ids[~m])
-        assert not inside & outside
+def test_every_user_goes_to_one_process_and_the_hash_spreads_them():
+    ids = np.array([f"c{i}" for i in range(997)], dtype=object)
+    who = owners(ids, 3)
+    assert set(np.unique(who)) == {0, 1, 2}
     # the hash spreads 997 users about evenly: each share within 4 standard deviations of 997/3
     # (binomial, sd = sqrt(997 * 1/3 * 2/3) = 14.9)
-    sizes = [len(set(ids[m])) for m in masks]
+    sizes = np.bincount(who, minlength=3)
     assert all(abs(s - 997 / 3) < 4 * 14.9 for s in sizes), sizes
+
+
+def test_units_are_dealt_out_in_turn():
+    turns = [Shard(r, 3).turns() for r in range(3)]
+    taken = [[t() for _ in range(8)] for t in turns]
+    assert [sum(col) for col in zip(*taken)] == [1] * 8  # each unit read by exactly one process
+    assert taken[1] == [False, True, False, False, True, False, False, True] and turns[1].unit == 7
 
 
 def test_owners_agree_for_the_same_ids_in_any_order_or_piece():
@@ -73,19 +76,6 @@ def test_owners_agree_for_the_same_ids_in_any_order_or_piece():
     assert (owners(ids[shuffled], 4) == whole[shuffled]).all()
     assert (owners(ids[:100], 4) == whole[:100]).all()
     assert set(np.unique(whole)) == {0, 1, 2, 3}
-
-
-def test_shards_read_the_whole_log_between_them_with_the_one_process_numbering(small_store, tmp_path):
-    cfg = _config(small_store, tmp_path)
-    whole = read_interactions(cfg)
-    rows = Counter()
-    for r in range(3):
-        part = read_interactions(cfg, shard=Shard(r, 3))
-        # every process numbers every distinct id alike: the one-process numbering
-        assert (part.query_ids.uniques == whole.query_ids.uniques).all()
-        assert (part.candidate_ids.uniques == whole.candidate_ids.uniques).all()
-        rows.update(zip(part.query.tolist(), part.candidate.tolist(), part.time.tolist()))
-    assert rows == Counter(zip(whole.query.tolist(), whole.candidate.tolist(), whole.time.tolist()))
 
 
 def test_runs_that_need_every_event_read_the_whole_log(small_store, tmp_path):
@@ -106,7 +96,14 @@ from towers.evaluation.protocol import evaluate_slices, popularity_scorer, refer
 from towers.data.groups import group_labels
 from towers.training import distributed
 distributed.start()
+import towers.data.prepare as P
+from towers.data.prepare import read_interactions
+from towers.data.shards import log_shard
+P.LOG_PIECE_ROWS = 700  # the log in units of 700 rows, dealt out in turns
 cfg = C.load(sys.argv[1])
+log = read_interactions(cfg, shard=log_shard(cfg))
+read = {"q_ids": log.query_ids.uniques, "c_ids": log.candidate_ids.uniques, "query": log.query, "candidate": log.candidate,
+        "time": log.time}
 data = prepare(cfg)
 share = distributed.evaluation_share(divided=data.divided)
 n_q, n_c = len(data.queries.ids), len(data.candidates.ids)
@@ -117,7 +114,8 @@ groups = group_labels(cfg.with_section("evaluation", group_metrics_by=["age_band
                       data.candidates.ids)
 grouped = evaluate_slices(scorers | refs, data.split, cfg, reference_info=info, groups=groups, share=share)
 s = data.split
-torch.save({"divided": data.divided, "metrics": metrics, "grouped": grouped, "history": data.queries.block["(history)"],
+torch.save({"divided": data.divided, "read": read, "metrics": metrics, "grouped": grouped,
+            "history": data.queries.block["(history)"],
             "warm": s.warm_items, "cold_items": s.cold_items, "cold_users": s.cold_users,
             "pairs": {n: torch.stack([getattr(s, n).query, getattr(s, n).candidate, getattr(s, n).time])
                       for n in ("train", "valid", "test", "cold_test", "cold_user_test")}},
@@ -141,6 +139,41 @@ def two_processes(small_store, tmp_path_factory):
     errors = [p.communicate(timeout=300)[1] for p in procs]
     assert [p.returncode for p in procs] == [0, 0], [e[-2000:] for e in errors]
     return cfg, [torch.load(folder / f"rank{r}.pt", weights_only=False) for r in range(2)]
+
+
+def test_processes_read_the_whole_log_between_them_numbered_and_ordered_as_one_process(two_processes):
+    """Each process reads every other unit of the log; between them they hold every row once, each its own
+    users' rows in the log's order, every process with the one-process id numbering."""
+    cfg, parts = two_processes
+    whole = read_interactions(cfg)
+    rows = Counter()
+    for p in parts:
+        got = p["read"]
+        assert (got["q_ids"] == whole.query_ids.uniques).all() and (got["c_ids"] == whole.candidate_ids.uniques).all()
+        # its users' rows, in the log's order: the whole log's rows of those users, in order
+        mine = np.isin(whole.query, np.unique(got["query"]))
+        assert (got["query"] == whole.query[mine]).all() and (got["candidate"] == whole.candidate[mine]).all()
+        assert (got["time"] == whole.time[mine]).all()
+        rows.update(got["query"].tolist())
+    assert rows == Counter(whole.query.tolist())  # no user in two processes, no row lost
+
+
+def test_a_log_of_several_parquet_row_groups_is_read_in_turns(tmp_path):
+    """The first row of each piece counts the row groups another process reads (errors name the file's row)."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from towers.data.tables import read_table_chunks
+
+    table = pa.table({"u": np.arange(10), "i": np.arange(10) * 2})
+    pq.write_table(table, tmp_path / "log.parquet", row_group_size=3)  # groups of 3, 3, 3, 1 rows
+    got = [(start, df["u"].tolist()) for start, df in
+           read_table_chunks(tmp_path / "log.parquet", ["u", "i"], 2, take=Shard(1, 2).turns())]
+    assert got == [(3, [3, 4]), (5, [5]), (9, [9])]
+    csv = tmp_path / "log.csv"
+    table.to_pandas().to_csv(csv, index=False)
+    got = [(start, df["u"].tolist()) for start, df in read_table_chunks(csv, ["u", "i"], 4, take=Shard(0, 2).turns())]
+    assert got == [(0, [0, 1, 2, 3]), (8, [8, 9])]
 
 
 def _rows(t: torch.Tensor) -> Counter:

@@ -11,7 +11,7 @@ import numpy as np
 import pandas as pd
 import torch
 
-from towers.collective import across, largest, rank_and_size
+from towers.collective import Exchange, across, largest, rank_and_size
 from towers.config import Config
 from towers.data.baskets import collapse_repeats, derive_pairs
 from towers.data.context import ContextEncoders
@@ -20,7 +20,7 @@ from towers.data.encoders import make_encoder
 from towers.data.features import FeatureBlock, SideEncoders, SideTable, take
 from towers.data.history import HISTORY, history_column
 from towers.data.pairs import Pairs, SplitPairs
-from towers.data.shards import Shard, log_shard, whole_log_reason
+from towers.data.shards import Shard, log_shard, merged_ids, owners, whole_log_reason
 from towers.data.spill import Column, Spill
 from towers.data.splits import HoldOut, Split, make_split
 from towers.data.tables import (
@@ -118,8 +118,9 @@ def read_interactions(cfg: Config, split: bool = False, spill: Spill | None = No
     With interactions.pairs_from baskets or sessions the rows are the derived item pairs (data/baskets.py);
     split: place whole baskets on the sides first (each row then carries its side), else all on training.
     With count_repeats each distinct (query, candidate) is one row weighted by its count. spill: where
-    the columns of a log read from files go (data/spill.py; default in memory). shard: keep only the rows
-    of this process's users (data/shards.py); every row is still checked, so errors name the file's row.
+    the columns of a log read from files go (data/spill.py; default in memory). shard: read this process's
+    share of the log and keep the rows of its users, in the log's order (data/shards.py); the rows it
+    reads are checked as they are read, so errors name the file's row.
     """
     spill = spill or Spill()
     ic = cfg.interactions
@@ -141,19 +142,23 @@ def read_interactions(cfg: Config, split: bool = False, spill: Spill | None = No
         ("target", ic.target_column, np.float64), ("weight", ic.weight_column, np.float64),
         ("time", ic.time_column, np.int64)) if column}
     contexts: list[pd.DataFrame] = []
+    turns = None if shard is None else shard.turns()
+    units = None if shard is None else Column(spill, np.int32)  # the unit each row was read in
     for file in table_files(path):
-        for start, df in read_table_chunks(file, wanted, LOG_PIECE_ROWS):
+        for start, df in read_table_chunks(file, wanted, LOG_PIECE_ROWS, take=turns):
             with rows_after(start):
-                mine = q.add(df[ic.query_column], file, ic.query_column, None if shard is None else shard.mine)
-                c.add(df[ic.candidate_column], file, ic.candidate_column, mine)
+                q.add(df[ic.query_column], file, ic.query_column)
+                c.add(df[ic.candidate_column], file, ic.candidate_column)
                 if ic.target_column:
-                    columns["target"].add(_kept(_targets(df[ic.target_column], file, ic.target_column, cfg), mine))
+                    columns["target"].add(_targets(df[ic.target_column], file, ic.target_column, cfg))
                 if ic.weight_column:
-                    columns["weight"].add(_kept(_weights(df[ic.weight_column], file, ic.weight_column), mine))
+                    columns["weight"].add(_weights(df[ic.weight_column], file, ic.weight_column))
                 if ic.time_column:
-                    columns["time"].add(_kept(time_column(df[ic.time_column], file, ic.time_column), mine))
+                    columns["time"].add(time_column(df[ic.time_column], file, ic.time_column))
                 if ic.group_column:
-                    groups.add(df[ic.group_column], file, ic.group_column, mine)
+                    groups.add(df[ic.group_column], file, ic.group_column)
+                if units is not None:
+                    units.add(np.full(len(df), turns.unit, np.int32))
                 if context_cols:
                     piece = df[context_cols].reset_index(drop=True)
                     for spec in ic.context:  # every value checked in file order, so an error names the log's row
@@ -162,16 +167,44 @@ def read_interactions(cfg: Config, split: bool = False, spill: Spill | None = No
     release_read_buffers()
     joined = {name: columns[name].finish() if name in columns else None for name in ("target", "weight", "time")}
     context = pd.concat(contexts, ignore_index=True) if contexts else None
-    return Log(IdColumn(*q.finish()), IdColumn(*c.finish()), joined["target"], joined["weight"], joined["time"],
-               context, groups.finish()[0] if ic.group_column else None)
+    log = Log(IdColumn(*q.finish()), IdColumn(*c.finish()), joined["target"], joined["weight"], joined["time"],
+              context, groups.finish() if ic.group_column else None)
+    if shard is not None:
+        return _to_owners(log, units.finish(), shard, spill)
+    if log.group is not None:
+        log.group = log.group[0]
+    return log
+
+
+def _to_owners(log: Log, unit: np.ndarray, shard: Shard, spill: Spill) -> Log:
+    """This process's share of the log (its units) as its users' rows of the whole log, in the log's order.
+
+    The ids are numbered alike in every process (shards.merged_ids), each row goes to its user's process
+    (collective.Exchange), and the rows arrive grouped by the process that read them; sorting them by
+    unit puts them back in the log's order (a unit's rows come from one process, in order).
+    """
+    def numbered(codes, uniques):
+        ids = merged_ids(codes, uniques, unit)
+        return spill.lookup(positions_in(ids, uniques).astype(np.int32), codes), ids
+
+    q_codes, q_ids = numbered(log.query_ids.codes, log.query_ids.uniques)
+    c_codes, c_ids = numbered(log.candidate_ids.codes, log.candidate_ids.uniques)
+    g_codes = None if log.group is None else numbered(*log.group)[0]
+    target, weight, when = log.target, log.weight, log.time
+    log = None  # its columns are renumbered now: free them as they are sent
+    exchange = Exchange(spill.lookup(owners(q_ids, shard.world).astype(np.int32), q_codes))
+    back = np.argsort(exchange(unit), kind="stable")
+
+    def moved(values):
+        if values is None:
+            return None
+        here = exchange(values)[back]
+        return spill.copy(here) if spill.on_disk else here
+    return Log(IdColumn(moved(q_codes), q_ids), IdColumn(moved(c_codes), c_ids), *(moved(a) for a in (target, weight, when)),
+               None, moved(g_codes))
 
 
 LOG_PIECE_ROWS = 1_000_000  # rows of the log read at a time: a piece is tens of MB, not the whole log
-
-
-def _kept(values: np.ndarray, mine: np.ndarray | None) -> np.ndarray:
-    """A checked column's values on this process's rows (all rows when the log is not divided)."""
-    return values if mine is None else values[mine]
 
 
 def _targets(series: pd.Series, path, column: str, cfg: Config) -> np.ndarray:

@@ -125,23 +125,26 @@ def _raise_if_arrow(exc: Exception, path: Path) -> None:
         raise TowersError(f"{path}: cannot be read as parquet ({first}); re-export the table") from None
 
 
-def read_table_chunks(path: str | Path, columns: list[str], rows: int):
+def read_table_chunks(path: str | Path, columns: list[str], rows: int, take=None):
     """Yield (first row, DataFrame of `columns`) pieces of a table, `rows` rows at a time.
 
     Only one piece is in memory at a time: parquet is read one batch at a time and CSV through pandas'
     chunked reader (each piece's types inferred on its own rows). The checks and messages are
     read_table's; an empty table yields nothing (a CSV with a header and no rows is an error, as in
-    read_table).
+    read_table). take: called once for each unit of the file in order (a parquet row group, whose
+    batches are then all read or none is; a CSV piece, which pandas parses either way), it says whether
+    to yield that unit's pieces; the first rows count every unit (a data-parallel process's share).
     """
     path = Path(path)
     suffix = check_file(path)
+    take = take or (lambda: True)
     if suffix in (".parquet", ".pq"):
-        yield from _parquet_pieces(path, suffix, columns, rows)
+        yield from _parquet_pieces(path, suffix, columns, rows, take)
     else:
-        yield from _csv_pieces(path, suffix, columns, rows)
+        yield from _csv_pieces(path, suffix, columns, rows, take)
 
 
-def _parquet_pieces(path: Path, suffix: str, columns: list[str], rows: int):
+def _parquet_pieces(path: Path, suffix: str, columns: list[str], rows: int, take):
     import pyarrow.parquet as pq
 
     try:
@@ -149,8 +152,16 @@ def _parquet_pieces(path: Path, suffix: str, columns: list[str], rows: int):
         require_columns(parquet.schema_arrow.names, columns, path)
         # one reader a row group: a single reader over the whole file keeps what it read in arrow's pool
         # (0.29 GiB after 30M events of scripts/bench's scale log), so memory would grow with the file
-        batches = (batch for group in range(parquet.metadata.num_row_groups)
-                   for batch in parquet.iter_batches(batch_size=rows, row_groups=[group], columns=columns))
+        group_rows = [parquet.metadata.row_group(g).num_rows for g in range(parquet.metadata.num_row_groups)]
+
+        def groups():
+            before = 0
+            for group, n in enumerate(group_rows):
+                if take():
+                    yield from ((before, batch) for batch in
+                                parquet.iter_batches(batch_size=rows, row_groups=[group], columns=columns))
+                before += n
+        batches = groups()
     except TowersError:
         raise
     except (ValueError, OSError) as exc:
@@ -160,22 +171,25 @@ def _parquet_pieces(path: Path, suffix: str, columns: list[str], rows: int):
     except Exception as exc:
         _raise_if_arrow(exc, path)
         raise
-    start = 0
+    start, group_start = 0, None
     while True:
         try:
-            batch = next(batches, None)
+            item = next(batches, None)
         except Exception as exc:
             _raise_if_arrow(exc, path)
             raise
-        if batch is None:
+        if item is None:
             return
+        before, batch = item
+        if before != group_start:  # the first batch of a row group
+            start, group_start = before, before
         df = _plain_frame(batch.to_pandas())
         df.columns = [str(c).strip() for c in df.columns]
         yield start, df[[str(c).strip() for c in columns]]
         start += len(df)
 
 
-def _csv_pieces(path: Path, suffix: str, columns: list[str], rows: int):
+def _csv_pieces(path: Path, suffix: str, columns: list[str], rows: int, take):
     start = 0
     with _read_errors(path, suffix), pd.read_csv(path, sep="\t" if suffix == ".tsv" else ",", encoding="utf-8-sig",
                                                  skipinitialspace=False, chunksize=rows) as reader:
@@ -187,7 +201,8 @@ def _csv_pieces(path: Path, suffix: str, columns: list[str], rows: int):
             else:
                 df.columns = [str(c).strip() for c in df.columns]
             df = df[columns].reset_index(drop=True)
-            yield start, df
+            if take():
+                yield start, df
             start += len(df)
     if start == 0:
         raise TowersError(f"{path}: the table has a header but no rows; export the data rows too")
