@@ -109,7 +109,9 @@ class Exchange:
 
     def __init__(self, owner: np.ndarray):
         rank, world = rank_and_size()
-        self.order = np.argsort(owner, kind="stable")
+        order = np.argsort(owner, kind="stable")
+        self.order = order.astype(np.int32) if len(order) < 2 ** 31 else order  # half the memory for a long log
+        del order
         self.send = np.bincount(owner, minlength=world).tolist()
         sent = gather_all(torch.tensor(self.send, dtype=torch.int64))  # what every process sends to every process
         self.receive = [int(counts[rank]) for counts in sent]

@@ -188,20 +188,24 @@ def _to_owners(log: Log, unit: np.ndarray, shard: Shard, spill: Spill) -> Log:
         return spill.lookup(positions_in(ids, uniques).astype(np.int32), codes), ids
 
     q_codes, q_ids = numbered(log.query_ids.codes, log.query_ids.uniques)
+    log.query_ids = None
     c_codes, c_ids = numbered(log.candidate_ids.codes, log.candidate_ids.uniques)
+    log.candidate_ids = None
     g_codes = None if log.group is None else numbered(*log.group)[0]
-    target, weight, when = log.target, log.weight, log.time
-    log = None  # its columns are renumbered now: free them as they are sent
-    exchange = Exchange(spill.lookup(owners(q_ids, shard.world).astype(np.int32), q_codes))
+    columns = {"query": q_codes, "candidate": c_codes, "target": log.target, "weight": log.weight, "time": log.time,
+               "group": g_codes}
+    log = q_codes = c_codes = g_codes = None  # each column is freed once it is sent
+    exchange = Exchange(spill.lookup(owners(q_ids, shard.world).astype(np.int32), columns["query"]))
     back = np.argsort(exchange(unit), kind="stable")
-
-    def moved(values):
-        if values is None:
-            return None
-        here = exchange(values)[back]
-        return spill.copy(here) if spill.on_disk else here
-    return Log(IdColumn(moved(q_codes), q_ids), IdColumn(moved(c_codes), c_ids), *(moved(a) for a in (target, weight, when)),
-               None, moved(g_codes))
+    back = back.astype(np.int32) if len(back) < 2 ** 31 else back
+    for name in columns:
+        values, columns[name] = columns[name], None
+        if values is not None:
+            here = exchange(values)[back]
+            columns[name] = spill.copy(here) if spill.on_disk else here
+            del values, here
+    return Log(IdColumn(columns["query"], q_ids), IdColumn(columns["candidate"], c_ids), columns["target"],
+               columns["weight"], columns["time"], None, columns["group"])
 
 
 LOG_PIECE_ROWS = 1_000_000  # rows of the log read at a time: a piece is tens of MB, not the whole log
