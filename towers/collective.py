@@ -13,6 +13,7 @@ import torch
 import torch.distributed as dist
 
 from towers.errors import TowersError
+from towers.memory import index_dtype
 
 
 def rank_and_size() -> tuple[int, int]:
@@ -65,9 +66,12 @@ def joined(part: torch.Tensor) -> torch.Tensor:
 
 
 def summed(values):
-    """The element-wise sum over processes of a numpy array or tensor (a copy; bool arrays: any process's True)."""
+    """The sum over processes of a number, or the element-wise sum of a numpy array or tensor (a copy; bool
+    arrays: any process's True)."""
     if rank_and_size()[1] == 1:
         return values
+    if isinstance(values, (int, float)):
+        return type(values)(summed(torch.tensor([values], dtype=torch.float64))[0])
     as_numpy = isinstance(values, np.ndarray)
     t = torch.from_numpy(np.ascontiguousarray(values)) if as_numpy else values
     kind = t.dtype
@@ -109,9 +113,7 @@ class Exchange:
 
     def __init__(self, owner: np.ndarray):
         rank, world = rank_and_size()
-        order = np.argsort(owner, kind="stable")
-        self.order = order.astype(np.int32) if len(order) < 2 ** 31 else order  # half the memory for a long log
-        del order
+        self.order = np.argsort(owner, kind="stable").astype(index_dtype(len(owner)))  # 4 bytes a row where it fits
         self.send = np.bincount(owner, minlength=world).tolist()
         sent = gather_all(torch.tensor(self.send, dtype=torch.int64))  # what every process sends to every process
         self.receive = [int(counts[rank]) for counts in sent]

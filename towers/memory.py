@@ -8,6 +8,8 @@ blocks in the heap for the next step (`reuse_freed_memory`, training's run.reuse
 memory is unchanged (it is the same high-water mark). Reading a long log is the opposite case: its
 freed pieces are not reused by the later arrays of the log's length, so `trim_freed_memory` hands
 them back. Elsewhere than glibc both do nothing.
+
+`index_dtype` picks 4-byte positions into a long array where they fit, half the memory of 8.
 """
 
 from __future__ import annotations
@@ -15,6 +17,8 @@ from __future__ import annotations
 import ctypes
 import ctypes.util
 import sys
+
+import numpy as np
 
 M_TRIM_THRESHOLD, M_MMAP_THRESHOLD = -1, -3  # mallopt parameter numbers in glibc's malloc.h
 MMAP_THRESHOLD = 32 << 20  # glibc's largest allowed value on 64-bit systems
@@ -51,3 +55,9 @@ def trim_freed_memory() -> None:
     trim = _glibc_function("malloc_trim")
     if trim is not None:
         trim(0)
+
+
+def index_dtype(n: int):
+    """The narrowest integer type for positions into n entries: int32 where it fits (half the memory of
+    int64 for a long log), else int64."""
+    return np.int32 if n < 2 ** 31 else np.int64

@@ -34,6 +34,7 @@ from towers.data.tables import (
 )
 from towers.data.vocabulary import extend_context, extend_side
 from towers.errors import TowersError, rows_after, where
+from towers.memory import index_dtype
 
 
 @dataclass
@@ -167,16 +168,13 @@ def read_interactions(cfg: Config, split: bool = False, spill: Spill | None = No
     release_read_buffers()
     joined = {name: columns[name].finish() if name in columns else None for name in ("target", "weight", "time")}
     context = pd.concat(contexts, ignore_index=True) if contexts else None
+    group_codes, group_values = groups.finish() if ic.group_column else (None, None)
     log = Log(IdColumn(*q.finish()), IdColumn(*c.finish()), joined["target"], joined["weight"], joined["time"],
-              context, groups.finish() if ic.group_column else None)
-    if shard is not None:
-        return _to_owners(log, units.finish(), shard, spill)
-    if log.group is not None:
-        log.group = log.group[0]
-    return log
+              context, group_codes)
+    return log if shard is None else _to_owners(log, group_values, units.finish(), shard, spill)
 
 
-def _to_owners(log: Log, unit: np.ndarray, shard: Shard, spill: Spill) -> Log:
+def _to_owners(log: Log, group_values: np.ndarray | None, unit: np.ndarray, shard: Shard, spill: Spill) -> Log:
     """This process's share of the log (its units) as its users' rows of the whole log, in the log's order.
 
     The ids are numbered alike in every process (shards.merged_ids), each row goes to its user's process
@@ -191,13 +189,14 @@ def _to_owners(log: Log, unit: np.ndarray, shard: Shard, spill: Spill) -> Log:
     log.query_ids = None
     c_codes, c_ids = numbered(log.candidate_ids.codes, log.candidate_ids.uniques)
     log.candidate_ids = None
-    g_codes = None if log.group is None else numbered(*log.group)[0]
+    g_codes = None if log.group is None else numbered(log.group, group_values)[0]
     columns = {"query": q_codes, "candidate": c_codes, "target": log.target, "weight": log.weight, "time": log.time,
                "group": g_codes}
     log = q_codes = c_codes = g_codes = None  # each column is freed once it is sent
-    exchange = Exchange(spill.lookup(owners(q_ids, shard.world).astype(np.int32), columns["query"]))
-    back = np.argsort(exchange(unit), kind="stable")
-    back = back.astype(np.int32) if len(back) < 2 ** 31 else back
+    exchange = Exchange(spill.lookup(owners(q_ids, shard.world).astype(np.int16), columns["query"]))  # int16: a radix sort
+    arrived = exchange(unit)
+    back = np.argsort(arrived, kind="stable").astype(index_dtype(len(arrived)))
+    arrived = None
     for name in columns:
         values, columns[name] = columns[name], None
         if values is not None:
@@ -321,14 +320,14 @@ def prepare(cfg: Config, previous=None) -> Prepared:
         q_rows = spill.where(_catalog_rows(q_log, q_ids, spill), keep)
         c_rows = spill.where(_catalog_rows(c_log, c_ids, spill), keep)
     q_log = c_log = log.query_ids = log.candidate_ids = None  # the codes are rows now: free them
-    dropped = int(everywhere(np.array([(~keep).sum()]))[0])
+    dropped = everywhere(int((~keep).sum()))
     if dropped:
         notes.append(f"dropped {dropped} interaction rows whose ids have no feature row (missing_rows: drop)")
     sel = lambda a: None if a is None else spill.where(a, keep)  # noqa: E731
     pairs = _as_pairs(q_rows, c_rows, sel(target), sel(weight), sel(when), spill)
     q_rows = c_rows = target = weight = when = log.target = log.weight = log.time = None  # held by `pairs` now
     groups = sel(log.group)
-    if everywhere(np.array([len(pairs)]))[0] == 0:
+    if everywhere(len(pairs)) == 0:
         raise TowersError(f"{ic.path}: no interaction rows are left after matching ids to the feature tables; "
                           f"check the id columns")
 
@@ -347,7 +346,7 @@ def prepare(cfg: Config, previous=None) -> Prepared:
     split: Split = make_split(pairs, len(c_ids), cfg.evaluation, cfg.run.seed, cold_eligible=cold_items,
                               item_item=item_item, groups=groups, n_queries=len(q_ids), cold_user_eligible=cold_users,
                               sides=sel(log.side), everywhere=everywhere)
-    if everywhere(np.array([len(split.train)]))[0] == 0:
+    if everywhere(len(split.train)) == 0:
         raise TowersError(f"{ic.path}: the split leaves no training pairs; lower evaluation fractions or add data")
     context_encoders = None
     if log.context is not None:
@@ -397,7 +396,7 @@ def prepare(cfg: Config, previous=None) -> Prepared:
     if item_item:
         warm[train.query] = True
     warm = everywhere(warm)
-    _warn_small_data(cfg, int(everywhere(np.array([len(train)]))[0]), len(q_ids), len(c_ids), notes)
+    _warn_small_data(cfg, everywhere(len(train)), len(q_ids), len(c_ids), notes)
     prepared = Prepared(q_side, c_side, train, valid, test, cold_test, split.cold_items, cold_user_test,
                         split.cold_users, warm, item_item, notes, context=context_encoders, started_from=started_from,
                         divided=shard is not None)

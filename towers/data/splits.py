@@ -18,6 +18,7 @@ import torch
 
 from towers.config import EvaluationSection
 from towers.errors import TowersError
+from towers.memory import index_dtype
 
 TRAIN, VALID, TEST = 0, 1, 2
 PER_USER_SPLITS = ("user_share", "user_recent", "user_last")
@@ -82,7 +83,7 @@ def make_split(pairs, n_items: int, ev: EvaluationSection, seed: int, cold_eligi
     cold_test = np.flatnonzero(cold_items[c] & ~cold_q)
     cold_user_test = np.flatnonzero(cold_users[q] & ~cold_items[c])
     # int32 positions while the log allows: the slices' indices cost half as much for a long log
-    rest = np.flatnonzero(~touches_cold).astype(np.int32 if len(q) < 2 ** 31 else np.int64)
+    rest = np.flatnonzero(~touches_cold).astype(index_dtype(len(q)))
     # the warm rows' columns: the columns themselves when no row is cold (no copy of a long log)
     of_rest = (lambda a: a) if len(rest) == len(q) else (lambda a: a[rest])  # noqa: E731
     if sides is not None:
@@ -197,7 +198,7 @@ def global_sides(unit: np.ndarray | int, when: np.ndarray | None, ev: Evaluation
         order = np.argsort(_unit_time(unit, n_units, when), kind="stable")
     else:
         # int32 where it fits: the same order as rng.permutation(n_units), half the memory for a long log
-        order = rng.permutation(np.arange(n_units, dtype=np.int32 if n_units < 2 ** 31 else np.int64))
+        order = rng.permutation(np.arange(n_units, dtype=index_dtype(n_units)))
     n_test = int(round(ev.test_fraction * n_units))
     n_valid = int(round(ev.validation_fraction * (n_units - n_test)))
     unit_side = np.full(n_units, TRAIN, dtype=np.int8)
@@ -224,7 +225,7 @@ def _per_user_sides(unit: np.ndarray | int, q: np.ndarray, when: np.ndarray | No
     """
     n_units = _unit_count(unit)
     first = _unit_first_row(unit, n_units)
-    narrow = np.int32 if max(n_units, int(q.max(initial=0)) + 1) < 2 ** 31 else np.int64  # 4 bytes a unit where it fits
+    narrow = index_dtype(max(n_units, int(q.max(initial=0)) + 1))  # 4 bytes a unit where it fits
     owner = q[first].astype(narrow)
     by_time = ev.split in ("user_recent", "user_last")
     # by time, ascending by (owner, earliest time, first row), so a user's latest units come last; else a

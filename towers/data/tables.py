@@ -154,14 +154,16 @@ def _parquet_pieces(path: Path, suffix: str, columns: list[str], rows: int, take
         # (0.29 GiB after 30M events of scripts/bench's scale log), so memory would grow with the file
         group_rows = [parquet.metadata.row_group(g).num_rows for g in range(parquet.metadata.num_row_groups)]
 
-        def groups():
+        def batches():  # (first row in the file, batch) of the row groups taken
             before = 0
             for group, n in enumerate(group_rows):
                 if take():
-                    yield from ((before, batch) for batch in
-                                parquet.iter_batches(batch_size=rows, row_groups=[group], columns=columns))
-                before += n
-        batches = groups()
+                    for batch in parquet.iter_batches(batch_size=rows, row_groups=[group], columns=columns):
+                        yield before, batch
+                        before += batch.num_rows
+                else:
+                    before += n
+        pieces = batches()
     except TowersError:
         raise
     except (ValueError, OSError) as exc:
@@ -171,22 +173,18 @@ def _parquet_pieces(path: Path, suffix: str, columns: list[str], rows: int, take
     except Exception as exc:
         _raise_if_arrow(exc, path)
         raise
-    start, group_start = 0, None
     while True:
         try:
-            item = next(batches, None)
+            piece = next(pieces, None)
         except Exception as exc:
             _raise_if_arrow(exc, path)
             raise
-        if item is None:
+        if piece is None:
             return
-        before, batch = item
-        if before != group_start:  # the first batch of a row group
-            start, group_start = before, before
+        start, batch = piece
         df = _plain_frame(batch.to_pandas())
         df.columns = [str(c).strip() for c in df.columns]
         yield start, df[[str(c).strip() for c in columns]]
-        start += len(df)
 
 
 def _csv_pieces(path: Path, suffix: str, columns: list[str], rows: int, take):

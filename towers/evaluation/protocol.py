@@ -58,14 +58,13 @@ def popularity_scorer(train: Pairs, n_queries: int, n_items: int, explicit: bool
 
 def rating_metrics(scorer: Scorer, test: Pairs, share: Share | None = None) -> dict[str, float]:
     """RMSE and MAE of predicted targets on held-out pairs (share.divided: of every process's pairs)."""
-    pred = scorer.pairs(test.query, test.candidate)
-    if share is not None and share.divided:
-        w = test.weight if test.weight is not None else torch.ones(len(test))
-        pred, target, weight = (share.joined(t.float()) for t in (pred, test.target, w))
-        test = Pairs(torch.zeros(len(pred), dtype=torch.int64), torch.zeros(len(pred), dtype=torch.int64), target, weight)
-    if len(test) == 0:
+    pred, target, weight = scorer.pairs(test.query, test.candidate), test.target, test.weight
+    if share is not None and share.divided:  # every process's pairs (weights are configured alike in all)
+        pred, target = share.joined(pred), share.joined(target)
+        weight = None if weight is None else share.joined(weight)
+    if len(pred) == 0:
         return {}
-    return {"rmse": M.rmse(pred, test.target, test.weight), "mae": M.mae(pred, test.target, test.weight)}
+    return {"rmse": M.rmse(pred, target, weight), "mae": M.mae(pred, target, weight)}
 
 
 def _pair_keys(q: torch.Tensor, c: torch.Tensor, n_items: int) -> np.ndarray:
@@ -463,7 +462,7 @@ def evaluate_slices(scorers: dict, data: SplitPairs, cfg: Config, event_vectors:
     known = data.known() if data.test.context is not None else data.known_parts()
     slices = {"warm": (data.test, known, data.warm_items)}
     everywhere = across(share is not None and share.divided)  # a process's own part summed with the others'
-    pairs_in = lambda p: int(everywhere(torch.tensor([len(p)]))[0])  # noqa: E731
+    pairs_in = lambda p: everywhere(len(p))  # noqa: E731
     if pairs_in(data.cold_test):
         slices["cold"] = (data.cold_test, empty, data.cold_items)
     if pairs_in(data.cold_user_test):  # users held out whole: ranked over the warm items, nothing known of them

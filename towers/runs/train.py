@@ -15,7 +15,7 @@ from pathlib import Path
 import torch
 
 from towers import config as C
-from towers.collective import gathered_at_first, summed
+from towers.collective import across, gathered_at_first, rank_and_size
 from towers.data.context import sample_contexts, vectors_with_context
 from towers.data.embeddings_file import write_embeddings
 from towers.data.groups import group_labels
@@ -174,7 +174,7 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
                 init_from: str | Path | None, started: float, primary: bool,
                 on_round: Callable[[int, float | None], None] | None = None) -> dict:
     """Everything after the output folders are settled: prepare, train, evaluate, write partial, publish to out."""
-    if distributed.rank_and_size()[1] > 1:
+    if rank_and_size()[1] > 1:
         cfg = cfg.with_section("run", threads=distributed.threads_per_process(cfg.run.threads))
     apply_threads(cfg)
     torch.manual_seed(cfg.run.seed)
@@ -184,13 +184,13 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
     started_from = None if previous is None else {"run": str(Path(init_from).resolve()), "encoders": data.started_from}
     for note in data.notes:
         log(note)
-    sizes = [len(p) for p in (data.train, data.valid, data.test, data.cold_test, data.cold_user_test)]
-    if data.divided:  # every process's pairs counted
-        sizes = summed(torch.tensor(sizes)).tolist()
+    # every process's pairs counted when the log is divided
+    sizes = across(data.divided)(torch.tensor([len(p) for p in (data.train, data.valid, data.test, data.cold_test,
+                                                                 data.cold_user_test)])).tolist()
     log(f"data: {sizes[0]:,} training, {sizes[1]:,} validation, {sizes[2]:,} test, "
         f"{sizes[3]:,} cold-start pairs, {sizes[4]:,} cold-user pairs; "
         f"{len(data.queries.ids):,} queries, {len(data.candidates.ids):,} items"
-        + (f"; the users and their events divided among {distributed.rank_and_size()[1]} processes"
+        + (f"; the users and their events divided among {rank_and_size()[1]} processes"
            if data.divided else ""))
 
     model = build_model(data, cfg)

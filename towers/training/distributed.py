@@ -21,7 +21,7 @@ import torch
 import torch.distributed as dist
 import torch.nn as nn
 
-from towers.collective import from_first, gather_all, peer_failure, rank_and_size, summed  # noqa: F401  (re-exported)
+from towers.collective import from_first, gather_all, rank_and_size, summed
 from towers.errors import TowersError
 from towers.evaluation.shares import Share
 
@@ -50,7 +50,7 @@ def mean_over_processes(value: float) -> float:
     """The mean of a number over all processes (the epoch loss each one saw on its shard)."""
     if not dist.is_initialized():
         return value
-    return float(summed(torch.tensor([value], dtype=torch.float64))[0]) / dist.get_world_size()
+    return summed(float(value)) / dist.get_world_size()
 
 
 def evaluation_share(divided: bool = False) -> Share | None:

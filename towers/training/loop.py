@@ -21,7 +21,7 @@ import torch
 from tqdm import tqdm
 
 from towers.atomic import write_atomic
-from towers.collective import across, largest, summed
+from towers.collective import across, largest, rank_and_size, summed
 from towers.config import Config
 from towers.data.features import block_len, take
 from towers.data.history import HISTORY, without_targets
@@ -31,11 +31,7 @@ from towers.memory import reuse_freed_memory
 from towers.model.bundle import load_payload
 from towers.model.losses import in_batch_softmax_loss, logistic_loss, squared_loss
 from towers.model.towers import Tower, TwoTowerModel
-from towers.training.distributed import (
-    GradientExchange,
-    mean_over_processes,
-    rank_and_size,
-)
+from towers.training.distributed import GradientExchange, mean_over_processes
 from towers.training.negatives import NegativeSampler, log_batch_share
 from towers.training.objectives import (
     IdRowObjective,
@@ -174,14 +170,6 @@ class Trainer:
         and the epoch alone, so a resumed process draws the very order it was in."""
         return torch.Generator().manual_seed((self.cfg.run.seed * 1_000_003 + self.rank) * 1_000_003 + epoch)
 
-    def empty_step(self) -> None:
-        """A step with no pairs of this process's own: no gradient, but the exchange the others wait on."""
-        for opt in self.optimizers:
-            opt.zero_grad(set_to_none=True)
-        self.exchange()
-        for opt in self.optimizers:
-            opt.step()
-
     def batch_loss(self, idx: torch.Tensor) -> torch.Tensor:
         """Mean objective over one minibatch of training pairs (see module docstring)."""
         if self.softmax:
@@ -298,11 +286,9 @@ class Trainer:
             idx = order.span(s * n // steps, (s + 1) * n // steps) if self.divided else order.batch(s, bs)
             if self.world > 1 and not self.divided:  # this process's share of the global batch (distributed.py)
                 idx = idx[self.rank::self.world]
-            if len(idx) == 0:  # a process with fewer pairs than steps: no gradient this step, the exchange still runs
-                self.empty_step()
-                continue
-            loss = self.batch_loss(idx)
-            if not torch.isfinite(loss):
+            # a process with no pairs this step (fewer than steps) has no gradient but still joins the exchange
+            loss = self.batch_loss(idx) if len(idx) else None
+            if loss is not None and not torch.isfinite(loss):
                 progress.close()
                 raise TrainingDiverged(
                     f"training diverged at {self.label} epoch {epoch}, step {s + 1} (loss {float(loss.detach())}); no model "
@@ -312,11 +298,14 @@ class Trainer:
                           rate_factor(self.tcfg, (epoch - 1) * steps + s, self.tcfg.epochs * steps))
             for opt in self.optimizers:
                 opt.zero_grad(set_to_none=True)
-            loss.backward()
+            if loss is not None:
+                loss.backward()
             if self.exchange is not None:
                 self.exchange()
             for opt in self.optimizers:
                 opt.step()
+            if loss is None:
+                continue
             total += float(loss.detach()) * len(idx)
             progress.update(len(idx))
             if bar and s % 20 == 0:
@@ -325,7 +314,7 @@ class Trainer:
         progress.close()
         self.last_rate = (n - min(n, start_step * bs)) / max(1e-9, time.perf_counter() - start)
         if self.divided:  # every process's pairs over this epoch's time: the rate of the whole run, as in one process
-            self.last_rate = float(summed(torch.tensor([self.last_rate], dtype=torch.float64))[0])
+            self.last_rate = summed(self.last_rate)
             return mean_over_processes(total / max(1, n))
         if self.world > 1:
             return mean_over_processes(total * self.world / n)
