@@ -223,6 +223,10 @@ class ModelSection:
                                "history_length > 0: the user's i-th latest item (i = 0, 1, ...) weighs "
                                "history_decay ** i in the pooled history, weights summing to 1; 1 is a plain mean",
                                low=0.0, low_open=True, high=1.0)
+    history_past_only: bool = key('bool', False,
+                                  "history_length > 0: in training, each pair's history holds only the user's items "
+                                  "from before the pair's time, as a held-out pair's history precedes it (needs "
+                                  "interactions.time_column); false: every training item but the pair's own")
 
 
 @dataclass(frozen=True)
@@ -640,6 +644,9 @@ def _check_consistency(cfg: dict) -> None:
     if cfg["run"]["mode"] == "item_item" and any(v != _plain(SIDE_KEYS[k].default) for k, v in cfg["users"].items()):
         raise TowersError("config: item_item mode draws both sides from 'items'; "
                           "remove the 'users' section or use mode user_item")
+    if cfg["model"]["history_length"] and cfg["model"]["history_past_only"] and not cfg["interactions"]["time_column"]:
+        raise TowersError("config key 'model.history_past_only': keeping only the items from before each pair needs "
+                          "the time of each event; set interactions.time_column or set history_past_only false")
     if cfg["model"]["history_length"] and cfg["run"]["mode"] == "item_item":
         raise TowersError("config key 'model.history_length': a history is a user's items, so user_item mode only; "
                           "set it to 0")

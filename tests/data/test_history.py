@@ -6,7 +6,7 @@ import pandas as pd
 import pytest
 import torch
 
-from towers.data.history import empty_history, history_bags, history_column, history_ids, without_targets
+from towers.data.history import before, empty_history, history_bags, history_column, history_ids, without_targets
 from towers.data.pairs import Pairs
 from towers.errors import TowersError
 
@@ -31,6 +31,26 @@ def test_bags_hold_each_users_latest_distinct_items_as_pandas_finds_them():
         assert list(got[got > 0]) == list(want), u
         assert (got[len(want):] == 0).all()
     assert bags.shape == (32, 5)
+
+
+def test_bag_times_are_each_items_latest_event_as_pandas_finds_them():
+    df = _log(3)
+    pairs = Pairs(torch.from_numpy(df.q.to_numpy()), torch.from_numpy(df.c.to_numpy()),
+                  time=torch.from_numpy(df.t.to_numpy()))
+    bags, times = history_column(pairs, 30, 50, limit=4, with_times=True)
+    assert torch.equal(bags, history_column(pairs, 30, 50, limit=4))
+    latest = df.groupby(["q", "c"]).t.max()  # reference: pandas, each (user, item)'s latest time
+    for u in range(30):
+        for place in range(4):
+            item = int(bags[u, place])
+            assert int(times[u, place]) == (latest[(u, item - 1)] if item else 0)
+
+
+def test_past_only_bags_keep_the_items_chosen_before_each_pair():
+    bags = torch.tensor([[3, 5, 8], [5, 2, 0]])
+    bag_times = torch.tensor([[90, 40, 10], [70, 20, 0]])  # latest first, as history_column keeps them
+    pair_times = torch.tensor([40, 100])  # the first pair happened at 40: items of 40 and 90 are its future
+    assert before(bags, bag_times, pair_times).tolist() == [[0, 0, 8], [5, 2, 0]]
 
 
 def test_a_pair_never_sees_its_own_item_in_its_bag():

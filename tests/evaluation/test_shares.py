@@ -12,11 +12,12 @@ import threading
 from concurrent.futures import ThreadPoolExecutor
 from functools import partial
 
+import numpy as np
 import pytest
 import torch
 
 from towers.data.pairs import Pairs
-from towers.evaluation.protocol import held_out, popularity_scorer, rank_positives, ranking_metrics
+from towers.evaluation.protocol import held_out, popularity_scorer, rank_positives, ranking_metrics, sample_keys
 from towers.evaluation.shares import Share
 from towers.search.scorer import Scorer
 
@@ -83,3 +84,37 @@ def test_ranking_metrics_divided_equal_one_process_exactly(world):
         one = rank()  # reference: one process
         for got in as_processes(world, lambda share, rank=rank: rank(share=share)):
             assert got == one  # exact: the same counts give the same floats
+
+
+def test_sample_keys_are_splitmix64():
+    # source: SplitMix64 (Steele, Lea & Flood, OOPSLA 2014) started from state 0 first returns 0xE220A8397B1DCDAF
+    # (from memory); sample_keys mixes row + (seed + 7) * the golden gamma, so row 0 with seed -6 is that state
+    assert int(sample_keys(torch.tensor([0]), -6)[0]) == 0xE220A8397B1DCDAF
+    keys = sample_keys(torch.arange(100_000), 3)
+    assert len(np.unique(keys)) == 100_000  # a bijection: no two rows share a key
+
+
+@pytest.mark.parametrize("world", [2, 3])
+def test_divided_log_samples_the_one_process_queries(world):
+    """Each process holds only its own users' pairs (rows mod world here); the sample of 30 queries they
+    draw together is the one-process sample, and the ranking metrics equal its (the queries joined in
+    another order, so the means may differ in the last bit)."""
+    scorers, train, test, mask = _problem(8)
+    one = held_out(test, train, mask, seed=1, max_queries=30)
+
+    def own(p: Pairs, r: int) -> Pairs:
+        keep = p.query % world == r
+        return Pairs(p.query[keep], p.candidate[keep])
+
+    def work(share):
+        s = Share(share.rank, world, share.gather, divided=True)
+        mine = held_out(own(test, s.rank), own(train, s.rank), mask, seed=1, max_queries=30, share=s)
+        got = ranking_metrics(scorers["vectors"], own(test, s.rank), own(train, s.rank), mask, [5, 10], tie_seed=1,
+                              max_queries=30, share=s)
+        return (mine.queries if mine is not None else torch.zeros(0, dtype=torch.int64)), got
+
+    parts = as_processes(world, work)
+    assert sorted(torch.cat([q for q, _ in parts]).tolist()) == one.queries.tolist()
+    whole = ranking_metrics(scorers["vectors"], test, train, mask, [5, 10], tie_seed=1, max_queries=30)
+    for _, got in parts:
+        assert got == pytest.approx(whole, rel=1e-12)

@@ -4,6 +4,9 @@ The query tower averages embeddings of these items (a bag, like a token feature)
 Adams & Sargin, "Deep Neural Networks for YouTube Recommendations" (RecSys 2016). The block column
 holds item rows + 1, 0 padding. While training, each pair's own item is taken out of its user's bag
 (`without_targets`): otherwise the model learns to find an item in the bag instead of what goes with it.
+With `model.history_past_only` the bag also loses the items from the pair's time on (`before`), so
+training predicts each event from what came before it, as a held-out event is predicted from the
+training events before it ("predicting the next watch", Covington et al.).
 """
 
 from __future__ import annotations
@@ -21,12 +24,14 @@ from towers.errors import TowersError, where
 HISTORY = "(history)"  # the block column; the parentheses keep it apart from any table column name
 
 
-def history_column(train: Pairs, n_queries: int, n_items: int, limit: int, widest=lambda w: w) -> torch.Tensor:
+def history_column(train: Pairs, n_queries: int, n_items: int, limit: int, widest=lambda w: w,
+                   with_times: bool = False):
     """(n_queries, L) int64: each query's distinct training items (row + 1), at most `limit`, 0-padded.
 
     With event times the latest `limit` items are kept, else those seen last in the log. L is the
     longest kept history (at least 1); widest maps it to the one every process uses (collective.largest
-    when the log is divided among processes).
+    when the log is divided among processes). with_times: also returns (n_queries, L) int64, the time of
+    each kept item's latest event (0 in padding), for `before`.
     """
     pos = train.positives()
     q, c = pos.query.numpy().astype(np.int64), pos.candidate.numpy().astype(np.int64)
@@ -42,8 +47,18 @@ def history_column(train: Pairs, n_queries: int, n_items: int, limit: int, wides
     keep = place < limit
     width = widest(max(1, int(place[keep].max(initial=-1)) + 1))
     out = torch.zeros(n_queries, width, dtype=torch.int64)
-    out[torch.from_numpy(q[keep]), torch.from_numpy(place[keep])] = torch.from_numpy(c[keep] + 1)
-    return out
+    rows, places = torch.from_numpy(q[keep]), torch.from_numpy(place[keep])
+    out[rows, places] = torch.from_numpy(c[keep] + 1)
+    if not with_times:
+        return out
+    times = torch.zeros(n_queries, width, dtype=torch.int64)
+    times[rows, places] = torch.from_numpy(when[order][first][keep].astype(np.int64))
+    return out, times
+
+
+def before(bags: torch.Tensor, bag_times: torch.Tensor, times: torch.Tensor) -> torch.Tensor:
+    """The bags with every item whose latest event is at or after its row's time taken out (set to padding)."""
+    return bags.masked_fill(bag_times >= times.unsqueeze(1), 0)
 
 
 def without_targets(bags: torch.Tensor, items: torch.Tensor) -> torch.Tensor:

@@ -70,6 +70,8 @@ class Prepared:
     # ranking problems of validation, kept between epochs (evaluation/protocol.ranking_metrics' cache)
     rankings: dict = field(default_factory=dict)
     divided: bool = False  # data-parallel with the log divided by user (shards.py): the pairs are this process's
+    # model.history_past_only: (n_queries, L) int64, when each history item was last chosen (history.before)
+    history_times: torch.Tensor | None = None
 
     @property
     def split(self) -> SplitPairs:
@@ -382,13 +384,17 @@ def prepare(cfg: Config, previous=None) -> Prepared:
                 part.context = take(encoded, torch.as_tensor(rows, dtype=torch.int64))
     c_block = c_enc.encode(c_ids, c_table, cfg.items.path)
     c_side = Side(c_ids, c_enc, c_block, has_item_features)
+    history_times = None
     if item_item:
         q_side = c_side
     else:
         q_block = q_enc.encode(q_ids, q_table, cfg.users.path)
         if cfg.model.history_length:  # a user's history lies in one process: the others' rows are zeros
-            q_block[HISTORY] = everywhere(history_column(train, len(q_ids), len(c_ids), cfg.model.history_length,
-                                                         widest=largest if shard else lambda w: w))
+            bags = history_column(train, len(q_ids), len(c_ids), cfg.model.history_length,
+                                  widest=largest if shard else lambda w: w, with_times=cfg.model.history_past_only)
+            if cfg.model.history_past_only:
+                bags, history_times = bags[0], everywhere(bags[1])
+            q_block[HISTORY] = everywhere(bags)
         q_side = Side(q_ids, q_enc, q_block, bool(cfg.users.features))
 
     warm = torch.zeros(len(c_ids), dtype=torch.bool)
@@ -399,7 +405,7 @@ def prepare(cfg: Config, previous=None) -> Prepared:
     _warn_small_data(cfg, everywhere(len(train)), len(q_ids), len(c_ids), notes)
     prepared = Prepared(q_side, c_side, train, valid, test, cold_test, split.cold_items, cold_user_test,
                         split.cold_users, warm, item_item, notes, context=context_encoders, started_from=started_from,
-                        divided=shard is not None)
+                        divided=shard is not None, history_times=history_times)
     _check_oracles(cfg, prepared)
     return prepared
 

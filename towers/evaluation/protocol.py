@@ -93,11 +93,14 @@ class HeldOut:
 
 
 def held_out(test: Pairs, known: Pairs | list[Pairs], candidate_mask: torch.Tensor, seed: int = 0,
-             max_queries: int | None = None, exclude_self: bool = False) -> HeldOut | None:
+             max_queries: int | None = None, exclude_self: bool = False,
+             share: Share | None = None) -> HeldOut | None:
     """The positives of `test` to rank, or None when none is left.
 
     Test pairs that are also known (known: pairs, or a list of parts), or whose item does not compete,
-    are dropped; with max_queries a seeded sample of that many queries is kept.
+    are dropped; with max_queries a seeded sample of that many queries is kept (`sample_keys`). With a
+    divided log (share.divided) the sample is drawn over every process's queries, so the processes
+    together rank the very queries one process would.
     """
     n_items = len(candidate_mask)
     test = test.positives()
@@ -108,18 +111,17 @@ def held_out(test: Pairs, known: Pairs | list[Pairs], candidate_mask: torch.Tens
         tq, tc = tq[ok], tc[ok]
     keys = np.unique(_pair_keys(tq, tc, n_items))
     keys = keys[~_known_among(keys, known, n_items)]
-    if len(keys) == 0:
-        return None
     pq = torch.from_numpy(keys // n_items)
     pc = torch.from_numpy(keys % n_items)
     queries, q_index = torch.unique(pq, return_inverse=True)
-    if max_queries is not None and len(queries) > max_queries:
-        g = torch.Generator().manual_seed(seed + 7)
-        chosen = torch.zeros(len(queries), dtype=torch.bool)
-        chosen[torch.randperm(len(queries), generator=g)[:max_queries]] = True
-        sel = chosen[q_index]
-        pq, pc = pq[sel], pc[sel]
-        queries, q_index = torch.unique(pq, return_inverse=True)
+    if max_queries is not None:
+        sel = _sampled(queries, seed, max_queries, share)
+        if sel is not None:
+            sel = sel[q_index]
+            pq, pc = pq[sel], pc[sel]
+            queries, q_index = torch.unique(pq, return_inverse=True)
+    if len(pq) == 0:
+        return None
     cand_rows = torch.nonzero(candidate_mask).flatten()
     col_of = torch.full((n_items,), -1, dtype=torch.int64)
     col_of[cand_rows] = torch.arange(len(cand_rows))
@@ -128,6 +130,30 @@ def held_out(test: Pairs, known: Pairs | list[Pairs], candidate_mask: torch.Tens
     ex_rows, ex_cols = excluded_cells(queries, torch.from_numpy(known_keys // n_items),
                                       torch.from_numpy(known_keys % n_items), col_of, exclude_self)
     return HeldOut(queries, q_index, pc, cand_rows, col_of[pc], ex_rows, ex_cols)
+
+
+def sample_keys(queries: torch.Tensor, seed: int) -> np.ndarray:
+    """A seeded pseudo-random uint64 key for each query row, the same in every process: splitmix64's
+    finaliser (Steele, Lea & Flood, "Fast Splittable Pseudorandom Number Generators", OOPSLA 2014) of
+    row + seed. It is a bijection, so distinct rows get distinct keys and a sample has no ties."""
+    with np.errstate(over="ignore"):
+        z = queries.numpy().astype(np.uint64) + np.uint64(seed + 7) * np.uint64(0x9E3779B97F4A7C15)
+        z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
+        z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
+        return z ^ (z >> np.uint64(31))
+
+
+def _sampled(queries: torch.Tensor, seed: int, size: int, share: Share | None) -> torch.Tensor | None:
+    """bool mask of the queries in the sample of `size` with the smallest keys (over every process's
+    queries when the log is divided), or None when every query is in it."""
+    keys = sample_keys(queries, seed)
+    every = keys
+    if share is not None and share.divided:
+        every = share.joined(torch.from_numpy(keys.view(np.int64))).numpy().view(np.uint64)
+    if len(every) <= size:
+        return None
+    cut = np.partition(every, size - 1)[size - 1]
+    return torch.from_numpy(keys <= cut)
 
 
 def _empty_held_out(candidate_mask: torch.Tensor) -> HeldOut:
@@ -285,8 +311,7 @@ def ranking_metrics(scorer, test: Pairs, known: Pairs, candidate_mask: torch.Ten
     if cache is not None and key in cache:
         h = cache[key]
     else:
-        h = held_out(test, known, candidate_mask, tie_seed, share.quota(max_queries) if share else max_queries,
-                     exclude_self)
+        h = held_out(test, known, candidate_mask, tie_seed, max_queries, exclude_self, share)
         if cache is not None:
             cache[key] = h
     ranked = _ranked(scorer, h, candidate_mask, share)
@@ -481,9 +506,8 @@ def evaluate_slices(scorers: dict, data: SplitPairs, cfg: Config, event_vectors:
         raw = pairs
         if pairs.context is not None:
             pairs, known, users = event_pairs(pairs, known)
-        h = None if explicit else held_out(pairs, known, candidates, seed,
-                                           share.quota(test_queries) if share else test_queries,
-                                           exclude_self=data.item_item)
+        h = None if explicit else held_out(pairs, known, candidates, seed, test_queries,
+                                           exclude_self=data.item_item, share=share)
         # a divided log without group columns: each process's figures summed, no process holds all rankings
         summing = share is not None and share.divided and not groups and not explicit
         if summing and h is None:

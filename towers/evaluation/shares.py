@@ -41,12 +41,6 @@ class Share:
         """bool mask of the entries this process takes, owner (n,) being each entry's position in the whole list."""
         return owner % self.world == self.rank
 
-    def quota(self, total: int | None) -> int | None:
-        """This process's part of a query sample of `total` (None: all) when the log is divided, else total."""
-        if total is None or not self.divided:
-            return total
-        return total // self.world + (self.rank < total % self.world)
-
     def joined(self, part: torch.Tensor) -> torch.Tensor:
         """Every process's 1-D tensor one after another, in rank order."""
         return torch.cat(self.gather(part))

@@ -76,6 +76,7 @@ RANGES = (
 SWITCHES = {
     "model.normalize": "ranking losses (logistic, softmax): on or off, as the config's own choice",
     "history": "user_item runs: the history input on (length searched) or off (model.history_length 0)",
+    "model.history_past_only": "user_item runs with a time column, in trials that turn the history on: on or off",
 }
 HISTORY_SWITCH = "history"  # the optuna parameter of the history switch (not a config key)
 
@@ -110,6 +111,8 @@ def suggest(trial, base: C.Config) -> dict:
         values["model.history_length"] = _ask(trial, _range("model.history_length")) if history else 0
         if history:
             values["model.history_decay"] = _ask(trial, _range("model.history_decay"))
+            if base.interactions.time_column:
+                values["model.history_past_only"] = trial.suggest_categorical("model.history_past_only", [False, True])
     return values
 
 
@@ -124,6 +127,8 @@ def searched_keys(base: C.Config) -> list[str]:
         keys.append("model.temperature")
     if not base.item_item:
         keys += ["model.history_length", "model.history_decay"]
+        if base.interactions.time_column:
+            keys.append("model.history_past_only")
     return keys
 
 

@@ -24,7 +24,7 @@ from towers.atomic import write_atomic
 from towers.collective import across, largest, rank_and_size, summed
 from towers.config import Config
 from towers.data.features import block_len, take
-from towers.data.history import HISTORY, without_targets
+from towers.data.history import HISTORY, before, without_targets
 from towers.data.prepare import Prepared
 from towers.errors import TowersError
 from towers.memory import reuse_freed_memory
@@ -157,10 +157,14 @@ class Trainer:
 
     def query_batch(self, idx: torch.Tensor, q_rows: torch.Tensor, c_rows: torch.Tensor) -> dict:
         """The query tower's input for pairs idx: the query entity's features, plus the pairs' context columns;
-        a user's history bag leaves out the pair's own item (history.py)."""
+        a user's history bag leaves out the pair's own item, and with model.history_past_only every item from
+        the pair's time on (history.py)."""
         qb = take(self.data.queries.block, q_rows)
         if HISTORY in qb:
             qb[HISTORY] = without_targets(qb[HISTORY], c_rows)
+            if self.data.history_times is not None:
+                qb[HISTORY] = before(qb[HISTORY], self.data.history_times.index_select(0, q_rows),
+                                     self.data.train.time.index_select(0, idx))
         if self.data.train.context is not None:
             qb = qb | take(self.data.train.context, idx)
         return qb
