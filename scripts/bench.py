@@ -168,19 +168,23 @@ def write_shop_log(path: Path, n_pairs: int, n_users: int, n_items: int, seed: i
     pq.write_table(pa.table({"customer": users, "sku": items}), path)
 
 
-def write_shop_log_chunks(path: Path, n_pairs: int, n_users: int, n_items: int, seed: int, chunk: int) -> None:
-    """write_shop_log's kind of log, `chunk` events at a time into one parquet file (one row group a chunk)."""
+def write_shop_log_chunks(path: Path, n_pairs: int, n_users: int, n_items: int, seed: int, chunk: int,
+                          times: bool = False) -> None:
+    """write_shop_log's kind of log, `chunk` events at a time into one parquet file (one row group a chunk).
+    times: also a `placed_at` column, each event's place in the log (the log in time order)."""
     import numpy as np
     import pyarrow as pa
     import pyarrow.parquet as pq
 
     rng = np.random.default_rng(seed)
-    with pq.ParquetWriter(path, pa.schema([("customer", pa.int64()), ("sku", pa.string())])) as writer:
+    schema = [("customer", pa.int64()), ("sku", pa.string())] + ([("placed_at", pa.int64())] if times else [])
+    with pq.ParquetWriter(path, pa.schema(schema)) as writer:
         for start in range(0, n_pairs, chunk):
             n = min(chunk, n_pairs - start)
-            writer.write_table(pa.table({"customer": rng.integers(0, n_users, n),
-                                         "sku": sku_text(popular_items(rng, n, n_items))}),
-                               row_group_size=1 << 20)
+            columns = {"customer": rng.integers(0, n_users, n), "sku": sku_text(popular_items(rng, n, n_items))}
+            if times:
+                columns["placed_at"] = np.arange(start, start + n, dtype=np.int64)
+            writer.write_table(pa.table(columns), row_group_size=1 << 20)
 
 
 # ---- configs -----------------------------------------------------------------------------------------
@@ -925,14 +929,18 @@ def case_derive_run(size: dict, work: Path) -> dict:
 # ---- two machines rehearsed on one ---------------------------------------------------------------------
 
 def case_two_nodes_data(size: dict, work: Path) -> dict:
-    """The item table, a shop log (20 events a customer) and scale_config's towers on one thread a process, validated
-    every epoch (training.validate_queries, 2,000 queries), without the reference models or the report."""
+    """The item table, a shop log (20 events a customer, in time order) and scale_config's towers on one thread a
+    process, validated every epoch (training.validate_queries, 2,000 queries), without the reference models or the
+    report. Each customer's latest events are held out (user_recent), a split that is the same in one process and
+    two, as is the validation sample, so the two runs' metrics differ only by training."""
     import yaml
 
     write_item_table(work / "items.parquet", size["items"], seed=17)
     write_shop_log_chunks(work / "log_two_nodes.parquet", size["events"], size["events"] // 20, size["items"], seed=18,
-                          chunk=min(size["events"], 10_000_000))
+                          chunk=min(size["events"], 10_000_000), times=True)
     cfg = scale_config(work, "two_nodes")
+    cfg["interactions"]["time_column"] = "placed_at"
+    cfg["evaluation"]["split"] = "user_recent"
     cfg["run"]["threads"] = 1
     cfg["training"]["epochs"] = size["epochs"]
     cfg["evaluation"]["references"] = False
