@@ -145,3 +145,25 @@ def test_exported_files_score_as_the_model_in_memory(files, kind, tmp_path):
                 + model.candidate_bias_of(data.candidates.block["id"])[c] + model.global_bias
     # reference: the towers' own forward pass, score = q.c / temperature + biases (TwoTowerModel's docstring)
     torch.testing.assert_close(expected, forward, rtol=1e-5, atol=1e-5)
+
+
+@pytest.mark.parametrize("kind", ["towers", "towers-without-biases", "linear-factor", "towers-shared-tower"])
+def test_a_scorer_of_some_queries_scores_them_as_the_whole_one(files, kind):
+    """model_scorer(query_rows=...) embeds only those queries (a divided log's process, its own users): every
+    pair of theirs, and every ranking row, equals the scorer of every query's; others are refused."""
+    model, data, _, _ = _trained(files, kind)
+    whole = model_scorer(model, data)
+    rows = torch.arange(1, len(data.queries.ids), 3)  # every third query
+    part = model_scorer(model, data, rows)
+    assert len(part.query_vectors) == len(rows)
+    q = rows.repeat_interleave(len(data.candidates.ids))
+    c = torch.arange(len(data.candidates.ids)).repeat(len(rows))
+    # reference: the scorer of every query (checked against the towers' forward pass above)
+    torch.testing.assert_close(part.pairs(q, c), whole.pairs(q, c), rtol=1e-6, atol=1e-6)
+    asked = rows.flip(0)[:5]
+    got = part.over_items(torch.arange(4)).for_queries(asked).top(3)
+    want = whole.over_items(torch.arange(4)).for_queries(asked).top(3)
+    assert torch.equal(got[0], want[0])
+    torch.testing.assert_close(got[1], want[1], rtol=1e-6, atol=1e-6)
+    with pytest.raises(RuntimeError, match="does not hold"):
+        part.for_queries(torch.tensor([0]))

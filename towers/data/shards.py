@@ -23,6 +23,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
+import torch
 
 from towers.collective import gather_objects, rank_and_size
 from towers.config import Config
@@ -81,6 +82,12 @@ def owners(ids: np.ndarray, world: int) -> np.ndarray:
     one user as 17 in one file and "17" in another would give that user's events to two processes."""
     values = ids if ids.dtype == object else ids.astype(np.int64, copy=False)
     return (pd.util.hash_array(values, categorize=False) % np.uint64(world)).astype(np.int64)
+
+
+def own_rows(ids: np.ndarray) -> torch.Tensor:
+    """The catalog rows of the ids this process owns (`owners`): with a divided log, the users whose events it holds."""
+    rank, world = rank_and_size()
+    return torch.from_numpy(np.flatnonzero(owners(ids, world) == rank))
 
 
 def whole_log_reason(cfg: Config) -> str | None:

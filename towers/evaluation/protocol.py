@@ -286,9 +286,10 @@ def rank_positives(scorer, h: HeldOut, share: Share | None = None) -> tuple[torc
     if isinstance(scorer, ReferenceScorer):
         return _reference_ranks(scorer, h)[:3]
     over = scorer.over_items(h.cand_rows)
-    qb = None if over.query_bias is None else over.query_bias.index_select(0, h.queries)
-    return RC.rank_counts(over.query_vectors.index_select(0, h.queries), over.item_vectors, h.q_index, h.columns,
-                          item_bias=over.item_bias, query_bias=qb, global_bias=over.global_bias, scale=over.scale,
+    ranked = over.for_queries(h.queries)
+    return RC.rank_counts(ranked.query_vectors, over.item_vectors, h.q_index, h.columns,
+                          item_bias=over.item_bias, query_bias=ranked.query_bias, global_bias=over.global_bias,
+                          scale=over.scale,
                           exclude_rows=h.ex_rows, exclude_cols=h.ex_cols)
 
 

@@ -6,7 +6,7 @@ from __future__ import annotations
 import torch
 
 from towers.data.context import averaged_vectors, sample_contexts
-from towers.data.features import FeatureBlock, block_len, slice_block
+from towers.data.features import FeatureBlock, block_len, slice_block, take
 from towers.data.history import HISTORY
 from towers.data.prepare import Prepared
 from towers.model.towers import Tower, TwoTowerModel
@@ -21,28 +21,42 @@ def embed_all(tower: Tower, block: FeatureBlock) -> torch.Tensor:
     was = tower.training
     tower.eval()
     n = block_len(block)
-    out = torch.cat([tower(slice_block(block, i, min(n, i + EMBED_CHUNK))) for i in range(0, n, EMBED_CHUNK)]) \
-        if n else torch.zeros(0, tower.mlp[-1].out_features if len(tower.mlp) else tower.ids.embedding_dim)
+    out = None  # filled chunk by chunk: the chunks are never held beside their joined copy
+    for i in range(0, n, EMBED_CHUNK):
+        part = tower(slice_block(block, i, min(n, i + EMBED_CHUNK)))
+        if out is None:
+            out = torch.empty(n, part.shape[1], dtype=part.dtype)
+        out[i:i + len(part)] = part
+    if out is None:
+        out = torch.zeros(0, tower.mlp[-1].out_features if len(tower.mlp) else tower.ids.embedding_dim)
     tower.train(was)
     return out
 
 
 @torch.no_grad()
-def model_scorer(model: TwoTowerModel, data: Prepared) -> Scorer:
+def model_scorer(model: TwoTowerModel, data: Prepared, query_rows: torch.Tensor | None = None) -> Scorer:
     """The trained model as vectors over both catalogs.
 
     A query tower that reads context columns gives each query its vector averaged over a fixed sample
     of training contexts (context.sample_contexts): its expected scores over the usual context mix.
+    query_rows: embed only these queries (a process of a divided log evaluates only its own users), the
+    Scorer's query_place saying where each is.
     """
+    block = data.queries.block if query_rows is None else take(data.queries.block, query_rows)
     if reads_context(model.query_tower, data):
-        qv = averaged_vectors(model.query_tower, data.queries.block, sample_contexts(data.train.context))
+        qv = averaged_vectors(model.query_tower, block, sample_contexts(data.train.context))
     else:
-        qv = embed_all(model.query_tower, data.queries.block)
-    cv = qv if (model.shared and data.queries is data.candidates) else embed_all(model.candidate_tower, data.candidates.block)
-    qb = model.query_bias_of(data.queries.block["id"]) if model.use_biases else None
+        qv = embed_all(model.query_tower, block)
+    whole = query_rows is None and data.queries is data.candidates
+    cv = qv if (model.shared and whole) else embed_all(model.candidate_tower, data.candidates.block)
+    qb = model.query_bias_of(block["id"]) if model.use_biases else None
     cb = model.candidate_bias_of(data.candidates.block["id"]) if model.use_biases else None
     g = float(model.global_bias) if model.use_biases else 0.0
-    return Scorer(qv, cv, qb, cb, g, 1.0 / model.temperature)
+    place = None
+    if query_rows is not None:
+        place = torch.full((len(data.queries.ids),), -1, dtype=torch.int64)
+        place[query_rows] = torch.arange(len(query_rows))
+    return Scorer(qv, cv, qb, cb, g, 1.0 / model.temperature, place)
 
 
 def reads_context(tower: Tower, data: Prepared) -> bool:

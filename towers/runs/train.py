@@ -21,6 +21,7 @@ from towers.data.embeddings_file import write_embeddings
 from towers.data.groups import group_labels
 from towers.data.pairs import Pairs, SplitPairs
 from towers.data.prepare import Prepared, prepare
+from towers.data.shards import own_rows
 from towers.errors import TowersError
 from towers.evaluation.protocol import (
     evaluate_slices,
@@ -131,6 +132,8 @@ def _train_reference(name: str, data: Prepared, cfg: C.Config, partial: RunFolde
     scorer = model_scorer(model, data)
     _save_model(partial, name, model, preset.model, data)
     export_run(partial, model, data, preset, name, scorer)
+    if data.divided:  # written: what the evaluation needs is this process's users
+        scorer = model_scorer(model, data, own_rows(data.queries.ids))
     return model, scorer, result.history
 
 
@@ -215,7 +218,8 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
         scorers: dict[str, Scorer] = {
             "popularity": popularity_scorer(data.train, len(data.queries.ids), len(data.candidates.ids),
                                             cfg.training.rating_loss, data.item_item, data.divided),
-            TOWERS: model_scorer(model, data),
+            # a divided log: this process's users only; process 0 embeds everyone for the files after evaluating
+            TOWERS: model_scorer(model, data, own_rows(data.queries.ids) if data.divided else None),
         }
         histories = {TOWERS: result.history}
         context_models = {TOWERS: model}
@@ -248,7 +252,7 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
         metrics.setdefault("notes", {})["towers_training"] = ("towers: the best epoch was the last one run; validation "
                                                                "was still improving (raise training.epochs)")
     _save_model(partial, TOWERS, model, cfg.model, data)
-    files = export_run(partial, model, data, cfg, TOWERS, scorers[TOWERS])
+    files = export_run(partial, model, data, cfg, TOWERS, None if data.divided else scorers[TOWERS])
     scorers = None  # every vector is written: what they held is free before the pairs are gathered
     partial.write_pairs(data.queries.ids, data.candidates.ids, whole_split(data.split) if data.divided else data.split)
     partial.write_json(RunFolder.METRICS, metrics)

@@ -25,26 +25,40 @@ class Scorer:
     item_bias: torch.Tensor | None = None
     global_bias: float = 0.0
     scale: float = 1.0
+    # when given, query_vectors and query_bias hold only some queries: catalog row r is their row
+    # query_place[r] (-1: not held); a process of a divided log evaluates only its own users (runs/train.py)
+    query_place: torch.Tensor | None = None
 
     def over_items(self, item_rows: torch.Tensor) -> "Scorer":
         """The same model restricted to some items (column j is item_rows[j]): selected once, not per block."""
         bias = None if self.item_bias is None else self.item_bias.index_select(0, item_rows)
         return Scorer(self.query_vectors, self.item_vectors.index_select(0, item_rows), self.query_bias, bias,
-                      self.global_bias, self.scale)
+                      self.global_bias, self.scale, self.query_place)
 
     def for_queries(self, rows: torch.Tensor, vectors: torch.Tensor | None = None) -> "Scorer":
         """The same model for some query rows (row i is rows[i]; rows may repeat, one per event), with their own
         vectors where given (context-aware towers) and their biases."""
-        qv = vectors if vectors is not None else self.query_vectors.index_select(0, rows)
-        qb = None if self.query_bias is None else self.query_bias.index_select(0, rows)
+        at = self._held(rows)
+        qv = vectors if vectors is not None else self.query_vectors.index_select(0, at)
+        qb = None if self.query_bias is None else self.query_bias.index_select(0, at)
         return Scorer(qv, self.item_vectors, qb, self.item_bias, self.global_bias, self.scale)
+
+    def _held(self, rows: torch.Tensor) -> torch.Tensor:
+        """Where catalog query rows are in query_vectors."""
+        if self.query_place is None:
+            return rows
+        at = self.query_place.index_select(0, rows)
+        if bool((at < 0).any()):
+            raise RuntimeError("a query whose vector this scorer does not hold was asked for")  # a bug, not bad input
+        return at
 
     def top(self, n: int, exclude_rows: torch.Tensor | None = None, exclude_cols: torch.Tensor | None = None):
         """Each query's n best items as (item rows, scores), both (queries, n), best first; padding rows are -1.
 
         Exact top-N over the whole catalog (retrieval.py) of scale * q.x + item bias, then the query and
         global biases, which shift a query's scores alike and so never change its order. Excluded
-        (query, item) cells are given sorted by query.
+        (query, item) cells are given sorted by query. Rows are query_vectors' rows (after for_queries,
+        the rows asked for).
         """
         idx, scores = top_n(self.query_vectors, self.item_vectors, n, self.item_bias, exclude_rows, exclude_cols,
                             self.scale)
@@ -57,6 +71,7 @@ class Scorer:
         return FORMULA if biases else FORMULA_NO_BIAS
 
     def pairs(self, q: torch.Tensor, c: torch.Tensor) -> torch.Tensor:
+        q = self._held(q)
         s = (self.query_vectors.index_select(0, q) * self.item_vectors.index_select(0, c)).sum(1) * self.scale
         if self.item_bias is not None:
             s = s + self.item_bias.index_select(0, c)
