@@ -116,8 +116,10 @@ def _reference_model(name: str, data: Prepared, cfg: C.Config) -> tuple[TwoTower
 
 
 def _train_reference(name: str, data: Prepared, cfg: C.Config, partial: RunFolder, init_from: str | Path | None,
-                     resuming: bool, started_from: dict | None):
-    """Train, save and export one reference model; returns (model, scorer, history)."""
+                     resuming: bool, started_from: dict | None, primary: bool = True):
+    """Train one reference model, and in process 0 save and export it; returns (model, scorer, history).
+    The scorer is what this process evaluates with: None in a data-parallel process other than 0 that
+    evaluates nothing, this process's own users with a divided log."""
     torch.manual_seed(cfg.run.seed)
     model, preset = _reference_model(name, data, cfg)
     if init_from and RunFolder(init_from).has_model(name):
@@ -129,10 +131,12 @@ def _train_reference(name: str, data: Prepared, cfg: C.Config, partial: RunFolde
         cert = certify(model, data, preset, result.history)
         partial.write_json(RunFolder.CERTIFICATE, cert, name)
         log(describe_certificate(cert))
-    scorer = model_scorer(model, data)
-    _save_model(partial, name, model, preset.model, data)
-    export_run(partial, model, data, preset, name, scorer)
-    if data.divided:  # written: what the evaluation needs is this process's users
+    scorer = None
+    if primary:
+        scorer = model_scorer(model, data)
+        _save_model(partial, name, model, preset.model, data)
+        export_run(partial, model, data, preset, name, scorer)
+    if data.divided:  # what the evaluation needs is this process's users
         scorer = model_scorer(model, data, own_rows(data.queries.ids))
     return model, scorer, result.history
 
@@ -215,17 +219,20 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
     resume_hint = f"resume with: towers train {config_path} --out {out.path} --resume"
     try:
         result = fit(model, data, cfg, partial.checkpoints(), TOWERS, resume=resuming, on_round=on_round)
-        scorers: dict[str, Scorer] = {
+        # a divided log: this process's users only (process 0 embeds everyone for the files after evaluating);
+        # a process other than 0 of a whole log evaluates nothing
+        evaluates = primary or data.divided
+        scorers: dict[str, Scorer | None] = {
             "popularity": popularity_scorer(data.train, len(data.queries.ids), len(data.candidates.ids),
                                             cfg.training.rating_loss, data.item_item, data.divided),
-            # a divided log: this process's users only; process 0 embeds everyone for the files after evaluating
-            TOWERS: model_scorer(model, data, own_rows(data.queries.ids) if data.divided else None),
+            TOWERS: model_scorer(model, data, own_rows(data.queries.ids) if data.divided else None) if evaluates
+            else None,
         }
         histories = {TOWERS: result.history}
         context_models = {TOWERS: model}
         for name in references:
             ref, scorers[name], histories[name] = _train_reference(name, data, cfg, partial, init_from, resuming,
-                                                                   started_from)
+                                                                   started_from, primary)
             if name == BILINEAR:
                 context_models[name] = ref
     except TrainingInterrupted as stop:
