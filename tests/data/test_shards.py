@@ -41,7 +41,7 @@ def _config(store, folder, **evaluation) -> C.Config:
                   "features": [{"name": "department", "kind": "categorical"}, {"name": "price", "kind": "numeric"}]},
         "users": {"path": str(store / "customers.csv"), "id_column": "customer_id",
                   "features": [{"name": "age_band", "kind": "categorical"}]},
-        "model": {"dim": 8, "hidden": [16], "history_length": 6},
+        "model": {"dim": 8, "hidden": [16], "history_length": 6, "history_past_only": True},
         "training": {"loss": "softmax", "epochs": 1, "validate_queries": 100000},
         "evaluation": {"split": "user_recent", "cold_item_fraction": 0.1, "cold_user_fraction": 0.1,
                        "baseline": True, **evaluation},
@@ -115,7 +115,7 @@ groups = group_labels(cfg.with_section("evaluation", group_metrics_by=["age_band
 grouped = evaluate_slices(scorers | refs, data.split, cfg, reference_info=info, groups=groups, share=share)
 s = data.split
 torch.save({"divided": data.divided, "read": read, "metrics": metrics, "grouped": grouped,
-            "history": data.queries.block["(history)"],
+            "history": data.queries.block["(history)"], "history_times": data.history_times,
             "warm": s.warm_items, "cold_items": s.cold_items, "cold_users": s.cold_users,
             "pairs": {n: torch.stack([getattr(s, n).query, getattr(s, n).candidate, getattr(s, n).time])
                       for n in ("train", "valid", "test", "cold_test", "cold_user_test")}},
@@ -194,6 +194,7 @@ def test_divided_split_is_the_one_process_split_pair_for_pair(two_processes):
         assert torch.equal(p["cold_items"], one.split.cold_items)
         assert torch.equal(p["cold_users"], one.split.cold_users)
         assert torch.equal(p["history"], one.queries.block["(history)"])
+        assert torch.equal(p["history_times"], one.history_times)  # model.history_past_only's bag times
 
 
 def test_divided_evaluation_gives_every_process_the_one_process_metrics(two_processes):
