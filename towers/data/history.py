@@ -52,7 +52,7 @@ def history_column(train: Pairs, n_queries: int, n_items: int, limit: int, wides
     if not with_times:
         return out
     times = torch.zeros(n_queries, width, dtype=torch.int64)
-    times[rows, places] = torch.from_numpy(when[order][first][keep].astype(np.int64))
+    times[rows, places] = torch.from_numpy(when[order[first[keep]]].astype(np.int64))  # gathered once, not the log reordered
     return out, times
 
 

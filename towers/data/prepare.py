@@ -70,6 +70,8 @@ class Prepared:
     # ranking problems of validation, kept between epochs (evaluation/protocol.ranking_metrics' cache)
     rankings: dict = field(default_factory=dict)
     divided: bool = False  # data-parallel with the log divided by user (shards.py): the pairs are this process's
+    # divided: the query rows of this process's users, the only ones it validates and evaluates (Shard.own_rows)
+    own_queries: torch.Tensor | None = None
     # model.history_past_only: (n_queries, L) int64, when each history item was last chosen (history.before)
     history_times: torch.Tensor | None = None
 
@@ -405,7 +407,8 @@ def prepare(cfg: Config, previous=None) -> Prepared:
     _warn_small_data(cfg, everywhere(len(train)), len(q_ids), len(c_ids), notes)
     prepared = Prepared(q_side, c_side, train, valid, test, cold_test, split.cold_items, cold_user_test,
                         split.cold_users, warm, item_item, notes, context=context_encoders, started_from=started_from,
-                        divided=shard is not None, history_times=history_times)
+                        divided=shard is not None, history_times=history_times,
+                        own_queries=None if shard is None else shard.own_rows(q_ids))
     _check_oracles(cfg, prepared)
     return prepared
 

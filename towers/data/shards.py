@@ -40,6 +40,10 @@ class Shard:
         """What deals the log's units out: unit i to process i mod world."""
         return Turns(self.rank, self.world)
 
+    def own_rows(self, ids: np.ndarray) -> torch.Tensor:
+        """The catalog rows of the ids this process owns (`owners`): the users whose events it holds."""
+        return torch.from_numpy(np.flatnonzero(owners(ids, self.world) == self.rank))
+
 
 class Turns:
     """Called once per unit of the log, in order (tables.read_table_chunks' `take`): whether it is this
@@ -82,12 +86,6 @@ def owners(ids: np.ndarray, world: int) -> np.ndarray:
     one user as 17 in one file and "17" in another would give that user's events to two processes."""
     values = ids if ids.dtype == object else ids.astype(np.int64, copy=False)
     return (pd.util.hash_array(values, categorize=False) % np.uint64(world)).astype(np.int64)
-
-
-def own_rows(ids: np.ndarray) -> torch.Tensor:
-    """The catalog rows of the ids this process owns (`owners`): with a divided log, the users whose events it holds."""
-    rank, world = rank_and_size()
-    return torch.from_numpy(np.flatnonzero(owners(ids, world) == rank))
 
 
 def whole_log_reason(cfg: Config) -> str | None:

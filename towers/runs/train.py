@@ -21,7 +21,6 @@ from towers.data.embeddings_file import write_embeddings
 from towers.data.groups import group_labels
 from towers.data.pairs import Pairs, SplitPairs
 from towers.data.prepare import Prepared, prepare
-from towers.data.shards import own_rows
 from towers.errors import TowersError
 from towers.evaluation.protocol import (
     evaluate_slices,
@@ -137,7 +136,7 @@ def _train_reference(name: str, data: Prepared, cfg: C.Config, partial: RunFolde
         _save_model(partial, name, model, preset.model, data)
         export_run(partial, model, data, preset, name, scorer)
     if data.divided:  # what the evaluation needs is this process's users
-        scorer = model_scorer(model, data, own_rows(data.queries.ids))
+        scorer = model_scorer(model, data, data.own_queries)
     return model, scorer, result.history
 
 
@@ -225,8 +224,7 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
         scorers: dict[str, Scorer | None] = {
             "popularity": popularity_scorer(data.train, len(data.queries.ids), len(data.candidates.ids),
                                             cfg.training.rating_loss, data.item_item, data.divided),
-            TOWERS: model_scorer(model, data, own_rows(data.queries.ids) if data.divided else None) if evaluates
-            else None,
+            TOWERS: model_scorer(model, data, data.own_queries) if evaluates else None,
         }
         histories = {TOWERS: result.history}
         context_models = {TOWERS: model}

@@ -15,7 +15,6 @@ import torch
 from towers.atomic import write_atomic
 from towers.config import Config, lower_is_better
 from towers.data.prepare import Prepared
-from towers.data.shards import own_rows
 from towers.errors import TowersError
 from towers.evaluation.protocol import validation_metrics
 from towers.model.embed import model_scorer
@@ -109,7 +108,7 @@ class EarlyStopping:
         value = None
         if len(data.valid) or data.divided:  # divided: every process takes part, its own share empty or not
             # divided: the process ranks only its own users' queries, so it embeds only its own users
-            scorer = model_scorer(model, data, own_rows(data.queries.ids) if data.divided else None)
+            scorer = model_scorer(model, data, data.own_queries)
             value = validation_metrics(scorer, data, cfg, data.valid, model,
                                        share=evaluation_share(data.divided)).get(metric)
         row = {"epoch": step, "loss": loss, "pairs_per_s": rate}
