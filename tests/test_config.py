@@ -303,6 +303,8 @@ def test_a_feature_named_id_is_rejected(tmp_path):
     ({"evaluation": {"test_fraction": 0.5, "validation_fraction": 0.45}}, r"leave almost no training data"),
     ({"evaluation": {"top_k": []}}, r"'evaluation\.top_k': give at least one K"),
     ({"evaluation": {"oracle_users": "u.parquet"}}, r"'evaluation\.oracle_users' and 'oracle_items' go together"),
+    ({"run": {"mode": "item_item"}, "evaluation": {"oracle_items": "i.parquet"}},
+     r"'evaluation\.oracle_users' and 'oracle_items' go together"),  # item_item's oracle needs both files too
     ({"training": {"stop_metric": "rmse"}}, r"'training\.stop_metric': got 'rmse'; expected one of auc, mrr, ndcg@20, recall@20"),
     ({"training": {"loss": "squared", "stop_metric": "recall@20"}}, r"expected one of mae, rmse"),
     ({"training": {"stop_metric": "recall@10"}}, r"'training\.stop_metric'"),

@@ -367,7 +367,8 @@ class EvaluationSection:
                                  'of the global optimum (squared loss)',
                                  low=0.0, low_open=True)
     oracle_users: str | None = key('path', None,
-                                   'parquet of true query vectors (id, embedding, bias), for an oracle row',
+                                   'parquet of true query vectors (id, embedding, bias), for an oracle row; '
+                                   "item_item: the true users' vectors, for the expected co-occurrence",
                                    nullable=True)
     oracle_items: str | None = key('path', None,
                                    'parquet of true item vectors (id, embedding, bias), for an oracle row',
@@ -663,7 +664,7 @@ def _check_consistency(cfg: dict) -> None:
                           "lower them")
     if not ev["top_k"]:
         raise TowersError("config key 'evaluation.top_k': give at least one K, e.g. [20]")
-    if (ev["oracle_users"] is None) != (ev["oracle_items"] is None) and cfg["run"]["mode"] == "user_item":
+    if (ev["oracle_users"] is None) != (ev["oracle_items"] is None):
         raise TowersError("config keys 'evaluation.oracle_users' and 'oracle_items' go together; give both or neither")
     stop = cfg["training"]["stop_metric"]
     if stop is not None:

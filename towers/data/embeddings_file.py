@@ -88,24 +88,60 @@ class TrueVectors:
     item_bias: torch.Tensor | None
 
 
-def _rows_of(path: str, ids: np.ndarray) -> tuple[torch.Tensor, torch.Tensor | None]:
-    """One embeddings file's vectors and biases, reordered to the catalog ids (every id must be there)."""
-    o_ids, vec, bias, _ = read_embeddings(path)
-    if o_ids.dtype != ids.dtype:
-        o_ids = o_ids.astype(str).astype(object) if ids.dtype == object else o_ids
-    rows = pd.Index(o_ids).get_indexer(ids)
+CO_OCCURRENCE_CELLS = 50_000_000  # users x items the item_item oracle may hold: 200 MB of float32
+
+
+def _catalog_rows(path: str, file_ids: np.ndarray, ids: np.ndarray) -> torch.Tensor:
+    """Where each catalog id is among an oracle file's ids (every id must be there)."""
+    if file_ids.dtype != ids.dtype:
+        file_ids = file_ids.astype(str).astype(object) if ids.dtype == object else file_ids
+    rows = pd.Index(file_ids).get_indexer(ids)
     if (rows < 0).any():
         missing = ids[np.flatnonzero(rows < 0)[0]]
         raise TowersError(f"{path}, column 'id': no oracle vector for id {missing!r}; the oracle must cover every entity")
-    r = torch.from_numpy(rows)
+    return torch.from_numpy(rows)
+
+
+def _rows_of(path: str, ids: np.ndarray) -> tuple[torch.Tensor, torch.Tensor | None]:
+    """One embeddings file's vectors and biases, reordered to the catalog ids."""
+    o_ids, vec, bias, _ = read_embeddings(path)
+    r = _catalog_rows(path, o_ids, ids)
     return vec.index_select(0, r), None if bias is None else bias.index_select(0, r)
 
 
+def co_occurrence_truth(users_path: str, items_path: str, item_ids: np.ndarray) -> TrueVectors:
+    """item_item: the planted taste model's expected co-occurrence of two items, as vectors.
+
+    When each user u picks items from softmax_i(u . v_i + b_i) over the run's items, the same user
+    picks both a and b in proportion to sum_u p_u(a) p_u(b) (every user weighted alike): the dot
+    product of a's and b's columns of the users x items choice matrix. Each item's vector is its
+    column, one entry per user of the oracle file; no biases.
+    """
+    _, users, _, _ = read_embeddings(users_path)
+    items, bias = _rows_of(items_path, item_ids)
+    if len(users) * len(items) > CO_OCCURRENCE_CELLS:
+        raise TowersError(f"{users_path}: {len(users):,} users x {len(items):,} items is more than the item_item "
+                          f"oracle holds ({CO_OCCURRENCE_CELLS:,} cells); give it a sample of the users")
+    if users.shape[1] != items.shape[1]:
+        raise TowersError(f"{users_path}: vectors of length {users.shape[1]}, but {items_path} has "
+                          f"{items.shape[1]}; the oracle files must share k")
+    logits = users.double() @ items.double().T
+    if bias is not None:
+        logits += bias.double()
+    choice = torch.softmax(logits, dim=1).T.contiguous().float()  # (items, users)
+    return TrueVectors(choice, choice, None, None)
+
+
 def true_vectors(cfg: Config, query_ids: np.ndarray, item_ids: np.ndarray, item_item: bool) -> TrueVectors | None:
-    """The oracle files named by evaluation.oracle_users / oracle_items, mapped to the catalogs (user_item only)."""
+    """The oracle files named by evaluation.oracle_users / oracle_items, mapped to the catalogs.
+
+    item_item runs score with the expected co-occurrence the two files imply (co_occurrence_truth).
+    """
     ev = cfg.evaluation
-    if not ev.oracle_items or item_item:
+    if not ev.oracle_items or not ev.oracle_users:
         return None
+    if item_item:
+        return co_occurrence_truth(ev.oracle_users, ev.oracle_items, item_ids)
     qv, qb = _rows_of(ev.oracle_users, query_ids)
     cv, cb = _rows_of(ev.oracle_items, item_ids)
     return TrueVectors(qv, cv, qb, cb)
