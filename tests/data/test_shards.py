@@ -9,11 +9,15 @@ events, the held-out entities, the query histories) must equal the one-process v
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
+import signal
 import subprocess
 import sys
+import time
 from collections import Counter
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -226,7 +230,23 @@ def test_divided_evaluation_gives_every_process_the_one_process_metrics(two_proc
                 assert parts[0]["grouped"]["groups"][column][model][group] == pytest.approx(values, rel=1e-9), group
 
 
+def _descendants(pid: int) -> list[int]:
+    """Every process below `pid`, from /proc (Linux), children before their own children."""
+    parent = {}
+    for entry in os.listdir("/proc"):
+        if entry.isdigit():
+            with contextlib.suppress(OSError, ValueError, IndexError):  # gone meanwhile
+                stat = Path(f"/proc/{entry}/stat").read_text()
+                parent[int(entry)] = int(stat.rsplit(")", 1)[1].split()[1])
+    out, frontier = [], [pid]
+    while frontier:
+        frontier = [p for p, pp in parent.items() if pp in frontier]
+        out += frontier
+    return out
+
+
 @pytest.mark.slow  # torchrun processes
+@pytest.mark.skipif(not os.path.isdir("/proc"), reason="finds torchrun's workers through /proc")
 def test_two_workers_train_on_divided_data_like_one_process(small_store, tmp_path):
     """`towers train --workers 2` with the log divided: the run folder holds the one-process split (pairs.pt,
     pair for pair) and the one-process reference metrics; the towers and the linear factor model take
@@ -257,6 +277,30 @@ def test_two_workers_train_on_divided_data_like_one_process(small_store, tmp_pat
         for metric in ("recall@20", "ndcg@20"):
             a, b = m1["warm"][model][metric], m2["warm"][model][metric]
             assert abs(b - a) / a < 0.10, (model, metric, a, b)
+
+    # killed once the first epoch's checkpoint is written, then resumed: the very weights of the uninterrupted
+    # run, each process going on with its own random state (its id dropout and negatives), not process 0's
+    env["TMPDIR"] = str(tmp_path)  # the other process's scratch folder, left behind by the kill
+    killed = tmp_path / "killed"
+    proc = subprocess.Popen([sys.executable, "-m", "towers", "train", str(cfg_path), "--out", str(killed),
+                             "--workers", "2"], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, env=env)
+    last = tmp_path / "killed.partial" / "checkpoints" / "last.pt"
+    deadline = time.time() + 300
+    while not last.exists() and proc.poll() is None and time.time() < deadline:
+        time.sleep(0.02)
+    for pid in [proc.pid, *_descendants(proc.pid)]:  # every process at once, as when the machine fails
+        with contextlib.suppress(ProcessLookupError):
+            os.kill(pid, signal.SIGKILL)
+    proc.wait()
+    assert last.exists() and not killed.exists()
+    proc = subprocess.run([sys.executable, "-m", "towers", "train", str(cfg_path), "--out", str(killed), "--workers",
+                           "2", "--resume"], capture_output=True, text=True, timeout=600, env=env)
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    assert "resuming at epoch" in proc.stderr
+    for model in ("model.pt", "linear_factor/model.pt"):
+        want = torch.load(tmp_path / "two" / model, weights_only=True)["state_dict"]
+        got = torch.load(killed / model, weights_only=True)["state_dict"]
+        assert want.keys() == got.keys() and all(torch.equal(want[k], got[k]) for k in want), model
 
 
 @pytest.mark.slow  # torchrun processes

@@ -8,8 +8,11 @@ floating-point summation order: validation metrics must agree within 2%.
 from __future__ import annotations
 
 import json
+import signal
 import subprocess
 import sys
+import time
+from pathlib import Path
 
 import pytest
 import yaml
@@ -86,7 +89,49 @@ def test_enough_free_cores_give_no_note(n, cores, load):
 
 def test_launch_prints_the_note_before_starting(monkeypatch, capsys):
     started = []
+
+    class Started:
+        def __init__(self, cmd, **_options):
+            started.append(cmd)
+
+        def wait(self):
+            return 0
     monkeypatch.setattr(D, "usable_cores", lambda: 1)
-    monkeypatch.setattr(D.subprocess, "run", lambda cmd, env: started.append(cmd) or subprocess.CompletedProcess(cmd, 0))
+    monkeypatch.setattr(D.subprocess, "Popen", Started)
     assert D.launch_workers(2, ["train", "x.yaml", "--out", "r"]) == 0
     assert "note: --workers 2 starts 2 processes" in capsys.readouterr().err and len(started) == 1
+
+
+_LAUNCHER = '''
+import sys
+from towers.training import distributed as D
+# in place of torchrun: a child that says it started, records the signal it gets, and exits 1 on it
+CHILD = ("import signal, sys, time; signal.signal(signal.SIGTERM, lambda *a: (open(sys.argv[1], 'w').write('TERM'), "
+         "sys.exit(1))); open(sys.argv[2], 'w').write('up'); time.sleep(60)")
+D.torchrun_command = lambda n, argv: [sys.executable, "-c", CHILD, *argv]
+D.usable_cores = lambda: 8
+sys.exit(D.launch_workers(2, sys.argv[1:]))
+'''
+
+
+@pytest.mark.parametrize("stop", ["SIGTERM", "SIGKILL"])
+def test_a_stopped_launcher_stops_what_it_started(tmp_path, stop):
+    # SIGTERM is passed on (exit 130 and a line saying how to resume); SIGKILL cannot be caught, and the kernel
+    # sends the child SIGTERM as its parent dies (prctl PR_SET_PDEATHSIG, Linux)
+    if stop == "SIGKILL" and not sys.platform.startswith("linux"):
+        pytest.skip("PR_SET_PDEATHSIG is Linux's")
+    got, up = tmp_path / "got", tmp_path / "up"
+    proc = subprocess.Popen([sys.executable, "-c", _LAUNCHER, str(got), str(up)], stderr=subprocess.PIPE, text=True,
+                            cwd=Path(__file__).resolve().parents[2])
+    deadline = time.time() + 60
+    while not up.exists() and time.time() < deadline:
+        time.sleep(0.02)
+    proc.send_signal(getattr(signal, stop))
+    _, err = proc.communicate(timeout=60)
+    while not got.exists() and time.time() < deadline:
+        time.sleep(0.02)
+    assert got.read_text() == "TERM"
+    if stop == "SIGTERM":
+        assert proc.returncode == 130
+        assert err.strip().splitlines()[-1] == ("interrupted: SIGTERM passed on to the 2 processes; the last checkpoint "
+                                                "is kept: run the same command with --resume to continue")

@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import datetime
 import os
+import signal
 import socket
 import subprocess
 import sys
@@ -174,14 +175,55 @@ def rehearsal_endpoint() -> str:
         return f"127.0.0.1:{s.getsockname()[1]}"
 
 
+FORWARDED = tuple(getattr(signal, name) for name in ("SIGINT", "SIGTERM", "SIGHUP") if hasattr(signal, name))
+
+
 def launch_workers(n: int, argv: list[str]) -> int:
-    """Run `towers train` in n local processes through torchrun (torch.distributed.run); returns its exit code."""
+    """Run `towers train` in n local processes through torchrun (torch.distributed.run); returns its exit code.
+
+    torchrun runs in a session of its own and gets each signal this command gets, once: Ctrl-C, SIGTERM (a
+    scheduler's stop) and SIGHUP reach the workers through torchrun, which starts them in sessions of their own
+    (so a terminal's Ctrl-C, sent to a process group, would reach none of them directly). On Linux torchrun is
+    also stopped with SIGTERM if this command is killed outright, so no worker trains on unseen.
+    """
     if n < 1:
         raise TowersError(f"--workers {n}: give 1 or more processes")
     note = crowding_note(n, usable_cores(), os.getloadavg()[0] if hasattr(os, "getloadavg") else 0.0)
     if note:
         print(note, file=sys.stderr)
-    cmd = [sys.executable, "-m", "torch.distributed.run", "--standalone", f"--nproc-per-node={n}", "-m", "towers", *argv]
     env = dict(os.environ)
     env.setdefault("OMP_NUM_THREADS", str(max(1, (os.cpu_count() or 1) // n)))  # the cores shared out
-    return subprocess.run(cmd, env=env).returncode
+    proc = subprocess.Popen(torchrun_command(n, argv), env=env, start_new_session=True, preexec_fn=_stop_with_parent)
+    received: list[int] = []
+
+    def forward(sig, _frame):
+        received.append(sig)
+        proc.send_signal(sig)
+    before = {sig: signal.signal(sig, forward) for sig in FORWARDED}
+    try:
+        code = proc.wait()
+    finally:
+        for sig, handler in before.items():
+            signal.signal(sig, handler)
+    if received and code != 0:
+        name = signal.Signals(received[0]).name
+        print(f"interrupted: {name} passed on to the {n} processes; the last checkpoint is kept: run the same "
+              "command with --resume to continue", file=sys.stderr)
+        return 130
+    return code
+
+
+def torchrun_command(n: int, argv: list[str]) -> list[str]:
+    """torchrun on this machine starting `towers ARGV` in n processes."""
+    return [sys.executable, "-m", "torch.distributed.run", "--standalone", f"--nproc-per-node={n}", "-m", "towers", *argv]
+
+
+def _stop_with_parent() -> None:
+    """In the child before it starts (Linux): SIGTERM when the parent dies, whatever killed it (prctl
+    PR_SET_PDEATHSIG); elsewhere nothing."""
+    if not sys.platform.startswith("linux"):
+        return
+    import ctypes
+
+    PR_SET_PDEATHSIG = 1  # linux/prctl.h
+    ctypes.CDLL(None, use_errno=True).prctl(PR_SET_PDEATHSIG, signal.SIGTERM, 0, 0, 0)

@@ -21,7 +21,7 @@ import torch
 from tqdm import tqdm
 
 from towers.atomic import write_atomic
-from towers.collective import across, largest, rank_and_size, summed
+from towers.collective import across, gather_objects, largest, rank_and_size, summed
 from towers.config import Config
 from towers.data.features import block_len, take
 from towers.data.history import HISTORY, before, without_targets
@@ -168,6 +168,15 @@ class Trainer:
         if self.data.train.context is not None:
             qb = qb | take(self.data.train.context, idx)
         return qb
+
+    def own_random_state(self) -> dict:
+        """What this process draws from that its peers do not share: its negatives' generator and the global one
+        (id dropout). A checkpoint keeps every process's, so each resumes with its own (fit)."""
+        return {"negatives": self.negative_generator.get_state(), "global": torch.get_rng_state()}
+
+    def set_own_random_state(self, state: dict) -> None:
+        self.negative_generator.set_state(state["negatives"])
+        torch.set_rng_state(state["global"])
 
     def epoch_generator(self, epoch: int) -> torch.Generator:
         """What draws one epoch's order in this process when the log is divided: from the seed, the process
@@ -352,6 +361,11 @@ def fit(model: TwoTowerModel, data: Prepared, cfg: Config, checkpoint_dir: Path 
     last_path = checkpoint_dir / "last.pt" if checkpoint_dir is not None else None
 
     def save(finished: bool, position: tuple | None = None) -> None:
+        # several processes: each one's own random state, gathered where every process saves (an epoch's end, the
+        # finish); a step interrupted part-way keeps only this process's, as its peers may be gone already
+        per_process = None
+        if trainer.world > 1:
+            per_process = [trainer.own_random_state()] if position else gather_objects(trainer.own_random_state())
         if last_path is None:
             return
         ep, step, p, lsf = position if position else (epoch, 0, None, 0.0)
@@ -363,6 +377,8 @@ def fit(model: TwoTowerModel, data: Prepared, cfg: Config, checkpoint_dir: Path 
                  "generator": trainer.generator.get_state(), "global_rng": torch.get_rng_state()}
         if p is not None:
             state["perm"] = p.saved()  # the epoch's order: a permutation, or what draws a windowed one
+        if per_process is not None:
+            state["process_random"] = per_process
         write_atomic(last_path, lambda f: torch.save(state, f))
 
     if resume and last_path is not None and last_path.is_file():
@@ -374,6 +390,13 @@ def fit(model: TwoTowerModel, data: Prepared, cfg: Config, checkpoint_dir: Path 
             opt.load_state_dict(o_state)
         trainer.generator.set_state(st["generator"])
         torch.set_rng_state(st["global_rng"])
+        per_process = st.get("process_random")
+        if trainer.world > 1 and per_process is not None and len(per_process) == trainer.world:
+            trainer.set_own_random_state(per_process[trainer.rank])
+        elif trainer.world > 1:
+            log(f"{label}: the checkpoint holds the random state of {len(per_process or [1])} process(es), not "
+                f"{trainer.world}; each process draws its id dropout and negatives afresh, so the run will not end "
+                "with the weights of an uninterrupted one")
         result.history, result.best_value, result.best_epoch = st["history"], st["best_value"], st["best_epoch"]
         result.best_state, stopping.stale = st["best_model"], st["stale"]
         epoch, start_step, order, done_loss = st["epoch"], st["step"], restore(st.get("perm")), st["loss_so_far"]
