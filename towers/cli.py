@@ -333,6 +333,11 @@ def main(argv: list[str] | None = None) -> int:
         except KeyboardInterrupt:
             print("error: interrupted", file=sys.stderr)
             return 130
+        except BrokenPipeError:
+            # the reader stopped early (`| head`): quiet, as other command-line tools are, with their code
+            # 128 + SIGPIPE; stdout goes to /dev/null so the interpreter's final flush cannot fail again
+            os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+            return 141
 
 
 if __name__ == "__main__":

@@ -451,7 +451,7 @@ def test_timestamps_that_do_not_parse(store, tmp_path, capsys):
     cfg["interactions"]["time_column"] = "rated_at"
     cfg["evaluation"]["split"] = "time"
     train_fails(capsys, tmp_path, cfg, "stars_when.csv", "column 'rated_at'", "row 4", "'yesterday'",
-                fix=r"use ISO 8601 text")
+                fix=r"write times as ISO 8601 text")
 
 
 def test_vector_of_the_wrong_length(store, tmp_path, capsys):

@@ -308,3 +308,23 @@ def test_config_rules(change, message):
         raw[section] = raw.get(section, {}) | keys
     with pytest.raises(TowersError, match=message):
         C.resolve(raw, Path("."))
+
+
+@pytest.mark.parametrize("derived", [{"pairs_from": "baskets"}, {"pairs_from": "rows", "count_repeats": True}])
+def test_an_item_without_a_feature_row_is_named_by_id_not_by_a_derived_row(tmp_path, derived):
+    # counted pairs are not the export's rows, so the error names the column and the id (which a user can
+    # search the export for), not a row number the file does not have
+    df = orders(n_orders=30)
+    df.loc[17, "product_id"] = "P9999"
+    df.to_csv(tmp_path / "orders.csv", index=False)
+    items = pd.DataFrame({"item_id": ITEMS, "shelf": [f"s{i % 3}" for i in range(len(ITEMS))]})
+    items.to_csv(tmp_path / "items.csv", index=False)
+    mode = {"query_column": "customer_id"} if derived["pairs_from"] == "rows" else {}
+    cfg = C.resolve({"run": {"mode": "user_item" if mode else "item_item"},
+                     "interactions": {"path": str(tmp_path / "orders.csv"), "candidate_column": "product_id",
+                                      "group_column": "order_id", **derived, **mode},
+                     "items": {"path": str(tmp_path / "items.csv"), "id_column": "item_id",
+                               "features": [{"name": "shelf", "kind": "categorical"}]},
+                     "training": {"progress": "plain"}}, tmp_path)
+    with pytest.raises(TowersError, match=r"orders\.csv, column 'product_id': id 'P9999' has no row in "):
+        prepare(cfg)

@@ -318,12 +318,22 @@ def test_time_column_takes_numbers_as_given():
         T.time_column(pd.Series([1.0, np.nan]), "f", "t")
 
 
-@pytest.mark.parametrize("bad", ["not a date", "2026-13-45", None])
-def test_time_column_rejects_unparsable_dates_with_the_row(bad):
+@pytest.mark.parametrize("bad, says", [("not a date", "'not a date' is not an ISO 8601 date or time"),
+                                       ("2026-13-45", "'2026-13-45' is not an ISO 8601"), (None, "missing time"),
+                                       # day first: a guessed format would read this row as 5 May, the next as 13 March
+                                       ("05/03/2026 10:00", "'05/03/2026 10:00' is not an ISO 8601 date or time")])
+def test_time_column_rejects_unparsable_dates_with_the_row(bad, says):
     with pytest.raises(TowersError) as err:
-        T.time_column(pd.Series(["2026-03-14", "2026-03-15", bad], dtype=object), "log.csv", "when")
+        T.time_column(pd.Series(["2026-03-14", "2026-03-15", bad, "13/03/2026 09:00"], dtype=object), "log.csv", "when")
     msg = str(err.value)
-    assert msg.startswith("log.csv, column 'when', row 3:") and "is not a date or time" in msg
+    assert msg.startswith("log.csv, column 'when', row 3: " + says) and "year first" in msg
+
+
+def test_time_column_reads_iso_text_with_and_without_zones():
+    got = T.time_column(pd.Series([" 2026-03-14 09:30:00", "2026-03-14T09:30", "2026-03-14T10:30:00+01:00",
+                                   "2026-03-14"]), "f", "t")
+    want = np.array(["2026-03-14T09:30", "2026-03-14T09:30", "2026-03-14T09:30", "2026-03-14"], dtype="datetime64[ns]")
+    assert got.tolist() == want.astype(np.int64).tolist()
 
 
 # ---------------------------------------------------------------- parquet in pieces

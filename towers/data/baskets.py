@@ -38,7 +38,7 @@ from tqdm import tqdm
 
 from towers.config import Config, InteractionsSection
 from towers.data.splits import TRAIN, connected_units, global_sides
-from towers.data.tables import normalise_ids, require_columns, table_files
+from towers.data.tables import TIME_FORM, normalise_ids, require_columns, table_files
 from towers.errors import TowersError, where
 
 NUMERIC_TYPES = ("TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT", "UTINYINT", "USMALLINT", "UINTEGER",
@@ -216,7 +216,7 @@ class Source:
                     "t": "missing time; every row needs one (fill it or drop such rows)",
                     "w": "missing value; every row needs a number here"}[name]
         elif name == "t":
-            what = f"{value!r} is not a date or time; use ISO 8601 text such as 2026-03-14 09:30:00, or numbers"
+            what = f"{value!r} is not an ISO 8601 date or time; {TIME_FORM}"
         else:
             what = (f"negative or infinite quantity {value}; quantities must be finite and >= 0" if _is_number(value)
                     else f"{value!r} is not a number; quantities must be numbers >= 0")

@@ -126,8 +126,8 @@ class SideTable:
         columns one after another, equally long (item_item mode), so errors name the right column and row.
         With `codes`, interaction_ids are the log's distinct ids and row r of the log holds
         interaction_ids[codes[r]] (data/prepare.IdColumn): every check runs once per distinct id.
-        file_rows false: the rows are not the file's (a data-parallel process's share), so errors name
-        the id and column but no row. Returns (catalog ids, feature rows aligned with them or None,
+        file_rows false: the rows are not the file's (pairs derived from an export, a data-parallel process's
+        share), so errors name the id and column but no row. Returns (catalog ids, feature rows aligned with them or None,
         keep-mask over the log's rows).
         """
         columns = (log_column,) if isinstance(log_column, str) else tuple(log_column)

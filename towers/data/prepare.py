@@ -297,8 +297,10 @@ def prepare(cfg: Config, previous=None) -> Prepared:
     notes: list[str] = list(log.notes)
     if shard is None and rank_and_size()[1] > 1:
         notes.append(f"every process reads the whole log: {whole_log_reason(cfg)}")
-    # rows derived from an export (baskets, sessions, count_repeats) are not the file's rows: errors say so
-    source = ic.path if ic.pairs_from == "rows" and not ic.count_repeats else f"{ic.path} (derived rows)"
+    # rows derived from an export (baskets, sessions, count_repeats) or a process's share of a divided log are
+    # not the file's rows: errors there name the id and column, not a row
+    file_rows = ic.pairs_from == "rows" and not ic.count_repeats and shard is None
+    source = ic.path
 
     item_side = SideTable(cfg.items.path, cfg.items.id_column, cfg.items.features, cfg.items.missing_rows)
     # ids are matched once per distinct id and mapped to rows through the codes (see IdColumn)
@@ -306,7 +308,7 @@ def prepare(cfg: Config, previous=None) -> Prepared:
         both = _joint_ids(q_log, c_log, spill)
         c_ids, c_table, keep_both = item_side.catalog(both.uniques, source,
                                                       (ic.query_column or ic.candidate_column, ic.candidate_column),
-                                                      codes=both.codes)
+                                                      codes=both.codes, file_rows=file_rows)
         n = len(q_log.codes)
         keep = keep_both[:n] & keep_both[n:]
         q_ids, q_table = c_ids, c_table
@@ -315,11 +317,10 @@ def prepare(cfg: Config, previous=None) -> Prepared:
         both = rows_both = None
     else:
         user_side = SideTable(cfg.users.path, cfg.users.id_column, cfg.users.features, cfg.users.missing_rows)
-        # divided: a process's rows are not the file's rows, so errors name the id, not a row
         q_ids, q_table, keep_q = user_side.catalog(q_log.uniques, source, ic.query_column, codes=q_log.codes,
-                                                   file_rows=shard is None)
+                                                   file_rows=file_rows)
         c_ids, c_table, keep_c = item_side.catalog(c_log.uniques, source, ic.candidate_column, codes=c_log.codes,
-                                                   file_rows=shard is None)
+                                                   file_rows=file_rows)
         keep = keep_q & keep_c
         q_rows = spill.where(_catalog_rows(q_log, q_ids, spill), keep)
         c_rows = spill.where(_catalog_rows(c_log, c_ids, spill), keep)

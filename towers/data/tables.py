@@ -459,19 +459,29 @@ def numeric_column(series: pd.Series, path, column, allow_missing: bool = True, 
     return values
 
 
+TIME_FORM = ("write times as ISO 8601 text such as 2026-03-14 09:30:00 (year first: 05/03/2026 could be May or "
+             "March), or as numbers")
+
+
 def time_column(series: pd.Series, path, column) -> np.ndarray:
-    """Event times as int64 nanoseconds since the epoch; numbers are taken as given (any unit)."""
+    """Event times as int64 nanoseconds since the epoch; numbers are taken as given (any unit).
+
+    Text must be ISO 8601: a guessed format would read 05/03 as May in one row and 13/03 as March in the
+    next, moving events in time without a word."""
     if pd.api.types.is_numeric_dtype(series) and not pd.api.types.is_bool_dtype(series):
         return numeric_column(series, path, column, allow_missing=False).astype(np.int64)
     if pd.api.types.is_datetime64_any_dtype(series):
         parsed = series
     else:
-        parsed = pd.to_datetime(series, errors="coerce", utc=True, format="mixed")
+        text = series.astype(str).str.strip().where(series.notna().to_numpy())
+        parsed = pd.to_datetime(text, errors="coerce", utc=True, format="ISO8601")
     bad = parsed.isna().to_numpy()
     if bad.any():
         row = int(np.flatnonzero(bad)[0])
-        raise TowersError(f"{where(path, column, row + 1)}: {series.iloc[row]!r} is not a date or time; "
-                          "use ISO 8601 text such as 2026-03-14 09:30:00, or numbers")
+        value = series.iloc[row]
+        what = "missing time; every row needs one" if pd.isna(value) else \
+            f"{value!r} is not an ISO 8601 date or time"
+        raise TowersError(f"{where(path, column, row + 1)}: {what}; {TIME_FORM}")
     if getattr(parsed.dt, "tz", None) is not None:
         parsed = parsed.dt.tz_convert("UTC").dt.tz_localize(None)
     return parsed.to_numpy(dtype="datetime64[ns]").astype(np.int64)
