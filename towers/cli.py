@@ -313,8 +313,8 @@ def run(args: argparse.Namespace) -> int:
             frame = run_.recommend(args.users, args.top, context=_context_pairs(args.context), **chosen)
         if args.out:
             _write_frame(frame, args.out)
-        else:
-            print(frame.to_string(index=False))
+        else:  # an empty list (a filter nothing passes) prints its header, not pandas' "Empty DataFrame"
+            print(frame.to_string(index=False) if len(frame) else "  ".join(map(str, frame.columns)))
         return 0
     raise AssertionError(args.command)
 

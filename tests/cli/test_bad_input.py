@@ -501,6 +501,13 @@ def test_unknown_config_key_suggests_the_closest(store, tmp_path, capsys):
     train_fails(capsys, tmp_path, cfg, "run.yaml", "'training.epocs'", fix=r"did you mean 'epochs'\?")
 
 
+def test_a_group_column_in_no_table_names_the_config_file(store, tmp_path, capsys):
+    cfg = change(base_config(store), "evaluation", group_metrics_by=["region"])
+    msg = train_fails(capsys, tmp_path, cfg, "'evaluation.group_metrics_by'", "'region'",
+                      fix=r"name a column of the users or items table")
+    assert msg.startswith(f"error: {tmp_path / 'run.yaml'}: config key"), msg
+
+
 def test_unknown_feature_key_suggests_the_closest(store, tmp_path, capsys):
     cfg = base_config(store)
     cfg["items"]["features"][2]["seperator"] = ";"

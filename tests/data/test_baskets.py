@@ -328,3 +328,17 @@ def test_an_item_without_a_feature_row_is_named_by_id_not_by_a_derived_row(tmp_p
                      "training": {"progress": "plain"}}, tmp_path)
     with pytest.raises(TowersError, match=r"orders\.csv, column 'product_id': id 'P9999' has no row in "):
         prepare(cfg)
+
+
+def test_a_csv_export_with_a_wrong_header_gets_the_usual_one_line_errors(tmp_path):
+    df = orders(n_orders=10)
+    df.to_csv(tmp_path / "orders.csv", index=False)
+    with pytest.raises(TowersError, match=r"orders\.csv, column 'qty': no such column; did you mean 'quantity'\?"):
+        derive_pairs(resolve(tmp_path / "orders.csv", quantity_column="qty"), split=False)
+    (tmp_path / "empty.csv").write_text("")
+    with pytest.raises(TowersError, match=r"empty\.csv: the file is empty; it needs a header row"):
+        derive_pairs(resolve(tmp_path / "empty.csv", quantity_column="quantity"), split=False)
+    df.to_csv(tmp_path / "semi.csv", index=False, sep=";")
+    with pytest.raises(TowersError, match=r"semi\.csv, column 'order_id': no such column; the header reads as one "
+                                          r"column, .*: the file looks ';'-separated; save it with commas"):
+        derive_pairs(resolve(tmp_path / "semi.csv", quantity_column="quantity"), split=False)

@@ -365,3 +365,12 @@ def test_table_columns_reads_the_header_alone_as_read_table_names_it(tmp_path):
         assert T.table_columns(tmp_path / name) == list(T.read_table(tmp_path / name).columns)
     with pytest.raises(TowersError, match="file not found"):
         T.table_columns(tmp_path / "missing.csv")
+
+
+@pytest.mark.parametrize("sep, said", [(";", "';'"), ("|", "'|'"), ("\t", "tab")])
+def test_a_header_read_as_one_column_points_at_the_separator(tmp_path, sep, said):
+    path = tmp_path / "log.csv"
+    pd.DataFrame({"user": [1, 2], "item": [3, 4]}).to_csv(path, index=False, sep=sep)
+    with pytest.raises(TowersError, match=rf"log\.csv, column 'user': no such column; the header reads as one column, "
+                                          rf".*: the file looks {re.escape(said)}-separated"):
+        T.read_table(path, columns=["user", "item"])

@@ -390,3 +390,12 @@ def test_a_rewritten_item_table_is_read_again(basket_run, small_store, tmp_path)
     os.utime(path, ns=(os.stat(path).st_atime_ns, os.stat(path).st_mtime_ns + 10**9))
     again = run.recommend(user, top=3, keep=keep, item_table=path)["item_id"].tolist()
     assert not set(first) & set(again)  # common practice: a cache keyed by the file's size and time
+
+
+def test_a_value_filter_that_matches_no_item_warns_with_the_values_present(shop_table):
+    path, table = shop_table
+    keep = ItemFilter.from_dict({"only_values": {"department": ["Garden"]}})  # the table says "garden"
+    with pytest.warns(UserWarning, match=r"column 'department': no item has 'Garden', so nothing passes this filter; "
+                                         r"values present: 'garden', 'lighting', 'paint', 'tools'"):
+        lists = item_lists(table["item_id"].to_numpy(), keep, (), path, "item_id", "no table")
+    assert lists.allowed is not None and len(lists.allowed) == 0

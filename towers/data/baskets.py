@@ -38,7 +38,7 @@ from tqdm import tqdm
 
 from towers.config import Config, InteractionsSection
 from towers.data.splits import TRAIN, connected_units, global_sides
-from towers.data.tables import TIME_FORM, normalise_ids, require_columns, table_files
+from towers.data.tables import TIME_FORM, normalise_ids, require_columns, table_columns, table_files
 from towers.errors import TowersError, where
 
 NUMERIC_TYPES = ("TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT", "UTINYINT", "USMALLINT", "UINTEGER",
@@ -151,6 +151,9 @@ class Source:
             options = ""
             make = "read_parquet"
         else:
+            # the header through pandas first: an empty file and a misnamed column get the usual one-line errors
+            # (DuckDB refuses a quantity column named in `types` below that is not there with a message of its own)
+            require_columns(table_columns(self.files[0]), list(columns.values()), self.files[0])
             sep = "\\t" if suffix == ".tsv" else ","
             # quantities read as text and converted per row, so a bad value is named, not a failed sniff
             text = f", types = {{{_text(columns['w'])}: 'VARCHAR'}}" if "w" in columns else ""

@@ -335,6 +335,12 @@ def require_columns(present, wanted, path) -> None:
     for col in wanted:
         if col not in present:
             close = difflib.get_close_matches(col, present, n=3, cutoff=0.5)
+            sep = next((s for s in (";", "|", "\t", ",") if len(present) == 1 and col in present[0].split(s)), None)
+            if sep is not None:  # the whole header read as one column: another separator
+                shown_sep = "tab" if sep == "\t" else repr(sep)
+                hint = (f"the header reads as one column, {shown(present[0])}: the file looks {shown_sep}-separated; "
+                        "save it with commas (.csv) or tabs (.tsv), or as parquet")
+                raise TowersError(f"{where(path, shown(str(col)))}: no such column; {hint}")
             hint = (f"did you mean {', '.join(repr(c) for c in close)}?" if close
                     else f"columns present: {', '.join(shown(c) for c in present[:12])}")
             raise TowersError(f"{where(path, shown(str(col)))}: no such column; {hint} (fix the config or the file)")

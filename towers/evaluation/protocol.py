@@ -544,6 +544,12 @@ def evaluate_slices(scorers: dict, data: SplitPairs, cfg: Config, event_vectors:
                 out[slice_name][name] = {}
         if not any(out[slice_name].values()):
             notes[slice_name] = _empty_reason(slice_name, pairs_in(raw), cfg)
+        elif not explicit and int(candidates.sum()) <= 2 * max(ks):
+            n, k = int(candidates.sum()), max(ks)
+            notes[f"{slice_name}_size"] = (
+                f"the {slice_name} slice ranks only {n} items: a random order already finds about "
+                f"{min(1.0, k / n):.2f} of the held-out items in the top {k}, so recall@{k} says little there; "
+                "rank among more items (a larger cold fraction, or a smaller top_k)")
     for name, info in (reference_info or {}).items():
         if "skipped" in info:
             notes[name] = f"{name} skipped: {info['skipped']}"

@@ -186,7 +186,15 @@ class ItemTable:
         for name in keep.only_true:
             ok &= self._true(name)
         for name, values in keep.only_values:
-            ok &= self._text(name).isin(values).to_numpy()
+            text = self._text(name)
+            matched = text.isin(values).to_numpy()
+            if not matched.any():  # most often a spelling or a case: say which values the column holds
+                present = sorted(pd.unique(text.dropna()).tolist())
+                sample = ", ".join(repr(v) for v in present[:12]) + (", ..." if len(present) > 12 else "")
+                warnings.warn(f"{where(self.path, shown(name))}: no item has {' or '.join(map(repr, values))}, so "
+                              f"nothing passes this filter; values present: {sample or 'none'} (matched as written)",
+                              stacklevel=2)
+            ok &= matched
         for name, values in keep.never_values:
             ok &= ~self._text(name).isin(values).to_numpy()
         return ok
@@ -425,7 +433,7 @@ def write_lists(out: str | Path, scorer: Scorer, lists: Lists, query_ids: np.nda
                 if bar is not None:
                     bar.update(len(part))
                 elif time.monotonic() - last > 10 or start + block >= len(rows):
-                    log(f"lists: {min(start + block, len(rows))} of {len(rows)} users")
+                    log(f"lists: {min(start + block, len(rows))} of {len(rows)} {'items' if exclude_self else 'users'}")
                     last = time.monotonic()
             if writer is None:  # no user: an empty file with the list columns
                 empty = lists.table(query_ids[:0], torch.zeros((0, top), dtype=torch.int64), torch.zeros((0, top)))
@@ -531,6 +539,7 @@ def batch_rows(run, user_ids, what: str, source: str) -> torch.Tensor:
     at = positions_in(q_ids, given)
     if (at < 0).any():
         first = given[np.flatnonzero(at < 0)[0]]
+        first = first.item() if isinstance(first, np.generic) else first  # 424242, not np.int64(424242)
         warnings.warn(f"{source}: {int((at < 0).sum())} of {len(at)} {what} ids are not in this run (e.g. {first!r}); "
                       "they get no list", stacklevel=3)
     return torch.from_numpy(pd.unique(at[at >= 0]).astype(np.int64))

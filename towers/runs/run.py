@@ -229,7 +229,8 @@ class Run:
         if side == "items":
             return self.bundle.candidate_encoders, m.candidate_tower, m.candidate_bias if m.use_biases else None
         if self.item_item:
-            raise TowersError("this run is item_item: it has no user tower; use embed_items")
+            raise TowersError("this run is item_item: it has no user tower; embed items instead "
+                              "(towers embed RUN --items FILE, or Run.embed_items in Python)")
         tower = m.query_tower
         if self.context is not None:
             tower = AveragedOverContexts(m.query_tower, self.bundle.extra["context_sample"])

@@ -186,7 +186,10 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
     torch.manual_seed(cfg.run.seed)
     previous = load_previous(init_from) if init_from else None
     data = prepare(cfg, previous)
-    groups = group_labels(cfg, data.queries.ids, data.candidates.ids)  # read now: a wrong column fails before training
+    try:  # read now: a wrong column fails before training
+        groups = group_labels(cfg, data.queries.ids, data.candidates.ids)
+    except TowersError as exc:  # a config key's error names the config file, as those found on loading do
+        raise (TowersError(f"{config_path}: {exc}") if str(exc).startswith("config key") else exc) from None
     started_from = None if previous is None else {"run": str(Path(init_from).resolve()), "encoders": data.started_from}
     for note in data.notes:
         log(note)
