@@ -374,3 +374,26 @@ def test_a_header_read_as_one_column_points_at_the_separator(tmp_path, sep, said
     with pytest.raises(TowersError, match=rf"log\.csv, column 'user': no such column; the header reads as one column, "
                                           rf".*: the file looks {re.escape(said)}-separated"):
         T.read_table(path, columns=["user", "item"])
+
+
+def test_words_for_missing_warn_in_text_columns_and_stay_quiet_in_numbers(tmp_path):
+    # pandas takes NA, null, n/a, ... as missing by default (its STR_NA_VALUES); in a text column such a word may be
+    # a value (NA: North America), so it is still taken as missing, with a warning naming the column and first row
+    path = tmp_path / "customers.csv"
+    path.write_text("customer_id,region,spend\n1,EU,12.5\n2,NA,n/a\n3,NA,7\n4,,\n")
+    with pytest.warns(UserWarning, match=r"customers\.csv, column 'region', row 2: 2 cells hold 'NA' or another word "
+                                         r"for missing and are taken as missing") as seen:
+        df = T.read_table(path)
+    assert len(seen) == 1  # nothing about spend: a column of numbers with n/a is a column of numbers
+    assert df["region"].isna().tolist() == [False, True, True, True]
+    assert df["spend"].dtype == np.float64 and np.isnan(df["spend"].to_numpy()[[1, 3]]).all()
+    assert df["customer_id"].dtype == np.int64
+    # outside reference: what pandas itself reads with its defaults
+    pd.testing.assert_frame_equal(df, pd.read_csv(path))
+
+
+def test_words_for_missing_warn_only_in_the_columns_watched(tmp_path, recwarn):
+    path = tmp_path / "items.csv"
+    path.write_text("item_id,notes,shelf\n1,None,a\n2,fragile,b\n")
+    df = T.read_table(path, watch=["item_id", "shelf"])  # notes is not a feature: read alike, no warning
+    assert df["notes"].isna().tolist() == [True, False] and not [w for w in recwarn if "missing" in str(w.message)]

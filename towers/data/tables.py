@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import contextlib
 import difflib
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -20,10 +21,11 @@ from towers.memory import trim_freed_memory
 READABLE = (".csv", ".parquet", ".pq", ".tsv")
 
 
-def read_table(path: str | Path, columns: list[str] | None = None) -> pd.DataFrame:
+def read_table(path: str | Path, columns: list[str] | None = None, watch: list[str] | None = None) -> pd.DataFrame:
     """Read a CSV (or TSV) or parquet file into a DataFrame, with clear errors.
 
     CSV handling: a UTF-8 byte-order mark, quoted delimiters and Windows line ends are read correctly.
+    watch: the columns whose words for missing get a warning (_missing_words; default: `columns`, else all).
     """
     path = Path(path)
     suffix = check_file(path)
@@ -36,9 +38,11 @@ def read_table(path: str | Path, columns: list[str] | None = None) -> pd.DataFra
                 require_columns(schema_names, columns, path)
             df = _plain_frame(pq.read_table(path, columns=columns).to_pandas())
         else:
+            # only empty cells are missing as read; words pandas would also take as missing are looked at next
             df = pd.read_csv(path, sep="\t" if suffix == ".tsv" else ",", encoding="utf-8-sig",
-                             skipinitialspace=False, low_memory=False)
+                             skipinitialspace=False, low_memory=False, keep_default_na=False, na_values=[""])
             _check_fields(df, path)
+            _missing_words(df, path, watch if watch is not None else columns)
     _check_header(df, path)
     if columns is not None:
         require_columns(df.columns, columns, path)
@@ -78,6 +82,37 @@ def _read_errors(path: Path, suffix: str):
     except Exception as exc:  # pyarrow raises its own ArrowInvalid family
         _raise_if_arrow(exc, path)
         raise
+
+
+# what pandas reads as missing by default besides an empty cell (its STR_NA_VALUES, pandas 2)
+MISSING_WORDS = frozenset({"#N/A", "#N/A N/A", "#NA", "-1.#IND", "-1.#QNAN", "-NaN", "-nan", "1.#IND", "1.#QNAN",
+                           "<NA>", "N/A", "NA", "NULL", "NaN", "None", "n/a", "nan", "null"})
+
+
+def _missing_words(df: pd.DataFrame, path: Path, watch: list[str] | None) -> None:
+    """Cells holding a word for missing (NA, null, n/a, ...) become missing, in place, as pandas takes them by
+    default. A column whose other cells are all numbers is then read as numbers, as usual. In a column of text
+    the word may be a value (region NA for North America), so that column gets a warning naming it."""
+    for name in df.columns:
+        column = df[name]
+        if not (column.dtype == object or pd.api.types.is_string_dtype(column.dtype)):
+            continue
+        words = column.isin(MISSING_WORDS).to_numpy()
+        if not words.any():
+            continue
+        row = int(np.flatnonzero(words)[0])
+        word = column.iloc[row]
+        column = column.mask(words)
+        numbers = pd.to_numeric(column, errors="coerce")
+        if int(numbers.notna().sum()) == int(column.notna().sum()):  # every other cell a number
+            df[name] = numbers
+            continue
+        df[name] = column
+        if watch is not None and str(name).strip() not in watch:
+            continue
+        warnings.warn(f"{where(path, shown(str(name).strip()), row + 1)}: {int(words.sum())} cells hold {word!r} or "
+                      "another word for missing and are taken as missing; if it is a value here (NA for North "
+                      "America, say), write it another way", stacklevel=4)
 
 
 def _check_fields(df: pd.DataFrame, path: Path) -> None:
