@@ -424,24 +424,24 @@ class Run:
             raise TowersError(f"{self.dir}: this run was trained without context columns; drop --context")
         items = list(item_ids)
         if not items:
-            raise TowersError(f"{self.dir}: --history needs at least one item id")
+            raise TowersError(f"{self.dir}: a history needs at least one item id")
         history = (HISTORY, "|")
         self._check_history(history)
         lists = L.lists_for(self, columns, keep, item_table)
         encoders, tower, bias_table = self._side_parts("users")
         frame = pd.DataFrame({e.name: pd.Series([None], dtype=object) for e in encoders.encoders})
         frame[HISTORY] = pd.Series([items], dtype=object)
-        block = encoders.encode(np.asarray([None], dtype=object), frame, "--history")  # no id: the unknown row
-        block[HISTORY], counts = self._bags(frame[HISTORY], "--history", history)
+        block = encoders.encode(np.asarray([None], dtype=object), frame, "history")  # no id: the unknown row
+        block[HISTORY], counts = self._bags(frame[HISTORY], "history", history)
         if any(counts.values()):
-            warnings.warn(f"--history: left out {_left_out(counts)}", stacklevel=2)
+            warnings.warn(f"history: left out {_left_out(counts)}", stacklevel=2)
         # without --context a run with context columns averages over its training context sample, as embed_users
         query = (lambda b: self.bundle.model.query_tower(b | self._context_block(context, 1))) if context else tower
         with torch.no_grad():
             vectors = query(block)
             bias = bias_table(block["id"]).squeeze(1) if bias_table is not None else None
         i_ids = self.embeddings("item")[0]  # the catalog order of pairs.pt and of the history table
-        ids, _ = history_ids(frame[HISTORY], "--history", HISTORY)
+        ids, _ = history_ids(frame[HISTORY], "history", HISTORY)
         at = positions_in(i_ids, ids)
         given = torch.from_numpy(np.unique(at[at >= 0]).astype(np.int64))  # the given items in the run, left out
         scorer = dataclasses.replace(self._scorer(TOWERS), query_vectors=vectors, query_bias=bias)
