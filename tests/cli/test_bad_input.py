@@ -298,7 +298,12 @@ def test_ids_with_a_fraction(store, tmp_path, capsys):
     path = tmp_path / "log_fraction.csv"
     frame.to_csv(path, index=False)
     cfg = change(base_config(store), "interactions", path=str(path))
+    # a CSV id is read as written (12.0 is the text 12.0): this one matches no whole-number id of the table
     train_fails(capsys, tmp_path, cfg, "log_fraction.csv", "column 'customer_id'", "row 4",
+                fix=r"'\d+\.5' is text but the ids in .*customers\.csv are whole numbers; store every id as a number")
+    frame.to_parquet(tmp_path / "log_fraction.parquet", index=False)  # a float column: the number is not whole
+    cfg = change(base_config(store), "interactions", path=str(tmp_path / "log_fraction.parquet"))
+    train_fails(capsys, tmp_path, cfg, "log_fraction.parquet", "column 'customer_id'", "row 4",
                 fix=r"not a whole 64-bit number; ids must be integers or strings")
 
 

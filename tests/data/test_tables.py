@@ -397,3 +397,21 @@ def test_words_for_missing_warn_only_in_the_columns_watched(tmp_path, recwarn):
     path.write_text("item_id,notes,shelf\n1,None,a\n2,fragile,b\n")
     df = T.read_table(path, watch=["item_id", "shelf"])  # notes is not a feature: read alike, no warning
     assert df["notes"].isna().tolist() == [True, False] and not [w for w in recwarn if "missing" in str(w.message)]
+
+
+def test_ids_keep_their_leading_zeros_and_plain_numbers_stay_numbers(tmp_path):
+    # an SKU or ISBN written 0007 is the id 0007: read as a number it became 7 and merged with 07 and 7
+    path = tmp_path / "items.csv"
+    path.write_text("sku,code,shelf\n0007,17,1\n07,18,2\n7,19,3\n")
+    df = T.read_table(path, ids=["sku", "code"])
+    assert df["sku"].tolist() == ["0007", "07", "7"] and df["sku"].dtype == object
+    assert df["code"].dtype == np.int64 and df["code"].tolist() == [17, 18, 19]  # written as numbers print
+    assert df["shelf"].dtype == np.int64  # not an id: read as pandas reads it
+    pieces = [piece for _, piece in T.read_table_chunks(path, ["sku", "code"], 2, ids=["sku", "code"])]
+    # the second piece alone is written as a number prints, and IdPieces joins numbers beside text as text: '7'
+    assert [p["sku"].tolist() for p in pieces] == [["0007", "07"], [7]]
+    ids = T.IdPieces()
+    for piece in pieces:
+        ids.add(piece["sku"], path, "sku")
+    codes, uniques = ids.finish()
+    assert list(uniques) == ["0007", "07", "7"] and codes.tolist() == [0, 1, 2]

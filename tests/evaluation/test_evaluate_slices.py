@@ -186,3 +186,17 @@ def test_item_groups_rank_the_whole_catalog_but_count_only_their_positives():
         assert got["recall@5"] == pytest.approx(alone["recall@5"], abs=1e-12)
         assert got["ndcg@5"] == pytest.approx(alone["ndcg@5"], abs=1e-12)
         assert got["queries"] == alone["queries"]
+
+
+def test_a_squared_loss_run_says_it_has_no_group_metrics():
+    split = _split(seed=8)
+    split.test = Pairs(split.test.query, split.test.candidate, torch.full((len(split.test),), 4.0))
+    cfg = C.resolve({"interactions": {"path": "log.csv", "query_column": "user", "candidate_column": "item",
+                                      "target_column": "stars"}, "training": {"loss": "squared"},
+                     "evaluation": {"top_k": [5]}}, Path("."))
+    codes = torch.zeros(40, dtype=torch.int64)
+    metrics = evaluate_slices({"towers": _random_scorer(np.random.default_rng(9))}, split, cfg,
+                              groups=[Groups("shelf", "item", codes, ["s1"])])
+    assert "groups" not in metrics and "rmse" in metrics["warm"]["towers"]
+    assert "a squared-loss run ranks nothing" in metrics["notes"]["group_metrics_by"]
+    assert "note: evaluation.group_metrics_by" in format_table(metrics)

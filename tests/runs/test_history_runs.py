@@ -149,7 +149,7 @@ def test_history_requests_that_cannot_be_met_are_one_line_errors(history_run, ti
         run.embed_users(users.assign(h=""), history=[[], [], []], history_column="h")
     with pytest.raises(TowersError, match=r"users, column 'recent': no such column"):
         run.embed_users(users, history_column="recent")
-    with pytest.raises(TowersError, match=r"--history needs at least one item id"):
+    with pytest.raises(TowersError, match=r"a history needs at least one item id"):
         run.recommend_history([])
     plain = towers.load(tiny_runs.train())  # trained without history (model.history_length 0)
     fix = r"trained without user histories \(model.history_length is 0\).*retrain with model.history_length > 0"

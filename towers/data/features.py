@@ -104,7 +104,7 @@ class SideTable:
         self.ids: np.ndarray | None = None
         if path:
             cols = [id_column] + [s.name for s in specs]
-            self.table = read_table(path, columns=None, watch=cols)
+            self.table = read_table(path, columns=None, watch=cols, ids=[id_column])
             require_columns(self.table.columns, cols, path)
             self.table = self.table[list(dict.fromkeys(cols))].reset_index(drop=True)
             self.ids = normalise_ids(self.table[id_column], path, id_column)

@@ -52,7 +52,7 @@ def group_labels(cfg: Config, query_ids: np.ndarray, item_ids: np.ndarray) -> li
 
 
 def _labels(column: str, side: str, path: str, id_column: str, catalog_ids: np.ndarray) -> Groups:
-    df = read_table(path, columns=[id_column, column])
+    df = read_table(path, columns=[id_column, column], ids=[id_column])
     ids = normalise_ids(df[id_column], path, id_column)
     row = pd.Index(align_id_types(ids, catalog_ids)).get_indexer(catalog_ids)
     values = df[column].astype("string").fillna(MISSING).to_numpy(dtype=object)

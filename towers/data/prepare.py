@@ -150,7 +150,8 @@ def read_interactions(cfg: Config, split: bool = False, spill: Spill | None = No
     turns = None if shard is None else shard.turns()
     units = None if shard is None else Column(spill, np.int32)  # the unit each row was read in
     for file in table_files(path):
-        for start, df in read_table_chunks(file, wanted, LOG_PIECE_ROWS, take=turns):
+        for start, df in read_table_chunks(file, wanted, LOG_PIECE_ROWS, take=turns,
+                                           ids=[c for c in (ic.query_column, ic.candidate_column) if c]):
             with rows_after(start):
                 q.add(df[ic.query_column], file, ic.query_column)
                 c.add(df[ic.candidate_column], file, ic.candidate_column)

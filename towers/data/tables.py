@@ -21,11 +21,13 @@ from towers.memory import trim_freed_memory
 READABLE = (".csv", ".parquet", ".pq", ".tsv")
 
 
-def read_table(path: str | Path, columns: list[str] | None = None, watch: list[str] | None = None) -> pd.DataFrame:
+def read_table(path: str | Path, columns: list[str] | None = None, watch: list[str] | None = None,
+               ids: tuple[str, ...] | list[str] = ()) -> pd.DataFrame:
     """Read a CSV (or TSV) or parquet file into a DataFrame, with clear errors.
 
     CSV handling: a UTF-8 byte-order mark, quoted delimiters and Windows line ends are read correctly.
     watch: the columns whose words for missing get a warning (_missing_words; default: `columns`, else all).
+    ids: id columns, read as written (ids_as_written): 0007 stays 0007.
     """
     path = Path(path)
     suffix = check_file(path)
@@ -40,9 +42,11 @@ def read_table(path: str | Path, columns: list[str] | None = None, watch: list[s
         else:
             # only empty cells are missing as read; words pandas would also take as missing are looked at next
             df = pd.read_csv(path, sep="\t" if suffix == ".tsv" else ",", encoding="utf-8-sig",
-                             skipinitialspace=False, low_memory=False, keep_default_na=False, na_values=[""])
+                             skipinitialspace=False, low_memory=False, keep_default_na=False, na_values=[""],
+                             dtype=dict.fromkeys(ids, str))
             _check_fields(df, path)
             _missing_words(df, path, watch if watch is not None else columns)
+            ids_as_written(df, ids)
     _check_header(df, path)
     if columns is not None:
         require_columns(df.columns, columns, path)
@@ -87,6 +91,24 @@ def _read_errors(path: Path, suffix: str):
 # what pandas reads as missing by default besides an empty cell (its STR_NA_VALUES, pandas 2)
 MISSING_WORDS = frozenset({"#N/A", "#N/A N/A", "#NA", "-1.#IND", "-1.#QNAN", "-NaN", "-nan", "1.#IND", "1.#QNAN",
                            "<NA>", "N/A", "NA", "NULL", "NaN", "None", "n/a", "nan", "null"})
+
+
+_WHOLE_NUMBER = r"-?(?:0|[1-9][0-9]{0,17})"  # as a whole number prints: no leading zero, within int64
+
+
+def ids_as_written(df: pd.DataFrame, ids) -> None:
+    """Id columns read from CSV as text become whole numbers, in place, only when every id is written as one
+    prints (17, not 0017): a code with leading zeros (an SKU 0007, an ISBN) keeps its zeros, and 07 and 0007
+    stay two ids rather than both becoming 7."""
+    for name in ids:
+        if name not in df.columns:
+            continue
+        column = df[name]
+        present = column.dropna()
+        if len(present) and present.astype(str).str.fullmatch(_WHOLE_NUMBER).all():
+            df[name] = pd.to_numeric(column)
+        else:
+            df[name] = column.astype(object)
 
 
 def _missing_words(df: pd.DataFrame, path: Path, watch: list[str] | None) -> None:
@@ -160,7 +182,7 @@ def _raise_if_arrow(exc: Exception, path: Path) -> None:
         raise TowersError(f"{path}: cannot be read as parquet ({first}); re-export the table") from None
 
 
-def read_table_chunks(path: str | Path, columns: list[str], rows: int, take=None):
+def read_table_chunks(path: str | Path, columns: list[str], rows: int, take=None, ids: tuple[str, ...] | list[str] = ()):
     """Yield (first row, DataFrame of `columns`) pieces of a table, `rows` rows at a time.
 
     Only one piece is in memory at a time: parquet is read one batch at a time and CSV through pandas'
@@ -176,7 +198,7 @@ def read_table_chunks(path: str | Path, columns: list[str], rows: int, take=None
     if suffix in (".parquet", ".pq"):
         yield from _parquet_pieces(path, suffix, columns, rows, take)
     else:
-        yield from _csv_pieces(path, suffix, columns, rows, take)
+        yield from _csv_pieces(path, suffix, columns, rows, take, ids)
 
 
 def _parquet_pieces(path: Path, suffix: str, columns: list[str], rows: int, take):
@@ -222,10 +244,11 @@ def _parquet_pieces(path: Path, suffix: str, columns: list[str], rows: int, take
         yield start, df[[str(c).strip() for c in columns]]
 
 
-def _csv_pieces(path: Path, suffix: str, columns: list[str], rows: int, take):
+def _csv_pieces(path: Path, suffix: str, columns: list[str], rows: int, take, ids=()):
     start = 0
     with _read_errors(path, suffix), pd.read_csv(path, sep="\t" if suffix == ".tsv" else ",", encoding="utf-8-sig",
-                                                 skipinitialspace=False, chunksize=rows) as reader:
+                                                 skipinitialspace=False, chunksize=rows,
+                                                 dtype=dict.fromkeys(ids, str)) as reader:
         for df in reader:  # the reader is closed however the loop ends, a caller's error included
             _check_fields(df, path)
             if start == 0:
@@ -234,6 +257,7 @@ def _csv_pieces(path: Path, suffix: str, columns: list[str], rows: int, take):
             else:
                 df.columns = [str(c).strip() for c in df.columns]
             df = df[columns].reset_index(drop=True)
+            ids_as_written(df, ids)
             if take():
                 yield start, df
             start += len(df)

@@ -549,7 +549,11 @@ def evaluate_slices(scorers: dict, data: SplitPairs, cfg: Config, event_vectors:
             notes[f"{slice_name}_size"] = (
                 f"the {slice_name} slice ranks only {n} items: a random order already finds about "
                 f"{min(1.0, k / n):.2f} of the held-out items in the top {k}, so recall@{k} says little there; "
-                "rank among more items (a larger cold fraction, or a smaller top_k)")
+                + ("hold out more items whole (evaluation.cold_item_fraction)" if slice_name == "cold" else
+                   "use a smaller evaluation.top_k, or a larger catalog"))
+    if groups and explicit:
+        notes["group_metrics_by"] = ("evaluation.group_metrics_by: the per-group metrics are ranking metrics "
+                                     "(recall@K, ndcg@K, ...); a squared-loss run ranks nothing, so it has none")
     for name, info in (reference_info or {}).items():
         if "skipped" in info:
             notes[name] = f"{name} skipped: {info['skipped']}"

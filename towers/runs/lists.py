@@ -164,7 +164,7 @@ class ItemTable:
                 listed = ", ".join(shown(c) for c in names[:40]) + (", ..." if len(names) > 40 else "")
                 raise TowersError(f"{where(self.path, shown(name))}: no such column in the item table; its columns are "
                                   f"{listed}")
-        table = read_table(self.path, columns=wanted)
+        table = read_table(self.path, columns=wanted, ids=[id_column])
         ids = normalise_ids(table[id_column], self.path, id_column)
         check_unique_ids(ids, self.path, id_column)
         rows = pd.Index(align_id_types(ids, item_ids)).get_indexer(item_ids)
@@ -224,7 +224,7 @@ def read_id_file(path: str | Path, what: str) -> np.ndarray:
     if not path.is_file():
         raise TowersError(f"{path}: no such file; give a file of {what} ids, one per line")
     if path.suffix.lower() in READABLE:
-        table = read_table(path)
+        table = read_table(path, ids=table_columns(path)[:1])
         if len(table.columns) != 1:
             raise TowersError(f"{path}: has {len(table.columns)} columns; a file of {what} ids holds one column "
                               "(or give plain text, one id per line)")

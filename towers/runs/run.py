@@ -257,7 +257,7 @@ class Run:
         names = [e.name for e in encoders.encoders] + ([history_column] if history_column else [])
         meta = dict(self.embeddings("item")[3], side="item" if side == "items" else "user", source=str(source))
         if Path(source).suffix.lower() not in (".parquet", ".pq"):
-            df = read_table(source)
+            df = read_table(source, ids=[encoders.id_column])
             result = self._embed(df, encoders, tower, bias_table, source, history)
             write_embeddings(out, result["id"].to_numpy(), result.attrs["vectors"], result.attrs["bias"], meta)
             return len(result)
@@ -339,7 +339,7 @@ class Run:
         if not enc.encoders:
             return {"id": enc.id_encoder.transform(ids)}
         ucfg = self.config.users
-        table = read_table(ucfg.path)
+        table = read_table(ucfg.path, ids=[ucfg.id_column])
         require_columns(table.columns, [ucfg.id_column] + [e.name for e in enc.encoders], ucfg.path)
         t_ids = align_id_types(normalise_ids(table[ucfg.id_column], ucfg.path, ucfg.id_column), ids)
         at = pd.Index(t_ids).get_indexer(ids)
@@ -375,7 +375,8 @@ class Run:
         if (rows < 0).any():
             bad = wanted[np.flatnonzero(rows < 0)[0]]
             bad = bad.item() if isinstance(bad, np.generic) else bad
-            raise TowersError(f"{self.dir}: unknown {what} id {bad!r}: not in this run's catalog ({len(ids_all)} {what}s); "
+            plural = "queries" if what == "query" else f"{what}s"
+            raise TowersError(f"{self.dir}: unknown {what} id {bad!r}: not in this run's catalog ({len(ids_all):,} {plural}); "
                               "check the id, or retrain with this entity in the feature table")
         return torch.from_numpy(rows.astype(np.int64))
 
@@ -513,7 +514,8 @@ class Run:
             cr = pd.Index(item_ids).get_indexer(align_id_types(c, item_ids))
             ok = (qr >= 0) & (cr >= 0)
             if (~ok).sum():
-                notes.append(f"{interactions}: skipped {int((~ok).sum())} rows whose ids are not in this run's catalog")
+                unit = "rows" if cfg.interactions.pairs_from == "rows" and not cfg.interactions.count_repeats else "pairs"
+                notes.append(f"{interactions}: skipped {int((~ok).sum()):,} {unit} whose ids are not in this run's catalog")
             if not ok.any():
                 raise TowersError(f"{interactions}: no row matches this run's users and items; check the id columns")
             f32 = lambda a: None if a is None else torch.from_numpy(a[ok].astype(np.float32))  # noqa: E731

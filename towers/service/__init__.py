@@ -80,7 +80,12 @@ def serve(run_dir, host: str = "127.0.0.1", port: int = 8080, threads: int | Non
     bound = sock.getsockname()[1]
     config = uvicorn.Config(application, log_level="info", access_log=True, timeout_graceful_shutdown=5,
                             server_header=False)
-    server = uvicorn.Server(config)
+    class Server(uvicorn.Server):
+        async def shutdown(self, sockets=None):  # Ctrl-C and SIGTERM alike: uvicorn re-raises SIGTERM after this
+            await super().shutdown(sockets)
+            announce("stopped")
+
+    server = Server(config)
     with warnings.catch_warnings():
         # the library's warnings (unseen feature values, history ids left out) become the notes of the
         # request that raised them; see app.collect_notes
@@ -90,7 +95,7 @@ def serve(run_dir, host: str = "127.0.0.1", port: int = 8080, threads: int | Non
                  f"{'s' if threads != 1 else ''}; stop with Ctrl-C")
         try:
             server.run(sockets=[sock])
-        except KeyboardInterrupt:  # uvicorn raises Ctrl-C again once it has shut down: the normal way to stop
-            announce("stopped")
+        except KeyboardInterrupt:  # uvicorn raises Ctrl-C again once it has shut down (and said "stopped")
+            pass
         finally:
             sock.close()
