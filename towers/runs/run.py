@@ -358,7 +358,13 @@ class Run:
             raise TowersError(f"{self.dir}: unknown context column {unknown[0]!r}; this run's context columns are "
                               f"{', '.join(enc.names)}")
         frame = pd.DataFrame({name: pd.Series([context.get(name)] * n, dtype=object) for name in enc.names})
-        return enc.encode(frame, "--context")
+        block = enc.encode(frame, "context")
+        unseen = [f"{name}={context[name]!r}" for name, count in enc.unknown_counts().items()
+                  if count and context.get(name) is not None]
+        if unseen:  # the unknown bucket: the model scores as for a value it never learned
+            warnings.warn(f"context: {', '.join(unseen)} never seen in training; scored as an unknown value",
+                          stacklevel=3)
+        return block
 
     # ---- retrieval ------------------------------------------------------------------------------
     def _rows(self, ids_all: np.ndarray, wanted, what: str) -> torch.Tensor:
