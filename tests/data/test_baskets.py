@@ -342,3 +342,22 @@ def test_a_csv_export_with_a_wrong_header_gets_the_usual_one_line_errors(tmp_pat
     with pytest.raises(TowersError, match=r"semi\.csv, column 'order_id': no such column; the header reads as one "
                                           r"column, .*: the file looks ';'-separated; save it with commas"):
         derive_pairs(resolve(tmp_path / "semi.csv", quantity_column="quantity"), split=False)
+
+
+def test_an_id_without_a_feature_row_in_a_folder_log_is_named_by_id(tmp_path):
+    # the rows of a folder's files one after another are no one file's rows: the error names the id
+    (tmp_path / "days").mkdir()
+    df = orders(n_orders=20)
+    df.iloc[:40].to_csv(tmp_path / "days" / "a.csv", index=False)
+    late = df.iloc[40:].copy()
+    late.iloc[3, late.columns.get_loc("product_id")] = "P9999"
+    late.to_csv(tmp_path / "days" / "b.csv", index=False)
+    pd.DataFrame({"item_id": ITEMS, "shelf": "s"}).to_csv(tmp_path / "items.csv", index=False)
+    cfg = C.resolve({"run": {"mode": "user_item"},
+                     "interactions": {"path": str(tmp_path / "days"), "query_column": "customer_id",
+                                      "candidate_column": "product_id"},
+                     "items": {"path": str(tmp_path / "items.csv"), "id_column": "item_id",
+                               "features": [{"name": "shelf", "kind": "categorical"}]},
+                     "training": {"progress": "plain"}}, tmp_path)
+    with pytest.raises(TowersError, match=r"days, column 'product_id': id 'P9999' has no row in "):
+        prepare(cfg)

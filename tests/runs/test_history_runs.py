@@ -157,3 +157,14 @@ def test_history_requests_that_cannot_be_met_are_one_line_errors(history_run, ti
         plain.embed_users(users, history=[[], [], []])
     with pytest.raises(TowersError, match=fix):
         plain.recommend_history(["TR-00001"])
+
+
+def test_one_id_or_one_column_where_a_list_was_meant(history_run):
+    # run.similar("TR-00001") once iterated the string ('T', 'R', ...); one id, one column name, are taken as such
+    run = towers.load(history_run)
+    item = run.embeddings("item")[0][0]
+    assert run.similar(item, top=3).equals(run.similar([item], top=3))
+    user = run.embeddings("user")[0][0]
+    assert run.recommend(user, top=3).equals(run.recommend([user], top=3))
+    with pytest.raises(TowersError, match=r"no embeddings side 'items'; give 'item', 'user' or 'query'"):
+        run.embeddings("items")

@@ -6,6 +6,7 @@ Everything here runs before any training starts, so a bad input costs seconds, n
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -298,9 +299,9 @@ def prepare(cfg: Config, previous=None) -> Prepared:
     notes: list[str] = list(log.notes)
     if shard is None and rank_and_size()[1] > 1:
         notes.append(f"every process reads the whole log: {whole_log_reason(cfg)}")
-    # rows derived from an export (baskets, sessions, count_repeats) or a process's share of a divided log are
-    # not the file's rows: errors there name the id and column, not a row
-    file_rows = ic.pairs_from == "rows" and not ic.count_repeats and shard is None
+    # rows derived from an export (baskets, sessions, count_repeats), a process's share of a divided log and the
+    # rows of a folder's files one after another are not one file's rows: errors there name the id and column
+    file_rows = ic.pairs_from == "rows" and not ic.count_repeats and shard is None and not Path(ic.path).is_dir()
     source = ic.path
 
     item_side = SideTable(cfg.items.path, cfg.items.id_column, cfg.items.features, cfg.items.missing_rows)

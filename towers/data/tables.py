@@ -454,6 +454,8 @@ def factorize_ids(series: pd.Series, path, column) -> tuple[np.ndarray, np.ndarr
 
 def given_ids(values) -> np.ndarray:
     """Ids handed over by a caller (a list or an array): whole numbers as int64, anything else as text."""
+    if isinstance(values, (str, bytes, int, np.integer)):  # one id where a list was meant: similar("BK0001")
+        values = [values]
     arr = values if isinstance(values, np.ndarray) else np.asarray(list(values), dtype=object)
     if arr.dtype.kind in "iu":
         return arr.astype(np.int64, copy=False)

@@ -452,6 +452,8 @@ def write_lists(out: str | Path, scorer: Scorer, lists: Lists, query_ids: np.nda
 
 def lists_for(run, columns: Sequence[str] = (), keep: ItemFilter | None = None, item_table=None) -> Lists:
     """The allowed items and item columns of a run: its config's item table, or `item_table` if given."""
+    if isinstance(columns, str):  # one column name where a list was meant: columns="title"
+        columns = [columns]
     items = run.config.items if run.config is not None else None
     path = item_table if item_table is not None else (items.path if items is not None else None)
     id_column = None

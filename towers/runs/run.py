@@ -114,6 +114,8 @@ class Run:
 
     def embeddings(self, side: str, model: str = TOWERS) -> tuple[np.ndarray, torch.Tensor, torch.Tensor | None, dict]:
         """(ids, vectors, bias, metadata) of an exported embeddings file: side 'item', 'user' or 'query'."""
+        if side not in EMBEDDINGS:
+            raise TowersError(f"{self.dir}: no embeddings side {side!r}; give 'item', 'user' or 'query'")
         key = (side, model)
         if key not in self._emb:
             self._emb[key] = read_embeddings(self.folder.embeddings_file(side, model))
@@ -400,7 +402,7 @@ class Run:
         if context and self.context is None:
             raise TowersError(f"{self.dir}: this run was trained without context columns; drop --context")
         q_ids = self.embeddings(self._query_side())[0]
-        rows = self._rows(q_ids, pd.unique(np.asarray(list(user_ids), dtype=object)), "query" if self.item_item else "user")
+        rows = self._rows(q_ids, pd.unique(given_ids(user_ids).astype(object)), "query" if self.item_item else "user")
         lists = L.lists_for(self, columns, keep, item_table)
         vectors = None
         if context:
