@@ -361,3 +361,28 @@ def test_an_id_without_a_feature_row_in_a_folder_log_is_named_by_id(tmp_path):
                      "training": {"progress": "plain"}}, tmp_path)
     with pytest.raises(TowersError, match=r"days, column 'product_id': id 'P9999' has no row in "):
         prepare(cfg)
+
+
+def test_features_with_one_value_in_every_row_are_named_in_a_warning(tmp_path):
+    df = orders(n_orders=20)
+    df.to_csv(tmp_path / "orders.csv", index=False)
+    items = pd.DataFrame({"item_id": ITEMS, "shelf": "s", "tags": "garden|tools",
+                          "aisle": [f"a{i % 4}" for i in range(len(ITEMS))]})
+    items.to_csv(tmp_path / "items.csv", index=False)
+
+    def notes(features):
+        cfg = C.resolve({"run": {"mode": "user_item"},
+                         "interactions": {"path": str(tmp_path / "orders.csv"), "query_column": "customer_id",
+                                          "candidate_column": "product_id"},
+                         "items": {"path": str(tmp_path / "items.csv"), "id_column": "item_id", "features": features},
+                         "training": {"progress": "plain"}}, tmp_path)
+        return [n for n in prepare(cfg).notes if "one value in every row" in n]
+
+    shelf, tags = {"name": "shelf", "kind": "categorical"}, {"name": "tags", "kind": "tokens"}
+    aisle = {"name": "aisle", "kind": "categorical"}
+    assert notes([shelf, tags]) == [f"warning: {tmp_path / 'items.csv'}: every feature of items ('shelf', 'tags') has "
+                                    "one value in every row, so new items all get one vector and are ranked alike; "
+                                    "check the table"]
+    assert notes([shelf, aisle]) == [f"warning: {tmp_path / 'items.csv'}: items.features 'shelf': one value in every "
+                                     "row, so it tells no two items apart; check the column or drop it"]
+    assert notes([aisle]) == []

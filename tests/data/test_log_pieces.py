@@ -123,7 +123,12 @@ def test_a_folder_without_tables_or_with_mixed_formats_is_refused(tmp_path):
     empty = tmp_path / "empty"
     empty.mkdir()
     (empty / "notes.txt").write_text("x")
-    with pytest.raises(TowersError, match=r"empty: the folder holds no \.csv, \.tsv, \.parquet or \.pq files"):
+    with pytest.raises(TowersError, match=r"empty: the folder holds no \.csv, \.tsv, \.parquet or \.pq files; put"):
+        P.read_interactions(_config(tmp_path, "empty"))
+    (empty / "month=2026-11").mkdir()  # a partitioned layout: files one level down
+    _log(10, seed=7).to_parquet(empty / "month=2026-11" / "part-0.parquet", index=False)
+    with pytest.raises(TowersError, match=r"holds no .* files; its subfolders \(month=2026-11\) are not read: move "
+                                          r"their files into one folder"):
         P.read_interactions(_config(tmp_path, "empty"))
     mixed = tmp_path / "mixed"
     mixed.mkdir()

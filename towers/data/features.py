@@ -118,6 +118,18 @@ class SideTable:
     def has_table(self) -> bool:
         return self.table is not None
 
+    def constant_features(self) -> list[str]:
+        """The listed features holding one value (or nothing) in every row of the table: they tell no two
+        entities apart, so they carry nothing to a new entity's vector."""
+        if self.table is None or len(self.table) < 2:
+            return []
+        out = []
+        for spec in self.specs:
+            column = self.table[spec.name]
+            if column.map(repr).nunique(dropna=False) <= 1:  # repr: list and array cells (tokens, vectors) too
+                out.append(spec.name)
+        return out
+
     def catalog(self, interaction_ids: np.ndarray, log_path, log_column: str | tuple[str, ...],
                 codes: np.ndarray | None = None, file_rows: bool = True) -> tuple[np.ndarray, pd.DataFrame | None, np.ndarray]:
         """The side's entity universe: table ids plus (per missing_rows) ids only seen in the log.

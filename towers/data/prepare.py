@@ -305,6 +305,7 @@ def prepare(cfg: Config, previous=None) -> Prepared:
     source = ic.path
 
     item_side = SideTable(cfg.items.path, cfg.items.id_column, cfg.items.features, cfg.items.missing_rows)
+    notes += _constant_notes("items", item_side)
     # ids are matched once per distinct id and mapped to rows through the codes (see IdColumn)
     if item_item:
         both = _joint_ids(q_log, c_log, spill)
@@ -319,6 +320,7 @@ def prepare(cfg: Config, previous=None) -> Prepared:
         both = rows_both = None
     else:
         user_side = SideTable(cfg.users.path, cfg.users.id_column, cfg.users.features, cfg.users.missing_rows)
+        notes += _constant_notes("users", user_side)
         q_ids, q_table, keep_q = user_side.catalog(q_log.uniques, source, ic.query_column, codes=q_log.codes,
                                                    file_rows=file_rows)
         c_ids, c_table, keep_c = item_side.catalog(c_log.uniques, source, ic.candidate_column, codes=c_log.codes,
@@ -422,6 +424,19 @@ def _learned(ids: np.ndarray, encoders: SideEncoders) -> np.ndarray:
     if len(known) == 0:
         return np.zeros(len(ids), dtype=bool)
     return positions_in(known, ids) >= 0
+
+
+def _constant_notes(section: str, side: SideTable) -> list[str]:
+    """A warning line for features with one value in every row of their table (SideTable.constant_features)."""
+    same = side.constant_features()
+    if not same:
+        return []
+    names = ", ".join(repr(n) for n in same)
+    if len(same) == len(side.specs):
+        return [f"warning: {side.path}: every feature of {section} ({names}) has one value in every row, so new "
+                f"{section} all get one vector and are ranked alike; check the table"]
+    return [f"warning: {side.path}: {section}.features {names}: one value in every row, so "
+            f"{'they tell' if len(same) > 1 else 'it tells'} no two {section} apart; check the column or drop it"]
 
 
 def _check_oracles(cfg: Config, data: Prepared) -> None:

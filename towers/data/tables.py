@@ -278,8 +278,11 @@ def table_files(path: str | Path) -> list[Path]:
     files = sorted(f for f in path.iterdir()
                    if f.is_file() and not f.name.startswith((".", "_")) and f.suffix.lower() in READABLE)
     if not files:
-        raise TowersError(f"{path}: the folder holds no .csv, .tsv, .parquet or .pq files; put the log's files there "
-                          "or give one file")
+        nested = sorted(d.name for d in path.iterdir() if d.is_dir() and not d.name.startswith((".", "_")))
+        hint = (f"; its subfolders ({', '.join(nested[:3])}{', ...' if len(nested) > 3 else ''}) are not read: move "
+                "their files into one folder" if nested else "")
+        raise TowersError(f"{path}: the folder holds no .csv, .tsv, .parquet or .pq files{hint}; put the log's files "
+                          "there or give one file")
     kinds = {f.suffix.lower() in (".parquet", ".pq") for f in files}
     if len(kinds) > 1:
         raise TowersError(f"{path}: the folder mixes parquet and CSV files; convert them to one format")
