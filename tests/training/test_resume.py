@@ -51,12 +51,12 @@ def reference(small_config, tmp_path_factory) -> tuple[Path, float]:
     return out, time.perf_counter() - start
 
 
-def test_sigkill_at_five_random_moments_then_resume_gives_identical_weights(small_config, reference, tmp_path):
+def test_sigkill_at_three_random_moments_then_resume_gives_identical_weights(small_config, reference, tmp_path):
     ref_run, duration = reference
     out = tmp_path / "run"
     rng = random.Random(5)
     proc = _train(small_config, out)
-    for _ in range(5):
+    for _ in range(3):  # three kills, each anywhere in the run: the suite's time goes to other checks
         time.sleep(rng.uniform(0.25, 0.9) * duration)
         if proc.poll() is None:
             proc.send_signal(signal.SIGKILL)
