@@ -5,6 +5,8 @@ from __future__ import annotations
 import contextlib
 import contextvars
 
+import numpy as np
+
 # rows before the piece of a table being checked: a table read in pieces still names its own rows
 _ROWS_BEFORE = contextvars.ContextVar("rows_before", default=0)
 
@@ -28,6 +30,11 @@ def where(path=None, column=None, row=None) -> str:
     if row is not None:
         parts.append(f"row {row + _ROWS_BEFORE.get()}")
     return ", ".join(parts)
+
+
+def plain(value):
+    """A numpy scalar as the Python value it holds, for messages: 424242, not np.int64(424242)."""
+    return value.item() if isinstance(value, np.generic) else value
 
 
 @contextlib.contextmanager

@@ -310,6 +310,19 @@ def test_config_rules(change, message):
         C.resolve(raw, Path("."))
 
 
+SHELF = [{"name": "shelf", "kind": "categorical"}]
+
+
+def with_items(folder: Path, log: str, features=SHELF, **interactions) -> C.Config:
+    """A run over folder/log (an order export, user -> item unless pairs are derived from baskets) with the item
+    table folder/items.csv."""
+    mode = "item_item" if interactions.get("pairs_from") == "baskets" else "user_item"
+    return C.resolve({"run": {"mode": mode},
+                      "interactions": {"path": str(folder / log), "candidate_column": "product_id", **interactions},
+                      "items": {"path": str(folder / "items.csv"), "id_column": "item_id", "features": features},
+                      "training": {"progress": "plain"}}, folder)
+
+
 @pytest.mark.parametrize("derived", [{"pairs_from": "baskets"}, {"pairs_from": "rows", "count_repeats": True}])
 def test_an_item_without_a_feature_row_is_named_by_id_not_by_a_derived_row(tmp_path, derived):
     # counted pairs are not the export's rows, so the error names the column and the id (which a user can
@@ -320,12 +333,7 @@ def test_an_item_without_a_feature_row_is_named_by_id_not_by_a_derived_row(tmp_p
     items = pd.DataFrame({"item_id": ITEMS, "shelf": [f"s{i % 3}" for i in range(len(ITEMS))]})
     items.to_csv(tmp_path / "items.csv", index=False)
     mode = {"query_column": "customer_id"} if derived["pairs_from"] == "rows" else {}
-    cfg = C.resolve({"run": {"mode": "user_item" if mode else "item_item"},
-                     "interactions": {"path": str(tmp_path / "orders.csv"), "candidate_column": "product_id",
-                                      "group_column": "order_id", **derived, **mode},
-                     "items": {"path": str(tmp_path / "items.csv"), "id_column": "item_id",
-                               "features": [{"name": "shelf", "kind": "categorical"}]},
-                     "training": {"progress": "plain"}}, tmp_path)
+    cfg = with_items(tmp_path, "orders.csv", group_column="order_id", **derived, **mode)
     with pytest.raises(TowersError, match=r"orders\.csv, column 'product_id': id 'P9999' has no row in "):
         prepare(cfg)
 
@@ -353,12 +361,7 @@ def test_an_id_without_a_feature_row_in_a_folder_log_is_named_by_id(tmp_path):
     late.iloc[3, late.columns.get_loc("product_id")] = "P9999"
     late.to_csv(tmp_path / "days" / "b.csv", index=False)
     pd.DataFrame({"item_id": ITEMS, "shelf": "s"}).to_csv(tmp_path / "items.csv", index=False)
-    cfg = C.resolve({"run": {"mode": "user_item"},
-                     "interactions": {"path": str(tmp_path / "days"), "query_column": "customer_id",
-                                      "candidate_column": "product_id"},
-                     "items": {"path": str(tmp_path / "items.csv"), "id_column": "item_id",
-                               "features": [{"name": "shelf", "kind": "categorical"}]},
-                     "training": {"progress": "plain"}}, tmp_path)
+    cfg = with_items(tmp_path, "days", query_column="customer_id")
     with pytest.raises(TowersError, match=r"days, column 'product_id': id 'P9999' has no row in "):
         prepare(cfg)
 
@@ -371,11 +374,7 @@ def test_features_with_one_value_in_every_row_are_named_in_a_warning(tmp_path):
     items.to_csv(tmp_path / "items.csv", index=False)
 
     def notes(features):
-        cfg = C.resolve({"run": {"mode": "user_item"},
-                         "interactions": {"path": str(tmp_path / "orders.csv"), "query_column": "customer_id",
-                                          "candidate_column": "product_id"},
-                         "items": {"path": str(tmp_path / "items.csv"), "id_column": "item_id", "features": features},
-                         "training": {"progress": "plain"}}, tmp_path)
+        cfg = with_items(tmp_path, "orders.csv", features, query_column="customer_id")
         return [n for n in prepare(cfg).notes if "one value in every row" in n]
 
     shelf, tags = {"name": "shelf", "kind": "categorical"}, {"name": "tags", "kind": "tokens"}

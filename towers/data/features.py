@@ -18,7 +18,7 @@ from towers.data.tables import (
     read_table,
     require_columns,
 )
-from towers.errors import TowersError, where
+from towers.errors import TowersError, plain, where
 
 FeatureBlock = dict[str, torch.Tensor]
 
@@ -126,7 +126,11 @@ class SideTable:
         out = []
         for spec in self.specs:
             column = self.table[spec.name]
-            if column.map(repr).nunique(dropna=False) <= 1:  # repr: list and array cells (tokens, vectors) too
+            try:
+                distinct = column.nunique(dropna=False)
+            except TypeError:  # list or array cells (tokens, vectors) are not hashable: compared as text
+                distinct = column.astype(str).nunique(dropna=False)
+            if distinct <= 1:
                 out.append(spec.name)
         return out
 
@@ -138,9 +142,9 @@ class SideTable:
         columns one after another, equally long (item_item mode), so errors name the right column and row.
         With `codes`, interaction_ids are the log's distinct ids and row r of the log holds
         interaction_ids[codes[r]] (data/prepare.IdColumn): every check runs once per distinct id.
-        file_rows false: the rows are not the file's (pairs derived from an export, a data-parallel process's
-        share), so errors name the id and column but no row. Returns (catalog ids, feature rows aligned with them or None,
-        keep-mask over the log's rows).
+        file_rows false: the rows are not one file's (pairs derived from an export, a data-parallel process's
+        share, a folder's files one after another), so errors name the id and column but no row. Returns
+        (catalog ids, feature rows aligned with them or None, keep-mask over the log's rows).
         """
         columns = (log_column,) if isinstance(log_column, str) else tuple(log_column)
         n_rows = len(interaction_ids) if codes is None else len(codes)
@@ -184,7 +188,7 @@ class SideTable:
             missing = pd.unique(ids[~known])
             if self.missing_rows == "error":
                 row, at = first_row(~known)
-                bad = ids[at].item() if isinstance(ids[at], np.generic) else ids[at]
+                bad = plain(ids[at])
                 raise TowersError(
                     f"{locate(row)}: id {bad!r} has no row in {self.path} "
                     f"({len(missing)} such ids); add feature rows, or set missing_rows: drop or default")

@@ -302,14 +302,13 @@ def prepare(cfg: Config, previous=None) -> Prepared:
     # rows derived from an export (baskets, sessions, count_repeats), a process's share of a divided log and the
     # rows of a folder's files one after another are not one file's rows: errors there name the id and column
     file_rows = ic.pairs_from == "rows" and not ic.count_repeats and shard is None and not Path(ic.path).is_dir()
-    source = ic.path
 
     item_side = SideTable(cfg.items.path, cfg.items.id_column, cfg.items.features, cfg.items.missing_rows)
     notes += _constant_notes("items", item_side)
     # ids are matched once per distinct id and mapped to rows through the codes (see IdColumn)
     if item_item:
         both = _joint_ids(q_log, c_log, spill)
-        c_ids, c_table, keep_both = item_side.catalog(both.uniques, source,
+        c_ids, c_table, keep_both = item_side.catalog(both.uniques, ic.path,
                                                       (ic.query_column or ic.candidate_column, ic.candidate_column),
                                                       codes=both.codes, file_rows=file_rows)
         n = len(q_log.codes)
@@ -321,9 +320,9 @@ def prepare(cfg: Config, previous=None) -> Prepared:
     else:
         user_side = SideTable(cfg.users.path, cfg.users.id_column, cfg.users.features, cfg.users.missing_rows)
         notes += _constant_notes("users", user_side)
-        q_ids, q_table, keep_q = user_side.catalog(q_log.uniques, source, ic.query_column, codes=q_log.codes,
+        q_ids, q_table, keep_q = user_side.catalog(q_log.uniques, ic.path, ic.query_column, codes=q_log.codes,
                                                    file_rows=file_rows)
-        c_ids, c_table, keep_c = item_side.catalog(c_log.uniques, source, ic.candidate_column, codes=c_log.codes,
+        c_ids, c_table, keep_c = item_side.catalog(c_log.uniques, ic.path, ic.candidate_column, codes=c_log.codes,
                                                    file_rows=file_rows)
         keep = keep_q & keep_c
         q_rows = spill.where(_catalog_rows(q_log, q_ids, spill), keep)

@@ -36,7 +36,7 @@ from towers.data.tables import (
     shown,
     table_columns,
 )
-from towers.errors import TowersError, where
+from towers.errors import TowersError, plain, where
 from towers.search.scorer import Scorer
 from towers.training.progress import log, show_bar
 
@@ -541,7 +541,7 @@ def batch_rows(run, user_ids, what: str, source: str) -> torch.Tensor:
     at = positions_in(q_ids, given)
     if (at < 0).any():
         first = given[np.flatnonzero(at < 0)[0]]
-        first = first.item() if isinstance(first, np.generic) else first  # 424242, not np.int64(424242)
+        first = plain(first)
         warnings.warn(f"{source}: {int((at < 0).sum())} of {len(at)} {what} ids are not in this run (e.g. {first!r}); "
                       "they get no list", stacklevel=3)
     return torch.from_numpy(pd.unique(at[at >= 0]).astype(np.int64))

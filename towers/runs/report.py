@@ -23,7 +23,7 @@ import torch
 from towers.atomic import write_text_atomic
 from towers.config import lower_is_better
 from towers.data.tables import align_id_types, normalise_ids, read_table
-from towers.errors import TowersError
+from towers.errors import TowersError, plain
 from towers.evaluation.protocol import SLICES
 from towers.runs.folder import LINEAR_FACTOR, RunFolder
 from towers.runs.run import Run
@@ -160,7 +160,7 @@ class _Page:
         wanted = self.rcfg.anchor_ids
         if not wanted:
             rows = popular_items(self.run.pairs, self.rcfg.anchors)
-            return [_plain(v) for v in self.item_ids[rows]]
+            return [plain(v) for v in self.item_ids[rows]]
         found = []
         for a in pd.unique(pd.Series(wanted, dtype=object)):
             try:
@@ -392,7 +392,7 @@ class _Page:
         return f'<h2 id="neighbours">Nearest neighbours</h2>\n{how}\n' + "\n".join(blocks)
 
     def _item_row(self, rank: str, item, score, row: int, columns: list, css: str) -> str:
-        cells = [f'<td class="rank">{_e(rank)}</td>', f'<td class="id">{_e(str(_plain(item)))}</td>',
+        cells = [f'<td class="rank">{_e(rank)}</td>', f'<td class="id">{_e(str(plain(item)))}</td>',
                  f'<td class="num">{"" if score is None else f"{score:.4f}"}</td>']
         for c in columns:
             cells.append(f"<td>{_e(_cell(self.attributes[c].iloc[row]))}</td>")
@@ -448,10 +448,6 @@ def _fmt(value) -> str:
     return f"{value:.4f}" if isinstance(value, float) else f"{value:,}"
 
 
-def _plain(value):
-    return value.item() if isinstance(value, np.generic) else value
-
-
 def _missing(value) -> bool:
     if value is None:
         return True
@@ -466,7 +462,7 @@ def _missing(value) -> bool:
 def _cell(value) -> str:
     """One attribute value as short text: lists joined, floats to 4 significant digits."""
     if isinstance(value, (list, tuple, np.ndarray)):
-        items = [str(_plain(v)) for v in value]
+        items = [str(plain(v)) for v in value]
         return ", ".join(items[:8]) + (f", ... ({len(items)})" if len(items) > 8 else "")
     if _missing(value):
         return ""
@@ -475,7 +471,7 @@ def _cell(value) -> str:
         if v.is_integer() and abs(v) < 1e15:
             return str(int(v))
         return f"{v:.2f}" if abs(v) >= 1 else f"{v:.4g}"  # prices keep their cents
-    return str(_plain(value))
+    return str(plain(value))
 
 
 def _is_vector_column(series: pd.Series) -> bool:

@@ -39,7 +39,7 @@ from towers.data.tables import (
     read_table_chunks,
     require_columns,
 )
-from towers.errors import TowersError
+from towers.errors import TowersError, plain
 from towers.evaluation.protocol import evaluate_slices, oracle_scorer, popularity_scorer, reference_scorers
 from towers.model.bundle import load_bundle
 from towers.model.embed import EMBED_CHUNK, reads_history
@@ -382,7 +382,7 @@ class Run:
         rows = pd.Index(ids_all).get_indexer(wanted)
         if (rows < 0).any():
             bad = wanted[np.flatnonzero(rows < 0)[0]]
-            bad = bad.item() if isinstance(bad, np.generic) else bad
+            bad = plain(bad)
             plural = "queries" if what == "query" else f"{what}s"
             raise TowersError(f"{self.dir}: unknown {what} id {bad!r}: not in this run's catalog ({len(ids_all):,} {plural}); "
                               "check the id, or retrain with this entity in the feature table")
