@@ -183,6 +183,15 @@ def _check_frame_out(out: str) -> None:
         raise TowersError(f"{out}: unsupported output format; use .csv, .parquet or .pq")
 
 
+def _aligned(frame) -> str:
+    """The list as a text table whose columns line up on a terminal also when names hold wide (East Asian)
+    characters, which take two columns each."""
+    import pandas as pd
+
+    with pd.option_context("display.unicode.east_asian_width", True):
+        return frame.to_string(index=False)
+
+
 def _write_frame(df, out: str) -> None:
     _check_frame_out(out)
     path = Path(out)
@@ -314,7 +323,7 @@ def run(args: argparse.Namespace) -> int:
         if args.out:
             _write_frame(frame, args.out)
         else:  # an empty list (a filter nothing passes) prints its header, not pandas' "Empty DataFrame"
-            print(frame.to_string(index=False) if len(frame) else "  ".join(map(str, frame.columns)))
+            print(_aligned(frame) if len(frame) else "  ".join(map(str, frame.columns)))
         return 0
     raise AssertionError(args.command)
 

@@ -55,12 +55,18 @@ def grow_weights(model, old_state: dict, source: Path) -> dict:
                 cur[old.shape[0]:] = old[unknown]  # new entities and values start as the earlier run's unknown
             grown[key] = int(cur.shape[0] - old.shape[0])
         else:
-            raise TowersError(f"{source}: weights '{key}' have shape {tuple(old.shape)} there but "
-                              f"{tuple(cur.shape)} here; keep model.dim, hidden sizes and feature settings the same "
-                              "to warm-start")
+            raise TowersError(f"{source}: weights '{key}' {_shape_change(old.shape, cur.shape)}; keep model.dim, "
+                              "hidden sizes and feature settings the same to warm-start")
         copied += 1
     model.load_state_dict(state)
     return {"tensors_copied": copied, "rows_added": grown}
+
+
+def _shape_change(old: torch.Size, cur: torch.Size) -> str:
+    """What differs between two weight shapes, in words: a table's width apart from its row count (rows may grow)."""
+    if len(old) == len(cur) == 2 and old[1] != cur[1]:
+        return f"hold {old[1]} numbers a row there but {cur[1]} here"
+    return f"have shape {tuple(old)} there but {tuple(cur)} here"
 
 
 def _check_id_layout(old_state: dict, state: dict, source: Path) -> None:
