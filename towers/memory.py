@@ -50,6 +50,23 @@ def reuse_freed_memory() -> bool:
     return _applied
 
 
+GLIBC_MMAP_THRESHOLD = GLIBC_TRIM_THRESHOLD = 128 << 10  # glibc's defaults (mallopt(3))
+
+
+def hand_back_freed_memory() -> None:
+    """After the training steps: glibc's default thresholds again, so what later work frees goes back to
+    the system, and the free pages the steps kept are handed back now. Evaluation and export allocate
+    once, not every step, and a process's peak then includes whatever the heap still keeps."""
+    global _applied
+    mallopt = _glibc_function("mallopt")
+    if mallopt is not None and _applied:
+        mallopt.argtypes, mallopt.restype = [ctypes.c_int, ctypes.c_int], ctypes.c_int
+        mallopt(M_MMAP_THRESHOLD, GLIBC_MMAP_THRESHOLD)
+        mallopt(M_TRIM_THRESHOLD, GLIBC_TRIM_THRESHOLD)
+        _applied = False
+    trim_freed_memory()
+
+
 def trim_freed_memory() -> None:
     """Hand the heap's free pages back to the system (malloc_trim)."""
     trim = _glibc_function("malloc_trim")

@@ -457,3 +457,37 @@ def test_a_missing_group_value_names_file_column_and_row(tmp_path):
     cfg = store_config(tmp_path, "holes.csv").with_section("interactions", group_column="order")
     with pytest.raises(TowersError, match=r"holes\.csv, column 'order', row 3: missing group value; every row needs one"):
         read_interactions(cfg)
+
+
+@pytest.mark.parametrize("split", ["random", "time"])
+def test_pairs_trained_before_stay_in_training_with_their_reverses(split):
+    # a warm start: rows an earlier run trained on train again, each unordered pair whole; the fractions are
+    # taken of the other pairs (reference: pandas groupby on the unordered pair)
+    df = copurchase_log(seed=4)
+    df = df.assign(lo=np.minimum(df.q, df.c), hi=np.maximum(df.q, df.c))
+    fixed = np.random.default_rng(1).random(len(df)) < 0.3
+    ev = EvaluationSection(split=split, test_fraction=0.2, validation_fraction=0.2)
+    out = with_sides(df, make_split(as_pairs(df), 80, ev, seed=5, cold_eligible=None, item_item=True,
+                                    trained_before=fixed))
+    assert (out.side[fixed] == "train").all()
+    pinned = set(map(tuple, df.loc[fixed, ["lo", "hi"]].to_numpy()))
+    unit_pinned = np.array([(lo, hi) in pinned for lo, hi in zip(df.lo, df.hi)])
+    assert (out.side[unit_pinned] == "train").all()  # a pinned row's reverse trains too
+    assert out.groupby(["lo", "hi"]).side.nunique().max() == 1
+    free_units = out[~unit_pinned].drop_duplicates(["lo", "hi"])
+    assert (out[out.side == "test"].drop_duplicates(["lo", "hi"]).shape[0]) == round(0.2 * len(free_units))
+    assert reverse_leaks(out[out.side == "test"], out[out.side == "train"]) == 0
+
+
+def test_per_user_split_around_pairs_trained_before():
+    # user_last over each user's rows the earlier run did not train on: the latest two of those are test
+    df = user_log(seed=3, most=12)
+    fixed = np.random.default_rng(2).random(len(df)) < 0.4
+    ev = EvaluationSection(split="user_last", last_n=2, validation_fraction=0.0)
+    out = with_sides(df, make_split(as_pairs(df), 200, ev, 0, None, False, n_queries=120, trained_before=fixed))
+    assert (out.side[fixed] == "train").all()
+    free = df[~fixed]
+    rank = free.groupby("q").t.rank(method="first", ascending=False)  # reference: pandas rank among the free rows
+    k = free.groupby("q").q.transform("size")
+    expected = np.where(rank <= np.minimum(2, k - 1), "test", "train")
+    assert (out.side[~fixed].to_numpy() == expected).all()

@@ -23,7 +23,7 @@ from towers.data.history import HISTORY, history_column
 from towers.data.pairs import Pairs, SplitPairs
 from towers.data.shards import Shard, log_shard, merged_ids, owners, whole_log_reason
 from towers.data.spill import Column, Spill
-from towers.data.splits import HoldOut, Split, make_split
+from towers.data.splits import HoldOut, Split, TrainedBefore, make_split
 from towers.data.tables import (
     IdPieces,
     numeric_column,
@@ -283,11 +283,12 @@ def _catalog_rows(ids: IdColumn, catalog_ids: np.ndarray, spill: Spill) -> np.nd
     return spill.lookup(positions_in(catalog_ids, ids.uniques).astype(np.int32), ids.codes)
 
 
-def prepare(cfg: Config, previous=None) -> Prepared:
+def prepare(cfg: Config, previous=None, trained_before: TrainedBefore | None = None) -> Prepared:
     """Read, validate, split and encode everything the config names.
 
     previous: an earlier run's LoadedBundle to warm-start from; its encoders are extended, never
-    renumbered (warm_start.py), and `started_from` records what was added.
+    renumbered (warm_start.py), and `started_from` records what was added. trained_before: that run's
+    training pairs, which stay in training here (splits.make_split).
     """
     ic = cfg.interactions
     item_item = cfg.item_item
@@ -351,9 +352,16 @@ def prepare(cfg: Config, previous=None) -> Prepared:
         if user_side.has_table:
             user_has_row = pd.Index(user_side.ids).get_indexer(q_ids) >= 0
         cold_users = HoldOut(user_has_row, None if previous is None else _learned(q_ids, previous.query_encoders))
+    fixed = None
+    if trained_before is not None:
+        fixed = trained_before.mask(q_ids, c_ids, pairs.query.numpy(), pairs.candidate.numpy())
+        kept, total = everywhere(int(fixed.sum())), everywhere(len(fixed))
+        notes.append(f"warm start: {kept:,} pairs the earlier run trained on stay in training; the held-out pairs "
+                     f"come from the other {total - kept:,}")
     split: Split = make_split(pairs, len(c_ids), cfg.evaluation, cfg.run.seed, cold_eligible=cold_items,
                               item_item=item_item, groups=groups, n_queries=len(q_ids), cold_user_eligible=cold_users,
-                              sides=sel(log.side), everywhere=everywhere)
+                              sides=sel(log.side), everywhere=everywhere, trained_before=fixed)
+    fixed = None
     if everywhere(len(split.train)) == 0:
         raise TowersError(f"{ic.path}: the split leaves no training pairs; lower evaluation fractions or add data")
     context_encoders = None

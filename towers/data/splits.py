@@ -14,6 +14,7 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
+import pandas as pd
 import torch
 
 from towers.config import EvaluationSection
@@ -46,10 +47,28 @@ class HoldOut:
     learned: np.ndarray | None = None  # bool (n,): in the earlier run's id encoder
 
 
+@dataclass
+class TrainedBefore:
+    """The pairs an earlier run trained on, by id (its pairs.pt): a warm start keeps them in training."""
+
+    query_ids: np.ndarray
+    item_ids: np.ndarray
+
+    def mask(self, query_ids: np.ndarray, item_ids: np.ndarray, query_rows: np.ndarray,
+             item_rows: np.ndarray) -> np.ndarray:
+        """A bool per pair (query_rows, item_rows, rows of these catalogs): whether the earlier run trained on it."""
+        q = pd.Index(query_ids).get_indexer(self.query_ids)
+        c = pd.Index(item_ids).get_indexer(self.item_ids)
+        found = (q >= 0) & (c >= 0)
+        n = np.int64(len(item_ids))
+        earlier = np.unique(q[found].astype(np.int64) * n + c[found])
+        return np.isin(query_rows.astype(np.int64) * n + item_rows, earlier)
+
+
 def make_split(pairs, n_items: int, ev: EvaluationSection, seed: int, cold_eligible: HoldOut | None,
                item_item: bool, groups: np.ndarray | None = None, n_queries: int | None = None,
                cold_user_eligible: HoldOut | None = None, sides: np.ndarray | None = None,
-               everywhere=lambda seen: seen) -> Split:
+               everywhere=lambda seen: seen, trained_before: np.ndarray | None = None) -> Split:
     """Split pairs per the evaluation config; the same seed and data always give the same split.
 
     groups: one code per pair (the log's group column), or None. n_queries: rows of the query catalog
@@ -59,7 +78,10 @@ def make_split(pairs, n_items: int, ev: EvaluationSection, seed: int, cold_eligi
     side given already (pairs derived from baskets placed whole, data/baskets.py), used for the warm pairs
     instead of a split by units. everywhere: which entities have pairs in any process, from this
     process's (collective.summed when the log is divided among processes, data/shards.py), so every
-    process holds out the same entities.
+    process holds out the same entities. trained_before: a bool per pair, the pairs an earlier run trained
+    on (a warm start): they stay in training, with every pair of their units, and the warm split places
+    only the other units, its fractions taken of those, so no held-out pair is one the starting weights
+    learned.
     """
     rng = np.random.default_rng(seed + 1)
     q = pairs.query.numpy()
@@ -86,18 +108,47 @@ def make_split(pairs, n_items: int, ev: EvaluationSection, seed: int, cold_eligi
     rest = np.flatnonzero(~touches_cold).astype(index_dtype(len(q)))
     # the warm rows' columns: the columns themselves when no row is cold (no copy of a long log)
     of_rest = (lambda a: a) if len(rest) == len(q) else (lambda a: a[rest])  # noqa: E731
+    fixed = None if trained_before is None else of_rest(np.asarray(trained_before, dtype=bool))
     if sides is not None:
         side = of_rest(sides)
+        if fixed is not None:
+            side = np.where(fixed, TRAIN, side).astype(np.int8)
         return Split(rest[side == TRAIN], rest[side == VALID], rest[side == TEST], cold_test,
                      torch.from_numpy(cold_items), cold_user_test, torch.from_numpy(cold_users))
     # each row its own unit unless pairs or groups join rows: then a code per row (split_units)
     unit = split_units(of_rest(q), of_rest(c), None if groups is None else of_rest(groups), item_item) \
         if item_item or groups is not None else len(rest)
     when = None if pairs.time is None else of_rest(pairs.time.numpy())
-    per_user = ev.split in PER_USER_SPLITS
-    side = _per_user_sides(unit, of_rest(q), when, ev, rng) if per_user else global_sides(unit, when, ev, rng)
+    if fixed is not None and fixed.any():
+        side = _sides_around(fixed, unit, of_rest(q), when, ev, rng)
+    else:
+        side = _unit_sides(unit, of_rest(q), when, ev, rng)
     return Split(rest[side == TRAIN], rest[side == VALID], rest[side == TEST], cold_test, torch.from_numpy(cold_items),
                  cold_user_test, torch.from_numpy(cold_users))
+
+
+def _unit_sides(unit: np.ndarray | int, q: np.ndarray, when: np.ndarray | None, ev: EvaluationSection,
+                rng) -> np.ndarray:
+    """Each row's side under the configured warm split."""
+    if ev.split in PER_USER_SPLITS:
+        return _per_user_sides(unit, q, when, ev, rng)
+    return global_sides(unit, when, ev, rng)
+
+
+def _sides_around(fixed: np.ndarray, unit: np.ndarray | int, q: np.ndarray, when: np.ndarray | None,
+                  ev: EvaluationSection, rng) -> np.ndarray:
+    """Each row's side when the rows in `fixed` must train: every unit holding such a row trains whole,
+    and the configured split places the other units among themselves."""
+    if not isinstance(unit, int):
+        held = np.zeros(_unit_count(unit), dtype=bool)
+        held[unit[fixed]] = True
+        fixed = held[unit]
+    free = np.flatnonzero(~fixed)
+    side = np.full(len(fixed), TRAIN, dtype=np.int8)
+    if len(free):
+        sub = len(free) if isinstance(unit, int) else np.unique(unit[free], return_inverse=True)[1].reshape(-1)
+        side[free] = _unit_sides(sub, q[free], None if when is None else when[free], ev, rng)
+    return side
 
 
 def _held_out(seen: np.ndarray, pool: HoldOut, fraction: float, rng, what: str) -> np.ndarray:

@@ -21,6 +21,7 @@ from towers.data.embeddings_file import write_embeddings
 from towers.data.groups import group_labels
 from towers.data.pairs import Pairs, SplitPairs
 from towers.data.prepare import Prepared, prepare
+from towers.data.splits import TrainedBefore
 from towers.errors import TowersError
 from towers.evaluation.protocol import (
     evaluate_slices,
@@ -29,6 +30,7 @@ from towers.evaluation.protocol import (
     popularity_scorer,
     reference_scorers,
 )
+from towers.memory import hand_back_freed_memory
 from towers.model.build import baseline_model, build_model
 from towers.model.bundle import LoadedBundle, save_bundle
 from towers.model.embed import model_scorer, reads_context
@@ -104,6 +106,18 @@ def load_previous(run_dir: str | Path, model: str = TOWERS) -> LoadedBundle:
         raise TowersError(f"{folder.path}: --init-from needs a finished run folder (no {rel} there); give the --out "
                           "folder of an earlier `towers train`")
     return folder.load_bundle(model)
+
+
+def trained_pairs(run_dir: str | Path) -> TrainedBefore:
+    """The pairs an earlier run trained on, by id, for --init-from: they stay in training, so the new run's
+    held-out pairs are none its starting weights learned."""
+    folder = RunFolder(run_dir)
+    if not (folder.path / RunFolder.PAIRS).is_file():
+        raise TowersError(f"{folder.path}: --init-from needs the run's {RunFolder.PAIRS} (its split) to keep the pairs it "
+                          "trained on out of the new run's held-out pairs; give the --out folder of a finished run")
+    saved = folder.read_pairs()
+    train = saved.split.train
+    return TrainedBefore(saved.query_ids[train.query.numpy()], saved.item_ids[train.candidate.numpy()])
 
 
 def _reference_model(name: str, data: Prepared, cfg: C.Config) -> tuple[TwoTowerModel, C.Config]:
@@ -185,7 +199,7 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
     apply_threads(cfg)
     torch.manual_seed(cfg.run.seed)
     previous = load_previous(init_from) if init_from else None
-    data = prepare(cfg, previous)
+    data = prepare(cfg, previous, trained_pairs(init_from) if init_from else None)
     try:  # read now: a wrong column fails before training
         groups = group_labels(cfg, data.queries.ids, data.candidates.ids)
     except TowersError as exc:  # a config key's error names the config file, as those found on loading do
@@ -241,6 +255,7 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
     except TrainingDiverged:
         partial.remove()  # a diverged run leaves nothing behind
         raise
+    hand_back_freed_memory()  # the steps are over: the heap they kept is not the evaluation's
     # a divided log (data/shards.py): every process evaluates its own users and all get the whole result
     share = distributed.evaluation_share(divided=True) if data.divided else None
     if not primary and share is None:
