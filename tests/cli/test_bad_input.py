@@ -291,6 +291,32 @@ def test_mixed_id_types_even_when_missing_rows_default(store, tmp_path, capsys):
                 fix=r"mixed id types.*store every id")
 
 
+def test_a_zero_padded_text_id_against_whole_number_ids_is_not_merged(store, tmp_path, capsys):
+    # '0123' and '123' would both read as 123: a new user's trial saw two SKUs merged into one without a word
+    frame = log_frame(store)
+    frame["customer_id"] = frame["customer_id"].astype(object)
+    frame.loc[4, "customer_id"] = "0" + str(frame.loc[4, "customer_id"])  # data row 5, written with a leading zero
+    path = tmp_path / "log_padded.csv"
+    frame.to_csv(path, index=False)
+    for missing in ("error", "drop"):
+        cfg = change(base_config(store), "interactions", path=str(path))
+        cfg["users"]["missing_rows"] = missing
+        train_fails(capsys, tmp_path, cfg, "log_padded.csv", "column 'customer_id'", "row 5",
+                    repr(frame.loc[4, "customer_id"]), fix=r"leading zero.*write the ids the same way in both files")
+
+
+def test_whole_number_ids_against_zero_padded_text_ids_name_the_difference(store, tmp_path, capsys):
+    customers = pd.read_csv(store / "customers.csv")
+    customers["customer_id"] = customers["customer_id"].map(lambda i: f"{i:09d}")  # text with leading zeros
+    path = tmp_path / "customers_padded.csv"
+    customers.to_csv(path, index=False)
+    cfg = base_config(store)
+    cfg["users"]["path"] = str(path)
+    msg = train_fails(capsys, tmp_path, cfg, "log.parquet", "column 'customer_id'", "customers_padded.csv",
+                      fix=r"text with leading zeros \('0\d{8}'\).*write the ids the same way in both files")
+    assert "missing_rows" not in msg  # dropping every row is not the fix
+
+
 def test_ids_with_a_fraction(store, tmp_path, capsys):
     frame = log_frame(store)
     frame["customer_id"] = frame["customer_id"].astype(float)
@@ -342,7 +368,7 @@ def test_interaction_ids_without_a_feature_row(store, tmp_path, capsys):
     path, row = _log_with_stranger(store, tmp_path)
     cfg = change(base_config(store), "interactions", path=str(path))
     train_fails(capsys, tmp_path, cfg, "log_stranger.parquet", "column 'customer_id'", f"row {row}", "999",
-                "customers.csv", fix=r"add feature rows, or set missing_rows: drop or default")
+                "customers.csv", fix=r"add feature rows, or set users.missing_rows: drop or default")
 
 
 def test_item_item_missing_row_names_the_second_column(store, tmp_path, capsys):

@@ -351,11 +351,18 @@ def test_item_item_runs_batch_and_feature_rows(tiny_runs, small_store, tmp_path)
     expected = run.similar(rows["item_id"], top=7)
     assert got["item_id"].tolist() == expected["item_id"].tolist()
     np.testing.assert_allclose(got["score"], expected["score"], rtol=1e-4, atol=1e-4)
-    # the batch of an item_item run: query items, each leaving out its known pairs and itself, as recommend does
+    # the batch of an item_item run: each query item's "bought together" list as similar gives it, only the item
+    # itself left out; the pairs seen together in training stay (they are what such a list is for)
     queries = run.embeddings("query")[0][:30]
     out = tmp_path / "pairs.parquet"
     run.write_lists(out, queries, top=5)
-    np.testing.assert_array_equal(pd.read_parquet(out)["item_id"], run.recommend(queries, top=5)["item_id"])
+    written = pd.read_parquet(out)
+    np.testing.assert_array_equal(written["item_id"], run.similar(queries, top=5)["item_id"])
+    assert (written["item_id"] != written["query_id"]).all()
+    train = run.pairs["train"]
+    q_ids, i_ids = run.embeddings("query")[0], run.embeddings("item")[0]
+    seen = set(zip(q_ids[train["query"].numpy()].tolist(), i_ids[train["candidate"].numpy()].tolist()))
+    assert any(pair in seen for pair in zip(written["query_id"], written["item_id"]))
 
 
 @pytest.mark.slow

@@ -17,6 +17,7 @@ from towers.data.tables import (
     normalise_ids,
     read_table,
     require_columns,
+    zero_padded,
 )
 from towers.errors import TowersError, plain, where
 
@@ -95,11 +96,25 @@ class SideEncoders:
                    state["id_column"])
 
 
+def _form_hint(missing: np.ndarray, table_ids: np.ndarray, path) -> str | None:
+    """When the unmatched ids would match once zeros are padded or stripped (numbers in one file, zero-padded
+    text in the other), the fix for that, else None."""
+    if table_ids.dtype != object or not len(table_ids):
+        return None
+    stripped = pd.Series(table_ids, dtype=object).astype(str).str.lstrip("0").replace("", "0")
+    if not stripped.isin(pd.Series(missing, dtype=object).astype(str)).any():
+        return None
+    padded = next(str(t) for t, s in zip(table_ids, stripped) if str(t) != s)
+    return (f"the ids in {path} are text with leading zeros ({padded!r}) and these are numbers, which drop them; "
+            "write the ids the same way in both files (as text in both keeps the zeros)")
+
+
 class SideTable:
     """A side's feature table read and keyed by id (or none when the side has no features)."""
 
-    def __init__(self, path, id_column: str | None, specs: list[dict], missing_rows: str):
+    def __init__(self, path, id_column: str | None, specs: list[dict], missing_rows: str, section: str = "items"):
         self.path, self.id_column, self.specs, self.missing_rows = path, id_column, specs, missing_rows
+        self.section = section  # the config section naming the table, for the hints of errors
         self.table: pd.DataFrame | None = None
         self.ids: np.ndarray | None = None
         if path:
@@ -180,6 +195,16 @@ class SideTable:
                 raise TowersError(
                     f"{locate(row)}: mixed id types: {interaction_ids[at]!r} is text but the ids in {self.path} are "
                     "whole numbers; store every id as a number (or every id as text in both files)")
+        if self.ids.dtype.kind in "iu" and interaction_ids.dtype == object:
+            padded = zero_padded(interaction_ids)
+            if padded.any():  # '07' and '0007' would both become 7: two ids taken for one
+                row, at = first_row(padded)
+                shown = str(interaction_ids[at]).strip()
+                raise TowersError(
+                    f"{locate(row)}: id {shown!r} is text written with a leading zero or sign, but the ids in "
+                    f"{self.path} are whole numbers, so it would be read as {int(shown)} (as would every other way "
+                    "of writing that number); write the ids the same way in both files: as text in both (a parquet "
+                    "string column, or a CSV, which keeps the zeros) or as plain numbers in both")
         ids = align_id_types(interaction_ids, self.ids)
         known = pd.Index(self.ids).get_indexer(ids) >= 0
         keep = np.ones(n_rows, bool)
@@ -188,10 +213,11 @@ class SideTable:
             missing = pd.unique(ids[~known])
             if self.missing_rows == "error":
                 row, at = first_row(~known)
-                bad = plain(ids[at])
+                bad = plain(interaction_ids[at])
                 raise TowersError(
-                    f"{locate(row)}: id {bad!r} has no row in {self.path} "
-                    f"({len(missing)} such ids); add feature rows, or set missing_rows: drop or default")
+                    f"{locate(row)}: id {bad!r} has no row in {self.path} ({len(missing)} such ids); "
+                    + (_form_hint(missing, self.ids, self.path) or
+                       f"add feature rows, or set {self.section}.missing_rows: drop or default"))
             if self.missing_rows == "drop":
                 keep = per_row(known)
             else:

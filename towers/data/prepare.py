@@ -304,7 +304,8 @@ def prepare(cfg: Config, previous=None, trained_before: TrainedBefore | None = N
     # rows of a folder's files one after another are not one file's rows: errors there name the id and column
     file_rows = ic.pairs_from == "rows" and not ic.count_repeats and shard is None and not Path(ic.path).is_dir()
 
-    item_side = SideTable(cfg.items.path, cfg.items.id_column, cfg.items.features, cfg.items.missing_rows)
+    item_side = SideTable(cfg.items.path, cfg.items.id_column, cfg.items.features, cfg.items.missing_rows,
+                          "items")
     notes += _constant_notes("items", item_side)
     # ids are matched once per distinct id and mapped to rows through the codes (see IdColumn)
     if item_item:
@@ -319,7 +320,8 @@ def prepare(cfg: Config, previous=None, trained_before: TrainedBefore | None = N
         q_rows, c_rows = spill.where(rows_both[:n], keep), spill.where(rows_both[n:], keep)
         both = rows_both = None
     else:
-        user_side = SideTable(cfg.users.path, cfg.users.id_column, cfg.users.features, cfg.users.missing_rows)
+        user_side = SideTable(cfg.users.path, cfg.users.id_column, cfg.users.features, cfg.users.missing_rows,
+                              "users")
         notes += _constant_notes("users", user_side)
         q_ids, q_table, keep_q = user_side.catalog(q_log.uniques, ic.path, ic.query_column, codes=q_log.codes,
                                                    file_rows=file_rows)

@@ -480,17 +480,28 @@ def positions_in(catalog: np.ndarray, ids: np.ndarray) -> np.ndarray:
     return pd.Index(catalog).get_indexer(align_id_types(ids, catalog)).astype(np.int64, copy=False)
 
 
+PLAIN_WHOLE = r"-?(?:0|[1-9]\d{0,17})"  # a whole number as it prints: no sign but minus, no leading zero
+
+
+def zero_padded(ids: np.ndarray) -> np.ndarray:
+    """bool per id: text holding a whole number written otherwise than it prints ('07', '+7', '-0')."""
+    text = pd.Series(ids, dtype=object).astype(str).str.strip()
+    return (text.str.fullmatch(r"[+-]?\d{1,18}") & ~text.str.fullmatch(PLAIN_WHOLE)).to_numpy(dtype=bool)
+
+
 def align_id_types(ids: np.ndarray, reference: np.ndarray) -> np.ndarray:
     """Make `ids` comparable with `reference` ids (an integer log against a text table, say)."""
     if ids.dtype == reference.dtype:
         return ids
     if reference.dtype == object:
         return ids.astype(str).astype(object)
-    # reference integers, ids text: parse where possible; unparsable text stays unmatched.
+    # reference integers, ids text: parse where possible; unparsable text stays unmatched, and so do whole
+    # numbers written otherwise than a number prints ('07', '+7'), which would merge '07' and '0007' into 7
     text = pd.Series(ids, dtype=object).astype(str).str.strip()
     out = np.full(len(ids), np.iinfo(np.int64).min, dtype=np.int64)
     digits = text.str.fullmatch(r"[+-]?\d{1,18}").to_numpy(dtype=bool)  # parsed exactly, no float rounding
-    out[digits] = text[digits].astype(np.int64).to_numpy()
+    plain_form = text.str.fullmatch(PLAIN_WHOLE).to_numpy(dtype=bool)
+    out[plain_form] = text[plain_form].astype(np.int64).to_numpy()
     rest = np.flatnonzero(~digits)
     parsed = pd.to_numeric(text.iloc[rest], errors="coerce").to_numpy(dtype=np.float64)
     with np.errstate(invalid="ignore"):

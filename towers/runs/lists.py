@@ -555,8 +555,10 @@ def write_run_lists(run, out, user_ids, top: int, columns, keep, item_table, pro
     lists = lists_for(run, columns, keep, item_table)
     what = "query" if run.item_item else "user"
     rows = batch_rows(run, user_ids, what, source)
-    tr, va = run.pairs["train"], run.pairs["valid"]
     q_ids = run.embeddings(run._query_side())[0]
-    known = known_by_query(torch.cat([tr["query"], va["query"]]), torch.cat([tr["candidate"], va["candidate"]]),
-                           len(q_ids))
+    known = None  # item -> item: the pairs seen together are the list's point; only the item itself is left out
+    if not run.item_item:  # a user's own training and validation items are left out of their list
+        tr, va = run.pairs["train"], run.pairs["valid"]
+        known = known_by_query(torch.cat([tr["query"], va["query"]]), torch.cat([tr["candidate"], va["candidate"]]),
+                               len(q_ids))
     return write_lists(out, run._scorer("towers"), lists, q_ids, rows, top, known, run.item_item, progress)

@@ -494,9 +494,10 @@ class Run:
     def write_lists(self, out: str | Path, user_ids=None, top: int = 10, columns: Sequence[str] = (),
                     keep: L.ItemFilter | None = None, item_table=None, progress: str = "auto",
                     source: str = "user_ids") -> int:
-        """Every user's list (recommend's, known pairs excluded), or those of user_ids (ids not in the run
-        skipped with a warning), streamed block by block to a parquet file written atomically and
-        owner-only; returns the rows written. columns, keep, item_table: as recommend."""
+        """Every user's list (recommend's, known pairs excluded; in item_item runs similar's, only the item itself
+        excluded), or those of user_ids (ids not in the run skipped with a warning), streamed block by block to
+        a parquet file written atomically and owner-only; returns the rows written. columns, keep, item_table: as
+        recommend."""
         return L.write_run_lists(self, out, user_ids, top, columns, keep, item_table, progress, source)
 
     # ---- evaluation -----------------------------------------------------------------------------
