@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import argparse
 import contextlib
+import functools
 import json
 import os
 import platform
@@ -34,6 +35,9 @@ SIZES = {
                     {"users": 200_000, "items": 100_000, "pairs": 500_000, "textbook_pairs": 20_480}),
     "tower_flops": ({"users": 100_000, "items": 20_000, "pairs": 600_000},
                     {"users": 30_000, "items": 10_000, "pairs": 150_000}),
+    # the in-batch softmax's loss and gradients alone, at three batch sizes (plus drawn columns)
+    "softmax_batch": ({"batches": [1024, 4096, 8192], "extra": 512, "steps": 5},
+                      {"batches": [1024, 4096], "extra": 512, "steps": 3}),
     "als": ({"users": 40_000, "items": 10_000, "ratings": 1_000_000},
             {"users": 10_000, "items": 4_000, "ratings": 200_000}),
     "retrieval": ({"queries": 20_000, "items": 200_000, "top": 100},
@@ -395,6 +399,42 @@ def matmul_peak_flops() -> float:
     out = torch.empty(2048, 2048)
     torch.mm(a, b, out=out)
     return 2 * 2048 ** 3 / best_time(lambda: torch.mm(a, b, out=out), 10)
+
+
+def case_softmax_batch(size: dict, work: Path) -> dict:
+    """The in-batch softmax's loss and gradients (vectors of k = K, a bias and log q per column, batch + extra
+    columns), blocked (what training runs) against the dense form under autograd: pairs a second at each batch
+    size. The dense form's (B, C) matrices outgrow the allocator's reused blocks at large batches."""
+    import torch
+
+    from towers.model import losses
+
+    torch.manual_seed(0)
+    out = {}
+
+    def repeated(fn, args: tuple, n: int) -> None:
+        for _ in range(n):
+            fn(*args)
+
+    def dense(q, c, bias, ids, log_q):
+        logits = q @ c.T * 0.5 + bias.unsqueeze(0)
+        losses.in_batch_softmax_loss(logits, ids, log_q).mean().backward()
+
+    def blocked(q, c, bias, ids, log_q):
+        losses.blocked_in_batch_softmax_loss(q, c, bias, ids, 0.5, log_q).mean().backward()
+
+    for b in size["batches"]:
+        cols = b + size["extra"]
+        args = (torch.randn(b, K, requires_grad=True), torch.randn(cols, K, requires_grad=True),
+                torch.randn(cols, requires_grad=True), torch.randint(0, 50_000, (cols,)), torch.randn(cols))
+        for name, fn in (("dense", dense), ("blocked", blocked)):
+            fn(*args)  # warm-up
+            steps = functools.partial(repeated, fn, args, size["steps"])
+            out[f"softmax_{name}_pairs_per_s_{b}"] = b / (best_time(steps, 3) / size["steps"])
+        out[f"softmax_blocked_vs_dense_{b}"] = out[f"softmax_blocked_pairs_per_s_{b}"] / out[f"softmax_dense_pairs_per_s_{b}"]
+        log(f"softmax_batch {b}: blocked {out[f'softmax_blocked_pairs_per_s_{b}']:,.0f} pairs/s, dense "
+            f"{out[f'softmax_dense_pairs_per_s_{b}']:,.0f}")
+    return out
 
 
 def case_tower_flops(size: dict, work: Path) -> dict:
@@ -1145,6 +1185,7 @@ def two_nodes_figures(one: dict, nodes: list[dict], base: dict, work: Path) -> d
 
 
 CHILDREN = {"id_training": case_id_training, "tower_flops": case_tower_flops, "als": case_als,
+            "softmax_batch": case_softmax_batch,
             "retrieval": case_retrieval, "scale_data": case_scale_data,
             "scale_small": lambda s, w: case_scale_run(s, w, "small"),
             "scale_large": lambda s, w: case_scale_run(s, w, "large"),
@@ -1223,7 +1264,9 @@ def run_case(name: str, size: dict, work: Path) -> dict:
 
 GOALS = {  # key: (goal, "at least" or "at most")
     "id_training_vs_bare_kernel": (0.8, ">="), "id_training_vs_per_sample_loop": (20, ">="),
-    "tower_flops_vs_matmul_peak": (0.4, ">="), "als_vs_per_row_cholesky": (5, ">="),
+    "tower_flops_vs_matmul_peak": (0.4, ">="),
+    "softmax_blocked_vs_dense_1024": (1.0, ">="), "softmax_blocked_vs_dense_4096": (2.0, ">="),
+    "softmax_blocked_vs_dense_8192": (None, ""), "als_vs_per_row_cholesky": (5, ">="),
     "retrieval_vs_bare_matmul": (0.8, ">="),
     "retrieval_float32_vs_bare_matmul": (None, ""),  # the same search with the bfloat16 screen off
     "scale_10m_over_1m": (11, "<="), "peak_rss_gb_10m": (4, "<="),

@@ -134,3 +134,31 @@ def test_softmax_with_drawn_columns_equals_cross_entropy_over_the_kept_columns()
         row = (logits[i] - log_q)[keep]
         want = F.cross_entropy(row.unsqueeze(0), torch.tensor([keep.index(i)]))
         torch.testing.assert_close(got[i], want, rtol=1e-12, atol=1e-12)
+
+
+@pytest.mark.parametrize("block_cells", [1 << 20, 13 * 3])  # one block; row blocks of 3 rows (and a short last one)
+def test_blocked_softmax_equals_the_dense_one_in_value_and_gradient(monkeypatch, block_cells):
+    # reference: the dense in_batch_softmax_loss above (itself checked against F.cross_entropy) under torch
+    # autograd, on the same logits built from vectors, biases and log q; duplicates among own and drawn columns
+    monkeypatch.setattr(losses, "BLOCK_CELLS", block_cells)
+    gen = torch.Generator().manual_seed(5)
+    b, extra, k, scale = 8, 5, 4, 1.7
+    own = torch.tensor([3, 7, 3, 1, 9, 4, 7, 2])
+    columns = torch.cat([own, torch.tensor([7, 2, 3, 8, 9])])
+    q = torch.randn(b, k, generator=gen, dtype=torch.float64)
+    c = torch.randn(b + extra, k, generator=gen, dtype=torch.float64)
+    bias = torch.randn(b + extra, generator=gen, dtype=torch.float64)
+    log_q = torch.randn(b + extra, generator=gen, dtype=torch.float64)
+    weight = torch.rand(b, generator=gen, dtype=torch.float64)
+    results = []
+    for blocked in (False, True):
+        leaves = [t.clone().requires_grad_(True) for t in (q, c, bias)]
+        if blocked:
+            loss = losses.blocked_in_batch_softmax_loss(*leaves, columns, scale, log_q)
+        else:
+            logits = scale * leaves[0] @ leaves[1].T + leaves[2].unsqueeze(0)
+            loss = in_batch_softmax_loss(logits, columns, log_q)
+        (loss * weight).sum().backward()
+        results.append([loss.detach()] + [t.grad for t in leaves])
+    for dense, blocked in zip(*results):
+        torch.testing.assert_close(blocked, dense, rtol=1e-10, atol=1e-12)

@@ -5,7 +5,8 @@ Objective (per training pair, averaged):
         + lambda/(2N) sum_e (||e_e||^2 + b_e^2) + (wd/2) ||theta||^2
 The id-row penalty is spread over a row's pairs (1/n_e per pair), so each minibatch is an unbiased
 estimate of J and full-batch training minimises it exactly. Under loss: softmax the bracket is the
-in-batch sampled softmax of model/losses.in_batch_softmax_loss (the batch's other items as negatives).
+in-batch sampled softmax of model/losses.in_batch_softmax_loss (the batch's other items as negatives),
+computed a block of rows at a time (blocked_in_batch_softmax_loss).
 Validation, early stopping and Ctrl-C are training/stopping.py's, shared with ALS.
 """
 
@@ -29,7 +30,7 @@ from towers.data.prepare import Prepared
 from towers.errors import TowersError
 from towers.memory import reuse_freed_memory
 from towers.model.bundle import load_payload
-from towers.model.losses import in_batch_softmax_loss, logistic_loss, squared_loss
+from towers.model.losses import blocked_in_batch_softmax_loss, logistic_loss, squared_loss
 from towers.model.towers import Tower, TwoTowerModel
 from towers.training.distributed import GradientExchange, mean_over_processes
 from towers.training.negatives import NegativeSampler, log_batch_share
@@ -139,12 +140,11 @@ class Trainer:
         cb = take(d.candidates.block, columns)
         c_ids = m.candidate_tower.id_rows(cb)
         ce = m.candidate_tower(cb, c_ids)
-        logits = (qe @ ce.T) / m.temperature + m.candidate_bias_of(c_ids).unsqueeze(0)
         log_q = None
         if self.log_q is not None:  # log of each column item's expected count among the columns
             share = self.log_q.index_select(0, columns).double().exp()
             log_q = torch.log(len(idx) * share + self.extra / len(self.warm_rows)).float()
-        loss = in_batch_softmax_loss(logits, columns, log_q)
+        loss = blocked_in_batch_softmax_loss(qe, ce, m.candidate_bias_of(c_ids), columns, 1.0 / m.temperature, log_q)
         if train.target is not None:  # a label in [0, 1] scales its row; label 0 rows teach nothing here
             loss = loss * train.target.index_select(0, idx)
         if train.weight is not None:
