@@ -507,3 +507,15 @@ def test_dump_keeps_schema_order_and_plain_yaml(tmp_path):
     text = C.dump(full_config(tmp_path))
     assert "!!" not in text  # only plain YAML types, readable by any loader
     assert [line.rstrip(":") for line in text.splitlines() if line and not line.startswith(" ")] == list(C.SCHEMA)
+
+
+def test_a_resumed_run_with_another_config_names_the_key_that_changed(tmp_path):
+    from towers.runs.folder import RunFolder
+
+    folder = RunFolder(tmp_path / "run.partial")
+    folder.path.mkdir()
+    then = C.resolve(minimal(training={"epochs": 3}), tmp_path)
+    folder.write_config(then)
+    assert folder.config_difference(then) == ""
+    now = C.resolve(minimal(training={"epochs": 4}), tmp_path)
+    assert folder.config_difference(now) == "training.epochs: 3 then, 4 now"

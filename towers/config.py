@@ -90,7 +90,10 @@ class FeatureSpec:
 
 # keys that only mean something for some kinds: set on another kind, they are refused rather than ignored
 FEATURE_KEY_KINDS = {"log1p": ("numeric",), "clip_lower": ("numeric",), "clip_upper": ("numeric",),
-                     "reference_date": ("date",), "calendar": ("date",)}
+                     "reference_date": ("date",), "calendar": ("date",),
+                     "rare_below": ("categorical", "tokens"), "hashed_rows": ("categorical", "tokens"),
+                     "dim": ("categorical", "tokens"), "separator": ("tokens",), "token_limit": ("tokens",),
+                     "length": ("vector",)}
 
 
 @dataclass(frozen=True)
@@ -589,8 +592,9 @@ def _check_feature(label: str, index: int, spec: Any, base_dir: Path) -> dict:
         raise TowersError(f"config key '{here}.length' is missing; a vector feature needs its fixed length")
     for k, kinds in FEATURE_KEY_KINDS.items():
         if out[k] != FEATURE_KEYS[k].default and out["kind"] not in kinds:
+            fits = f", or set kind: {kinds[0]} if that is what the column holds" if len(kinds) == 1 else ""
             raise TowersError(f"config key '{here}.{k}': applies to {' or '.join(kinds)} features only (this one is "
-                              f"{out['kind']}); remove it")
+                              f"{out['kind']}); remove it{fits}")
     if out["clip_lower"] is not None and out["clip_upper"] is not None and out["clip_lower"] >= out["clip_upper"]:
         raise TowersError(f"config key '{here}.clip_lower': got {out['clip_lower']!r}; expected a quantile below "
                           f"clip_upper ({out['clip_upper']!r})")
@@ -850,3 +854,14 @@ def linear_factor_preset(cfg: Config) -> Config:
     base = cfg.with_section("model", hidden=(), use_ids=True, id_dropout=0.0, normalize=False, temperature=1.0,
                             non_negative=False, dropout=0.0, id_dim=None)
     return base.with_section("users", features=()).with_section("items", features=())
+
+
+def first_difference(a: dict, b: dict, prefix: str = "") -> str:
+    """The first key (dotted, in sorted order) whose value differs between two configs as plain YAML values,
+    as "key: old then, new now"; "" when they are equal."""
+    for k in sorted(set(a) | set(b), key=str):
+        if a.get(k) != b.get(k):
+            if isinstance(a.get(k), dict) and isinstance(b.get(k), dict):
+                return first_difference(a[k], b[k], f"{prefix}{k}.")
+            return f"{prefix}{k}: {a.get(k)!r} then, {b.get(k)!r} now"
+    return ""

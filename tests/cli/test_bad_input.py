@@ -178,6 +178,17 @@ def test_missing_file(store, tmp_path, capsys):
     train_fails(capsys, tmp_path, cfg, "no_such_log.csv", fix=r"file not found; check the path")
 
 
+def test_feature_tables_are_read_before_the_log(store, tmp_path, capsys):
+    # a wrong item table fails at once, not after an order export's pairs are counted (minutes for a long one)
+    cfg = change(base_config(store), "interactions", path=str(store / "log.parquet"))
+    cfg["items"]["path"] = str(tmp_path / "no_such_items.parquet")
+    cfg["interactions"].update(pairs_from="baskets", group_column="customer_id", query_column=None, weight_column=None)
+    cfg["run"] = {**cfg["run"], "mode": "item_item"}
+    del cfg["users"]
+    # one line on stderr (train_fails): no log line of pairs counted came before it
+    train_fails(capsys, tmp_path, cfg, "no_such_items.parquet", fix=r"file not found; check the path")
+
+
 def test_folder_given_as_a_feature_table(store, tmp_path, capsys):
     (tmp_path / "items_folder.parquet").mkdir()
     cfg = change(base_config(store), "items", path=str(tmp_path / "items_folder.parquet"))
@@ -432,7 +443,7 @@ def test_text_in_a_numeric_feature(store, tmp_path, capsys):
     frame.to_csv(path, index=False)
     cfg = change(base_config(store), "users", path=str(path))
     train_fails(capsys, tmp_path, cfg, "customers_text.csv", "column 'household_size'", "row 9", "'three'",
-                fix=r"fix the value or declare the column as categorical")
+                fix=r"fix the value, or declare the feature as categorical in the config")
 
 
 def test_non_numeric_target(store, tmp_path, capsys):
@@ -442,7 +453,8 @@ def test_non_numeric_target(store, tmp_path, capsys):
     path = tmp_path / "stars_text.csv"
     frame.to_csv(path, index=False)
     train_fails(capsys, tmp_path, ratings_config(store, path), "stars_text.csv", "column 'stars'", "row 3",
-                "'five'", fix=r"is not a number; fix the value")
+                "'five'", fix=r"is not a number; fix the value; this column must hold numbers")
+    assert "categorical" not in capsys.readouterr().err  # a target cannot be a category
 
 
 def test_logistic_target_outside_0_1(store, tmp_path, capsys):

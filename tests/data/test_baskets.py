@@ -266,6 +266,12 @@ def test_bad_rows_name_file_column_and_row(tmp_path):
         derive_pairs(resolve(tmp_path / "q.csv", quantity_column="quantity"), split=False)
     with pytest.raises(TowersError, match=r"column 'basket'.*no such column"):
         derive_pairs(resolve(tmp_path / "q.csv", group_column="basket"), split=False)
+    returns = df.copy()
+    returns.loc[5, "quantity"] = -2  # a refund line of an order export
+    returns.to_csv(tmp_path / "returns.csv", index=False)
+    with pytest.raises(TowersError, match=r"returns.csv, column 'quantity', row 6: negative or infinite quantity -2.*"
+                                          r"a return or refund line: leave such lines out of the export"):
+        derive_pairs(resolve(tmp_path / "returns.csv", quantity_column="quantity"), split=False)
 
 
 @pytest.mark.parametrize("suffix", ["csv", "parquet"])

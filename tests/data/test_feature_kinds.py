@@ -7,6 +7,7 @@ quantile for the encodings, and scikit-learn's StandardScaler for the standardis
 from __future__ import annotations
 
 import json
+import re
 import warnings
 from datetime import date, datetime, timedelta, timezone
 
@@ -118,8 +119,13 @@ def test_a_date_in_a_numeric_column_suggests_the_date_kind():
     with pytest.raises(TowersError, match=r"row 2: '2026-03-14' is not a number but reads as a date; declare the "
                                           r"feature with kind: date"):
         E.NumericEncoder("listed").validate(pd.Series(["12", "2026-03-14"]), P)
-    with pytest.raises(TowersError, match=r"'large' is not a number; fix the value or declare the column as categorical"):
+    with pytest.raises(TowersError, match=r"'large' is not a number; fix the value, or declare the feature as categorical"):
         E.NumericEncoder("size").validate(pd.Series(["12", "large"]), P)
+    # a price with its currency sign or thousands separator: the number is there, written with more than digits
+    for written, bare in (("£5.35", "5.35"), ("1,299", "1299"), ("12 kg", "12")):
+        with pytest.raises(TowersError, match=rf"{re.escape(repr(written))} is not a number; write the number alone "
+                                              rf"\({re.escape(bare)}\)"):
+            E.NumericEncoder("price").validate(pd.Series(["3", written]), P)
 
 
 def test_no_training_dates_and_no_reference_is_an_error():
@@ -205,6 +211,12 @@ def test_config_builds_the_new_encoders(tmp_path):
     ({"name": "brand", "kind": "categorical", "log1p": True},
      r"'items\.features\[0\]\.log1p': applies to numeric features only \(this one is categorical\); remove it"),
     ({"name": "price", "kind": "numeric", "calendar": True}, r"'items\.features\[0\]\.calendar': applies to date"),
+    # a user who meant tokens: the separator of a categorical column was silently ignored before
+    ({"name": "author", "kind": "categorical", "separator": ","},
+     r"separator': applies to tokens features only \(this one is categorical\); remove it, or set kind: tokens"),
+    ({"name": "author", "kind": "categorical", "token_limit": 4}, r"token_limit': applies to tokens"),
+    ({"name": "author", "kind": "categorical", "length": 4}, r"length': applies to vector"),
+    ({"name": "price", "kind": "numeric", "rare_below": 5}, r"rare_below': applies to categorical or tokens"),
     ({"name": "price", "kind": "numeric", "clip_lower": 0.9, "clip_upper": 0.1}, r"expected a quantile below clip_upper"),
     ({"name": "price", "kind": "numeric", "clip_upper": 1.5}, r"clip_upper': got 1\.5; expected a number <= 1"),
     ({"name": "listed", "kind": "date", "reference_date": "14.03.2026"},

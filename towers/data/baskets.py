@@ -221,8 +221,9 @@ class Source:
         elif name == "t":
             what = f"{value!r} is not an ISO 8601 date or time; {TIME_FORM}"
         else:
-            what = (f"negative or infinite quantity {value}; quantities must be finite and >= 0" if _is_number(value)
-                    else f"{value!r} is not a number; quantities must be numbers >= 0")
+            what = (f"negative or infinite quantity {value}; quantities must be finite and >= 0 (a return or refund "
+                    "line: leave such lines out of the export, or net them against their order's purchase lines "
+                    "first)" if _is_number(value) else f"{value!r} is not a number; quantities must be numbers >= 0")
         raise TowersError(f"{here}: {what}")
 
     def _first_bad(self, raw: str, condition: str) -> tuple[Path, int, str | None]:

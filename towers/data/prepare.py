@@ -295,6 +295,11 @@ def prepare(cfg: Config, previous=None, trained_before: TrainedBefore | None = N
     spill = Spill(cfg.run.spill_folder)
     shard = log_shard(cfg)
     everywhere = across(shard is not None)  # a process's own part summed with the others' (divided log)
+    # the feature tables first: a bad one fails at once, not after a long export's pairs are counted
+    item_side = SideTable(cfg.items.path, cfg.items.id_column, cfg.items.features, cfg.items.missing_rows,
+                          "items")
+    user_side = None if item_item else SideTable(cfg.users.path, cfg.users.id_column, cfg.users.features,
+                                                 cfg.users.missing_rows, "users")
     log = read_interactions(cfg, split=True, spill=spill, shard=shard)
     q_log, c_log, target, weight, when = log.query_ids, log.candidate_ids, log.target, log.weight, log.time
     notes: list[str] = list(log.notes)
@@ -304,8 +309,6 @@ def prepare(cfg: Config, previous=None, trained_before: TrainedBefore | None = N
     # rows of a folder's files one after another are not one file's rows: errors there name the id and column
     file_rows = ic.pairs_from == "rows" and not ic.count_repeats and shard is None and not Path(ic.path).is_dir()
 
-    item_side = SideTable(cfg.items.path, cfg.items.id_column, cfg.items.features, cfg.items.missing_rows,
-                          "items")
     notes += _constant_notes("items", item_side)
     # ids are matched once per distinct id and mapped to rows through the codes (see IdColumn)
     if item_item:
@@ -320,8 +323,6 @@ def prepare(cfg: Config, previous=None, trained_before: TrainedBefore | None = N
         q_rows, c_rows = spill.where(rows_both[:n], keep), spill.where(rows_both[n:], keep)
         both = rows_both = None
     else:
-        user_side = SideTable(cfg.users.path, cfg.users.id_column, cfg.users.features, cfg.users.missing_rows,
-                              "users")
         notes += _constant_notes("users", user_side)
         q_ids, q_table, keep_q = user_side.catalog(q_log.uniques, ic.path, ic.query_column, codes=q_log.codes,
                                                    file_rows=file_rows)

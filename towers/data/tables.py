@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import contextlib
 import difflib
+import re
 import warnings
 from pathlib import Path
 
@@ -520,6 +521,16 @@ def check_unique_ids(ids: np.ndarray, path, column) -> None:
                           "(deduplicate it)")
 
 
+def _number_fix(value, feature: bool) -> str:
+    """The fix for text in a column of numbers: a number written with a currency sign, unit or thousands
+    separators ('£5.35', '1,299') is written bare; other text is a value to fix, or (features) a category."""
+    bare = re.sub(r"[^\d.\-]", "", str(value))
+    if bare and bare != str(value).strip() and re.fullmatch(r"-?\d+(\.\d+)?", bare):
+        return f"write the number alone ({bare}), without currency signs, units or thousands separators"
+    return "fix the value" + (", or declare the feature as categorical in the config" if feature else
+                              "; this column must hold numbers")
+
+
 def numeric_column(series: pd.Series, path, column, allow_missing: bool = True, feature: bool = False) -> np.ndarray:
     """A float64 view of a column, with errors for text, infinities and (optionally) missing values.
 
@@ -536,8 +547,7 @@ def numeric_column(series: pd.Series, path, column, allow_missing: bool = True, 
             if feature and not np.isnat(date_column(series.iloc[row:row + 1], path, column, strict=False)[0]):
                 raise TowersError(f"{where(path, column, row + 1)}: {value!r} is not a number but reads as a date; "
                                   "declare the feature with kind: date (its age in days) or fix the value")
-            raise TowersError(f"{where(path, column, row + 1)}: {value!r} is not a number; "
-                              "fix the value or declare the column as categorical")
+            raise TowersError(f"{where(path, column, row + 1)}: {value!r} is not a number; {_number_fix(value, feature)}")
     inf = np.isinf(values)
     if inf.any():
         row = int(np.flatnonzero(inf)[0])

@@ -176,10 +176,11 @@ class RunFolder:
         except TowersError as exc:
             raise TowersError(f"{cfg_path}: {exc} (in the run's saved config; {fix})") from None
 
-    def same_config(self, cfg: C.Config) -> bool:
-        """Whether the saved config equals cfg (as YAML values)."""
+    def config_difference(self, cfg: C.Config) -> str:
+        """The first key where the saved config and cfg differ (as YAML values), as C.first_difference words it;
+        "" when they are the same."""
         saved = yaml.safe_load((self.path / self.CONFIG).read_text(encoding="utf-8"))
-        return saved == yaml.safe_load(C.dump(cfg))
+        return C.first_difference(saved, yaml.safe_load(C.dump(cfg)))
 
     def load_bundle(self, model: str = TOWERS) -> LoadedBundle:
         return load_bundle(self.model_file(model))

@@ -116,15 +116,6 @@ def comparable_config(cfg: C.Config | dict) -> dict:
     return out
 
 
-def first_difference(a: dict, b: dict, prefix: str = "") -> str:
-    for k in sorted(set(a) | set(b), key=str):
-        if a.get(k) != b.get(k):
-            if isinstance(a.get(k), dict) and isinstance(b.get(k), dict):
-                return first_difference(a[k], b[k], f"{prefix}{k}.")
-            return f"{prefix}{k}: {a.get(k)!r} then, {b.get(k)!r} now"
-    return ""
-
-
 def _check_grid(dims, penalties, penalty_key: str, jobs: int) -> tuple[list[int], list[float]]:
     if penalty_key not in PENALTY_KEYS:
         raise TowersError(f"--penalty-key: got {penalty_key!r}; expected one of {', '.join(PENALTY_KEYS)}")
@@ -212,7 +203,7 @@ def _finished(cell: Cell) -> bool:
     now = comparable_config(cell.config)
     if then != now:
         raise TowersError(f"{cell.folder}: this finished cell was trained with a different config "
-                          f"({first_difference(then, now) or 'config.yaml missing'}); give the sweep a new --out, "
+                          f"({C.first_difference(then, now) or 'config.yaml missing'}); give the sweep a new --out, "
                           "or delete that cell folder to retrain it")
     return True
 

@@ -92,9 +92,10 @@ def _resumable(partial: RunFolder, cfg: C.Config) -> bool:
     """Whether an interrupted run can continue here, checking the config has not changed."""
     if not partial.has_config():
         return False
-    if not partial.same_config(cfg):
-        raise TowersError(f"{partial.path / RunFolder.CONFIG}: the config differs from the interrupted run's; resume "
-                          "with the same config, or drop --resume to start over")
+    changed = partial.config_difference(cfg)
+    if changed:
+        raise TowersError(f"{partial.path / RunFolder.CONFIG}: the config differs from the interrupted run's ({changed}); "
+                          "resume with the same config, or drop --resume to start over")
     return True
 
 

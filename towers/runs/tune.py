@@ -55,7 +55,6 @@ from towers.runs.sweep import (
     config_with,
     core_count,
     figure,
-    first_difference,
     save_png,
     searchable_config,
 )
@@ -249,7 +248,7 @@ def _open_study(out: Path, base: C.Config, config_path: Path, metric: str):
     else:
         then = attrs["config"]
         if then != now:
-            raise TowersError(f"{out}: this study was started with a different config ({first_difference(then, now)}); "
+            raise TowersError(f"{out}: this study was started with a different config ({C.first_difference(then, now)}); "
                               "give the tune a new --out, or delete that folder to start over")
         if attrs.get("space") != S.describe():
             raise TowersError(f"{out}: this study was made with another search space (another towers version); give the "
