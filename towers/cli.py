@@ -24,6 +24,9 @@ class _OneLineParser(argparse.ArgumentParser):
 
 def _parser() -> argparse.ArgumentParser:
     p = _OneLineParser(prog="towers", description="Train two-tower embedding models on a CPU.")
+    from towers import __version__
+
+    p.add_argument("--version", action="version", version=f"towers {__version__}")
     sub = p.add_subparsers(dest="command", required=True, parser_class=_OneLineParser)
 
     t = sub.add_parser("train", help="train towers and baselines from a YAML config, evaluate, export")

@@ -6,6 +6,8 @@ import subprocess
 import sys
 from pathlib import Path
 
+import pytest
+
 ROOT = Path(__file__).resolve().parents[2]
 
 # a command whose result is long: every printed line is what `recommend --top 240` would print for many users
@@ -26,3 +28,15 @@ def test_a_reader_that_stops_early_ends_the_command_quietly():
     proc.stdout.close()
     err = proc.stderr.read().decode()
     assert proc.wait(timeout=60) == 141 and err == ""
+
+
+def test_version_prints_the_installed_package_version(capsys):
+    # reference: the version the installed distribution's metadata holds (importlib.metadata, pyproject.toml)
+    from importlib.metadata import version
+
+    from towers import cli
+
+    with pytest.raises(SystemExit) as stop:
+        cli.main(["--version"])
+    assert stop.value.code == 0
+    assert capsys.readouterr().out.strip() == f"towers {version('towers')}"

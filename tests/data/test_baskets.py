@@ -299,6 +299,17 @@ def test_a_bad_row_in_the_second_file_of_a_folder_names_that_file_and_its_row(tm
         derive_pairs(resolve(days), split=False)
 
 
+def test_a_file_of_a_folder_with_another_header_is_named(tmp_path):
+    # a day's export with a renamed column: named with the column, not DuckDB's "schema mismatch between globbed files"
+    df = orders(n_orders=10)
+    days = tmp_path / "days"
+    days.mkdir()
+    df.iloc[:20].to_csv(days / "a.csv", index=False)
+    df.iloc[20:].rename(columns={"product_id": "sku"}).to_csv(days / "b.csv", index=False)
+    with pytest.raises(TowersError, match=r"days/b\.csv, column 'product_id': no such column"):
+        derive_pairs(resolve(days), split=False)
+
+
 @pytest.mark.parametrize("change, message", [
     ({"run": {"mode": "user_item"}}, "expected rows in user_item mode"),
     ({"interactions": {"group_column": None}}, "'interactions.group_column' is missing"),

@@ -56,10 +56,10 @@ def test_format_follows_the_extension_not_the_content(tmp_path):
     f = write_csv(tmp_path / "log.parquet", "a,b\n1,2\n")
     with pytest.raises(TowersError, match=r"log\.parquet: cannot be read as parquet"):
         T.read_table(f)
-    # parquet bytes under a CSV name are read as CSV, and fail as such.
+    # parquet bytes under a CSV name are read as CSV, fail as such, and are named for what they are
     g = tmp_path / "log.csv"
     g.write_bytes((write_parquet(tmp_path / "x.parquet", pd.DataFrame({"a": [1]}))).read_bytes())
-    with pytest.raises(TowersError, match=r"log\.csv: cannot be read as csv"):
+    with pytest.raises(TowersError, match=r"log\.csv: holds parquet data under a \.csv name; rename it to \.parquet"):
         T.read_table(g)
 
 
@@ -122,8 +122,9 @@ def test_header_names_are_stripped(tmp_path):
 
 
 def test_bad_encoding_is_a_clear_error(tmp_path):
+    # a spreadsheet's Latin-1 export: 0xe9 is 'é' in Latin-1 and not a UTF-8 sequence here
     f = write_csv(tmp_path / "latin.csv", "id,name\n1,caf\xe9\n", encoding="latin-1")
-    with pytest.raises(TowersError, match=r"latin\.csv: cannot be read as csv"):
+    with pytest.raises(TowersError, match=r"latin\.csv: line 2 is not UTF-8 text \(byte 0xe9\); save the file as UTF-8"):
         T.read_table(f)
 
 
@@ -415,3 +416,4 @@ def test_ids_keep_their_leading_zeros_and_plain_numbers_stay_numbers(tmp_path):
         ids.add(piece["sku"], path, "sku")
     codes, uniques = ids.finish()
     assert list(uniques) == ["0007", "07", "7"] and codes.tolist() == [0, 1, 2]
+

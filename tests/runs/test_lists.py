@@ -160,6 +160,19 @@ def test_item_columns_equal_a_pandas_merge(basket_run, small_store):
 
 
 @pytest.mark.slow
+def test_columns_from_a_table_lacking_items_warn_and_ids_not_in_the_run_warn(basket_run, today):
+    path, items = today
+    run = towers.load(basket_run)
+    users = run.embeddings("user")[0][:200]
+    with pytest.warns(UserWarning, match=r"5 of the run's 200 items are not in this item table; their name are empty"):
+        got = run.recommend(users, top=10, columns=["name"], item_table=path)
+    missing = set(run.embeddings("item")[0]) - set(items["item_id"])
+    assert got.loc[got["item_id"].isin(missing), "name"].isna().all()  # the blanks the warning counts
+    with pytest.warns(UserWarning, match=r"never: 1 of the 2 ids given are not items of this run \(first: 'C-1'\)"):
+        run.recommend(users[:2], top=3, keep=ItemFilter(never_ids=(str(items["item_id"].iloc[0]), "C-1")))
+
+
+@pytest.mark.slow
 def test_filter_from_todays_table_keeps_lists_full_and_leaves_out_items_it_lacks(basket_run, today):
     path, items = today
     run = towers.load(basket_run)

@@ -78,3 +78,27 @@ def test_an_error_in_a_later_piece_names_the_row_of_the_file(run, table, tmp_pat
     with pytest.raises(TowersError, match=r"column 'description_vector', row 102: vector of length 2"):
         r.embed_file(path, out, "items")
     assert not out.exists()  # nothing half-written
+
+
+@pytest.mark.parametrize("suffix", ["parquet", "csv"])
+def test_a_table_of_no_rows_gives_an_empty_embeddings_file(run, table, tmp_path, suffix):
+    # a night with no new items: the nightly job's embed succeeds with an empty file of the usual columns
+    empty = pd.read_parquet(table).head(0)
+    path = tmp_path / f"no_new_items.{suffix}"
+    empty.to_parquet(path) if suffix == "parquet" else empty.to_csv(path, index=False)
+    out = tmp_path / "vectors.parquet"
+    with pytest.warns(UserWarning, match=r"header but no rows; .*holds no vectors"):
+        assert run.embed_file(path, out, "items") == 0
+    got, usual = pq.read_table(out), pq.read_table(run.dir / "item_embeddings.parquet")
+    assert got.num_rows == 0 and got.column_names == usual.column_names
+    assert got.schema.field("embedding").type == usual.schema.field("embedding").type
+    # a missing column is still an error, rows or none
+    with pytest.raises(TowersError, match=r"column 'brand': no such column"):
+        run.embed_file(_without(empty, "brand", tmp_path, suffix), tmp_path / "never.parquet", "items")
+
+
+def _without(frame: pd.DataFrame, column: str, folder: Path, suffix: str) -> Path:
+    path = folder / f"without_{column}.{suffix}"
+    part = frame.drop(columns=[column])
+    part.to_parquet(path) if suffix == "parquet" else part.to_csv(path, index=False)
+    return path

@@ -153,7 +153,9 @@ class Source:
         else:
             # the header through pandas first: an empty file and a misnamed column get the usual one-line errors
             # (DuckDB refuses a quantity column named in `types` below that is not there with a message of its own)
-            require_columns(table_columns(self.files[0]), list(columns.values()), self.files[0])
+            # (every file of a folder, so a day's export with another header is named, not a failed glob)
+            for file in self.files:
+                require_columns(table_columns(file), list(columns.values()), file)
             sep = "\\t" if suffix == ".tsv" else ","
             # quantities read as text and converted per row, so a bad value is named, not a failed sniff
             text = f", types = {{{_text(columns['w'])}: 'VARCHAR'}}" if "w" in columns else ""

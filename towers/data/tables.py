@@ -23,12 +23,13 @@ READABLE = (".csv", ".parquet", ".pq", ".tsv")
 
 
 def read_table(path: str | Path, columns: list[str] | None = None, watch: list[str] | None = None,
-               ids: tuple[str, ...] | list[str] = ()) -> pd.DataFrame:
+               ids: tuple[str, ...] | list[str] = (), empty_ok: bool = False) -> pd.DataFrame:
     """Read a CSV (or TSV) or parquet file into a DataFrame, with clear errors.
 
     CSV handling: a UTF-8 byte-order mark, quoted delimiters and Windows line ends are read correctly.
     watch: the columns whose words for missing get a warning (_missing_words; default: `columns`, else all).
-    ids: id columns, read as written (ids_as_written): 0007 stays 0007.
+    ids: id columns, read as written (ids_as_written): 0007 stays 0007. empty_ok: a header without rows is a
+    table of no rows (a night with no new items), not an error.
     """
     path = Path(path)
     suffix = check_file(path)
@@ -51,7 +52,7 @@ def read_table(path: str | Path, columns: list[str] | None = None, watch: list[s
     _check_header(df, path)
     if columns is not None:
         require_columns(df.columns, columns, path)
-    if len(df) == 0:
+    if len(df) == 0 and not empty_ok:
         raise TowersError(f"{path}: the table has a header but no rows; export the data rows too")
     return df
 
@@ -71,6 +72,44 @@ def table_columns(path: str | Path) -> list[str]:
     return list(df.columns)
 
 
+def _not_utf8(path: Path, exc: UnicodeDecodeError) -> TowersError:
+    """The error for a CSV that does not decode: binary data under a text name (parquet, a spreadsheet) is
+    named as such; text in another encoding gets its line and the fix."""
+    try:
+        with open(path, "rb") as fh:
+            head = fh.read(4096)
+    except OSError:
+        head = b""
+    if head.startswith(b"PAR1"):
+        return TowersError(f"{path}: holds parquet data under a {path.suffix} name; rename it to .parquet")
+    if head.startswith(b"PK") or b"\x00" in head:
+        return TowersError(f"{path}: is not a text file (a spreadsheet workbook or other binary file?); export the "
+                           "table as CSV (UTF-8) or parquet")
+    line = _line_of_byte(path, exc.start) if isinstance(exc.object, bytes) else None
+    at = f"line {line}" if line else f"byte {exc.start}"
+    return TowersError(f"{path}: {at} is not UTF-8 text (byte 0x{exc.object[exc.start]:02x}); save the file as "
+                       "UTF-8 (a spreadsheet's 'CSV UTF-8' format) and try again")
+
+
+def _line_of_byte(path: Path, offset: int) -> int | None:
+    """The line (from 1) of the first byte of a file that is not UTF-8, found by decoding it a megabyte at a
+    time (the offset a reader reports may count from the start of its current chunk); None if none is found."""
+    import codecs
+
+    decoder, lines, chunk_size = codecs.getincrementaldecoder("utf-8")(), 1, 1 << 20
+    try:
+        with open(path, "rb") as fh:
+            while chunk := fh.read(chunk_size):
+                try:
+                    decoder.decode(chunk)
+                except UnicodeDecodeError as exc:
+                    return lines + chunk.count(b"\n", 0, max(0, exc.start))
+                lines += chunk.count(b"\n")
+    except OSError:
+        return None
+    return None
+
+
 @contextlib.contextmanager
 def _read_errors(path: Path, suffix: str):
     """Reading errors of pandas and pyarrow as one-line TowersErrors naming the file."""
@@ -80,7 +119,9 @@ def _read_errors(path: Path, suffix: str):
         raise
     except pd.errors.EmptyDataError:
         raise TowersError(f"{path}: the file is empty; it needs a header row and at least one data row") from None
-    except (pd.errors.ParserError, UnicodeDecodeError, ValueError, OSError) as exc:
+    except UnicodeDecodeError as exc:
+        raise _not_utf8(path, exc) from None
+    except (pd.errors.ParserError, ValueError, OSError) as exc:
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise TowersError(f"{path}: cannot be read as {suffix[1:]} ({first}); "
                           f"check the file is a valid {suffix[1:]} table") from None

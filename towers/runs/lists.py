@@ -328,17 +328,25 @@ def item_lists(item_ids: np.ndarray, keep: ItemFilter | None, columns: Sequence[
             raise TowersError(f"column {clash[0]!r}: the lists already have a column of that name; "
                               f"choose item columns other than {', '.join(LIST_COLUMNS)}")
         table = _cached_table(cache, table_path, id_column, item_ids, needed)
+        lacking = int((~table.present).sum())
         if keep.columns():
             allowed &= table.allowed(keep)
-            lacking = int((~table.present).sum())
             if lacking:
                 warnings.warn(f"{table.path}: {lacking} of the run's {len(item_ids)} items are not in this item table; "
                               "a filter cannot be checked on them, so they are left out of the lists", stacklevel=3)
+        elif lacking and columns:
+            warnings.warn(f"{table.path}: {lacking} of the run's {len(item_ids)} items are not in this item table; "
+                          f"their {', '.join(columns)} are empty in the lists", stacklevel=3)
         for name in columns:
             out[name] = _arrow_column(table.column(name), table.path, name)
     if keep.never_ids:
-        at = positions_in(item_ids, given_ids(keep.never_ids))
+        never = given_ids(keep.never_ids)
+        at = positions_in(item_ids, never)
         allowed[at[at >= 0]] = False  # ids not in the run are never listed anyway
+        if (at < 0).any():
+            warnings.warn(f"never: {int((at < 0).sum())} of the {len(at)} ids given are not items of this run "
+                          f"(first: {plain(never[np.flatnonzero(at < 0)[0]])!r}); a user id or a mistyped one leaves "
+                          "nothing out", stacklevel=3)
     rows = None if allowed.all() else torch.from_numpy(np.flatnonzero(allowed).astype(np.int64))
     return Lists(item_ids, rows, out)
 

@@ -38,6 +38,7 @@ from towers.data.tables import (
     read_table,
     read_table_chunks,
     require_columns,
+    table_columns,
 )
 from towers.errors import TowersError, plain
 from towers.evaluation.protocol import evaluate_slices, oracle_scorer, popularity_scorer, reference_scorers
@@ -149,8 +150,8 @@ class Run:
         """Refuse a history when the query tower reads none, before any row is read."""
         if history is not None and not reads_history(self.bundle.model.query_tower):
             raise TowersError(f"{self.dir}: this run was trained without user histories (model.history_length is 0), "
-                              "so it cannot read one; drop the history (--history-column / history=), or retrain with "
-                              "model.history_length > 0")
+                              "so it cannot read one; drop the history (--history-column, history= or a request's "
+                              "\"history\"), or retrain with model.history_length > 0")
 
     def _run_histories(self) -> tuple[np.ndarray, torch.Tensor, int]:
         """(the run's item ids, every catalog user's training bag, the history length), built once per Run."""
@@ -257,14 +258,23 @@ class Run:
         history = None if history_column is None else (history_column, separator)
         self._check_history(history)
         names = [e.name for e in encoders.encoders] + ([history_column] if history_column else [])
-        meta = dict(self.embeddings("item")[3], side="item" if side == "items" else "user", source=str(source))
-        if Path(source).suffix.lower() not in (".parquet", ".pq"):
-            df = read_table(source, ids=[encoders.id_column])
+        _, vectors, bias, item_meta = self.embeddings("item")
+        meta = dict(item_meta, side="item" if side == "items" else "user", source=str(source))
+        parquet = Path(source).suffix.lower() in (".parquet", ".pq")
+        head = read_table(source, columns=[encoders.id_column] if parquet else None, ids=[encoders.id_column],
+                          empty_ok=True)
+        if not len(head):  # a night with no new items: an empty file, so the job downstream runs as usual
+            require_columns(table_columns(source), [encoders.id_column] + names, source)
+            warnings.warn(f"{source}: the table has a header but no rows; {out} holds no vectors", stacklevel=2)
+            write_embeddings(out, np.asarray([], dtype=object), torch.zeros(0, vectors.shape[1]),
+                             None if bias is None else torch.zeros(0), meta)
+            return 0
+        if not parquet:
+            df = head
             result = self._embed(df, encoders, tower, bias_table, source, history)
             write_embeddings(out, result["id"].to_numpy(), result.attrs["vectors"], result.attrs["bias"], meta)
             return len(result)
-        ids, lookup = self._embed_ids(read_table(source, columns=[encoders.id_column])[encoders.id_column],
-                                      encoders, source)
+        ids, lookup = self._embed_ids(head[encoders.id_column], encoders, source)
         n = len(ids)
         if names:
             pieces = read_table_chunks(source, names, EMBED_CHUNK)
@@ -400,7 +410,8 @@ class Run:
         """
         L.check_top(self, top)
         if context and self.context is None:
-            raise TowersError(f"{self.dir}: this run was trained without context columns; drop --context")
+            raise TowersError(f"{self.dir}: this run was trained without context columns; drop the context (--context, "
+                              "context= or a request's \"context\")")
         q_ids = self.embeddings(self._query_side())[0]
         rows = self._rows(q_ids, pd.unique(given_ids(user_ids).astype(object)), "query" if self.item_item else "user")
         lists = L.lists_for(self, columns, keep, item_table)
@@ -430,7 +441,8 @@ class Run:
         if self.item_item:
             raise TowersError(f"{self.dir}: this run is item_item: it has no user tower; use similar for items")
         if context and self.context is None:
-            raise TowersError(f"{self.dir}: this run was trained without context columns; drop --context")
+            raise TowersError(f"{self.dir}: this run was trained without context columns; drop the context (--context, "
+                              "context= or a request's \"context\")")
         items = list(item_ids)
         if not items:
             raise TowersError(f"{self.dir}: a history needs at least one item id")
