@@ -393,7 +393,7 @@ def collapse_repeats(cfg: Config) -> CollapsedRows:
     amount = "sum(w)" if "w" in columns else "count(*)"
     latest = ", max(t) AS t" if "t" in columns else ""
     by = "q, i, g" if "g" in columns else "q, i"
-    with deriving(cfg, "repeats counted", 1, "counting repeated rows") as (con, steps):
+    with deriving(cfg, "counting repeated rows", 1, "counting repeated rows") as (con, steps):
         source = Source(con, ic.path, columns)
         con.execute(f"CREATE TEMP TABLE rows AS SELECT {by}, {amount}::DOUBLE AS w{latest} FROM src GROUP BY {by}")
         q_ids = _distinct_codes(con, "rows", "q", ic.path, ic.query_column)

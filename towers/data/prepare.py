@@ -334,7 +334,8 @@ def prepare(cfg: Config, previous=None, trained_before: TrainedBefore | None = N
     q_log = c_log = log.query_ids = log.candidate_ids = None  # the codes are rows now: free them
     dropped = everywhere(int((~keep).sum()))
     if dropped:
-        notes.append(f"dropped {dropped} interaction rows whose ids have no feature row (missing_rows: drop)")
+        unit = "interaction rows" if ic.pairs_from == "rows" and not ic.count_repeats else "pairs"  # derived: pairs
+        notes.append(f"dropped {dropped:,} {unit} whose ids have no feature row (missing_rows: drop)")
     sel = lambda a: None if a is None else spill.where(a, keep)  # noqa: E731
     pairs = _as_pairs(q_rows, c_rows, sel(target), sel(weight), sel(when), spill)
     q_rows = c_rows = target = weight = when = log.target = log.weight = log.time = None  # held by `pairs` now
