@@ -667,7 +667,7 @@ def test_evaluate_interactions_missing_a_column(trained, store, tmp_path, capsys
     path = tmp_path / "later_log.csv"
     log_frame(store).drop(columns=["item_id"]).to_csv(path, index=False)
     expect_error(capsys, ["evaluate", trained, "--interactions", path], "later_log.csv", "column 'item_id'",
-                 fix=r"fix the config or the file")
+                 fix=r"fix the column name where it is given, or the file")
 
 
 # ---------------------------------------------------------------- embed

@@ -206,7 +206,8 @@ def _check_header(df: pd.DataFrame, path: Path) -> None:
 def check_file(path: Path) -> str:
     """The table's suffix, after checking that it is an existing file of a readable format."""
     if not path.exists():
-        raise TowersError(f"{path}: file not found; check the path in the config (relative paths start at the config file)")
+        raise TowersError(f"{path}: file not found; check the path (relative paths start at the config file's folder "
+                          "in a config, at the current folder on the command line)")
     if path.is_dir():
         raise TowersError(f"{path}: is a folder, not a table; give a .csv, .tsv, .parquet or .pq file")
     suffix = path.suffix.lower()
@@ -455,7 +456,7 @@ def require_columns(present, wanted, path) -> None:
                 raise TowersError(f"{where(path, shown(str(col)))}: no such column; {hint}")
             hint = (f"did you mean {', '.join(repr(c) for c in close)}?" if close
                     else f"columns present: {', '.join(shown(c) for c in present[:12])}")
-            raise TowersError(f"{where(path, shown(str(col)))}: no such column; {hint} (fix the config or the file)")
+            raise TowersError(f"{where(path, shown(str(col)))}: no such column; {hint} (fix the column name where it is given, or the file)")
 
 
 def normalise_ids(series: pd.Series, path, column) -> np.ndarray:
