@@ -301,3 +301,34 @@ def test_train_run_calls_the_hook_after_each_epoch_and_stops_where_it_raises(con
         train_run(config, tmp_path / "cut", on_round=stop)
     assert not (tmp_path / "cut").exists()  # nothing published: the trial's folder stays .partial
     assert (tmp_path / "cut.partial" / "checkpoints" / "best.pt").is_file()
+
+
+@pytest.mark.parametrize("sections", [
+    {"training": {"loss": "softmax", "negatives": 256}, "model": {"normalize": True, "temperature": 0.2}},
+    {"training": {"loss": "logistic"}, "model": {"history_length": 20, "history_decay": 0.95}},
+    {"training": {"loss": "squared"}, "interactions": {"target_column": "stars"}},
+    {"training": {"loss": "softmax", "negatives": 64}, "run": {"mode": "item_item"}},
+])
+def test_a_new_study_first_trains_the_users_own_config(sections):
+    # trial 000 is the config itself, so the best trial is never one the study measured worse than it
+    base = _config(**sections)
+    study = optuna.create_study()
+    study.enqueue_trial(S.config_point(base))
+    values = S.suggest(study.ask(), base)
+    resolved = yaml.safe_load(C.dump(base))
+    for section, keys in S.overrides(values).items():
+        resolved[section].update(keys)
+    trial = C.resolve(resolved, Path("/data"))
+    assert trial.training.sampled_negatives == base.training.sampled_negatives  # empty means 4 under logistic
+    plain = lambda cfg: {s: {k: v for k, v in keys.items() if k != "negatives"}  # noqa: E731
+                         for s, keys in yaml.safe_load(C.dump(cfg)).items()}
+    assert plain(trial) == plain(base)
+    if base.training.negatives is not None:
+        assert trial.training.negatives == base.training.negatives
+
+
+def test_the_users_config_outside_the_ranges_is_moved_to_their_edges():
+    base = _config(training={"loss": "softmax", "weight_decay": 0.0}, model={"dim": 512})
+    point = S.config_point(base)
+    assert point["model.dim"] == 128 and point["training.weight_decay"] == 1e-7  # the ranges' ends (RANGES)
+    assert point["training.negatives"] == 16  # softmax with no drawn items: the range's low end

@@ -456,7 +456,8 @@ def require_columns(present, wanted, path) -> None:
                 raise TowersError(f"{where(path, shown(str(col)))}: no such column; {hint}")
             hint = (f"did you mean {', '.join(repr(c) for c in close)}?" if close
                     else f"columns present: {', '.join(shown(c) for c in present[:12])}")
-            raise TowersError(f"{where(path, shown(str(col)))}: no such column; {hint} (fix the column name where it is given, or the file)")
+            raise TowersError(f"{where(path, shown(str(col)))}: no such column; {hint} (fix the column name where it is "
+                              "given, or the file)")
 
 
 def normalise_ids(series: pd.Series, path, column) -> np.ndarray:

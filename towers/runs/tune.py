@@ -245,6 +245,9 @@ def _open_study(out: Path, base: C.Config, config_path: Path, metric: str):
         study.set_user_attr("space", S.describe())
         study.set_user_attr("metric", metric)
         study.set_user_attr("config_file", str(config_path.resolve()))
+        # trial 000 is the user's own config (moved into the ranges where outside): best.yaml is never a point
+        # the study found worse than where the user started
+        study.enqueue_trial(S.config_point(base), user_attrs={"from_config": True})
     else:
         then = attrs["config"]
         if then != now:

@@ -117,6 +117,38 @@ def suggest(trial, base: C.Config) -> dict:
     return values
 
 
+def _clamped(r: Range, value):
+    """value moved into the range (a log scale holds no 0 or negative: those become the low end)."""
+    value = min(max(value, r.low), r.high)
+    return int(round(value)) if r.integer else float(value)
+
+
+def config_point(base: C.Config) -> dict:
+    """The user's own config as optuna parameters of this space (`suggest`'s names), each value moved into its
+    range where it lies outside: the first trial of a new study, so the search starts from, and is measured
+    against, what the user already had."""
+    t, m = base.training, base.model
+    point = {"model.dim": m.dim, "training.learning_rate": t.learning_rate, "training.batch_size": t.batch_size,
+             "training.weight_decay": t.weight_decay, "training.id_l2": t.id_l2}
+    point = {k: _clamped(_range(k), v) for k, v in point.items()}
+    if t.loss in ("logistic", "softmax"):
+        given = t.negatives if t.negatives is not None else (C.DEFAULT_NEGATIVES if t.loss == "logistic" else 0)
+        point["training.negatives"] = _clamped(_range("training.negatives", t.loss), given)
+    normalize = m.normalize
+    if not t.rating_loss:
+        point["model.normalize"] = normalize
+    if normalize:
+        point["model.temperature"] = _clamped(_range("model.temperature"), m.temperature)
+    if not base.item_item:
+        point[HISTORY_SWITCH] = m.history_length > 0
+        if m.history_length > 0:
+            point["model.history_length"] = _clamped(_range("model.history_length"), m.history_length)
+            point["model.history_decay"] = _clamped(_range("model.history_decay"), m.history_decay)
+            if base.interactions.time_column:
+                point["model.history_past_only"] = m.history_past_only
+    return point
+
+
 def searched_keys(base: C.Config) -> list[str]:
     """The config keys `suggest` can set for this config, in table order."""
     keys = ["model.dim", "training.learning_rate", "training.batch_size", "training.weight_decay", "training.id_l2"]
