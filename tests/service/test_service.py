@@ -285,6 +285,8 @@ BAD = [
     ("no ids", "POST", "/similar", {"items": []}, None, 422, "items: "),
     ("too many ids", "POST", "/similar", {"items": [ITEM] * 101}, None, 422, "at most 100"),
     ("unknown field", "POST", "/similar", {"items": [ITEM], "colour": "red"}, None, 422, "colour"),
+    ("misspelt field", "POST", "/recommend", {"user": [1]}, None, 422, "user: not a field of this request; did you mean "
+     "'users'?"),
     ("unknown item", "POST", "/similar", {"items": [UNKNOWN_ITEM]}, None, 422, f"unknown item id '{UNKNOWN_ITEM}'"),
     ("unknown user", "POST", "/recommend", {"users": [1]}, None, 422, "unknown user id 1"),
     ("text id for numeric users", "POST", "/recommend", {"users": ["nobody"]}, None, 422, "not a number"),
@@ -315,6 +317,7 @@ BAD = [
      415, "Content-Type: application/json"),
     ("body too large", "POST", "/similar", BIG, None, 413, "larger than 1,048,576 bytes"),
     ("no such endpoint", "GET", "/lists", None, None, 404, "no endpoint /lists"),
+    ("a trailing slash", "POST", "/recommend/", {"users": [1]}, None, 404, "no endpoint /recommend/"),
     ("wrong method", "GET", "/recommend", None, None, 405, "GET is not allowed on /recommend"),
 ]
 

@@ -19,6 +19,7 @@ bug: a generic line here, the traceback in the server log). Request bodies are n
 
 from __future__ import annotations
 
+import difflib
 import json
 import logging
 import threading
@@ -222,6 +223,12 @@ def _error(status: int, message: str, headers: dict | None = None) -> Response:
                     headers=headers)
 
 
+def _request_fields() -> set[str]:
+    """Every field name of every request body (nested ones included), for "did you mean" hints."""
+    return {name for model in (KeepRequest, RecommendRequest, SimilarRequest, EmbedRequest)
+            for name in model.model_fields}
+
+
 def _validation_message(errors: list[dict]) -> tuple[int, str]:
     """(status, one line) for pydantic's errors of a request body."""
     first = errors[0]
@@ -233,6 +240,10 @@ def _validation_message(errors: list[dict]) -> tuple[int, str]:
     if not where and first["type"] in ("model_type", "model_attributes_type", "dict_type"):
         return 422, "request body must be a JSON object of the endpoint's fields"
     message = first["msg"].removeprefix("Value error, ")
+    if first["type"] == "extra_forbidden":  # a misspelt field: name the closest the endpoints take
+        field = str(first["loc"][-1])
+        close = difflib.get_close_matches(field, sorted(_request_fields()), n=1)
+        message = "not a field of this request" + (f"; did you mean '{close[0]}'?" if close else "")
     line = f"{where}: {message}" if where else f"request body: {message}"
     more = len(errors) - 1
     return 422, line + (f" (and {more} more problem{'s' if more != 1 else ''})" if more else "")
@@ -356,7 +367,8 @@ def make_app(run, threads: int, item_table=None) -> FastAPI:
     shared_lock = threading.Lock()
     table = item_table if item_table is not None else (run.config.items.path if run.config and run.config.items else None)
     hidden = {str(run.dir): "the run"} | ({str(Path(table)): "the item table"} if table else {})
-    app = FastAPI(title="towers", docs_url=None, redoc_url=None, openapi_url=None)
+    app = FastAPI(title="towers", docs_url=None, redoc_url=None, openapi_url=None,
+                  redirect_slashes=False)  # "/recommend/" is a JSON 404 naming the endpoints, not a bare 307
     app.add_middleware(_BodyCheck, limit=MAX_BODY_BYTES)
 
     async def answer(work, what: str, shared: bool = False) -> Response:
