@@ -519,3 +519,17 @@ def test_a_resumed_run_with_another_config_names_the_key_that_changed(tmp_path):
     assert folder.config_difference(then) == ""
     now = C.resolve(minimal(training={"epochs": 4}), tmp_path)
     assert folder.config_difference(now) == "training.epochs: 3 then, 4 now"
+
+
+def test_a_run_saved_with_a_key_now_refused_on_its_kind_still_opens(tmp_path):
+    # runs trained before keys of other kinds were refused saved them (ignored then): such a run must still load
+    from towers.runs.folder import RunFolder
+
+    raw = yaml.safe_load(C.dump(C.resolve(minimal(items={"path": "items.csv", "id_column": "item", "features": [
+        {"name": "brand", "kind": "categorical"}]}), tmp_path)))
+    raw["items"]["features"][0]["separator"] = ","
+    folder = RunFolder(tmp_path / "old_run")
+    write(folder.path / RunFolder.CONFIG, yaml.safe_dump(raw))
+    with pytest.raises(TowersError, match=r"separator': applies to tokens"):
+        C.resolve(copy.deepcopy(raw), tmp_path)  # a user's config with it is refused
+    assert folder.read_config().items.features[0].kind == "categorical"

@@ -856,6 +856,21 @@ def linear_factor_preset(cfg: Config) -> Config:
     return base.with_section("users", features=()).with_section("items", features=())
 
 
+def drop_misplaced_feature_keys(raw: dict) -> dict:
+    """A saved run config with each feature's keys of other kinds left out (FEATURE_KEY_KINDS): runs written
+    before such keys were refused saved them (a separator on a categorical feature, ignored then), and a run
+    must still open."""
+    for section in ("items", "users", "interactions"):
+        part = raw.get(section) if isinstance(raw, dict) else None
+        specs = part.get("context" if section == "interactions" else "features") if isinstance(part, dict) else None
+        for spec in specs if isinstance(specs, list) else []:
+            if isinstance(spec, dict):
+                for k, kinds in FEATURE_KEY_KINDS.items():
+                    if k in spec and spec.get("kind") not in kinds:
+                        del spec[k]
+    return raw
+
+
 def first_difference(a: dict, b: dict, prefix: str = "") -> str:
     """The first key (dotted, in sorted order) whose value differs between two configs as plain YAML values,
     as "key: old then, new now"; "" when they are equal."""

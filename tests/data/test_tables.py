@@ -417,3 +417,12 @@ def test_ids_keep_their_leading_zeros_and_plain_numbers_stay_numbers(tmp_path):
     codes, uniques = ids.finish()
     assert list(uniques) == ["0007", "07", "7"] and codes.tolist() == [0, 1, 2]
 
+
+
+def test_table_rows_leave_ids_that_match_nothing_unmatched_without_colliding():
+    # '0007' and 'abc' can match no whole-number id; two such ids in one table raised pandas'
+    # InvalidIndexError when the table's ids were indexed (reference: the rows written out by hand)
+    catalog = np.array([1, 7, 8], dtype=np.int64)
+    table = np.array(["0007", "0008", "1", "abc", "xyz", "8"], dtype=object)
+    assert T.table_rows(table, catalog).tolist() == [2, -1, 5]
+    assert T.table_rows(np.array(["b", "a"], dtype=object), np.array(["a", "c"], dtype=object)).tolist() == [1, -1]

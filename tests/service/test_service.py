@@ -290,6 +290,9 @@ BAD = [
     ("unknown item", "POST", "/similar", {"items": [UNKNOWN_ITEM]}, None, 422, f"unknown item id '{UNKNOWN_ITEM}'"),
     ("unknown user", "POST", "/recommend", {"users": [1]}, None, 422, "unknown user id 1"),
     ("text id for numeric users", "POST", "/recommend", {"users": ["nobody"]}, None, 422, "not a number"),
+    ("zero-padded id for numeric users", "POST", "/recommend", {"users": ["0100307"]}, None, 422,
+     "user id '0100307' is written with a leading zero or sign, but this run's user ids are whole numbers as they "
+     "print; give it as 100307"),
     ("users and history", "POST", "/recommend", {"users": [1], "history": [ITEM]}, None, 422, "give one of 'users'"),
     ("context without context columns", "POST", "/recommend", {"history": [ITEM], "context": {"channel": "app"}},
      None, 422, "without context columns"),

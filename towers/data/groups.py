@@ -13,7 +13,7 @@ import pandas as pd
 import torch
 
 from towers.config import Config
-from towers.data.tables import align_id_types, normalise_ids, read_table, table_columns
+from towers.data.tables import normalise_ids, read_table, table_columns, table_rows
 from towers.errors import TowersError
 
 MOST_GROUPS = 100  # more distinct values than this is not a grouping a table can show
@@ -54,7 +54,7 @@ def group_labels(cfg: Config, query_ids: np.ndarray, item_ids: np.ndarray) -> li
 def _labels(column: str, side: str, path: str, id_column: str, catalog_ids: np.ndarray) -> Groups:
     df = read_table(path, columns=[id_column, column], ids=[id_column])
     ids = normalise_ids(df[id_column], path, id_column)
-    row = pd.Index(align_id_types(ids, catalog_ids)).get_indexer(catalog_ids)
+    row = table_rows(ids, catalog_ids)
     values = df[column].astype("string").fillna(MISSING).to_numpy(dtype=object)
     labels = np.where(row >= 0, values[np.maximum(row, 0)], MISSING)
     codes, names = pd.factorize(labels, sort=True)

@@ -524,6 +524,17 @@ def positions_in(catalog: np.ndarray, ids: np.ndarray) -> np.ndarray:
     return pd.Index(catalog).get_indexer(align_id_types(ids, catalog)).astype(np.int64, copy=False)
 
 
+def table_rows(table_ids: np.ndarray, catalog: np.ndarray) -> np.ndarray:
+    """Each catalog id's row in a table (int64, -1 where the table lacks it), the id types aligned first. A table
+    id that can match no catalog id ('07' against whole numbers, text that is not a number) is simply unmatched:
+    the catalog is indexed, not the table, so such ids never collide with each other."""
+    at = positions_in(catalog, table_ids)
+    rows = np.full(len(catalog), -1, dtype=np.int64)
+    hit = np.flatnonzero(at >= 0)
+    rows[at[hit]] = hit
+    return rows
+
+
 PLAIN_WHOLE = r"-?(?:0|[1-9]\d{0,17})"  # a whole number as it prints: no sign but minus, no leading zero
 
 

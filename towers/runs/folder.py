@@ -172,7 +172,7 @@ class RunFolder:
         if isinstance(training, dict) and training.get("loss") != "logistic" and training.get("negatives") == 4:
             training["negatives"] = None  # saved before negatives became empty by default: 4 was the unused default
         try:
-            return C.resolve(raw, self.path)
+            return C.resolve(C.drop_misplaced_feature_keys(raw), self.path)
         except TowersError as exc:
             raise TowersError(f"{cfg_path}: {exc} (in the run's saved config; {fix})") from None
 

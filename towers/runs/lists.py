@@ -27,7 +27,6 @@ from towers.atomic import write_atomic
 from towers.data.history import history_ids
 from towers.data.tables import (
     READABLE,
-    align_id_types,
     check_unique_ids,
     given_ids,
     normalise_ids,
@@ -35,6 +34,7 @@ from towers.data.tables import (
     read_table,
     shown,
     table_columns,
+    table_rows,
 )
 from towers.errors import TowersError, plain, where
 from towers.search.scorer import Scorer
@@ -167,7 +167,7 @@ class ItemTable:
         table = read_table(self.path, columns=wanted, ids=[id_column])
         ids = normalise_ids(table[id_column], self.path, id_column)
         check_unique_ids(ids, self.path, id_column)
-        rows = pd.Index(align_id_types(ids, item_ids)).get_indexer(item_ids)
+        rows = table_rows(ids, item_ids)
         self.present = rows >= 0
         self._frame = table
         self._rows = rows

@@ -22,7 +22,7 @@ import torch
 
 from towers.atomic import write_text_atomic
 from towers.config import lower_is_better
-from towers.data.tables import align_id_types, normalise_ids, read_table
+from towers.data.tables import normalise_ids, read_table, table_rows
 from towers.errors import TowersError, plain
 from towers.evaluation.protocol import SLICES
 from towers.runs.folder import LINEAR_FACTOR, RunFolder
@@ -137,8 +137,7 @@ class _Page:
         if items.id_column not in table.columns:
             self.note(f"item attributes left out: {items.path} has no column '{items.id_column}'")
             return None
-        ids = align_id_types(normalise_ids(table[items.id_column], items.path, items.id_column), self.item_ids)
-        rows = pd.Index(ids).get_indexer(self.item_ids)
+        rows = table_rows(normalise_ids(table[items.id_column], items.path, items.id_column), self.item_ids)
         keep = [c for c in table.columns if c != items.id_column and not _is_vector_column(table[c])]
         out = table[keep].iloc[np.where(rows >= 0, rows, 0)].reset_index(drop=True)
         if (rows < 0).any():  # catalog items without a table row (missing_rows: default) show empty cells

@@ -39,6 +39,8 @@ from towers.data.tables import (
     read_table_chunks,
     require_columns,
     table_columns,
+    table_rows,
+    zero_padded,
 )
 from towers.errors import TowersError, plain
 from towers.evaluation.protocol import evaluate_slices, oracle_scorer, popularity_scorer, reference_scorers
@@ -266,7 +268,7 @@ class Run:
         if not len(head):  # a night with no new items: an empty file, so the job downstream runs as usual
             require_columns(table_columns(source), [encoders.id_column] + names, source)
             warnings.warn(f"{source}: the table has a header but no rows; {out} holds no vectors", stacklevel=2)
-            write_embeddings(out, np.asarray([], dtype=object), torch.zeros(0, vectors.shape[1]),
+            write_embeddings(out, np.asarray(encoders.id_encoder.ids)[:0], torch.zeros(0, vectors.shape[1]),
                              None if bias is None else torch.zeros(0), meta)
             return 0
         if not parquet:
@@ -353,8 +355,7 @@ class Run:
         ucfg = self.config.users
         table = read_table(ucfg.path, ids=[ucfg.id_column])
         require_columns(table.columns, [ucfg.id_column] + [e.name for e in enc.encoders], ucfg.path)
-        t_ids = align_id_types(normalise_ids(table[ucfg.id_column], ucfg.path, ucfg.id_column), ids)
-        at = pd.Index(t_ids).get_indexer(ids)
+        at = table_rows(normalise_ids(table[ucfg.id_column], ucfg.path, ucfg.id_column), ids)
         if (at < 0).any():
             bad = ids[np.flatnonzero(at < 0)[0]]
             raise TowersError(f"{ucfg.path}, column '{ucfg.id_column}': user {bad!r} has no row any more; "
@@ -387,6 +388,9 @@ class Run:
             unparsed = wanted == np.iinfo(np.int64).min  # align_id_types' mark for text that is no whole number
             if unparsed.any():
                 bad = given[np.flatnonzero(unparsed)[0]]
+                if zero_padded(np.asarray([bad], dtype=object))[0]:
+                    raise TowersError(f"{self.dir}: {what} id {bad!r} is written with a leading zero or sign, but this "
+                                      f"run's {what} ids are whole numbers as they print; give it as {int(str(bad))}")
                 raise TowersError(f"{self.dir}: {what} id {bad!r} is not a number, but this run's {what} ids are "
                                   "numbers; give the id as a whole number")
         rows = pd.Index(ids_all).get_indexer(wanted)
@@ -401,7 +405,8 @@ class Run:
     def recommend(self, user_ids, top: int = 10, exclude_known: bool = True, context: dict | None = None,
                   columns: Sequence[str] = (), keep: L.ItemFilter | None = None, item_table=None) -> pd.DataFrame:
         """Top items per user (query_id, rank, item_id, score, then `columns`); the user's training and
-        validation pairs excluded.
+        validation pairs excluded (in item_item runs only the query item itself, as similar and lists do:
+        the items seen with it are what its list is for).
 
         context: {column: value} for runs with context columns; without it the users' exported
         vectors (averaged over the training context mix) are used. columns: item table columns added
@@ -420,10 +425,13 @@ class Run:
             with torch.no_grad():
                 vectors = self.bundle.model.query_tower(self._user_block(rows) | self._context_block(context, len(rows)))
         ex_r = ex_c = None
-        if exclude_known:  # every training and validation pair of the requested queries, and in item_item runs the item itself
+        if self.item_item:  # the query item itself only
+            none = torch.zeros(0, dtype=torch.int64)
+            ex_r, ex_c = excluded_cells(rows, none, none, exclude_self=True)
+        elif exclude_known:  # every training and validation pair of the requested users
             tr, va = self.pairs["train"], self.pairs["valid"]
             ex_r, ex_c = excluded_cells(rows, torch.cat([tr["query"], va["query"]]),
-                                        torch.cat([tr["candidate"], va["candidate"]]), exclude_self=self.item_item)
+                                        torch.cat([tr["candidate"], va["candidate"]]))
         idx, scores = lists.top(self._scorer(TOWERS).for_queries(rows, vectors), top, ex_r, ex_c)
         return lists.frame(q_ids[rows.numpy()], idx, scores)
 
