@@ -533,3 +533,12 @@ def test_a_run_saved_with_a_key_now_refused_on_its_kind_still_opens(tmp_path):
     with pytest.raises(TowersError, match=r"separator': applies to tokens"):
         C.resolve(copy.deepcopy(raw), tmp_path)  # a user's config with it is refused
     assert folder.read_config().items.features[0].kind == "categorical"
+
+
+def test_the_first_difference_names_a_feature_entry_not_the_whole_list():
+    then = {"items": {"features": [{"name": "brand", "kind": "categorical"}, {"name": "price", "kind": "numeric"}]}}
+    now = copy.deepcopy(then)
+    now["items"]["features"][1]["kind"] = "categorical"
+    assert C.first_difference(then, now) == "items.features[1].kind: 'numeric' then, 'categorical' now"
+    assert C.first_difference({"top_k": [10, 20]}, {"top_k": [10, 50]}) == "top_k[1]: 20 then, 50 now"
+    assert C.first_difference({"top_k": [10]}, {"top_k": [10, 50]}) == "top_k: [10] then, [10, 50] now"

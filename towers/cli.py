@@ -186,6 +186,11 @@ def _check_frame_out(out: str) -> None:
         raise TowersError(f"{out}: unsupported output format; use .csv, .parquet or .pq")
 
 
+def _id_rows(path: str, id_column: str | None):
+    """Feature rows from a file, the run's id column read as written (a CSV's 0007 stays 0007, as in embed)."""
+    return api.read_table(path, ids=[id_column] if id_column else ())
+
+
 def _aligned(frame) -> str:
     """The list as a text table whose columns line up on a terminal also when names hold wide (East Asian)
     characters, which take two columns each."""
@@ -311,13 +316,15 @@ def run(args: argparse.Namespace) -> int:
     if args.command in ("recommend", "similar"):
         chosen = {"columns": args.columns, "keep": _item_filter(args), "item_table": args.item_table}
         if args.command == "similar" and args.item_rows:
-            frame = run_.similar_rows(api.read_table(args.item_rows), args.top, source=args.item_rows, **chosen)
+            frame = run_.similar_rows(_id_rows(args.item_rows, run_.bundle.candidate_encoders.id_column), args.top,
+                                      source=args.item_rows, **chosen)
         elif args.command == "similar":
             frame = run_.similar(args.items, args.top, **chosen)
         elif args.history_column and not args.user_rows:
             raise TowersError("--history-column gives the histories of --user-rows; use it with --user-rows")
         elif args.user_rows:
-            frame = run_.recommend_rows(api.read_table(args.user_rows), args.top, args.history_column,
+            frame = run_.recommend_rows(_id_rows(args.user_rows, run_.bundle.query_encoders.id_column), args.top,
+                                        args.history_column,
                                         separator=args.history_separator, source=args.user_rows, **chosen)
         elif args.history:
             frame = run_.recommend_history(args.history, args.top, context=_context_pairs(args.context), **chosen)

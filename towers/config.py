@@ -875,8 +875,14 @@ def first_difference(a: dict, b: dict, prefix: str = "") -> str:
     """The first key (dotted, in sorted order) whose value differs between two configs as plain YAML values,
     as "key: old then, new now"; "" when they are equal."""
     for k in sorted(set(a) | set(b), key=str):
-        if a.get(k) != b.get(k):
-            if isinstance(a.get(k), dict) and isinstance(b.get(k), dict):
-                return first_difference(a[k], b[k], f"{prefix}{k}.")
-            return f"{prefix}{k}: {a.get(k)!r} then, {b.get(k)!r} now"
+        then, now = a.get(k), b.get(k)
+        if then != now:
+            if isinstance(then, dict) and isinstance(now, dict):
+                return first_difference(then, now, f"{prefix}{k}.")
+            if isinstance(then, list) and isinstance(now, list) and len(then) == len(now):  # a feature list: its entry
+                i = next(i for i, (x, y) in enumerate(zip(then, now)) if x != y)
+                if isinstance(then[i], dict) and isinstance(now[i], dict):
+                    return first_difference(then[i], now[i], f"{prefix}{k}[{i}].")
+                return f"{prefix}{k}[{i}]: {then[i]!r} then, {now[i]!r} now"
+            return f"{prefix}{k}: {then!r} then, {now!r} now"
     return ""

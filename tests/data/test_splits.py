@@ -489,5 +489,33 @@ def test_per_user_split_around_pairs_trained_before():
     free = df[~fixed]
     rank = free.groupby("q").t.rank(method="first", ascending=False)  # reference: pandas rank among the free rows
     k = free.groupby("q").q.transform("size")
-    expected = np.where(rank <= np.minimum(2, k - 1), "test", "train")
+    # a user with rows trained before keeps those for training, so every other row may be held out (k, not k - 1)
+    trained_before = free.q.isin(df.q[fixed])
+    expected = np.where(rank <= np.minimum(2, k - (~trained_before).astype(int)), "test", "train")
     assert (out.side[~fixed].to_numpy() == expected).all()
+    assert (trained_before & (k == 1) & (out.side[~fixed] == "test")).any()  # one new event, and it is tested
+
+
+def test_pairs_trained_before_are_found_by_id_in_a_renumbered_catalog():
+    # the new run's catalogs hold the earlier ids in another order, plus new ones (reference: Python sets of id pairs)
+    from towers.data.splits import TrainedBefore
+
+    rng = np.random.default_rng(3)
+    old_q, old_c = np.array([10, 20, 30, 40]), np.array(["a", "b", "c"], dtype=object)
+    earlier = TrainedBefore(old_q, old_c, rng.integers(0, 4, 25), rng.integers(0, 3, 25))
+    new_q, new_c = np.array([40, 50, 10, 30, 20]), np.array(["c", "d", "a", "b"], dtype=object)
+    q_rows, c_rows = rng.integers(0, 5, 200), rng.integers(0, 4, 200)
+    got = earlier.mask(new_q, new_c, q_rows, c_rows)
+    seen = set(zip(old_q[earlier.query_rows].tolist(), old_c[earlier.item_rows].tolist()))
+    want = [(q, c) in seen for q, c in zip(new_q[q_rows].tolist(), new_c[c_rows].tolist())]
+    assert got.tolist() == want and any(want) and not all(want)
+
+
+def test_an_item_item_pair_trained_before_is_found_in_either_order():
+    from towers.data.splits import TrainedBefore
+
+    ids = np.array(["a", "b", "c", "d"], dtype=object)
+    both = TrainedBefore(ids[:3], ids[:3], np.array([0, 1]), np.array([1, 2]))  # (a, b), (b, c)
+    rows = np.array([1, 2, 0, 3]), np.array([0, 1, 2, 0])  # (b, a), (c, b), (a, c), (d, a)
+    assert both.mask(ids, ids, *rows, unordered=True).tolist() == [True, True, False, False]
+    assert both.mask(ids, ids, *rows, unordered=False).tolist() == [False, False, False, False]

@@ -426,3 +426,25 @@ def test_table_rows_leave_ids_that_match_nothing_unmatched_without_colliding():
     table = np.array(["0007", "0008", "1", "abc", "xyz", "8"], dtype=object)
     assert T.table_rows(table, catalog).tolist() == [2, -1, 5]
     assert T.table_rows(np.array(["b", "a"], dtype=object), np.array(["a", "c"], dtype=object)).tolist() == [1, -1]
+
+
+def test_a_column_named_in_another_case_is_suggested():
+    # difflib's ratio of 'isbn' and 'ISBN' is 0, so the case-folded match comes first
+    with pytest.raises(TowersError, match=r"column 'isbn': no such column; did you mean 'ISBN'\?"):
+        T.require_columns(["order_id", "customer_id", "ISBN", "quantity"], ["isbn"], "orders.csv")
+
+
+def test_padded_form_finds_an_id_whose_leading_zeros_were_dropped():
+    catalog = np.array(["001095", "000417", "A-7", "12"], dtype=object)
+    assert T.padded_form(np.array([1095, "x"], dtype=object), catalog) == ("1095", "001095")
+    assert T.padded_form(np.array(["417"], dtype=object), catalog) == ("417", "000417")
+    assert T.padded_form(np.array(["12", "7"], dtype=object), catalog) is None  # '12' is not padded, '7' is no id
+    assert T.padded_form(np.array(["5"], dtype=object), np.array([5, 6])) is None  # whole-number catalogs keep no zeros
+
+
+def test_a_utf16_csv_is_named_as_such(tmp_path):
+    # a spreadsheet's "Unicode Text" export: UTF-16 with its byte-order mark (Unicode Standard, section 23.8)
+    path = tmp_path / "readers.csv"
+    path.write_bytes("id,region\n1,north\n".encode("utf-16"))
+    with pytest.raises(TowersError, match=r"readers\.csv: is UTF-16 text; save it as CSV UTF-8"):
+        T.read_table(path)

@@ -388,6 +388,13 @@ def test_cli_feature_rows(basket_run, small_store, tmp_path, capsys):
     arrivals = pd.read_parquet(new_items)
     expected = towers.load(basket_run).similar_rows(arrivals, top=2, columns=["name"])  # the Python API
     assert got["query_id"].tolist() == expected["query_id"].tolist() and list(got.columns)[-1] == "name"
+    # ids of a CSV are kept as written there too (a new user's trial saw 0039602919 come back as 39602919)
+    padded = tmp_path / "walk_ins_padded.csv"
+    customers = pd.read_csv(small_store / "customers.csv")
+    customers.head(2).assign(customer_id=["0039602919", "0000007919"]).to_csv(padded, index=False)
+    assert cli(["recommend", str(basket_run), "--user-rows", str(padded), "--top", "2", "--out",
+                str(tmp_path / "padded.parquet")]) == 0
+    assert pd.read_parquet(tmp_path / "padded.parquet")["query_id"].unique().tolist() == ["0039602919", "0000007919"]
     users = tmp_path / "walk_ins.csv"
     pd.read_csv(small_store / "customers.csv").head(2).drop(columns=["customer_id"]).to_csv(users, index=False)
     assert cli(["recommend", str(basket_run), "--user-rows", str(users), "--top", "3"]) == 0

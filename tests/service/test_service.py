@@ -405,3 +405,12 @@ def test_an_item_item_run_is_served_as_the_run_api_answers(tiny_runs):
         assert status == 422 and "item_item" in answer["error"]  # the CLI's message for --history
         status, answer = client.call("POST", "/embed", {"side": "users", "rows": [{"item_id": items[0]}]})
         assert status == 422 and "item_item" in answer["error"]
+
+
+def test_a_note_names_the_item_table_in_words_not_by_its_path(server, tmp_path_factory):
+    # a filter value no item holds is a note naming the table; the server's own paths stay on it, as in errors
+    status, answer = server.call("POST", "/similar", {"items": [ITEM], "top": 2,
+                                                      "keep": {"only_values": {"department": ["no such department"]}}})
+    assert status == 200 and answer["notes"]
+    assert any("the item table" in note for note in answer["notes"])
+    assert not any(str(tmp_path_factory.getbasetemp()) in note for note in answer["notes"])

@@ -15,6 +15,7 @@ from towers.data.tables import (
     align_id_types,
     check_unique_ids,
     normalise_ids,
+    padded_form,
     read_table,
     require_columns,
     zero_padded,
@@ -96,16 +97,13 @@ class SideEncoders:
                    state["id_column"])
 
 
-def _form_hint(missing: np.ndarray, table_ids: np.ndarray, path) -> str | None:
-    """When the unmatched ids would match once zeros are padded or stripped (numbers in one file, zero-padded
-    text in the other), the fix for that, else None."""
-    if table_ids.dtype != object or not len(table_ids):
+def _form_hint(bad, table_ids: np.ndarray, path) -> str | None:
+    """When the id named in an error is one of the table's zero-padded text ids with its zeros dropped (numbers
+    in one file, zero-padded text in the other), the fix for that, else None."""
+    found = padded_form(np.asarray([bad], dtype=object), table_ids)
+    if found is None:
         return None
-    stripped = pd.Series(table_ids, dtype=object).astype(str).str.lstrip("0").replace("", "0")
-    if not stripped.isin(pd.Series(missing, dtype=object).astype(str)).any():
-        return None
-    padded = next(str(t) for t, s in zip(table_ids, stripped) if str(t) != s)
-    return (f"the ids in {path} are text with leading zeros ({padded!r}) and these are numbers, which drop them; "
+    return (f"the ids in {path} are text with leading zeros ({found[1]!r}) and these are numbers, which drop them; "
             "write the ids the same way in both files (as text in both keeps the zeros)")
 
 
@@ -216,7 +214,7 @@ class SideTable:
                 bad = plain(interaction_ids[at])
                 raise TowersError(
                     f"{locate(row)}: id {bad!r} has no row in {self.path} ({len(missing)} such ids); "
-                    + (_form_hint(missing, self.ids, self.path) or
+                    + (_form_hint(bad, self.ids, self.path) or
                        f"add feature rows, or set {self.section}.missing_rows: drop or default"))
             if self.missing_rows == "drop":
                 keep = per_row(known)

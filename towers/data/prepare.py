@@ -358,7 +358,7 @@ def prepare(cfg: Config, previous=None, trained_before: TrainedBefore | None = N
         cold_users = HoldOut(user_has_row, None if previous is None else _learned(q_ids, previous.query_encoders))
     fixed = None
     if trained_before is not None:
-        fixed = trained_before.mask(q_ids, c_ids, pairs.query.numpy(), pairs.candidate.numpy())
+        fixed = trained_before.mask(q_ids, c_ids, pairs.query.numpy(), pairs.candidate.numpy(), unordered=item_item)
         kept, total = everywhere(int(fixed.sum())), everywhere(len(fixed))
         notes.append(f"warm start: {kept:,} pairs the earlier run trained on stay in training; the held-out pairs "
                      f"come from the other {total - kept:,}")

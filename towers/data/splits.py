@@ -14,10 +14,10 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-import pandas as pd
 import torch
 
 from towers.config import EvaluationSection
+from towers.data.tables import positions_in
 from towers.errors import TowersError
 from towers.memory import index_dtype
 
@@ -49,20 +49,33 @@ class HoldOut:
 
 @dataclass
 class TrainedBefore:
-    """The pairs an earlier run trained on, by id (its pairs.pt): a warm start keeps them in training."""
+    """The pairs an earlier run trained on (its pairs.pt: its two catalogs and the training pairs' rows in
+    them): a warm start keeps them in training."""
 
-    query_ids: np.ndarray
-    item_ids: np.ndarray
+    query_ids: np.ndarray  # the earlier run's query catalog
+    item_ids: np.ndarray  # its item catalog
+    query_rows: np.ndarray  # each earlier training pair's rows in those catalogs
+    item_rows: np.ndarray
 
-    def mask(self, query_ids: np.ndarray, item_ids: np.ndarray, query_rows: np.ndarray,
-             item_rows: np.ndarray) -> np.ndarray:
-        """A bool per pair (query_rows, item_rows, rows of these catalogs): whether the earlier run trained on it."""
-        q = pd.Index(query_ids).get_indexer(self.query_ids)
-        c = pd.Index(item_ids).get_indexer(self.item_ids)
+    def mask(self, query_ids: np.ndarray, item_ids: np.ndarray, query_rows: np.ndarray, item_rows: np.ndarray,
+             unordered: bool = False) -> np.ndarray:
+        """A bool per pair (query_rows, item_rows, rows of these catalogs): whether the earlier run trained on it.
+        unordered (item_item runs): (a, b) and (b, a) are one pair. Each catalog is mapped once, not each pair."""
+        q = positions_in(query_ids, self.query_ids)[self.query_rows]
+        c = positions_in(item_ids, self.item_ids)[self.item_rows]
         found = (q >= 0) & (c >= 0)
-        n = np.int64(len(item_ids))
-        earlier = np.unique(q[found].astype(np.int64) * n + c[found])
-        return np.isin(query_rows.astype(np.int64) * n + item_rows, earlier)
+        n = np.int64(max(len(item_ids), len(query_ids)))
+
+        def keys(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+            a, b = a.astype(np.int64, copy=False), b.astype(np.int64, copy=False)
+            return np.minimum(a, b) * n + np.maximum(a, b) if unordered else a * n + b
+
+        earlier = np.unique(keys(q[found], c[found]))
+        new = keys(query_rows, item_rows)
+        if not len(earlier):
+            return np.zeros(len(new), dtype=bool)
+        at = np.searchsorted(earlier, new).clip(max=len(earlier) - 1)
+        return earlier[at] == new
 
 
 def make_split(pairs, n_items: int, ev: EvaluationSection, seed: int, cold_eligible: HoldOut | None,
@@ -81,7 +94,8 @@ def make_split(pairs, n_items: int, ev: EvaluationSection, seed: int, cold_eligi
     process holds out the same entities. trained_before: a bool per pair, the pairs an earlier run trained
     on (a warm start): they stay in training, with every pair of their units, and the warm split places
     only the other units, its fractions taken of those, so no held-out pair is one the starting weights
-    learned.
+    learned. With `sides` given (orders placed whole before pairing), such pairs move to training on their
+    own and the rest of their order keeps its side.
     """
     rng = np.random.default_rng(seed + 1)
     q = pairs.query.numpy()
@@ -128,10 +142,10 @@ def make_split(pairs, n_items: int, ev: EvaluationSection, seed: int, cold_eligi
 
 
 def _unit_sides(unit: np.ndarray | int, q: np.ndarray, when: np.ndarray | None, ev: EvaluationSection,
-                rng) -> np.ndarray:
-    """Each row's side under the configured warm split."""
+                rng, trained: np.ndarray | None = None) -> np.ndarray:
+    """Each row's side under the configured warm split (trained: as _per_user_sides takes it)."""
     if ev.split in PER_USER_SPLITS:
-        return _per_user_sides(unit, q, when, ev, rng)
+        return _per_user_sides(unit, q, when, ev, rng, trained)
     return global_sides(unit, when, ev, rng)
 
 
@@ -147,7 +161,9 @@ def _sides_around(fixed: np.ndarray, unit: np.ndarray | int, q: np.ndarray, when
     side = np.full(len(fixed), TRAIN, dtype=np.int8)
     if len(free):
         sub = len(free) if isinstance(unit, int) else np.unique(unit[free], return_inverse=True)[1].reshape(-1)
-        side[free] = _unit_sides(sub, q[free], None if when is None else when[free], ev, rng)
+        trained = np.zeros(int(q.max(initial=-1)) + 1, dtype=bool)
+        trained[q[fixed]] = True  # these users train on their fixed rows: all their other units may be held out
+        side[free] = _unit_sides(sub, q[free], None if when is None else when[free], ev, rng, trained)
     return side
 
 
@@ -263,8 +279,10 @@ def global_sides(unit: np.ndarray | int, when: np.ndarray | None, ev: Evaluation
 
 
 def _per_user_sides(unit: np.ndarray | int, q: np.ndarray, when: np.ndarray | None, ev: EvaluationSection,
-                    rng) -> np.ndarray:
+                    rng, trained: np.ndarray | None = None) -> np.ndarray:
     """Each user's units split apart, every user keeping at least one training unit; returns each row's side.
+    trained: bool by user id, users whose training holds units from elsewhere already (a warm start's pairs the
+    earlier run trained on): they need none of these, so the caps below are k, not k - 1, for them.
 
     A unit belongs to the user of its first row. user_share: of a user's k units, round(test_fraction x k)
     at random are test (halves rounded up), capped at k - 1; then round(validation_fraction x the rest)
@@ -286,16 +304,18 @@ def _per_user_sides(unit: np.ndarray | int, q: np.ndarray, when: np.ndarray | No
     first = within = None
     owners_sorted = owner[order]
     starts = np.flatnonzero(np.r_[True, owners_sorted[1:] != owners_sorted[:-1]])
+    # units each owner keeps for training at least: 1, or 0 for an owner trained already
+    keeps = 1 if trained is None else 1 - trained[owners_sorted[starts]].astype(np.int64)
     owners_sorted = None
     counts = np.diff(np.r_[starts, n_units])  # each owner's units, in owner order
     # the counts of test and validation units, once per owner, then compared with each unit's place
     if ev.split == "user_last":
-        n_test = np.minimum(ev.last_n, counts - 1)
-        n_valid = np.minimum(ev.last_n, counts - 1 - n_test) if ev.validation_fraction > 0 else np.zeros_like(counts)
+        n_test = np.minimum(ev.last_n, counts - keeps)
+        n_valid = np.minimum(ev.last_n, counts - keeps - n_test) if ev.validation_fraction > 0 else np.zeros_like(counts)
     else:
-        n_test = np.minimum(np.floor(ev.test_fraction * counts + 0.5).astype(np.int64), counts - 1)
+        n_test = np.minimum(np.floor(ev.test_fraction * counts + 0.5).astype(np.int64), counts - keeps)
         left = counts - n_test
-        n_valid = np.minimum(np.floor(ev.validation_fraction * left + 0.5).astype(np.int64), left - 1)
+        n_valid = np.minimum(np.floor(ev.validation_fraction * left + 0.5).astype(np.int64), left - keeps)
     group = np.repeat(np.arange(len(starts), dtype=narrow), counts)  # each sorted unit's owner, 0..owners-1
     pos = np.arange(n_units, dtype=narrow) - starts.astype(narrow)[group]  # place within the owner's units
     if by_time:

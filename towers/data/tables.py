@@ -80,6 +80,8 @@ def _not_utf8(path: Path, exc: UnicodeDecodeError) -> TowersError:
             head = fh.read(4096)
     except OSError:
         head = b""
+    if head.startswith((b"\xff\xfe", b"\xfe\xff")):  # the byte-order marks of UTF-16 (a spreadsheet's "Unicode Text")
+        return TowersError(f"{path}: is UTF-16 text; save it as CSV UTF-8 (or parquet) and try again")
     if head.startswith(b"PAR1"):
         return TowersError(f"{path}: holds parquet data under a {path.suffix} name; rename it to .parquet")
     if head.startswith(b"PK") or b"\x00" in head:
@@ -447,7 +449,9 @@ def require_columns(present, wanted, path) -> None:
     present = [str(c) for c in present]
     for col in wanted:
         if col not in present:
-            close = difflib.get_close_matches(col, present, n=3, cutoff=0.5)
+            # names equal but for case or spaces first ('ISBN' for 'isbn'), then the closest by spelling
+            same = [c for c in present if c.strip().casefold() == str(col).strip().casefold()]
+            close = same or difflib.get_close_matches(col, present, n=3, cutoff=0.5)
             sep = next((s for s in (";", "|", "\t", ",") if len(present) == 1 and col in present[0].split(s)), None)
             if sep is not None:  # the whole header read as one column: another separator
                 shown_sep = "tab" if sep == "\t" else repr(sep)
@@ -533,6 +537,26 @@ def table_rows(table_ids: np.ndarray, catalog: np.ndarray) -> np.ndarray:
     hit = np.flatnonzero(at >= 0)
     rows[at[hit]] = hit
     return rows
+
+
+def padded_form(ids: np.ndarray, catalog: np.ndarray) -> tuple[str, str] | None:
+    """(id, catalog id) for the first of `ids` that is a text catalog id with its leading zeros dropped ('1095'
+    for '001095': a spreadsheet or an integer column lost them), else None."""
+    if catalog.dtype != object or not len(catalog) or not len(ids):
+        return None
+    text = pd.Series(catalog, dtype=object).astype(str)
+    stripped = text.str.lstrip("0").replace("", "0")
+    padded = text != stripped
+    if not padded.any():
+        return None
+    by_stripped = pd.Series(text[padded].to_numpy(), index=stripped[padded].to_numpy())
+    by_stripped = by_stripped[~by_stripped.index.duplicated()]
+    asked = pd.Series(ids, dtype=object).astype(str).str.strip()
+    hit = asked.isin(by_stripped.index).to_numpy()
+    if not hit.any():
+        return None
+    first = asked.iloc[int(np.flatnonzero(hit)[0])]
+    return first, str(by_stripped[first])
 
 
 PLAIN_WHOLE = r"-?(?:0|[1-9]\d{0,17})"  # a whole number as it prints: no sign but minus, no leading zero

@@ -120,7 +120,8 @@ class RunFolder:
         if out.exists() and not out.is_dir():
             raise TowersError(f"{out}: exists and is not a folder; choose another --out")
         if out.exists() and any(out.iterdir()) and not overwrite:
-            raise TowersError(f"{out}: run folder already exists; choose another --out or pass --overwrite to replace it")
+            raise TowersError(f"{out}: run folder already exists; choose another --out or pass --overwrite "
+                              "(overwrite=True in Python) to replace it")
 
     def make(self, model: str = TOWERS, checkpoints: bool = False) -> Path:
         """Create (owner-only) a model's folder, and its checkpoints folder if asked; returns the latter or the former."""

@@ -30,6 +30,7 @@ from towers.data.tables import (
     check_unique_ids,
     given_ids,
     normalise_ids,
+    padded_form,
     positions_in,
     read_table,
     shown,
@@ -550,8 +551,10 @@ def batch_rows(run, user_ids, what: str, source: str) -> torch.Tensor:
     if (at < 0).any():
         first = given[np.flatnonzero(at < 0)[0]]
         first = plain(first)
+        found = padded_form(given[at < 0], q_ids)
+        hint = "" if found is None else f"; the run's ids keep leading zeros: {found[0]!r} is {found[1]!r} there"
         warnings.warn(f"{source}: {int((at < 0).sum())} of {len(at)} {what} ids are not in this run (e.g. {first!r}); "
-                      "they get no list", stacklevel=3)
+                      f"they get no list{hint}", stacklevel=3)
     return torch.from_numpy(pd.unique(at[at >= 0]).astype(np.int64))
 
 

@@ -34,6 +34,7 @@ from towers.data.tables import (
     align_id_types,
     given_ids,
     normalise_ids,
+    padded_form,
     positions_in,
     read_table,
     read_table_chunks,
@@ -398,8 +399,11 @@ class Run:
             bad = wanted[np.flatnonzero(rows < 0)[0]]
             bad = plain(bad)
             plural = "queries" if what == "query" else f"{what}s"
+            found = padded_form(np.asarray([bad], dtype=object), ids_all)
+            fix = (f"the run's ids keep leading zeros: give it as {found[1]!r}" if found else
+                   "check the id, or retrain with this entity in the feature table")
             raise TowersError(f"{self.dir}: unknown {what} id {bad!r}: not in this run's catalog ({len(ids_all):,} {plural}); "
-                              "check the id, or retrain with this entity in the feature table")
+                              f"{fix}")
         return torch.from_numpy(rows.astype(np.int64))
 
     def recommend(self, user_ids, top: int = 10, exclude_known: bool = True, context: dict | None = None,

@@ -118,7 +118,7 @@ def trained_pairs(run_dir: str | Path) -> TrainedBefore:
                           "trained on out of the new run's held-out pairs; give the --out folder of a finished run")
     saved = folder.read_pairs()
     train = saved.split.train
-    return TrainedBefore(saved.query_ids[train.query.numpy()], saved.item_ids[train.candidate.numpy()])
+    return TrainedBefore(saved.query_ids, saved.item_ids, train.query.numpy(), train.candidate.numpy())
 
 
 def _reference_model(name: str, data: Prepared, cfg: C.Config) -> tuple[TwoTowerModel, C.Config]:

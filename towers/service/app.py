@@ -251,7 +251,11 @@ def _validation_message(errors: list[dict]) -> tuple[int, str]:
 
 def _towers_message(exc: TowersError, hidden: dict[str, str]) -> str:
     """The library's one line, with the server's own paths (hidden: path -> plain words) left out."""
-    text = str(exc).splitlines()[0]
+    return _without_paths(str(exc).splitlines()[0], hidden)
+
+
+def _without_paths(text: str, hidden: dict[str, str]) -> str:
+    """An error's or a note's text with the server's own paths (hidden: path -> plain words) in plain words."""
     for path, words in hidden.items():
         text = text.removeprefix(f"{path}: ").replace(path, words)
     return text
@@ -270,15 +274,16 @@ def collect_notes(previous):
     return show
 
 
-def _in_worker(work) -> bytes:
-    """Run one request's work on this worker thread: torch on one thread, warnings kept as the answer's notes."""
+def _in_worker(work, hidden: dict[str, str] | None = None) -> bytes:
+    """Run one request's work on this worker thread: torch on one thread, warnings kept as the answer's notes
+    (the server's paths in them put in plain words, as in errors)."""
     if not getattr(_local, "one_thread", False):
         torch.set_num_threads(1)  # per thread; requests in parallel, not each product
         _local.one_thread = True
     _local.notes = []
     try:
         body = work()
-        body["notes"] = list(dict.fromkeys(_local.notes))
+        body["notes"] = list(dict.fromkeys(_without_paths(note, hidden or {}) for note in _local.notes))
     finally:
         _local.notes = None
     return json.dumps(body, allow_nan=False, separators=(",", ":")).encode()
@@ -379,7 +384,7 @@ def make_app(run, threads: int, item_table=None) -> FastAPI:
                 with shared_lock:
                     return inner()
         try:
-            body = await anyio.to_thread.run_sync(_in_worker, work, limiter=limiter)
+            body = await anyio.to_thread.run_sync(_in_worker, work, hidden, limiter=limiter)
         except TowersError as exc:
             return _error(422, _towers_message(exc, hidden))
         except Exception:
