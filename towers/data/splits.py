@@ -70,7 +70,7 @@ class TrainedBefore:
             a, b = a.astype(np.int64, copy=False), b.astype(np.int64, copy=False)
             return np.minimum(a, b) * n + np.maximum(a, b) if unordered else a * n + b
 
-        earlier = np.unique(keys(q[found], c[found]))
+        earlier = np.sort(keys(q[found], c[found]))  # repeats do no harm to searchsorted; unique() hashed slower
         new = keys(query_rows, item_rows)
         if not len(earlier):
             return np.zeros(len(new), dtype=bool)
