@@ -448,3 +448,12 @@ def test_a_utf16_csv_is_named_as_such(tmp_path):
     path.write_bytes("id,region\n1,north\n".encode("utf-16"))
     with pytest.raises(TowersError, match=r"readers\.csv: is UTF-16 text; save it as CSV UTF-8"):
         T.read_table(path)
+
+
+def test_whole_number_text_ids_match_exactly_up_to_19_digits():
+    # 19-digit ids (snowflake-style) went through float64 and matched a neighbouring id; '-0' merged with '0'
+    catalog = np.array([1234567890123456768, 1234567890123456789, 0, 9223372036854775807], dtype=np.int64)
+    asked = np.array(["1234567890123456789", "1234567890123456768", "-0", "0", "9223372036854775808", "1.2e18"],
+                     dtype=object)
+    assert T.positions_in(catalog, asked).tolist() == [1, 0, -1, 2, -1, -1]
+    assert T.positions_in(catalog, np.array(["9223372036854775807"], dtype=object)).tolist() == [3]

@@ -97,6 +97,9 @@ def test_recommend_with_context_stays_in_the_channel(context_runs):
     assert cli.main(["recommend", str(with_ctx["out"]), "--users", "3", "4", "5", "--top", "5",
                      "--context", "channel=shop", "hour=12", "--out", str(out)]) == 0
     assert pd.read_csv(out)["item_id"].tolist() == shop["item_id"].tolist()
+    # one user asked in two spellings gets one list (a review found the context path raised InvalidIndexError)
+    twice = run.recommend([" 3", "3", 4, 5], top=5, context={"channel": "shop", "hour": 12})
+    pd.testing.assert_frame_equal(twice.reset_index(drop=True), shop.reset_index(drop=True))
     # a value training never saw is scored as the unknown value, and the caller is told (the README's notes)
     with pytest.warns(UserWarning, match=r"context: channel='kiosk' never seen in training; scored as an unknown value"):
         run.recommend([3], top=5, context={"channel": "kiosk", "hour": 12})

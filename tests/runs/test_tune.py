@@ -332,3 +332,14 @@ def test_the_users_config_outside_the_ranges_is_moved_to_their_edges():
     point = S.config_point(base)
     assert point["model.dim"] == 128 and point["training.weight_decay"] == 1e-7  # the ranges' ends (RANGES)
     assert point["training.negatives"] == 16  # softmax with no drawn items: the range's low end
+
+
+def test_the_users_config_is_queued_once_even_after_a_kill_before_the_study_was_marked(tmp_path):
+    # a process killed after queueing trial 000 but before saving the study's config: the next run neither
+    # loses nor doubles it
+    base = _config(training={"loss": "softmax"})
+    study = optuna.create_study(study_name=T.STUDY_NAME, storage=T._storage(tmp_path), direction="maximize")
+    study.enqueue_trial(S.config_point(base), user_attrs={"from_config": True})
+    study = T._open_study(tmp_path, base, tmp_path / "c.yaml", base.stop_metric)
+    waiting = [t for t in study.get_trials() if t.state == TrialState.WAITING]
+    assert len(waiting) == 1 and waiting[0].user_attrs["from_config"]

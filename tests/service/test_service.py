@@ -287,6 +287,8 @@ BAD = [
     ("unknown field", "POST", "/similar", {"items": [ITEM], "colour": "red"}, None, 422, "colour"),
     ("misspelt field", "POST", "/recommend", {"user": [1]}, None, 422, "user: not a field of this request; did you mean "
      "'users'?"),
+    ("another endpoint's field", "POST", "/similar", {"users": [1]}, None, 422, "users: not a field of this request; "
+     "/recommend takes it"),
     ("unknown item", "POST", "/similar", {"items": [UNKNOWN_ITEM]}, None, 422, f"unknown item id '{UNKNOWN_ITEM}'"),
     ("unknown user", "POST", "/recommend", {"users": [1]}, None, 422, "unknown user id 1"),
     ("text id for numeric users", "POST", "/recommend", {"users": ["nobody"]}, None, 422, "not a number"),

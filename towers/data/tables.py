@@ -137,7 +137,7 @@ MISSING_WORDS = frozenset({"#N/A", "#N/A N/A", "#NA", "-1.#IND", "-1.#QNAN", "-N
                            "<NA>", "N/A", "NA", "NULL", "NaN", "None", "n/a", "nan", "null"})
 
 
-_WHOLE_NUMBER = r"^-?(?:0|[1-9][0-9]{0,17})$"  # as a whole number prints: no leading zero, within int64
+_WHOLE_NUMBER = r"^(?:0|-?[1-9][0-9]{0,17})$"  # as a whole number prints: no leading zero, no -0, within int64
 
 
 def ids_as_written(df: pd.DataFrame, ids) -> None:
@@ -559,7 +559,7 @@ def padded_form(ids: np.ndarray, catalog: np.ndarray) -> tuple[str, str] | None:
     return first, str(by_stripped[first])
 
 
-PLAIN_WHOLE = r"-?(?:0|[1-9]\d{0,17})"  # a whole number as it prints: no sign but minus, no leading zero
+PLAIN_WHOLE = r"0|-?[1-9]\d{0,18}"  # a whole number as it prints: no sign but minus, no leading zero, no -0
 
 
 def zero_padded(ids: np.ndarray) -> np.ndarray:
@@ -578,15 +578,33 @@ def align_id_types(ids: np.ndarray, reference: np.ndarray) -> np.ndarray:
     # numbers written otherwise than a number prints ('07', '+7'), which would merge '07' and '0007' into 7
     text = pd.Series(ids, dtype=object).astype(str).str.strip()
     out = np.full(len(ids), np.iinfo(np.int64).min, dtype=np.int64)
-    digits = text.str.fullmatch(r"[+-]?\d{1,18}").to_numpy(dtype=bool)  # parsed exactly, no float rounding
+    digits = text.str.fullmatch(r"[+-]?\d+").to_numpy(dtype=bool)  # whole numbers: parsed exactly or not at all
     plain_form = text.str.fullmatch(PLAIN_WHOLE).to_numpy(dtype=bool)
-    out[plain_form] = text[plain_form].astype(np.int64).to_numpy()
+    out[plain_form] = _exact_whole(text[plain_form])
     rest = np.flatnonzero(~digits)
     parsed = pd.to_numeric(text.iloc[rest], errors="coerce").to_numpy(dtype=np.float64)
     with np.errstate(invalid="ignore"):
-        # '17.0' matches id 17; '1.5' must not be truncated onto id 1
-        ok = np.isfinite(parsed) & (parsed == np.round(parsed)) & (np.abs(parsed) < 2.0 ** 63)
+        # '17.0' matches id 17; '1.5' must not be truncated onto id 1, nor '1.2e18' rounded onto a neighbour
+        ok = np.isfinite(parsed) & (parsed == np.round(parsed)) & (np.abs(parsed) < 2.0 ** 53)
     out[rest[ok]] = parsed[ok].astype(np.int64)
+    return out
+
+
+def _exact_whole(text: pd.Series) -> np.ndarray:
+    """Whole numbers written plainly (PLAIN_WHOLE, up to 19 digits) as int64, exactly: a 19-digit id is read as
+    two halves, since a float would round it onto a neighbouring id; one beyond int64 gets the no-match mark."""
+    out = np.full(len(text), np.iinfo(np.int64).min, dtype=np.int64)
+    negative = text.str.startswith("-").to_numpy(dtype=bool)
+    body = text.str.lstrip("-")
+    long = (body.str.len() == 19).to_numpy(dtype=bool)
+    out[~long] = text[~long].astype(np.int64).to_numpy()
+    if long.any():
+        high = body[long].str[:-9].astype(np.int64).to_numpy()
+        low = body[long].str[-9:].astype(np.int64).to_numpy()
+        fits = (high < 9_223_372_036) | ((high == 9_223_372_036) & (low <= 854_775_807))
+        value = np.where(fits, high, 0) * 1_000_000_000 + np.where(fits, low, 0)
+        sign = np.where(negative[long], -1, 1)
+        out[np.flatnonzero(long)[fits]] = (sign * value)[fits]
     return out
 
 

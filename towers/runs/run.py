@@ -410,7 +410,7 @@ class Run:
                   columns: Sequence[str] = (), keep: L.ItemFilter | None = None, item_table=None) -> pd.DataFrame:
         """Top items per user (query_id, rank, item_id, score, then `columns`); the user's training and
         validation pairs excluded (in item_item runs only the query item itself, as similar and lists do:
-        the items seen with it are what its list is for).
+        the items seen with it are what its list is for); exclude_known=False excludes nothing.
 
         context: {column: value} for runs with context columns; without it the users' exported
         vectors (averaged over the training context mix) are used. columns: item table columns added
@@ -423,13 +423,14 @@ class Run:
                               "context= or a request's \"context\")")
         q_ids = self.embeddings(self._query_side())[0]
         rows = self._rows(q_ids, pd.unique(given_ids(user_ids).astype(object)), "query" if self.item_item else "user")
+        rows = torch.from_numpy(pd.unique(rows.numpy()))  # ' 7' and '7' name one user: one list, in first-asked order
         lists = L.lists_for(self, columns, keep, item_table)
         vectors = None
         if context:
             with torch.no_grad():
                 vectors = self.bundle.model.query_tower(self._user_block(rows) | self._context_block(context, len(rows)))
         ex_r = ex_c = None
-        if self.item_item:  # the query item itself only
+        if self.item_item and exclude_known:  # the query item itself only
             none = torch.zeros(0, dtype=torch.int64)
             ex_r, ex_c = excluded_cells(rows, none, none, exclude_self=True)
         elif exclude_known:  # every training and validation pair of the requested users

@@ -241,13 +241,15 @@ def _open_study(out: Path, base: C.Config, config_path: Path, metric: str):
     now = comparable_config(base)
     attrs = study.user_attrs
     if "config" not in attrs:
+        # trial 000 is the user's own config (moved into the ranges where outside): best.yaml is never a point
+        # the study found worse than where the user started; queued before the study is marked as made, and
+        # once, so a process killed in between neither loses nor doubles it
+        if not any(t.user_attrs.get("from_config") for t in study.get_trials(deepcopy=False)):
+            study.enqueue_trial(S.config_point(base), user_attrs={"from_config": True})
         study.set_user_attr("config", now)
         study.set_user_attr("space", S.describe())
         study.set_user_attr("metric", metric)
         study.set_user_attr("config_file", str(config_path.resolve()))
-        # trial 000 is the user's own config (moved into the ranges where outside): best.yaml is never a point
-        # the study found worse than where the user started
-        study.enqueue_trial(S.config_point(base), user_attrs={"from_config": True})
     else:
         then = attrs["config"]
         if then != now:

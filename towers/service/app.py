@@ -223,13 +223,23 @@ def _error(status: int, message: str, headers: dict | None = None) -> Response:
                     headers=headers)
 
 
-def _request_fields() -> set[str]:
-    """Every field name of every request body (nested ones included), for "did you mean" hints."""
-    return {name for model in (KeepRequest, RecommendRequest, SimilarRequest, EmbedRequest)
-            for name in model.model_fields}
+REQUESTS = {"/recommend": RecommendRequest, "/similar": SimilarRequest, "/embed": EmbedRequest}
 
 
-def _validation_message(errors: list[dict]) -> tuple[int, str]:
+def _extra_field_hint(field: str, parent: tuple, path: str) -> str:
+    """For a field the endpoint does not take: the closest name the body (or its `keep`) does take, or the
+    endpoint that takes this one."""
+    model = KeepRequest if "keep" in parent else REQUESTS.get(path)
+    if model is None:
+        return ""
+    close = [c for c in difflib.get_close_matches(field, sorted(model.model_fields), n=1) if c != field]
+    if close:
+        return f"; did you mean '{close[0]}'?"
+    elsewhere = [p for p, other in REQUESTS.items() if p != path and field in other.model_fields]
+    return f"; {elsewhere[0]} takes it" if elsewhere and model is not KeepRequest else ""
+
+
+def _validation_message(errors: list[dict], path: str = "") -> tuple[int, str]:
     """(status, one line) for pydantic's errors of a request body."""
     first = errors[0]
     where = ".".join(str(p) for p in first["loc"] if p != "body")
@@ -240,10 +250,9 @@ def _validation_message(errors: list[dict]) -> tuple[int, str]:
     if not where and first["type"] in ("model_type", "model_attributes_type", "dict_type"):
         return 422, "request body must be a JSON object of the endpoint's fields"
     message = first["msg"].removeprefix("Value error, ")
-    if first["type"] == "extra_forbidden":  # a misspelt field: name the closest the endpoints take
-        field = str(first["loc"][-1])
-        close = difflib.get_close_matches(field, sorted(_request_fields()), n=1)
-        message = "not a field of this request" + (f"; did you mean '{close[0]}'?" if close else "")
+    if first["type"] == "extra_forbidden":  # a misspelt field: name the closest the endpoint takes
+        message = "not a field of this request" + _extra_field_hint(str(first["loc"][-1]), tuple(first["loc"][:-1]),
+                                                                     path)
     line = f"{where}: {message}" if where else f"request body: {message}"
     more = len(errors) - 1
     return 422, line + (f" (and {more} more problem{'s' if more != 1 else ''})" if more else "")
@@ -256,7 +265,7 @@ def _towers_message(exc: TowersError, hidden: dict[str, str]) -> str:
 
 def _without_paths(text: str, hidden: dict[str, str]) -> str:
     """An error's or a note's text with the server's own paths (hidden: path -> plain words) in plain words."""
-    for path, words in hidden.items():
+    for path, words in sorted(hidden.items(), key=lambda item: -len(item[0])):  # a table inside the run folder first
         text = text.removeprefix(f"{path}: ").replace(path, words)
     return text
 
@@ -394,7 +403,7 @@ def make_app(run, threads: int, item_table=None) -> FastAPI:
 
     @app.exception_handler(RequestValidationError)
     async def _invalid(request, exc):
-        status, message = _validation_message(exc.errors())
+        status, message = _validation_message(exc.errors(), request.url.path)
         return _error(status, message)
 
     @app.exception_handler(HTTPException)
