@@ -112,6 +112,16 @@ def test_references_join_the_warm_slice_with_their_chosen_settings():
     assert "references: ease penalty" in format_table(metrics)
 
 
+def test_without_validation_pairs_the_references_say_they_took_their_default():
+    split = _split()
+    split.valid = _pairs([], [])
+    said = []
+    refs, info = reference_scorers(split, 30, 40, _cfg(), said.append)
+    assert set(refs) == {"ease", "item_knn"}
+    assert info["ease"]["by"] == info["item_knn"]["by"] == "no validation pairs: the default setting"
+    assert said and all("no validation pairs" in line and "by validation" not in line for line in said)
+
+
 def test_ease_is_skipped_above_its_catalog_limit_with_a_note():
     split = _split()
     cfg = _cfg(ease_max_items=39)

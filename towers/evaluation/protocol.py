@@ -355,17 +355,19 @@ def reference_scorers(data: SplitPairs, n_queries: int, n_items: int, cfg: Confi
         return got if got is not None and math.isfinite(got) else -math.inf
 
     scorers, info = {}, {}
+    # without validation pairs there is nothing to choose by: each reference takes its middle setting
+    by = f"by validation {metric}" if len(data.valid) or share is not None else "its default (no validation pairs)"
     if n_items > ev.ease_max_items:
         info[R.EASE] = {"skipped": f"{n_items:,} items exceed evaluation.ease_max_items ({ev.ease_max_items:,}); EASE "
                                    f"would need about {R.ease_bytes(n_items) / 2**30:.1f} GiB"}
     else:
         if log is not None:
             log(f"ease: {n_items:,} items, about {R.ease_bytes(n_items) / 2**30:.2f} GiB while fitting; choosing its "
-                f"penalty by validation {metric}")
+                f"penalty {by}")
         scorers[R.EASE], tries = R.choose_ease(history, judge)
         info[R.EASE] = {**scorers[R.EASE].setting, "by": f"validation {metric}", "tries": tries}
     if log is not None:
-        log(f"item_knn: choosing its neighbour count by validation {metric}")
+        log(f"item_knn: choosing its neighbour count {by}")
     scorers[R.ITEM_KNN], tries = R.choose_knn(history, judge)
     info[R.ITEM_KNN] = {**scorers[R.ITEM_KNN].setting, "by": f"validation {metric}", "tries": tries}
     for name in scorers:
