@@ -87,13 +87,13 @@ def _not_utf8(path: Path, exc: UnicodeDecodeError) -> TowersError:
     if head.startswith(b"PK") or b"\x00" in head:
         return TowersError(f"{path}: is not a text file (a spreadsheet workbook or other binary file?); export the "
                            "table as CSV (UTF-8) or parquet")
-    line = _line_of_byte(path, exc.start) if isinstance(exc.object, bytes) else None
+    line = _line_of_byte(path)
     at = f"line {line}" if line else f"byte {exc.start}"
     return TowersError(f"{path}: {at} is not UTF-8 text (byte 0x{exc.object[exc.start]:02x}); save the file as "
                        "UTF-8 (a spreadsheet's 'CSV UTF-8' format) and try again")
 
 
-def _line_of_byte(path: Path, offset: int) -> int | None:
+def _line_of_byte(path: Path) -> int | None:
     """The line (from 1) of the first byte of a file that is not UTF-8, found by decoding it a megabyte at a
     time (the offset a reader reports may count from the start of its current chunk); None if none is found."""
     import codecs
@@ -137,7 +137,16 @@ MISSING_WORDS = frozenset({"#N/A", "#N/A N/A", "#NA", "-1.#IND", "-1.#QNAN", "-N
                            "<NA>", "N/A", "NA", "NULL", "NaN", "None", "n/a", "nan", "null"})
 
 
-_WHOLE_NUMBER = r"^(?:0|-?[1-9][0-9]{0,17})$"  # as a whole number prints: no leading zero, no -0, within int64
+def _plain_whole(digits: int) -> str:
+    """A regex of a whole number as it prints, of at most `digits` digits: no sign but minus, no leading zero,
+    no -0 (so 07 and 0007 are never taken for 7)."""
+    return rf"0|-?[1-9]\d{{0,{digits - 1}}}"
+
+
+PLAIN_WHOLE = _plain_whole(19)  # int64's longest: parsed exactly by _exact_whole
+DIGITS = r"[+-]?\d+"  # any whole number written in digits, plain or not
+_WHOLE_NUMBER = f"^(?:{_plain_whole(18)})$"  # what a CSV id column may hold to be read as numbers: arrow's cast of
+# 18 digits cannot overflow int64; a 19-digit column stays text and align_id_types matches it exactly
 
 
 def ids_as_written(df: pd.DataFrame, ids) -> None:
@@ -559,13 +568,10 @@ def padded_form(ids: np.ndarray, catalog: np.ndarray) -> tuple[str, str] | None:
     return first, str(by_stripped[first])
 
 
-PLAIN_WHOLE = r"0|-?[1-9]\d{0,18}"  # a whole number as it prints: no sign but minus, no leading zero, no -0
-
-
 def zero_padded(ids: np.ndarray) -> np.ndarray:
     """bool per id: text holding a whole number written otherwise than it prints ('07', '+7', '-0')."""
     text = pd.Series(ids, dtype=object).astype(str).str.strip()
-    return (text.str.fullmatch(r"[+-]?\d{1,18}") & ~text.str.fullmatch(PLAIN_WHOLE)).to_numpy(dtype=bool)
+    return (text.str.fullmatch(DIGITS) & ~text.str.fullmatch(PLAIN_WHOLE)).to_numpy(dtype=bool)
 
 
 def align_id_types(ids: np.ndarray, reference: np.ndarray) -> np.ndarray:
@@ -578,7 +584,7 @@ def align_id_types(ids: np.ndarray, reference: np.ndarray) -> np.ndarray:
     # numbers written otherwise than a number prints ('07', '+7'), which would merge '07' and '0007' into 7
     text = pd.Series(ids, dtype=object).astype(str).str.strip()
     out = np.full(len(ids), np.iinfo(np.int64).min, dtype=np.int64)
-    digits = text.str.fullmatch(r"[+-]?\d+").to_numpy(dtype=bool)  # whole numbers: parsed exactly or not at all
+    digits = text.str.fullmatch(DIGITS).to_numpy(dtype=bool)  # whole numbers: parsed exactly or not at all
     plain_form = text.str.fullmatch(PLAIN_WHOLE).to_numpy(dtype=bool)
     out[plain_form] = _exact_whole(text[plain_form])
     rest = np.flatnonzero(~digits)

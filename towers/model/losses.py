@@ -46,6 +46,9 @@ def in_batch_softmax_loss(logits: torch.Tensor, candidates: torch.Tensor,
                           log_q: torch.Tensor | None = None) -> torch.Tensor:
     """Per-row cross-entropy of each query's own candidate against the other candidates of the batch.
 
+    The dense form, holding the (B, C) logits: training computes the same loss a block of rows at a time
+    (blocked_in_batch_softmax_loss); this one is the reference its tests and scripts/bench compare it with.
+
     logits: (B, C) scores of query i with column j, C >= B; the first B columns are the pairs' own
     candidates (the positive is the diagonal), any further ones items drawn for the whole batch.
     candidates: (C,) the columns' item ids; a column holding the same item as row i's positive is not

@@ -567,9 +567,5 @@ def write_run_lists(run, out, user_ids, top: int, columns, keep, item_table, pro
     what = "query" if run.item_item else "user"
     rows = batch_rows(run, user_ids, what, source)
     q_ids = run.embeddings(run._query_side())[0]
-    known = None  # item -> item: the pairs seen together are the list's point; only the item itself is left out
-    if not run.item_item:  # a user's own training and validation items are left out of their list
-        tr, va = run.pairs["train"], run.pairs["valid"]
-        known = known_by_query(torch.cat([tr["query"], va["query"]]), torch.cat([tr["candidate"], va["candidate"]]),
-                               len(q_ids))
+    known = known_by_query(*run.known_pairs(), len(q_ids))  # as recommend leaves out (Run.known_pairs)
     return write_lists(out, run._scorer("towers"), lists, q_ids, rows, top, known, run.item_item, progress)

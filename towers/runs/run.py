@@ -406,6 +406,16 @@ class Run:
                               f"{fix}")
         return torch.from_numpy(rows.astype(np.int64))
 
+    def known_pairs(self) -> tuple[torch.Tensor, torch.Tensor]:
+        """(query rows, item rows) of the pairs a list leaves out: each user's training and validation pairs. An
+        item_item run leaves out none (only the query item itself): the items bought or viewed with an item are
+        what its list is for."""
+        if self.item_item:
+            none = torch.zeros(0, dtype=torch.int64)
+            return none, none
+        tr, va = self.pairs["train"], self.pairs["valid"]
+        return torch.cat([tr["query"], va["query"]]), torch.cat([tr["candidate"], va["candidate"]])
+
     def recommend(self, user_ids, top: int = 10, exclude_known: bool = True, context: dict | None = None,
                   columns: Sequence[str] = (), keep: L.ItemFilter | None = None, item_table=None) -> pd.DataFrame:
         """Top items per user (query_id, rank, item_id, score, then `columns`); the user's training and
@@ -430,13 +440,9 @@ class Run:
             with torch.no_grad():
                 vectors = self.bundle.model.query_tower(self._user_block(rows) | self._context_block(context, len(rows)))
         ex_r = ex_c = None
-        if self.item_item and exclude_known:  # the query item itself only
-            none = torch.zeros(0, dtype=torch.int64)
-            ex_r, ex_c = excluded_cells(rows, none, none, exclude_self=True)
-        elif exclude_known:  # every training and validation pair of the requested users
-            tr, va = self.pairs["train"], self.pairs["valid"]
-            ex_r, ex_c = excluded_cells(rows, torch.cat([tr["query"], va["query"]]),
-                                        torch.cat([tr["candidate"], va["candidate"]]))
+        if exclude_known:
+            known_q, known_c = self.known_pairs()
+            ex_r, ex_c = excluded_cells(rows, known_q, known_c, exclude_self=self.item_item)
         idx, scores = lists.top(self._scorer(TOWERS).for_queries(rows, vectors), top, ex_r, ex_c)
         return lists.frame(q_ids[rows.numpy()], idx, scores)
 

@@ -117,36 +117,44 @@ def suggest(trial, base: C.Config) -> dict:
     return values
 
 
-def _clamped(r: Range, value):
-    """value moved into the range (a log scale holds no 0 or negative: those become the low end)."""
-    value = min(max(value, r.low), r.high)
-    return int(round(value)) if r.integer else float(value)
+class _FromConfig:
+    """A stand-in trial for `suggest` that answers each question with the config's own value, moved into the
+    asked range where it lies outside (a log scale holds no 0: that becomes the low end), and records the
+    answers as optuna parameters. So which keys apply stays written once, in `suggest`."""
+
+    def __init__(self, base: C.Config):
+        self.base, self.params = base, {}
+
+    def _own(self, name: str):
+        if name == HISTORY_SWITCH:
+            return self.base.model.history_length > 0
+        section, key = name.split(".")
+        value = getattr(getattr(self.base, section), key)
+        if name == "training.negatives" and value is None:  # empty: 4 under logistic, none drawn under softmax
+            value = self.base.training.sampled_negatives
+        return value
+
+    def _answer(self, name: str, value):
+        self.params[name] = value
+        return value
+
+    def suggest_int(self, name: str, low: int, high: int, log: bool = False) -> int:
+        return self._answer(name, int(round(min(max(self._own(name), low), high))))
+
+    def suggest_float(self, name: str, low: float, high: float, log: bool = False) -> float:
+        return self._answer(name, float(min(max(self._own(name), low), high)))
+
+    def suggest_categorical(self, name: str, choices: list):
+        return self._answer(name, self._own(name))
 
 
 def config_point(base: C.Config) -> dict:
     """The user's own config as optuna parameters of this space (`suggest`'s names), each value moved into its
     range where it lies outside: the first trial of a new study, so the search starts from, and is measured
     against, what the user already had."""
-    t, m = base.training, base.model
-    point = {"model.dim": m.dim, "training.learning_rate": t.learning_rate, "training.batch_size": t.batch_size,
-             "training.weight_decay": t.weight_decay, "training.id_l2": t.id_l2}
-    point = {k: _clamped(_range(k), v) for k, v in point.items()}
-    if t.loss in ("logistic", "softmax"):
-        given = t.negatives if t.negatives is not None else (C.DEFAULT_NEGATIVES if t.loss == "logistic" else 0)
-        point["training.negatives"] = _clamped(_range("training.negatives", t.loss), given)
-    normalize = m.normalize
-    if not t.rating_loss:
-        point["model.normalize"] = normalize
-    if normalize:
-        point["model.temperature"] = _clamped(_range("model.temperature"), m.temperature)
-    if not base.item_item:
-        point[HISTORY_SWITCH] = m.history_length > 0
-        if m.history_length > 0:
-            point["model.history_length"] = _clamped(_range("model.history_length"), m.history_length)
-            point["model.history_decay"] = _clamped(_range("model.history_decay"), m.history_decay)
-            if base.interactions.time_column:
-                point["model.history_past_only"] = m.history_past_only
-    return point
+    trial = _FromConfig(base)
+    suggest(trial, base)
+    return trial.params
 
 
 def searched_keys(base: C.Config) -> list[str]:
