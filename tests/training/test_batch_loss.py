@@ -17,6 +17,7 @@ import torch.nn.functional as F
 from towers import config as C
 from towers.data.prepare import prepare
 from towers.model.build import build_model
+from towers.model.losses import in_batch_softmax_loss
 from towers.training.loop import Trainer
 from towers.training.negatives import NegativeSampler
 
@@ -42,7 +43,7 @@ def _data(tmp_path, hidden, features: bool, sampling: str = "popularity", id_tab
 
 def _reference(trainer: Trainer, idx: torch.Tensor, negatives: torch.Tensor) -> torch.Tensor:
     """The minibatch objective of towers/training/loop.py's docstring, every row looked up afresh."""
-    m, d, lam = trainer.model, trainer.data, trainer.lam
+    m, d = trainer.model, trainer.data
     b, n_neg = len(idx), trainer.n_neg
     q_rows, c_rows = d.train.query[idx], d.train.candidate[idx]
     qb = {k: v[q_rows] for k, v in d.queries.block.items()}
@@ -55,10 +56,38 @@ def _reference(trainer: Trainer, idx: torch.Tensor, negatives: torch.Tensor) -> 
     # reference: torch's binary cross-entropy on logits, summed over each pair's positive and negatives
     bce = F.binary_cross_entropy_with_logits(scores, labels, reduction="none")
     per_pair = bce[:b] + bce[b:].view(b, n_neg).sum(1)
-    uq, uc = qb["id"], cb["id"][:b]
+    return (per_pair + _penalty(trainer, qb["id"], cb["id"][:b])).mean()
+
+
+def _penalty(trainer: Trainer, uq: torch.Tensor, uc: torch.Tensor) -> torch.Tensor:
+    """Each pair's id penalty, lambda/2 (||row||^2 + b^2) / n_row on both sides, every row looked up afresh."""
+    m = trainer.model
     penalty_q = (m.query_tower.ids(uq).pow(2).sum(1) + m.query_bias(uq).squeeze(1) ** 2) * trainer.q_inv[uq]
     penalty_c = (m.candidate_tower.ids(uc).pow(2).sum(1) + m.candidate_bias(uc).squeeze(1) ** 2) * trainer.c_inv[uc]
-    return (per_pair + 0.5 * lam * (penalty_q + penalty_c)).mean()
+    return 0.5 * trainer.lam * (penalty_q + penalty_c)
+
+
+def _assert_same(model, got: torch.Tensor, got_grads: dict, want: torch.Tensor) -> None:
+    """The objective and, after its backward pass, every gradient equal batch_loss's."""
+    want.backward()
+    want_grads = _grads(model)
+    torch.testing.assert_close(got, want, rtol=1e-5, atol=1e-6)
+    assert got_grads.keys() == want_grads.keys()
+    for name in want_grads:
+        torch.testing.assert_close(got_grads[name], want_grads[name], rtol=1e-4, atol=1e-6, msg=name)
+
+
+def _trainer(cfg, data, batch: int):
+    """A seeded model with its biases away from their zero start (so their penalty and gradients count), its
+    Trainer, and a batch of training pairs."""
+    torch.manual_seed(0)
+    model = build_model(data, cfg)
+    with torch.no_grad():
+        model.query_bias.weight.normal_(0, 0.3)
+        model.candidate_bias.weight.normal_(0, 0.3)
+    trainer = Trainer(model, data, cfg)
+    model.train()
+    return model, trainer, torch.randperm(len(data.train), generator=torch.Generator().manual_seed(1))[:batch]
 
 
 def _grads(model) -> dict[str, torch.Tensor]:
@@ -77,28 +106,45 @@ def test_batch_loss_and_gradients_match_the_written_out_objective(tmp_path, hidd
     # bounded ids (model.id_table_rows 8 for 40 users and 30 items): the reference penalises each id's
     # composed vector, looked up afresh through the two tables
     cfg, data = _data(tmp_path, hidden, features, id_table_rows=id_table_rows)
-    torch.manual_seed(0)
-    model = build_model(data, cfg)
+    model, trainer, idx = _trainer(cfg, data, 50)
     assert (type(model.query_tower.ids).__name__ == "QRTable") == bool(id_table_rows)
-    with torch.no_grad():  # biases away from their zero start, so their penalty and gradients count
-        model.query_bias.weight.normal_(0, 0.3)
-        model.candidate_bias.weight.normal_(0, 0.3)
-    trainer = Trainer(model, data, cfg)
-    model.train()
-    idx = torch.randperm(len(data.train), generator=torch.Generator().manual_seed(1))[:50]
     state = trainer.generator.get_state()
     got = trainer.batch_loss(idx)
     got.backward()
+    if not id_table_rows:  # each table read once a lookup: one sparse gradient entry each, none added twice
+        assert model.query_tower.ids.weight.grad._nnz() == len(idx)
+        assert model.candidate_tower.ids.weight.grad._nnz() == len(idx) * (1 + trainer.n_neg)
     got_grads = _grads(model)
     trainer.generator.set_state(state)
     negatives = trainer.sampler(len(idx) * trainer.n_neg)  # the same draws batch_loss made
-    want = _reference(trainer, idx, negatives)
-    want.backward()
-    want_grads = _grads(model)
-    torch.testing.assert_close(got, want, rtol=1e-5, atol=1e-6)
-    assert got_grads.keys() == want_grads.keys()
-    for name in want_grads:
-        torch.testing.assert_close(got_grads[name], want_grads[name], rtol=1e-4, atol=1e-6, msg=name)
+    _assert_same(model, got, got_grads, _reference(trainer, idx, negatives))
+
+
+def test_softmax_batch_loss_and_gradients_match_the_written_out_objective(tmp_path):
+    # the in-batch softmax with drawn extra columns and the log-share correction, its penalty on the rows the
+    # towers read: against the dense softmax (model/losses.py's reference) and every row looked up afresh
+    cfg, _ = _data(tmp_path, [8], True)
+    cfg = cfg.with_section("training", loss="softmax", negatives=7)  # 7 drawn columns beside the batch
+    data = prepare(cfg)
+    model, trainer, idx = _trainer(cfg, data, 40)
+    state = trainer.negative_generator.get_state()
+    got = trainer.batch_loss(idx)
+    got.backward()
+    assert model.candidate_tower.ids.weight.grad._nnz() == len(idx) + 7
+    assert model.query_tower.ids.weight.grad._nnz() == len(idx)
+    got_grads = _grads(model)
+    trainer.negative_generator.set_state(state)
+    pick = torch.randint(len(trainer.warm_rows), (7,), generator=trainer.negative_generator)  # batch_loss's draw
+    d = data
+    q_rows = d.train.query[idx]
+    columns = torch.cat([d.train.candidate[idx], trainer.warm_rows[pick]])
+    qb = {k: v[q_rows] for k, v in d.queries.block.items()}
+    cb = {k: v[columns] for k, v in d.candidates.block.items()}
+    logits = model.query_tower(qb, qb["id"]) @ model.candidate_tower(cb, cb["id"]).T
+    logits = logits + model.candidate_bias(cb["id"]).squeeze(1)
+    log_q = torch.log(len(idx) * trainer.log_q[columns].double().exp() + 7 / len(trainer.warm_rows)).float()
+    want = (in_batch_softmax_loss(logits, columns, log_q) + _penalty(trainer, qb["id"], cb["id"][:len(idx)])).mean()
+    _assert_same(model, got, got_grads, want)
 
 
 def test_uniform_sampler_draws_warm_items_uniformly(tmp_path):

@@ -80,12 +80,18 @@ class Tower(nn.Module):
         return F.embedding_bag(bags, table.weight, mode="sum", per_sample_weights=weights, padding_idx=0)
 
     def forward(self, block: dict, ids: torch.Tensor | None = None) -> torch.Tensor:
+        return self.with_id_rows(block, ids)[0]
+
+    def with_id_rows(self, block: dict, ids: torch.Tensor | None = None) -> tuple[torch.Tensor, torch.Tensor | None]:
+        """The embeddings and the id-table rows they were made from (None without ids), so the id penalty in
+        training reads each row once: one sparse gradient entry a lookup, not two to be added together."""
         if ids is None and self.use_ids:
             ids = self.id_rows(block)
+        rows = self.ids(ids) if self.use_ids else None
         if self.direct:
-            out = self.ids(ids)
+            out = rows
         else:
-            parts = [self.ids(ids)] if self.use_ids else []
+            parts = [rows] if self.use_ids else []
             for pos, spec in enumerate(self.inputs):
                 x = block[spec["name"]]
                 if spec["name"] == HISTORY and self.history_decay < 1.0:
@@ -98,7 +104,7 @@ class Tower(nn.Module):
             out = F.softplus(out)
         if self.normalize:
             out = F.normalize(out, dim=1)
-        return out
+        return out, rows
 
 
 class TwoTowerModel(nn.Module):

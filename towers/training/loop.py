@@ -105,17 +105,17 @@ class Trainer:
         # several processes: their gradients averaged after each backward pass (distributed.py)
         self.exchange = GradientExchange(model) if self.world > 1 else None
 
-    def _penalty(self, tower: Tower, bias, ids: torch.Tensor, inv: torch.Tensor, rows: torch.Tensor | None = None,
+    def _penalty(self, tower: Tower, bias, ids: torch.Tensor, inv: torch.Tensor, rows: torch.Tensor | None,
                  bias_rows: torch.Tensor | None = None) -> torch.Tensor:
         """lambda/2 * (||row||^2 + b^2) / n_row for each pair's id row (row 0, the unknown id, is free).
 
-        rows / bias_rows: the id rows and biases of `ids` when the caller has gathered them already (an
-        id-only tower's output is its id row), so the tables are not read twice and each table gets
-        one sparse gradient per step instead of two to be added together.
+        rows: the id rows the tower read for `ids` (Tower.with_id_rows; None without ids); bias_rows: their
+        biases where the loss read them already, else they are read here. So no table is read twice and each
+        gets one sparse gradient entry a lookup, not two to be added together.
         """
         total = None
-        if tower.ids is not None:
-            total = SquaredNorms.apply(rows if rows is not None else tower.ids(ids))
+        if rows is not None:
+            total = SquaredNorms.apply(rows)
         if bias is not None:
             b2 = (bias_rows if bias_rows is not None else bias(ids).squeeze(1)).pow(2)
             total = b2 if total is None else total + b2
@@ -132,27 +132,30 @@ class Trainer:
         q_rows, c_rows = train.query.index_select(0, idx), train.candidate.index_select(0, idx)
         qb = self.query_batch(idx, q_rows, c_rows)
         q_ids = m.query_tower.id_rows(qb)
-        qe = m.query_tower(qb, q_ids)
+        qe, q_id_rows = m.query_tower.with_id_rows(qb, q_ids)
         columns = c_rows
         if self.extra:  # mixed negatives: items drawn uniformly, shared by the batch (Yang et al., WWW 2020)
             pick = torch.randint(len(self.warm_rows), (self.extra,), generator=self.negative_generator)
             columns = torch.cat([c_rows, self.warm_rows.index_select(0, pick)])
         cb = take(d.candidates.block, columns)
         c_ids = m.candidate_tower.id_rows(cb)
-        ce = m.candidate_tower(cb, c_ids)
+        ce, c_id_rows = m.candidate_tower.with_id_rows(cb, c_ids)
+        cbias = m.candidate_bias_of(c_ids)
         log_q = None
         if self.log_q is not None:  # log of each column item's expected count among the columns
             share = self.log_q.index_select(0, columns).double().exp()
             log_q = torch.log(len(idx) * share + self.extra / len(self.warm_rows)).float()
-        loss = blocked_in_batch_softmax_loss(qe, ce, m.candidate_bias_of(c_ids), columns, 1.0 / m.temperature, log_q)
+        loss = blocked_in_batch_softmax_loss(qe, ce, cbias, columns, 1.0 / m.temperature, log_q)
         if train.target is not None:  # a label in [0, 1] scales its row; label 0 rows teach nothing here
             loss = loss * train.target.index_select(0, idx)
         if train.weight is not None:
             loss = loss * train.weight.index_select(0, idx)
-        if self.lam > 0:
-            loss = loss + self._penalty(m.query_tower, m.query_bias if m.use_biases else None, q_ids, self.q_inv)
+        if self.lam > 0:  # the rows the towers read, the batch's own candidates' first (not the extra negatives)
+            loss = loss + self._penalty(m.query_tower, m.query_bias if m.use_biases else None, q_ids, self.q_inv,
+                                        q_id_rows)
             loss = loss + self._penalty(m.candidate_tower, m.candidate_bias if m.use_biases else None, c_ids[:len(idx)],
-                                        self.c_inv)
+                                        self.c_inv, _leading(c_id_rows, len(idx)),
+                                        _leading(cbias, len(idx)) if m.use_biases else None)
         return loss.mean()
 
     def query_batch(self, idx: torch.Tensor, q_rows: torch.Tensor, c_rows: torch.Tensor) -> dict:
@@ -193,13 +196,13 @@ class Trainer:
         q_rows, c_rows = train.query.index_select(0, idx), train.candidate.index_select(0, idx)
         qb = self.query_batch(idx, q_rows, c_rows)
         q_ids = m.query_tower.id_rows(qb)
-        qe = m.query_tower(qb, q_ids)
+        qe, q_id_rows = m.query_tower.with_id_rows(qb, q_ids)
         b = len(idx)
         if self.n_neg:
             c_rows = torch.cat([c_rows, self.sampler(b * self.n_neg)])
         cb = take(d.candidates.block, c_rows)
         c_ids = m.candidate_tower.id_rows(cb)
-        ce = m.candidate_tower(cb, c_ids)
+        ce, c_id_rows = m.candidate_tower.with_id_rows(cb, c_ids)
         scale = 1.0 / m.temperature
         qbias = m.query_bias_of(q_ids)
         cbias = m.candidate_bias_of(c_ids)
@@ -223,11 +226,9 @@ class Trainer:
         if self.lam > 0:
             qbias_t = m.query_bias if m.use_biases else None
             cbias_t = m.candidate_bias if m.use_biases else None
-            q_rows_seen = qe if output_is_id_row(m.query_tower) else None
-            c_rows_seen = ce_pos if output_is_id_row(m.candidate_tower) else None
-            loss = loss + self._penalty(m.query_tower, qbias_t, q_ids, self.q_inv, q_rows_seen,
+            loss = loss + self._penalty(m.query_tower, qbias_t, q_ids, self.q_inv, q_id_rows,
                                         qbias if m.use_biases else None)
-            loss = loss + self._penalty(m.candidate_tower, cbias_t, c_ids[:b], self.c_inv, c_rows_seen,
+            loss = loss + self._penalty(m.candidate_tower, cbias_t, c_ids[:b], self.c_inv, _leading(c_id_rows, b),
                                         cbias_pos if m.use_biases else None)
         return loss.mean()
 
@@ -332,6 +333,14 @@ class Trainer:
         if self.world > 1:
             return mean_over_processes(total * self.world / n)
         return total / n
+
+
+def _leading(t: torch.Tensor | None, n: int) -> torch.Tensor | None:
+    """The first n rows of t (the batch's own pairs before any extra negatives) by split, not a slice: a slice's
+    backward zero-fills a gradient of the whole tensor."""
+    if t is None or len(t) == n:
+        return t
+    return t.split([n, len(t) - n])[0]
 
 
 class Interrupted(Exception):
