@@ -118,7 +118,10 @@ groups = group_labels(cfg.with_section("evaluation", group_metrics_by=["age_band
                       data.candidates.ids)
 grouped = evaluate_slices(scorers | refs, data.split, cfg, reference_info=info, groups=groups, share=share)
 s = data.split
+timed = prepare(cfg.with_section("evaluation", split="time"))  # the whole log's cut-off, ties in the log's order
 torch.save({"divided": data.divided, "read": read, "metrics": metrics, "grouped": grouped,
+            "time_pairs": {n: torch.stack([getattr(timed.split, n).query, getattr(timed.split, n).candidate,
+                                           getattr(timed.split, n).time]) for n in ("train", "valid", "test")},
             "history": data.queries.block["(history)"], "history_times": data.history_times,
             "warm": s.warm_items, "cold_items": s.cold_items, "cold_users": s.cold_users,
             "pairs": {n: torch.stack([getattr(s, n).query, getattr(s, n).candidate, getattr(s, n).time])
@@ -199,6 +202,18 @@ def test_divided_split_is_the_one_process_split_pair_for_pair(two_processes):
         assert torch.equal(p["cold_users"], one.split.cold_users)
         assert torch.equal(p["history"], one.queries.block["(history)"])
         assert torch.equal(p["history_times"], one.history_times)  # model.history_past_only's bag times
+
+
+def test_divided_time_split_is_the_one_process_split_pair_for_pair(two_processes):
+    """split: time over a divided log: one cut-off over every process's events (the orders' lines share their
+    order's time, so ties are broken by the log's order, as one process breaks them)."""
+    cfg, parts = two_processes
+    one = prepare(cfg.with_section("evaluation", split="time")).split
+    for name in ("train", "valid", "test"):
+        ref = getattr(one, name)
+        assert len(ref) > 0, name
+        assert _rows(parts[0]["time_pairs"][name]) + _rows(parts[1]["time_pairs"][name]) == \
+            _rows(torch.stack([ref.query, ref.candidate, ref.time])), name
 
 
 def test_divided_evaluation_gives_every_process_the_one_process_metrics(two_processes):

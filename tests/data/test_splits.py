@@ -7,6 +7,8 @@ or the split as plain numpy wrote it before units existed.
 
 from __future__ import annotations
 
+import threading
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -18,7 +20,7 @@ from towers import config as C
 from towers.config import EvaluationSection
 from towers.data.pairs import Pairs
 from towers.data.prepare import prepare, read_interactions
-from towers.data.splits import HoldOut, connected_units, make_split
+from towers.data.splits import HoldOut, connected_units, latest_units, make_split
 from towers.errors import TowersError
 from towers.model.build import build_model
 from towers.model.bundle import load_bundle, save_bundle
@@ -156,6 +158,69 @@ def test_a_time_split_places_each_group_at_its_earliest_event():
     n_test = round(0.2 * n_orders)
     assert (per.side == "test").sum() == n_test and (per.side == "valid").sum() == round(0.1 * (n_orders - n_test))
     assert per[per.side == "test"].t.min() > per[per.side == "valid"].t.max() > per[per.side == "train"].t.max()
+
+
+class _Summed:
+    """collective.summed for processes played by threads: every caller waits for the others and gets the sum."""
+
+    def __init__(self, world: int):
+        self.barrier, self.values = threading.Barrier(world), [0] * world
+
+    def of(self, rank: int):
+        def summed(value):
+            self.values[rank] = value
+            self.barrier.wait()
+            total = sum(self.values)
+            self.barrier.wait()  # every process has read the sum before the next one is put down
+            return total
+        return summed
+
+
+@pytest.mark.parametrize("groups", [False, True], ids=["rows", "orders"])
+def test_a_time_split_of_a_divided_log_is_the_one_process_split(groups):
+    # three processes (threads) each split their own users' rows by time, the counts summed between them: they
+    # hold between them the one-process split row for row, ties between equal times broken by the log's order
+    # (whole minutes, so the cut-offs fall inside runs of equal times)
+    rng = np.random.default_rng(4)
+    n_orders = 400
+    order = np.repeat(np.arange(n_orders), rng.integers(1, 5, n_orders))
+    df = pd.DataFrame({"order": order, "q": rng.integers(0, 50, n_orders)[order], "c": rng.integers(0, 40, len(order)),
+                       "t": (rng.integers(0, 120, n_orders) * 60)[order]})
+    ev = EvaluationSection(split="time", test_fraction=0.2, validation_fraction=0.15)
+    grouping = (lambda d: groups_of(d, "order")) if groups else (lambda d: None)  # noqa: E731
+    one = with_sides(df, make_split(as_pairs(df), 40, ev, 0, None, False, groups=grouping(df), n_queries=50)).side
+    assert (one == "test").any() and (one == "valid").any()
+    owner = df.q.to_numpy() % 3
+    summed, got, errors = _Summed(3), pd.Series("none", index=df.index, dtype=object), []
+
+    def process(rank: int):
+        try:
+            mine = df[owner == rank]
+            split = make_split(as_pairs(mine), 40, ev, 0, None, False, groups=grouping(mine), n_queries=50,
+                               everywhere=summed.of(rank), positions=mine.index.to_numpy(np.int64) * 7 + 3)
+            got[mine.index] = with_sides(mine.reset_index(drop=True), split).side.to_numpy()
+        except BaseException as exc:  # noqa: BLE001 - shown by the assertion below
+            errors.append(exc)
+            summed.barrier.abort()
+    threads = [threading.Thread(target=process, args=(r,)) for r in range(3)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert not errors, errors
+    assert (got == one).all(), pd.crosstab(one, got)
+
+
+def test_latest_units_finds_the_n_latest_by_time_then_key():
+    # reference: numpy's lexsort over all the units at once
+    rng = np.random.default_rng(5)
+    when = rng.integers(-3, 4, 500) * (1 << 61)  # a few times near both ends of int64
+    key = rng.permutation(500).astype(np.int64)
+    order = np.lexsort((key, when))
+    for n in (0, 1, 77, 250, 499, 500):
+        want = np.zeros(500, bool)
+        want[order[500 - n:]] = True
+        assert (latest_units(when, key, n, lambda x: x) == want).all(), n
 
 
 def test_user_item_random_split_without_groups_is_the_row_split_unchanged():

@@ -105,6 +105,8 @@ class Log:
     context: pd.DataFrame | None
     group: np.ndarray | None = None  # int64 codes of the group column, one per row
     side: np.ndarray | None = None  # int8 side per row, when baskets were placed before their pairs were derived
+    # a divided log under a time split: each row's place in the whole log (its unit << 32 | row within it)
+    position: np.ndarray | None = None
     notes: list[str] = field(default_factory=list)  # what deriving or collapsing the rows did
 
     @property
@@ -177,15 +179,21 @@ def read_interactions(cfg: Config, split: bool = False, spill: Spill | None = No
     group_codes, group_values = groups.finish() if ic.group_column else (None, None)
     log = Log(IdColumn(*q.finish()), IdColumn(*c.finish()), joined["target"], joined["weight"], joined["time"],
               context, group_codes)
-    return log if shard is None else _to_owners(log, group_values, units.finish(), shard, spill)
+    if shard is None:
+        return log
+    return _to_owners(log, group_values, units.finish(), shard, spill,
+                      with_positions=cfg.evaluation.split == "time" and log.time is not None)
 
 
-def _to_owners(log: Log, group_values: np.ndarray | None, unit: np.ndarray, shard: Shard, spill: Spill) -> Log:
+def _to_owners(log: Log, group_values: np.ndarray | None, unit: np.ndarray, shard: Shard, spill: Spill,
+               with_positions: bool = False) -> Log:
     """This process's share of the log (its units) as its users' rows of the whole log, in the log's order.
 
     The ids are numbered alike in every process (shards.merged_ids), each row goes to its user's process
     (collective.Exchange), and the rows arrive grouped by the process that read them; sorting them by
     unit puts them back in the log's order (a unit's rows come from one process, in order).
+    with_positions: the rows also carry their place in the whole log (Log.position), which a time split
+    over every process's rows needs to break ties between rows of one time as one process would.
     """
     def numbered(codes, uniques):
         ids = merged_ids(codes, uniques, unit)
@@ -197,7 +205,10 @@ def _to_owners(log: Log, group_values: np.ndarray | None, unit: np.ndarray, shar
     log.candidate_ids = None
     g_codes = None if log.group is None else numbered(log.group, group_values)[0]
     columns = {"query": q_codes, "candidate": c_codes, "target": log.target, "weight": log.weight, "time": log.time,
-               "group": g_codes}
+               "group": g_codes, "position": None}
+    if with_positions:  # the unit, then the row within it: increasing along the whole log
+        within = np.arange(len(unit), dtype=np.int64) - np.searchsorted(unit, unit, side="left")
+        columns["position"] = (unit.astype(np.int64) << 32) | within
     log = q_codes = c_codes = g_codes = None  # each column is freed once it is sent
     exchange = Exchange(spill.lookup(owners(q_ids, shard.world).astype(np.int16), columns["query"]))  # int16: a radix sort
     arrived = exchange(unit)
@@ -210,7 +221,7 @@ def _to_owners(log: Log, group_values: np.ndarray | None, unit: np.ndarray, shar
             columns[name] = spill.copy(here) if spill.on_disk else here
             del values, here
     return Log(IdColumn(columns["query"], q_ids), IdColumn(columns["candidate"], c_ids), columns["target"],
-               columns["weight"], columns["time"], None, columns["group"])
+               columns["weight"], columns["time"], None, columns["group"], position=columns["position"])
 
 
 LOG_PIECE_ROWS = 1_000_000  # rows of the log read at a time: a piece is tens of MB, not the whole log
@@ -364,8 +375,9 @@ def prepare(cfg: Config, previous=None, trained_before: TrainedBefore | None = N
                      f"come from the other {total - kept:,}")
     split: Split = make_split(pairs, len(c_ids), cfg.evaluation, cfg.run.seed, cold_eligible=cold_items,
                               item_item=item_item, groups=groups, n_queries=len(q_ids), cold_user_eligible=cold_users,
-                              sides=sel(log.side), everywhere=everywhere, trained_before=fixed)
-    fixed = None
+                              sides=sel(log.side), everywhere=everywhere, trained_before=fixed,
+                              positions=sel(log.position))
+    fixed = log.position = None
     if everywhere(len(split.train)) == 0:
         raise TowersError(f"{ic.path}: the split leaves no training pairs; lower evaluation fractions or add data")
     context_encoders = None

@@ -81,7 +81,8 @@ class TrainedBefore:
 def make_split(pairs, n_items: int, ev: EvaluationSection, seed: int, cold_eligible: HoldOut | None,
                item_item: bool, groups: np.ndarray | None = None, n_queries: int | None = None,
                cold_user_eligible: HoldOut | None = None, sides: np.ndarray | None = None,
-               everywhere=lambda seen: seen, trained_before: np.ndarray | None = None) -> Split:
+               everywhere=lambda seen: seen, trained_before: np.ndarray | None = None,
+               positions: np.ndarray | None = None) -> Split:
     """Split pairs per the evaluation config; the same seed and data always give the same split.
 
     groups: one code per pair (the log's group column), or None. n_queries: rows of the query catalog
@@ -95,7 +96,9 @@ def make_split(pairs, n_items: int, ev: EvaluationSection, seed: int, cold_eligi
     on (a warm start): they stay in training, with every pair of their units, and the warm split places
     only the other units, its fractions taken of those, so no held-out pair is one the starting weights
     learned. With `sides` given (orders placed whole before pairing), such pairs move to training on their
-    own and the rest of their order keeps its side.
+    own and the rest of their order keeps its side. positions: each pair's place in the whole log, increasing
+    with it, when the log is divided among processes: a time split then cuts every process's units at one
+    time, with the whole log's order breaking ties, as one process reading the whole log would.
     """
     rng = np.random.default_rng(seed + 1)
     q = pairs.query.numpy()
@@ -133,24 +136,40 @@ def make_split(pairs, n_items: int, ev: EvaluationSection, seed: int, cold_eligi
     unit = split_units(of_rest(q), of_rest(c), None if groups is None else of_rest(groups), item_item) \
         if item_item or groups is not None else len(rest)
     when = None if pairs.time is None else of_rest(pairs.time.numpy())
+    whole = None if positions is None else WholeLog(of_rest(np.asarray(positions)), everywhere)
     if fixed is not None and fixed.any():
-        side = _sides_around(fixed, unit, of_rest(q), when, ev, rng)
+        side = _sides_around(fixed, unit, of_rest(q), when, ev, rng, whole)
     else:
-        side = _unit_sides(unit, of_rest(q), when, ev, rng)
+        side = _unit_sides(unit, of_rest(q), when, ev, rng, whole=whole)
     return Split(rest[side == TRAIN], rest[side == VALID], rest[side == TEST], cold_test, torch.from_numpy(cold_items),
                  cold_user_test, torch.from_numpy(cold_users))
 
 
+@dataclass
+class WholeLog:
+    """A divided log's rows as parts of the whole (data/shards.py): each row's place in the whole log and
+    `summed`, which adds a count over the processes."""
+
+    positions: np.ndarray  # int64, one per row, increasing with the row's place in the whole log
+    summed: object
+
+    def part(self, rows: np.ndarray) -> "WholeLog":
+        return WholeLog(self.positions[rows], self.summed)
+
+
 def _unit_sides(unit: np.ndarray | int, q: np.ndarray, when: np.ndarray | None, ev: EvaluationSection,
-                rng, trained: np.ndarray | None = None) -> np.ndarray:
-    """Each row's side under the configured warm split (trained: as _per_user_sides takes it)."""
+                rng, trained: np.ndarray | None = None, whole: WholeLog | None = None) -> np.ndarray:
+    """Each row's side under the configured warm split (trained: as _per_user_sides takes it; whole: the
+    rows' places in a divided log, for a time split over every process's units)."""
     if ev.split in PER_USER_SPLITS:
         return _per_user_sides(unit, q, when, ev, rng, trained)
+    if ev.split == "time" and when is not None and whole is not None:
+        return _whole_log_time_sides(unit, when, ev, whole)
     return global_sides(unit, when, ev, rng)
 
 
 def _sides_around(fixed: np.ndarray, unit: np.ndarray | int, q: np.ndarray, when: np.ndarray | None,
-                  ev: EvaluationSection, rng) -> np.ndarray:
+                  ev: EvaluationSection, rng, whole: WholeLog | None = None) -> np.ndarray:
     """Each row's side when the rows in `fixed` must train: every unit holding such a row trains whole,
     and the configured split places the other units among themselves."""
     if not isinstance(unit, int):
@@ -163,7 +182,8 @@ def _sides_around(fixed: np.ndarray, unit: np.ndarray | int, q: np.ndarray, when
         sub = len(free) if isinstance(unit, int) else np.unique(unit[free], return_inverse=True)[1].reshape(-1)
         trained = np.zeros(int(q.max(initial=-1)) + 1, dtype=bool)
         trained[q[fixed]] = True  # these users train on their fixed rows: all their other units may be held out
-        side[free] = _unit_sides(sub, q[free], None if when is None else when[free], ev, rng, trained)
+        side[free] = _unit_sides(sub, q[free], None if when is None else when[free], ev, rng, trained,
+                                 None if whole is None else whole.part(free))
     return side
 
 
@@ -276,6 +296,57 @@ def global_sides(unit: np.ndarray | int, when: np.ndarray | None, ev: Evaluation
         unit_side[order[:n_test]] = TEST
         unit_side[order[n_test:n_test + n_valid]] = VALID
     return unit_side if isinstance(unit, int) else unit_side[unit]
+
+
+def _whole_log_time_sides(unit: np.ndarray | int, when: np.ndarray, ev: EvaluationSection,
+                          whole: WholeLog) -> np.ndarray:
+    """global_sides' time split of every process's units, made in each process for its own: the counts are of
+    the whole log's units, and a unit is the later of two at one time when its first row comes later in the
+    log, so the processes place between them exactly the units one process would (global_sides' stable sort
+    by time keeps the log's order among equal times)."""
+    n_units = _unit_count(unit)
+    when_unit = _unit_time(unit, n_units, when)
+    key = whole.positions if isinstance(unit, int) else whole.positions[_unit_first_row(unit, n_units)]
+    total = int(whole.summed(n_units))
+    n_test = int(round(ev.test_fraction * total))
+    n_valid = int(round(ev.validation_fraction * (total - n_test)))
+    unit_side = np.full(n_units, TRAIN, dtype=np.int8)
+    test = latest_units(when_unit, key, n_test, whole.summed)
+    unit_side[test] = TEST
+    rest = np.flatnonzero(~test)
+    unit_side[rest[latest_units(when_unit[rest], key[rest], n_valid, whole.summed)]] = VALID
+    return unit_side if isinstance(unit, int) else unit_side[unit]
+
+
+def latest_units(when: np.ndarray, key: np.ndarray, n: int, summed) -> np.ndarray:
+    """Which of this process's units are among the n latest of all processes' units, by (time, key); the
+    keys are distinct over all processes. No unit leaves its process: a bisection finds the cut-off time
+    (the latest with at least n units at or after it), then one among the keys of the units at that time,
+    each step a count summed over the processes: 2 x 64 sums of one number."""
+    if n <= 0:
+        return np.zeros(len(when), dtype=bool)
+    if n >= int(summed(len(when))):
+        return np.ones(len(when), dtype=bool)
+    cut = _last_with_count(when, n, summed)
+    out = when > cut
+    at_cut = np.flatnonzero(when == cut)
+    wanted = n - int(summed(int(out.sum())))  # >= 1 by the choice of cut
+    out[at_cut[key[at_cut] >= _last_with_count(key[at_cut], wanted, summed)]] = True
+    return out
+
+
+def _last_with_count(values: np.ndarray, n: int, summed) -> int:
+    """The largest whole number v with at least n of all processes' int64 values >= v (n >= 1 and at most
+    their count)."""
+    lo, hi = -(1 << 63), (1 << 63) - 1
+    values = values.astype(np.int64, copy=False)
+    while lo < hi:
+        mid = (lo + hi + 1) // 2
+        if int(summed(int(np.count_nonzero(values >= mid)))) >= n:
+            lo = mid
+        else:
+            hi = mid - 1
+    return lo
 
 
 def _per_user_sides(unit: np.ndarray | int, q: np.ndarray, when: np.ndarray | None, ev: EvaluationSection,
