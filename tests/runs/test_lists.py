@@ -335,6 +335,18 @@ def test_recommend_rows_of_new_users(basket_run, small_store, today):
         assert got.loc[got["query_id"] == f"row {r + 1}", "item_id"].tolist() == i_ids[best].tolist()
 
 
+@pytest.mark.slow
+def test_recommend_rows_of_known_users_leave_out_their_items_as_recommend_does(basket_run, small_store):
+    # a row naming a customer of the run embeds as that customer (the learned row): a trial saw an article the
+    # reader had read come first; reference: recommend on the same ids, which leaves the known pairs out
+    run = towers.load(basket_run)
+    users = pd.read_csv(small_store / "customers.csv").head(4)
+    got = run.recommend_rows(users, top=10)
+    want = run.recommend(users["customer_id"].tolist(), top=10)
+    assert got["item_id"].tolist() == want["item_id"].tolist()
+    np.testing.assert_allclose(got["score"], want["score"], rtol=1e-5, atol=1e-5)
+
+
 @pytest.mark.slow  # trains a tiny run with histories on first use
 def test_recommend_rows_with_a_history_column_equal_recommend_history(tiny_runs):
     run = towers.load(tiny_runs.train(model={"history_length": 4}, training={"loss": "softmax", "negatives": 32}))
@@ -422,7 +434,34 @@ def test_a_rewritten_item_table_is_read_again(basket_run, small_store, tmp_path)
 def test_a_value_filter_that_matches_no_item_warns_with_the_values_present(shop_table):
     path, table = shop_table
     keep = ItemFilter.from_dict({"only_values": {"department": ["Garden"]}})  # the table says "garden"
-    with pytest.warns(UserWarning, match=r"column 'department': no item has 'Garden', so nothing passes this filter; "
-                                         r"values present: 'garden', 'lighting', 'paint', 'tools'"):
+    with pytest.warns(UserWarning, match=r"column 'department': no item has 'Garden' \(did you mean 'garden'\?\), so "
+                                         r"nothing passes this filter; values present: 'garden', 'lighting', 'paint', "
+                                         r"'tools'"):
         lists = item_lists(table["item_id"].to_numpy(), keep, (), path, "item_id", "no table")
     assert lists.allowed is not None and len(lists.allowed) == 0
+
+
+def test_each_filter_value_that_matches_no_item_is_named_never_values_too(shop_table):
+    # a never filter that matches nothing removes nothing: silent, archived items would be listed
+    path, table = shop_table
+    ids = table["item_id"].to_numpy()
+    keep = ItemFilter.from_dict({"only_values": {"department": ["garden", "roofing"]},
+                                 "never_values": {"brand": ["fernleaf", "Boltwright"]}})
+    with pytest.warns(UserWarning) as caught:
+        lists = item_lists(ids, keep, (), path, "item_id", "no table")
+    said = [str(w.message) for w in caught]
+    assert any("no item has 'roofing', so only the other values pass" in m for m in said), said
+    assert any("no item has 'fernleaf' (did you mean 'Fernleaf'?), so the never filter removes nothing for it" in m
+               for m in said), said
+    want = (table["department"] == "garden") & (table["brand"] != "Boltwright")  # reference: pandas
+    assert set(ids[lists.allowed.numpy()]) == set(table.loc[want, "item_id"])
+
+
+@pytest.mark.parametrize("written", ["True", "TRUE", "true", "1"])
+def test_a_boolean_column_is_filtered_by_true_however_it_is_written(shop_table, written):
+    # a CSV of True/False shows 'True' in --columns: --never in_stock=True must then leave those items out
+    path, table = shop_table
+    ids = table["item_id"].to_numpy()
+    for kind, want in (("never_values", ~table["in_stock"]), ("only_values", table["in_stock"])):
+        lists = item_lists(ids, ItemFilter.from_dict({kind: {"in_stock": [written]}}), (), path, "item_id", "no table")
+        assert set(ids[lists.allowed.numpy()]) == set(table.loc[want, "item_id"]), kind

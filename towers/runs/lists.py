@@ -188,17 +188,43 @@ class ItemTable:
             ok &= self._true(name)
         for name, values in keep.only_values:
             text = self._text(name)
-            matched = text.isin(values).to_numpy()
-            if not matched.any():  # most often a spelling or a case: say which values the column holds
-                present = sorted(pd.unique(text.dropna()).tolist())
-                sample = ", ".join(repr(v) for v in present[:12]) + (", ..." if len(present) > 12 else "")
-                warnings.warn(f"{where(self.path, shown(name))}: no item has {' or '.join(map(repr, values))}, so "
-                              f"nothing passes this filter; values present: {sample or 'none'} (matched as written)",
-                              stacklevel=2)
-            ok &= matched
+            values = self._given(name, values)
+            self._warn_unmatched(name, text, values, "only")
+            ok &= text.isin(values).to_numpy()
         for name, values in keep.never_values:
-            ok &= ~self._text(name).isin(values).to_numpy()
+            text = self._text(name)
+            values = self._given(name, values)
+            self._warn_unmatched(name, text, values, "never")
+            ok &= ~text.isin(values).to_numpy()
         return ok
+
+    def _given(self, name: str, values: tuple[str, ...]) -> tuple[str, ...]:
+        """The filter's values as the column's are compared: in a boolean column True, TRUE, 1 ... are true."""
+        series = self._frame[name]
+        if not (pd.api.types.is_bool_dtype(series) or (series.dtype == object
+                                                        and series.map(type).isin((bool, np.bool_)).any())):
+            return values
+        spelled = {"true": "true", "1": "true", "false": "false", "0": "false"}
+        return tuple(spelled.get(v.strip().lower(), v) for v in values)
+
+    def _warn_unmatched(self, name: str, text: pd.Series, values: tuple[str, ...], kind: str) -> None:
+        """A warning naming each filter value no item of the run has (a spelling, a case, a stray space), with
+        the value the column holds in another case where there is one, and what the filter then does."""
+        present = pd.unique(text.dropna())
+        missing = [v for v in values if v not in set(present)]
+        if not missing:
+            return
+        by_case = {str(v).casefold().strip(): v for v in present}
+        hints = [f"{v!r} (did you mean {by_case[v.casefold().strip()]!r}?)" if v.casefold().strip() in by_case
+                 else repr(v) for v in missing]
+        listed = sorted(present.tolist())
+        sample = ", ".join(repr(v) for v in listed[:12]) + (", ..." if len(listed) > 12 else "")
+        if kind == "only":
+            effect = "so nothing passes this filter" if len(missing) == len(values) else "so only the other values pass"
+        else:
+            effect = "so the never filter removes nothing for " + ("it" if len(missing) == 1 else "them")
+        warnings.warn(f"{where(self.path, shown(name))}: no item has {' or '.join(hints)}, {effect}; values present: "
+                      f"{sample or 'none'} (matched as written)", stacklevel=3)
 
     def _true(self, name: str) -> np.ndarray:
         series = self._frame[name]
@@ -503,13 +529,23 @@ def recommend_rows(run, df: pd.DataFrame, top: int, history_column: str | None, 
     lists = lists_for(run, columns, keep, item_table)
     df = _row_ids(df.reset_index(drop=True), run.bundle.query_encoders.id_column)
     embedded = run.embed_users(df, source, history_column=history_column, separator=separator)
-    ex_r = ex_c = None
+    cells = [np.zeros((0, 2), dtype=np.int64)]  # (row of df, item row) left out of that row's list
     if history_column is not None:  # every given item of the run is left out, as recommend_history does
         ids, at_row = history_ids(df[history_column], source, history_column, separator)
         item_ids = run.embeddings("item")[0]
         at = positions_in(item_ids, ids)
-        cells = np.unique(np.stack([at_row[at >= 0], at[at >= 0]], 1), axis=0)  # sorted by row, each cell once
-        ex_r, ex_c = (torch.from_numpy(np.ascontiguousarray(cells[:, j], dtype=np.int64)) for j in (0, 1))
+        cells.append(np.stack([at_row[at >= 0], at[at >= 0]], 1))
+    if not run.item_item:  # a row naming a user of the run embeds as that user: its known items are left out too
+        enc = run.bundle.query_encoders
+        at = positions_in(run.embeddings(run._query_side())[0], run._embed_ids(df[enc.id_column], enc, source)[1])
+        named = np.flatnonzero(at >= 0)
+        if len(named):
+            known_q, known_c = run.known_pairs()
+            offsets, items = known_by_query(known_q, known_c, len(run.embeddings(run._query_side())[0]))
+            rank, item = block_exclusions(torch.from_numpy(at[named].astype(np.int64)), offsets, items)
+            cells.append(np.stack([named[rank.numpy()], item.numpy()], 1))
+    cells = np.unique(np.concatenate(cells).astype(np.int64), axis=0)  # sorted by row, each cell once
+    ex_r, ex_c = (torch.from_numpy(np.ascontiguousarray(cells[:, j])) for j in (0, 1))
     idx, scores = lists.top(_run_scorer(run, embedded.attrs["vectors"], embedded.attrs["bias"]), top, ex_r, ex_c)
     return lists.frame(embedded["id"].to_numpy(), idx, scores)
 
