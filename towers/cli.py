@@ -136,6 +136,9 @@ def _parser() -> argparse.ArgumentParser:
     v.add_argument("--item-table", metavar="FILE",
                    help="the item table that item columns and filters read, again when the file changes (default: the "
                         "run's config items.path)")
+    v.add_argument("--new-items", metavar="FILE",
+                   help="items not in the run, given by feature rows: embedded once at start and served beside the "
+                        "run's items")
 
     d = sub.add_parser("demo-data", help="generate the fictional hardware-and-garden store data")
     d.add_argument("--out", required=True, help="folder to write the demo tables into")
@@ -159,6 +162,9 @@ def _list_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--item-table", metavar="FILE",
                    help="the item table that --columns and the filters read (default: the run's config items.path), "
                         "e.g. today's table with its stock column")
+    p.add_argument("--new-items", metavar="FILE",
+                   help="items not in the run, given by feature rows (CSV or parquet, with the item id column): "
+                        "embedded from their features and listed beside the run's items")
 
 
 def _item_filter(args: argparse.Namespace) -> api.ItemFilter:
@@ -274,7 +280,7 @@ def run(args: argparse.Namespace) -> int:
         from towers import service  # FastAPI and uvicorn are imported only when a server starts
 
         service.serve(args.run_dir, args.host, args.port, args.threads, args.item_table,
-                      announce=lambda line: print(line, flush=True))
+                      announce=lambda line: print(line, flush=True), new_items=args.new_items)
         return 0
     if args.command == "report":
         print(f"wrote {api.write_report(args.run_dir)}")
@@ -290,6 +296,8 @@ def run(args: argparse.Namespace) -> int:
     if args.command in ("recommend", "similar") and args.out:
         _check_frame_out(args.out)
     run_ = api.load(args.run_dir)
+    if getattr(args, "new_items", None):  # recommend, similar, lists
+        run_ = run_.with_new_items(args.new_items)
     if args.command == "evaluate":
         result = run_.evaluate(args.interactions)
         for note in result["notes"]:

@@ -347,6 +347,57 @@ def test_recommend_rows_of_known_users_leave_out_their_items_as_recommend_does(b
     np.testing.assert_allclose(got["score"], want["score"], rtol=1e-5, atol=1e-5)
 
 
+@pytest.mark.slow
+def test_new_items_are_listed_beside_the_run_items_with_their_embedded_scores(basket_run, small_store):
+    # a magazine's new articles or a shop's arrivals, never trained on: embedded from features and ranked with the rest
+    run = towers.load(basket_run)
+    arrivals = pd.read_parquet(small_store / "new_items.parquet")
+    grown = run.with_new_items(small_store / "new_items.parquet")
+    i_ids = run.embeddings("item")[0]
+    assert len(grown.embeddings("item")[0]) == len(i_ids) + len(arrivals)
+    users = run.embeddings("user")[0][:3]
+    every = len(i_ids) + len(arrivals)
+    got = grown.recommend(users, top=every, columns=["name"])  # every item but the known ones
+    # reference: the user vectors and `embed`'s vectors of the arrivals, scored by hand
+    new = run.embed_items(arrivals)
+    _, uv, ub, meta = run.embeddings("user")
+    scale, g = 1.0 / float(meta.get("temperature", 1.0)), float(meta.get("global_bias", 0.0))
+    hand = (uv[:3] @ torch.tensor(np.stack(new["embedding"])).T * scale + torch.tensor(new["bias"].to_numpy())
+            + ub[:3, None] + g).numpy()
+    for r, user in enumerate(users):
+        mine = got[(got["query_id"] == user) & got["item_id"].isin(arrivals["item_id"])].set_index("item_id")
+        assert len(mine) == len(arrivals)  # no arrival is a known item of anyone
+        np.testing.assert_allclose(mine.loc[arrivals["item_id"], "score"], hand[r], rtol=1e-5, atol=1e-5)
+        assert mine["name"].tolist() == arrivals.set_index("item_id").loc[mine.index, "name"].tolist()  # from the rows
+        # the run's own items keep their lists and scores
+        old = run.recommend([user], top=20)
+        kept = got[(got["query_id"] == user) & ~got["item_id"].isin(arrivals["item_id"])].head(20)
+        assert kept["item_id"].tolist() == old["item_id"].tolist()
+    # an arrival is asked about by its id, as any item is
+    assert len(grown.similar([arrivals["item_id"].iloc[0]], top=3)) == 3
+    # rows naming items of the run keep their trained vectors, with a warning; the run itself is unchanged
+    with pytest.warns(UserWarning, match=r"2 of the 22 rows are items of this run already"):
+        again = run.with_new_items(pd.concat([arrivals, pd.read_parquet(small_store / "items.parquet").head(2)]))
+    assert len(again.embeddings("item")[0]) == len(i_ids) + len(arrivals)
+    assert len(run.embeddings("item")[0]) == len(i_ids)
+    with pytest.raises(TowersError, match="duplicate id"):
+        run.with_new_items(pd.concat([arrivals, arrivals.head(1)]))
+
+
+@pytest.mark.slow
+def test_cli_lists_new_items(basket_run, small_store, tmp_path, capsys):
+    arrivals = pd.read_parquet(small_store / "new_items.parquet")
+    out = tmp_path / "tonight.parquet"
+    assert cli(["lists", str(basket_run), "--out", str(out), "--top", "5", "--new-items",
+                str(small_store / "new_items.parquet"), "--only", f"department={arrivals['department'].iloc[0]}",
+                "--columns", "name"]) == 0
+    got = pd.read_parquet(out)
+    want = towers.load(basket_run).with_new_items(arrivals).recommend(
+        towers.load(basket_run).embeddings("user")[0], top=5, columns=["name"],
+        keep=ItemFilter.from_dict({"only_values": {"department": [arrivals["department"].iloc[0]]}}))
+    assert got["item_id"].tolist() == want["item_id"].tolist() and got["item_id"].isin(arrivals["item_id"]).any()
+
+
 @pytest.mark.slow  # trains a tiny run with histories on first use
 def test_recommend_rows_with_a_history_column_equal_recommend_history(tiny_runs):
     run = towers.load(tiny_runs.train(model={"history_length": 4}, training={"loss": "softmax", "negatives": 32}))

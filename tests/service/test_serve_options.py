@@ -52,3 +52,25 @@ def test_the_listening_socket_says_tcp():
         assert sock.proto == socket.IPPROTO_TCP  # reference: asyncio base_events._set_nodelay's condition
     finally:
         sock.close()
+
+
+class _Served(Exception):
+    """Raised in place of building the app: the test has what serve would serve."""
+
+
+@pytest.mark.slow  # trains the tiny run on first use
+def test_serve_new_items_serves_the_run_with_them(tiny_runs, small_store, monkeypatch, capsys):
+    from towers.service import app as service_app
+
+    served = {}
+
+    def capture(run, threads, item_table=None):
+        served["run"] = run
+        raise _Served
+    monkeypatch.setattr(service_app, "make_app", capture)
+    new_items = small_store / "new_items.parquet"
+    with pytest.raises(_Served):
+        towers.service.serve(tiny_runs.train(), port=0, new_items=new_items)
+    # reference: the Run API's own view with the new items (tests/runs/test_lists.py checks its scores)
+    want = towers.load(tiny_runs.train()).with_new_items(new_items)
+    assert (served["run"].embeddings("item")[0] == want.embeddings("item")[0]).all()

@@ -156,7 +156,9 @@ class ItemTable:
     `present[r]` says whether the table holds item r; the columns hold missing values where not.
     """
 
-    def __init__(self, path: str | Path, id_column: str, item_ids: np.ndarray, columns: Sequence[str]):
+    def __init__(self, path: str | Path, id_column: str, item_ids: np.ndarray, columns: Sequence[str],
+                 extra: pd.DataFrame | None = None):
+        """extra: rows of items the file lacks (a run's new items, Run.with_new_items), read after its own."""
         self.path = Path(path)
         names = table_columns(self.path)
         wanted = list(dict.fromkeys([id_column] + list(columns)))
@@ -168,6 +170,13 @@ class ItemTable:
         table = read_table(self.path, columns=wanted, ids=[id_column])
         ids = normalise_ids(table[id_column], self.path, id_column)
         check_unique_ids(ids, self.path, id_column)
+        if extra is not None and id_column in extra.columns:
+            more_ids = normalise_ids(extra[id_column], "new items", id_column)
+            lacking = table_rows(ids, more_ids) < 0  # each new row: not in the file
+            more = extra.loc[lacking, [c for c in wanted if c in extra.columns]]
+            table = pd.concat([table, more], ignore_index=True)
+            ids = np.concatenate([ids.astype(object), more_ids[lacking].astype(object)]) \
+                if ids.dtype != more_ids.dtype else np.concatenate([ids, more_ids[lacking]])
         rows = table_rows(ids, item_ids)
         self.present = rows >= 0
         self._frame = table
@@ -335,11 +344,13 @@ def _id_array(values: np.ndarray, like: np.ndarray) -> pa.Array:
 
 
 def item_lists(item_ids: np.ndarray, keep: ItemFilter | None, columns: Sequence[str], table_path, id_column,
-               default_note: str, cache: dict | None = None) -> Lists:
+               default_note: str, cache: dict | None = None, extra: pd.DataFrame | None = None) -> Lists:
     """The allowed items and item columns for a run's catalog (item_ids), reading the item table only when
     `columns` or a table condition of `keep` needs it. table_path / id_column: the table to read;
     default_note: what to tell the user when no table is known. cache: a dict that keeps the last table
-    read, reused while the file's size and modification time stay the same (a service lists many times)."""
+    read, reused while the file's size and modification time stay the same (a service lists many times).
+    extra: feature rows of items added to the run (Run.with_new_items), whose columns are read from them
+    where the table lacks the item."""
     keep = keep or ItemFilter()
     if not isinstance(keep, ItemFilter):
         raise TowersError(f"keep: expected an ItemFilter (ItemFilter.from_dict builds one), got {type(keep).__name__}")
@@ -354,7 +365,7 @@ def item_lists(item_ids: np.ndarray, keep: ItemFilter | None, columns: Sequence[
         if clash:
             raise TowersError(f"column {clash[0]!r}: the lists already have a column of that name; "
                               f"choose item columns other than {', '.join(LIST_COLUMNS)}")
-        table = _cached_table(cache, table_path, id_column, item_ids, needed)
+        table = _cached_table(cache, table_path, id_column, item_ids, needed, extra)
         lacking = int((~table.present).sum())
         if keep.columns():
             allowed &= table.allowed(keep)
@@ -378,15 +389,16 @@ def item_lists(item_ids: np.ndarray, keep: ItemFilter | None, columns: Sequence[
     return Lists(item_ids, rows, out)
 
 
-def _cached_table(cache: dict | None, path, id_column: str, item_ids: np.ndarray, needed: list[str]) -> ItemTable:
+def _cached_table(cache: dict | None, path, id_column: str, item_ids: np.ndarray, needed: list[str],
+                  extra: pd.DataFrame | None = None) -> ItemTable:
     try:
         info = Path(path).stat()
     except OSError:
-        return ItemTable(path, id_column, item_ids, needed)  # read_table names the problem
+        return ItemTable(path, id_column, item_ids, needed, extra)  # read_table names the problem
     key = (str(Path(path).resolve()), info.st_mtime_ns, info.st_size, id_column, tuple(sorted(needed)))
     entry = None if cache is None else cache.get("entry")  # (key, table) as one value: threads may share the cache
     if entry is None or entry[0] != key:
-        entry = (key, ItemTable(path, id_column, item_ids, needed))
+        entry = (key, ItemTable(path, id_column, item_ids, needed, extra))
         if cache is not None:
             cache["entry"] = entry
     return entry[1]
@@ -498,7 +510,8 @@ def lists_for(run, columns: Sequence[str] = (), keep: ItemFilter | None = None, 
         id_column = run.config.interactions.candidate_column
     note = (f"{run.dir}: this run has no item table (config items.path), so item columns and column filters have "
             "nothing to read; name one with --item-table FILE (item_table=)")
-    return item_lists(run.embeddings("item")[0], keep, columns, path, id_column, note, run.item_table_cache)
+    return item_lists(run.embeddings("item")[0], keep, columns, path, id_column, note, run.item_table_cache,
+                      run.new_item_rows)
 
 
 def check_top(run, top) -> None:
@@ -512,7 +525,7 @@ def _run_scorer(run, vectors: torch.Tensor, bias: torch.Tensor | None) -> Scorer
     return Scorer(vectors, base.item_vectors, bias, base.item_bias, base.global_bias, base.scale)
 
 
-def _row_ids(df: pd.DataFrame, id_column: str | None) -> pd.DataFrame:
+def row_ids(df: pd.DataFrame, id_column: str | None) -> pd.DataFrame:
     """Feature rows without an id column get the ids "row 1", "row 2", ... (unknown to the run: the unknown row)."""
     if id_column is None or id_column in df.columns:
         return df
@@ -527,7 +540,7 @@ def recommend_rows(run, df: pd.DataFrame, top: int, history_column: str | None, 
         raise TowersError(f"{source}: expected a table of user feature rows (a pandas DataFrame), got "
                           f"{type(df).__name__}")
     lists = lists_for(run, columns, keep, item_table)
-    df = _row_ids(df.reset_index(drop=True), run.bundle.query_encoders.id_column)
+    df = row_ids(df.reset_index(drop=True), run.bundle.query_encoders.id_column)
     embedded = run.embed_users(df, source, history_column=history_column, separator=separator)
     cells = [np.zeros((0, 2), dtype=np.int64)]  # (row of df, item row) left out of that row's list
     if history_column is not None:  # every given item of the run is left out, as recommend_history does
@@ -561,11 +574,11 @@ def similar_rows(run, df: pd.DataFrame, top: int, columns, keep, item_table, sou
     m = run.bundle.model
     if run.item_item:  # the trained pair score: the new items through the query side
         enc = run.bundle.query_encoders
-        df = _row_ids(df.reset_index(drop=True), enc.id_column)
+        df = row_ids(df.reset_index(drop=True), enc.id_column)
         embedded = run._embed(df, enc, m.query_tower, m.query_bias if m.use_biases else None, source)
         scorer = _run_scorer(run, embedded.attrs["vectors"], embedded.attrs["bias"])
     else:  # cosine similarity of item vectors
-        df = _row_ids(df.reset_index(drop=True), run.bundle.candidate_encoders.id_column)
+        df = row_ids(df.reset_index(drop=True), run.bundle.candidate_encoders.id_column)
         embedded = run.embed_items(df, source)
         unit = torch.nn.functional.normalize(i_vec, dim=1)
         scorer = Scorer(torch.nn.functional.normalize(embedded.attrs["vectors"], dim=1), unit)

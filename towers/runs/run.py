@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import copy
 import dataclasses
 import re
 import warnings
@@ -32,6 +33,7 @@ from towers.data.pairs import Pairs
 from towers.data.prepare import read_interactions
 from towers.data.tables import (
     align_id_types,
+    check_unique_ids,
     given_ids,
     normalise_ids,
     padded_form,
@@ -107,6 +109,7 @@ class Run:
         self._emb = {}
         self._history_cache = None
         self.item_table_cache = {}  # lists.py: the item table that columns and filters read, kept while unchanged
+        self.new_item_rows: pd.DataFrame | None = None  # with_new_items: the feature rows of the items added
 
     # ---- saved state -------------------------------------------------------------------------
     @property
@@ -127,6 +130,69 @@ class Run:
 
     def _query_side(self) -> str:
         return "query" if self.item_item else "user"
+
+    def with_new_items(self, rows: pd.DataFrame | str | Path, source: str | None = None) -> "Run":
+        """This run with items it has never seen added to its catalog: each row (a DataFrame, or a CSV or parquet
+        file whose ids are read as written) with the id column and the run's item feature columns, as
+        embed_items reads them, embedded from its features alone, as `embed` embeds it. recommend, similar and
+        the lists of the returned Run rank them beside the run's items (in an item_item run they are queries
+        too, through the query tower), and item columns the item table lacks for them are read from these rows.
+        Rows naming an item of the run keep its trained vector (a warning counts them); the run folder is not
+        changed."""
+        ids, vectors, bias, meta = self.embeddings("item")
+        id_column = self.bundle.candidate_encoders.id_column
+        if isinstance(rows, (str, Path)):
+            source = source or str(rows)
+            rows = read_table(rows, ids=[id_column] if id_column else ())
+        source = source or "new items"
+        if not isinstance(rows, pd.DataFrame):
+            raise TowersError(f"{source}: expected a table of item feature rows (a pandas DataFrame or a file), got "
+                              f"{type(rows).__name__}")
+        df = rows
+        if id_column is not None and id_column not in df.columns:
+            raise TowersError(f"{source}: new items need their ids in a column {id_column!r} (the run's item id "
+                              "column), so lists can name them")
+        df = df.reset_index(drop=True)
+        added = self.embed_items(df, source)
+        new_ids = added["id"].to_numpy()
+        if ids.dtype.kind in "iu" and new_ids.dtype.kind not in "iu" and len(new_ids):
+            raise TowersError(f"{source}: this run's item ids are whole numbers, but {plain(new_ids[0])!r} is not; "
+                              "give new items whole-number ids")
+        check_unique_ids(new_ids, source, id_column)
+        fresh = positions_in(ids, new_ids) < 0
+        if not fresh.all():
+            first = plain(new_ids[np.flatnonzero(~fresh)[0]])
+            warnings.warn(f"{source}: {int((~fresh).sum())} of the {len(new_ids)} rows are items of this run already "
+                          f"(e.g. {first!r}); they keep their trained vectors", stacklevel=2)
+        keep = torch.from_numpy(np.flatnonzero(fresh))
+        n_new = len(keep)
+        joined = np.concatenate([ids, new_ids[fresh].astype(ids.dtype)]) if ids.dtype.kind in "iu" else \
+            np.concatenate([ids.astype(object), new_ids[fresh].astype(object)])
+
+        def extended(side_vectors, side_bias, more_vectors, more_bias):
+            more_bias = None if side_bias is None else (more_bias if more_bias is not None else torch.zeros(n_new))
+            return (torch.cat([side_vectors, more_vectors.index_select(0, keep)]),
+                    None if side_bias is None else torch.cat([side_bias, more_bias.index_select(0, keep)]))
+
+        view = copy.copy(self)  # the bundle, config and pairs shared; the embeddings and caches its own
+        view._emb = dict(self._emb)
+        view.item_table_cache = {}
+        view._history_cache = None
+        view.new_item_rows = df.iloc[np.flatnonzero(fresh)] if self.new_item_rows is None else \
+            pd.concat([self.new_item_rows, df.iloc[np.flatnonzero(fresh)]], ignore_index=True)
+        view._emb[("item", TOWERS)] = (joined, *extended(vectors, bias, added.attrs["vectors"], added.attrs["bias"]),
+                                       meta)
+        if self.item_item:  # the new items as queries: the query tower on the same rows (a shared tower's is the item)
+            q_ids, q_vectors, q_bias, q_meta = self.embeddings("query")
+            m = self.bundle.model
+            if m.shared:
+                view._emb[("query", TOWERS)] = view._emb[("item", TOWERS)]
+            else:
+                enc = self.bundle.query_encoders
+                asked = self._embed(df, enc, m.query_tower, m.query_bias if m.use_biases else None, source)
+                view._emb[("query", TOWERS)] = (joined, *extended(q_vectors, q_bias, asked.attrs["vectors"],
+                                                                  asked.attrs["bias"]), q_meta)
+        return view
 
     # ---- embedding unseen entities ----------------------------------------------------------------
     def _embed(self, df: pd.DataFrame, encoders: SideEncoders, tower, bias_table, source: str,

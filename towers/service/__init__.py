@@ -49,13 +49,14 @@ def listen(host: str, port: int) -> socket.socket:
 
 
 def serve(run_dir, host: str = "127.0.0.1", port: int = 8080, threads: int | None = None, item_table=None,
-          announce=print) -> None:
+          announce=print, new_items=None) -> None:
     """Serve a run folder on host:port until Ctrl-C (returns) or SIGTERM (ends the process); blocks.
 
     The run is loaded and warmed up once (towers/service/app.py), then `threads` worker threads
     (default: one per core) answer requests, each running torch on one thread. `announce` gets one
     line with the address once the server listens. item_table: the table item columns and filters read
-    (default: the run's config items.path), read again when its file changes.
+    (default: the run's config items.path), read again when its file changes. new_items: a file of feature rows
+    of items not in the run, embedded once here and served beside the run's items (Run.with_new_items).
     """
     if threads is not None and threads < 1:
         raise TowersError(f"--threads must be a positive whole number, got {threads}")
@@ -72,6 +73,8 @@ def serve(run_dir, host: str = "127.0.0.1", port: int = 8080, threads: int | Non
     sock = listen(host, port)  # first, so a port in use fails before the run is loaded
     try:
         run = api.load(run_dir)
+        if new_items is not None:
+            run = run.with_new_items(new_items)
         threads = threads or default_threads()
         application = service_app.make_app(run, threads, item_table)
     except BaseException:
