@@ -57,6 +57,10 @@ def test_embed_reads_a_text_history_column(history_run, users_with_history, tmp_
     assert code == 0 and f"embedded {len(users)} users" in stdout and "warning" not in err
     want = read_vectors(history_run / "user_embeddings.parquet")[1][rows]  # reference: pyarrow alone
     np.testing.assert_allclose(read_vectors(out)[1], want, atol=1e-5)
+    # the separator left at its default '|': the warning shows an id and says what seems to join them
+    code, _, err = _call(capsys, "embed", history_run, "--users", path, "--history-column", "recent", "--out", out)
+    multi = next(h for h in lists if len(h) > 1)  # the first history read as one id
+    assert code == 0 and f"(e.g. {';'.join(multi)!r}: ids joined by ';'? set the history separator to it)" in err, err
 
 
 def test_embed_streams_a_parquet_list_column_and_counts_unknown_ids(history_run, users_with_history, tmp_path,
@@ -72,7 +76,7 @@ def test_embed_streams_a_parquet_list_column_and_counts_unknown_ids(history_run,
     assert code == 0
     unknown = sum(i % 3 == 0 for i in range(len(lists)))
     assert err.strip() == (f"warning: {path}, column 'recent': left out of the histories {unknown} item ids not in "
-                           "this run's items")
+                           "this run's items (e.g. 'NO-SUCH-ITEM')")
     want = read_vectors(history_run / "user_embeddings.parquet")[1][rows]  # reference: pyarrow alone
     np.testing.assert_allclose(read_vectors(out)[1], want, atol=1e-5)
 

@@ -41,6 +41,16 @@ def test_a_column_in_neither_table_is_a_clear_error(tmp_path):
         group_labels(_cfg(tmp_path, ["colour"]), np.array([1]), np.array(["x"], dtype=object))
 
 
+def test_a_misspelt_column_is_named_with_its_likely_spelling_before_the_log_is_read(tmp_path):
+    from towers.data.groups import check_group_columns
+
+    with pytest.raises(TowersError, match=r"column 'segmnet' is not in .*; did you mean 'segment'\?"):
+        check_group_columns(_cfg(tmp_path, ["segmnet"]))  # reads the tables' headers only
+    with pytest.raises(TowersError, match=r"did you mean 'shelf'\?"):
+        check_group_columns(_cfg(tmp_path, ["Shelf"]))
+    check_group_columns(_cfg(tmp_path, ["segment", "shelf"]))
+
+
 def test_item_item_runs_group_items_only(tmp_path):
     cfg = _cfg(tmp_path, ["segment"], item_item=True)
     with pytest.raises(TowersError, match="not in the items table"):

@@ -108,6 +108,9 @@ def test_text_item_ids_and_one_id_per_cell():
     ids, rows = history_ids(pd.Series(["b", None, "a"]), "users.csv", "h")  # one id per cell, as text
     bags, counts = history_bags(ids, rows, 3, np.array(["a", "b"], dtype=object), torch.ones(2, dtype=torch.bool), 3)
     assert bags.tolist() == [[2], [0], [1]] and counts == {"unknown": 0, "untrained": 0}
+    _, counts = history_bags(np.array(["b", "a;b"], dtype=object), np.array([0, 1]), 2, np.array(["a", "b"], dtype=object),
+                             torch.ones(2, dtype=torch.bool), 3)
+    assert counts == {"unknown": 1, "untrained": 0, "first_unknown": "a;b"}  # the one to show in the warning
     ids, rows = history_ids(pd.Series([3.0, np.nan]), "users.csv", "h")  # whole numbers read as floats
     assert ids.tolist() == [3] and rows.tolist() == [0]
 

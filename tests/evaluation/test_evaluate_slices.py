@@ -120,6 +120,14 @@ def test_without_validation_pairs_the_references_say_they_took_their_default():
     assert set(refs) == {"ease", "item_knn"}
     assert info["ease"]["by"] == info["item_knn"]["by"] == "no validation pairs: the default setting"
     assert said and all("no validation pairs" in line and "by validation" not in line for line in said)
+    assert said[-1] == "item_knn: its neighbour count: the default setting (no validation pairs)"
+
+
+def test_without_warm_test_pairs_the_references_are_not_fitted():
+    split = _split()
+    split.test = _pairs([], [])  # test_fraction 0: nothing to score them on
+    refs, info = reference_scorers(split, 30, 40, _cfg())
+    assert refs == {} and info == {}  # the warm slice's note says there are no test pairs
 
 
 def test_ease_is_skipped_above_its_catalog_limit_with_a_note():

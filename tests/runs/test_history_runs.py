@@ -111,8 +111,8 @@ def test_unknown_and_untrained_items_are_left_out_with_a_warning(history_run, sm
     df = _feature_rows(small_store, [ids[r] for r in rows])
     clean = np.stack(run.embed_users(df, history=lists)["embedding"].to_numpy())
     noisy = [["NOT-AN-ITEM"] + lists[0] + ["ALSO-NOT", never], lists[1]]
-    with pytest.warns(UserWarning, match=r"users: left out of the histories 2 item ids not in this run's items and "
-                                         r"1 item that no training history held"):
+    with pytest.warns(UserWarning, match=r"users: left out of the histories 2 item ids not in this run's items "
+                                         r"\(e.g. 'NOT-AN-ITEM'\) and 1 item that no training history held"):
         got = np.stack(run.embed_users(df, history=noisy)["embedding"].to_numpy())
     np.testing.assert_array_equal(got, clean)
 

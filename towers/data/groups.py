@@ -6,6 +6,7 @@ The labels come straight from the feature tables (any column, feature or not), o
 
 from __future__ import annotations
 
+import difflib
 from dataclasses import dataclass
 
 import numpy as np
@@ -38,17 +39,32 @@ def group_labels(cfg: Config, query_ids: np.ndarray, item_ids: np.ndarray) -> li
     """The groups of every column named in evaluation.group_metrics_by, read from the users or items table."""
     out = []
     for column in cfg.evaluation.group_metrics_by:
-        sides = [("item", cfg.items, item_ids)]
-        if not cfg.item_item:
-            sides.insert(0, ("user", cfg.users, query_ids))
-        found = [(side, sec, ids) for side, sec, ids in sides if sec.path and column in _table_columns(sec.path)]
-        if not found:
-            where = " or ".join(f"the {s}s table ({sec.path})" for s, sec, _ in sides if sec.path) or "no feature table"
-            raise TowersError(f"config key 'evaluation.group_metrics_by': column {column!r} is not in {where}; "
-                              "name a column of the users or items table")
-        side, sec, ids = found[0]
-        out.append(_labels(column, side, sec.path, sec.id_column, ids))
+        side, sec = _group_side(cfg, column)
+        out.append(_labels(column, side, sec.path, sec.id_column, item_ids if side == "item" else query_ids))
     return out
+
+
+def check_group_columns(cfg: Config) -> None:
+    """Fail at once, before the log is read, when a column of evaluation.group_metrics_by is in no table."""
+    for column in cfg.evaluation.group_metrics_by:
+        _group_side(cfg, column)
+
+
+def _group_side(cfg: Config, column: str):
+    """(side, its config section) of the table holding `column`: the users table first, then the items."""
+    sides = [("item", cfg.items)]
+    if not cfg.item_item:
+        sides.insert(0, ("user", cfg.users))
+    names = {side: _table_columns(sec.path) for side, sec in sides if sec.path}
+    found = [(side, sec) for side, sec in sides if column in names.get(side, ())]
+    if found:
+        return found[0]
+    where = " or ".join(f"the {s}s table ({sec.path})" for s, sec in sides if sec.path) or "no feature table"
+    present = [str(c) for cols in names.values() for c in cols]
+    same = [c for c in present if c.strip().casefold() == column.strip().casefold()]
+    close = same or difflib.get_close_matches(column, present, n=1, cutoff=0.6)
+    hint = f"did you mean {close[0]!r}?" if close else "name a column of the users or items table"
+    raise TowersError(f"config key 'evaluation.group_metrics_by': column {column!r} is not in {where}; {hint}")
 
 
 def _labels(column: str, side: str, path: str, id_column: str, catalog_ids: np.ndarray) -> Groups:

@@ -119,14 +119,14 @@ def history_ids(series: pd.Series, path, column: str, separator: str = "|") -> t
 
 
 def history_bags(ids: np.ndarray, rows: np.ndarray, n_rows: int, item_ids: np.ndarray, trained: torch.Tensor,
-                 limit: int) -> tuple[torch.Tensor, dict[str, int]]:
+                 limit: int) -> tuple[torch.Tensor, dict]:
     """Bags (n_rows, L) of item rows + 1 (0 pads) from flat ids in the order given (the last is the latest).
 
     Ids not among `item_ids` (the run's item catalog) are left out, and so are items whose row is not
     `trained` (no training history held them, so their rows in the history table never learned). Each
     item counts once, at its latest place, and the latest `limit` items are kept: the bag a user with
     this history would have had in training. Returns the bags and the counts of ids left out
-    ({"unknown": ..., "untrained": ...}).
+    ({"unknown": ..., "untrained": ...}, and "first_unknown": the first id not in the run, if any).
     """
     looked = align_id_types(ids, item_ids) if len(ids) else ids
     at = pd.Index(item_ids).get_indexer(looked) if len(ids) else np.zeros(0, np.int64)
@@ -134,6 +134,8 @@ def history_bags(ids: np.ndarray, rows: np.ndarray, n_rows: int, item_ids: np.nd
     learned = np.zeros(len(at), dtype=bool)
     learned[known] = trained.numpy()[at[known]]
     counts = {"unknown": int((~known).sum()), "untrained": int((known & ~learned).sum())}
+    if counts["unknown"]:  # one to show: a mistyped id, or several joined by another separator
+        counts["first_unknown"] = ids[np.flatnonzero(~known)[0]]
     r, c = rows[learned], at[learned].astype(np.int64)
     order = np.lexsort((-np.arange(len(r)), r))  # by row, latest (last given) first
     r, c = r[order], c[order]

@@ -342,6 +342,8 @@ def reference_scorers(data: SplitPairs, n_queries: int, n_items: int, cfg: Confi
     ev = cfg.evaluation
     if cfg.training.rating_loss or not ev.references:
         return {}, {}
+    if not len(data.test) and share is None:  # scored on the warm test pairs alone (the warm note says there are none)
+        return {}, {}
     known = data.train.positives()  # the history, and what validation leaves out of each ranking
     history = R.History.from_pairs(known.query, known.candidate, n_queries, n_items, include_self=data.item_item)
     if share is not None and share.divided:
@@ -356,22 +358,24 @@ def reference_scorers(data: SplitPairs, n_queries: int, n_items: int, cfg: Confi
 
     scorers, info = {}, {}
     # without validation pairs there is nothing to choose by: each reference takes its middle setting
-    by = f"by validation {metric}" if len(data.valid) or share is not None else "its default (no validation pairs)"
+    validated = bool(len(data.valid)) or share is not None
+    chosen = (lambda what: f"choosing its {what} by validation {metric}") if validated else \
+        (lambda what: f"its {what}: the default setting (no validation pairs)")  # noqa: E731
     if n_items > ev.ease_max_items:
         info[R.EASE] = {"skipped": f"{n_items:,} items exceed evaluation.ease_max_items ({ev.ease_max_items:,}); EASE "
                                    f"would need about {R.ease_bytes(n_items) / 2**30:.1f} GiB"}
     else:
         if log is not None:
-            log(f"ease: {n_items:,} items, about {R.ease_bytes(n_items) / 2**30:.2f} GiB while fitting; choosing its "
-                f"penalty {by}")
+            log(f"ease: {n_items:,} items, about {R.ease_bytes(n_items) / 2**30:.2f} GiB while fitting; "
+                f"{chosen('penalty')}")
         scorers[R.EASE], tries = R.choose_ease(history, judge)
         info[R.EASE] = {**scorers[R.EASE].setting, "by": f"validation {metric}", "tries": tries}
     if log is not None:
-        log(f"item_knn: choosing its neighbour count {by}")
+        log(f"item_knn: {chosen('neighbour count')}")
     scorers[R.ITEM_KNN], tries = R.choose_knn(history, judge)
     info[R.ITEM_KNN] = {**scorers[R.ITEM_KNN].setting, "by": f"validation {metric}", "tries": tries}
     for name in scorers:
-        if not len(data.valid) and share is None:
+        if not validated:
             info[name]["by"] = "no validation pairs: the default setting"
         for t in info[name]["tries"]:  # JSON has no infinity: an unjudged try is null
             t["score"] = t["score"] if math.isfinite(t["score"]) else None

@@ -73,12 +73,18 @@ def _column_label(source, column: str) -> str:
     return str(source) if column == HISTORY else f"{source}, column '{column}'"
 
 
-def _left_out(counts: dict[str, int]) -> str:
-    """Words for the history ids left out: those not in the run, and those no training history held."""
+def _left_out(counts: dict, separator: str = "|") -> str:
+    """Words for the history ids left out: those not in the run (the first named, with a hint when it looks
+    like several ids joined by another separator), and those no training history held."""
     parts = []
     n, m = counts["unknown"], counts["untrained"]
     if n:
-        parts.append(f"{n} item id{'s' if n != 1 else ''} not in this run's items")
+        first = counts.get("first_unknown")
+        shown_id = "" if first is None else f" (e.g. {plain(first)!r}"
+        joined = [c for c in (";", ",", "|", "/", "\t", " ") if c != separator and c in str(first)] if first else []
+        if joined and shown_id:
+            shown_id += f": ids joined by {joined[0]!r}? set the history separator to it"
+        parts.append(f"{n} item id{'s' if n != 1 else ''} not in this run's items{shown_id}{')' if shown_id else ''}")
     if m:
         parts.append(f"{m} item{'s' if m != 1 else ''} that no training history held (their history rows never "
                      "learned)")
@@ -264,14 +270,17 @@ class Run:
         empty ones (features alone).
         """
         unknown: dict[str, int] = {}
-        left_out = {"unknown": 0, "untrained": 0}
+        left_out = {"unknown": 0, "untrained": 0, "first_unknown": None}
         tower.eval()
         for start, frame in pieces:
             try:
                 block = encoders.encode(lookup[start:start + len(frame)], frame.reset_index(drop=True), source)
                 if history is not None:
                     block[HISTORY], counts = self._bags(frame[history[0]], source, history)
-                    left_out = {k: left_out[k] + counts[k] for k in left_out}
+                    left_out = {"unknown": left_out["unknown"] + counts["unknown"],
+                                "untrained": left_out["untrained"] + counts["untrained"],
+                                "first_unknown": left_out["first_unknown"] if left_out["first_unknown"] is not None
+                                else counts.get("first_unknown")}
             except TowersError as exc:
                 raise _rows_in_file(exc, source, start) from None
             for name, count in encoders.unknown_counts().items():
@@ -285,8 +294,9 @@ class Run:
         if unknown:
             listed = ", ".join(f"{k}: {v}" for k, v in unknown.items())
             warnings.warn(f"{source}: values unseen in training were mapped to the unknown bucket ({listed})", stacklevel=4)
-        if history is not None and any(left_out.values()):
-            warnings.warn(f"{_column_label(source, history[0])}: left out of the histories {_left_out(left_out)}",
+        if history is not None and (left_out["unknown"] or left_out["untrained"]):
+            warnings.warn(f"{_column_label(source, history[0])}: left out of the histories "
+                          f"{_left_out(left_out, history[1])}",
                           stacklevel=4)
 
     def _bags(self, column: pd.Series, source, history: tuple[str, str]) -> tuple[torch.Tensor, dict[str, int]]:
@@ -539,7 +549,7 @@ class Run:
         frame[HISTORY] = pd.Series([items], dtype=object)
         block = encoders.encode(np.asarray([None], dtype=object), frame, "history")  # no id: the unknown row
         block[HISTORY], counts = self._bags(frame[HISTORY], "history", history)
-        if any(counts.values()):
+        if counts["unknown"] or counts["untrained"]:
             warnings.warn(f"history: left out {_left_out(counts)}", stacklevel=2)
         # without --context a run with context columns averages over its training context sample, as embed_users
         query = (lambda b: self.bundle.model.query_tower(b | self._context_block(context, 1))) if context else tower

@@ -18,7 +18,7 @@ from towers import config as C
 from towers.collective import across, gathered_at_first, rank_and_size
 from towers.data.context import sample_contexts, vectors_with_context
 from towers.data.embeddings_file import write_embeddings
-from towers.data.groups import group_labels
+from towers.data.groups import check_group_columns, group_labels
 from towers.data.pairs import Pairs, SplitPairs
 from towers.data.prepare import Prepared, prepare
 from towers.data.splits import TrainedBefore
@@ -200,11 +200,12 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
     apply_threads(cfg)
     torch.manual_seed(cfg.run.seed)
     previous = load_previous(init_from) if init_from else None
-    data = prepare(cfg, previous, trained_pairs(init_from) if init_from else None)
-    try:  # read now: a wrong column fails before training
-        groups = group_labels(cfg, data.queries.ids, data.candidates.ids)
+    try:  # a misspelt column fails before a long log is read
+        check_group_columns(cfg)
     except TowersError as exc:  # a config key's error names the config file, as those found on loading do
         raise (TowersError(f"{config_path}: {exc}") if str(exc).startswith("config key") else exc) from None
+    data = prepare(cfg, previous, trained_pairs(init_from) if init_from else None)
+    groups = group_labels(cfg, data.queries.ids, data.candidates.ids)  # read now: a bad table fails before training
     started_from = None if previous is None else {"run": str(Path(init_from).resolve()), "encoders": data.started_from}
     for note in data.notes:
         log(note)
