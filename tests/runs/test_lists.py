@@ -516,3 +516,18 @@ def test_a_boolean_column_is_filtered_by_true_however_it_is_written(shop_table, 
     for kind, want in (("never_values", ~table["in_stock"]), ("only_values", table["in_stock"])):
         lists = item_lists(ids, ItemFilter.from_dict({kind: {"in_stock": [written]}}), (), path, "item_id", "no table")
         assert set(ids[lists.allowed.numpy()]) == set(table.loc[want, "item_id"]), kind
+
+
+def test_an_id_file_of_several_columns_is_refused_before_its_cells_are_read(tmp_path):
+    # a trial gave `lists --users` the whole readers table: a warning about its 'NA' country cells came first
+    from towers.runs.lists import read_id_file
+
+    path = tmp_path / "readers.csv"
+    path.write_text("reader_id,country,tier\nR-1,NA,gold\nR-2,DE,free\n")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # no warning before the error
+        with pytest.raises(TowersError, match=r"readers.csv: has 3 columns; a file of user ids holds one column"):
+            read_id_file(path, "user")
+    one = tmp_path / "ids.csv"
+    one.write_text("reader_id\nR-1\nR-2\n")
+    assert read_id_file(one, "user").tolist() == ["R-1", "R-2"]

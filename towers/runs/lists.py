@@ -260,10 +260,11 @@ def read_id_file(path: str | Path, what: str) -> np.ndarray:
     if not path.is_file():
         raise TowersError(f"{path}: no such file; give a file of {what} ids, one per line")
     if path.suffix.lower() in READABLE:
-        table = read_table(path, ids=table_columns(path)[:1])
-        if len(table.columns) != 1:
-            raise TowersError(f"{path}: has {len(table.columns)} columns; a file of {what} ids holds one column "
+        names = table_columns(path)  # the header first: a whole feature table is refused before its cells are read
+        if len(names) != 1:
+            raise TowersError(f"{path}: has {len(names)} columns; a file of {what} ids holds one column "
                               "(or give plain text, one id per line)")
+        table = read_table(path, ids=names)
         return normalise_ids(table.iloc[:, 0], path, table.columns[0])
     try:
         text = path.read_text(encoding="utf-8-sig")
