@@ -584,3 +584,23 @@ def test_an_item_item_pair_trained_before_is_found_in_either_order():
     rows = np.array([1, 2, 0, 3]), np.array([0, 1, 2, 0])  # (b, a), (c, b), (a, c), (d, a)
     assert both.mask(ids, ids, *rows, unordered=True).tolist() == [True, True, False, False]
     assert both.mask(ids, ids, *rows, unordered=False).tolist() == [False, False, False, False]
+
+
+def test_a_warm_start_that_leaves_few_test_pairs_says_so(tmp_path):
+    # a trial warm-started with sessions as units: every session holding a pair the earlier run learned stays in
+    # training whole, and the test slice shrank to 1,392 of 20,376 pairs without a word
+    from towers.data.splits import TrainedBefore
+
+    df = pd.DataFrame({"u": np.repeat(np.arange(100), 6), "i": np.random.default_rng(3).integers(0, 50, 600),
+                       "s": np.repeat(np.arange(300), 2), "t": np.arange(600)})
+    df.to_parquet(tmp_path / "log.parquet")
+    raw = {"interactions": {"path": str(tmp_path / "log.parquet"), "query_column": "u", "candidate_column": "i",
+                            "group_column": "s", "time_column": "t"},
+           "evaluation": {"split": "user_recent", "test_fraction": 0.3, "validation_fraction": 0.0, "baseline": False}}
+    cfg = C.resolve(raw, tmp_path)
+    learned = df[df["s"] % 3 != 2].drop_duplicates("s")  # one pair of each user's first two sessions
+    before = TrainedBefore(np.arange(100), np.arange(50), learned["u"].to_numpy(), learned["i"].to_numpy())
+    data = prepare(cfg, trained_before=before)
+    assert any(n.startswith("warm start: only 0.0% of the other pairs are test pairs (test_fraction 0.3)")
+               for n in data.notes), data.notes
+    assert not any("warm start: only" in n for n in prepare(cfg).notes)  # a fresh start holds out its share

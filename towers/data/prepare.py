@@ -377,6 +377,13 @@ def prepare(cfg: Config, previous=None, trained_before: TrainedBefore | None = N
                               item_item=item_item, groups=groups, n_queries=len(q_ids), cold_user_eligible=cold_users,
                               sides=sel(log.side), everywhere=everywhere, trained_before=fixed,
                               positions=sel(log.position))
+    if fixed is not None and cfg.evaluation.test_fraction > 0 and total > kept:
+        held = everywhere(len(split.test)) / (total - kept)
+        if held < 0.5 * cfg.evaluation.test_fraction:  # units holding a learned pair stayed in training whole
+            notes.append(f"warm start: only {held:.1%} of the other pairs are test pairs (test_fraction "
+                         f"{cfg.evaluation.test_fraction:g}): a unit (a group, a user's few events) holding a pair "
+                         "the earlier run trained on stays in training whole, so the test slice is small and its "
+                         "metrics noisy; compare on a later log with `towers evaluate --interactions` instead")
     fixed = log.position = None
     if everywhere(len(split.train)) == 0:
         raise TowersError(f"{ic.path}: the split leaves no training pairs; lower evaluation fractions or add data")
