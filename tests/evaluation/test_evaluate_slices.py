@@ -218,3 +218,16 @@ def test_a_squared_loss_run_says_it_has_no_group_metrics():
     assert "groups" not in metrics and "rmse" in metrics["warm"]["towers"]
     assert "a squared-loss run ranks nothing" in metrics["notes"]["group_metrics_by"]
     assert "note: evaluation.group_metrics_by" in format_table(metrics)
+
+
+def test_a_warm_slice_of_users_without_training_events_says_so():
+    # a helper's split: time on MovieLens: 72 of 81 test users had no training events, and EASE and item-kNN
+    # looked broken beside popularity; the note counts them (reference: numpy's set difference)
+    split = _split(n_q=30)
+    split.test = _pairs(np.r_[np.arange(30, 40), [0, 1]], np.arange(12))  # 10 new users (rows 30..39), 2 known ones
+    metrics = evaluate_slices({"popularity": popularity_scorer(split.train, 40, 40, False)}, split, _cfg())
+    new = np.setdiff1d(split.test.query.numpy(), split.train.query.numpy())
+    assert len(new) == 10
+    assert metrics["notes"]["warm_new_queries"].startswith("10 of the warm slice's 12 test users (83%) have no "
+                                                          "training events")
+    assert "warm_new_queries" not in evaluate_slices({}, _split(), _cfg()).get("notes", {})

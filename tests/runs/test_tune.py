@@ -343,3 +343,17 @@ def test_the_users_config_is_queued_once_even_after_a_kill_before_the_study_was_
     study = T._open_study(tmp_path, base, tmp_path / "c.yaml", base.stop_metric)
     waiting = [t for t in study.get_trials() if t.state == TrialState.WAITING]
     assert len(waiting) == 1 and waiting[0].user_attrs["from_config"]
+
+
+def test_the_opening_line_counts_only_interrupted_trials_as_interrupted():
+    # a helper's new study said "1 interrupted one(s) queued": trial 000, the user's config, is no such trial
+    from types import SimpleNamespace
+
+    from towers.runs.tune import waiting_note
+
+    def trial(state, **attrs):
+        return SimpleNamespace(state=SimpleNamespace(name=state), user_attrs=attrs)
+    assert waiting_note([trial("WAITING", from_config=True)]) == "; the first trial trains your config's own values"
+    assert waiting_note([trial("COMPLETE", from_config=True), trial("WAITING", retry_of=3),
+                         trial("WAITING", retry_of=5)]) == " (2 interrupted one(s) queued to run again)"
+    assert waiting_note([trial("COMPLETE"), trial("PRUNED")]) == ""

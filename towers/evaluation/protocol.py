@@ -557,6 +557,9 @@ def evaluate_slices(scorers: dict, data: SplitPairs, cfg: Config, event_vectors:
                 f"{min(1.0, k / n):.2f} of the held-out items in the top {k}, so recall@{k} says little there; "
                 + ("hold out more items whole (evaluation.cold_item_fraction)" if slice_name == "cold" else
                    "use a smaller evaluation.top_k, or a larger catalog"))
+    new_users = _untrained_test_queries(data, everywhere)
+    if new_users is not None:
+        notes["warm_new_queries"] = new_users
     if groups and explicit:
         notes["group_metrics_by"] = ("evaluation.group_metrics_by: the per-group metrics are ranking metrics "
                                      "(recall@K, ndcg@K, ...); a squared-loss run ranks nothing, so it has none")
@@ -570,6 +573,25 @@ def evaluate_slices(scorers: dict, data: SplitPairs, cfg: Config, event_vectors:
     if reference_info:
         out["references"] = reference_info
     return out
+
+
+def _untrained_test_queries(data: SplitPairs, everywhere) -> str | None:
+    """A note when a fifth or more of the warm test users have no training events (a split by time holds out the
+    users who arrived late): the history-based and id-based models know nothing of them, so the warm slice is
+    partly a cold-user slice. None otherwise, and in item_item runs (there the queries are items)."""
+    if data.item_item:
+        return None
+    tq = torch.unique(data.test.query)
+    size = max(int(tq.max()) if len(tq) else -1, int(data.train.query.max()) if len(data.train.query) else -1) + 1
+    trained = torch.zeros(size, dtype=torch.bool)
+    trained[data.train.query] = True
+    new, total = everywhere(int((~trained[tq]).sum())), everywhere(len(tq))
+    if not total or new < 0.2 * total:
+        return None
+    return (f"{new:,} of the warm slice's {total:,} test users ({new / total:.0%}) have no training events (a split "
+            "by time holds out the users who came late): EASE, item-kNN and the linear factor model know nothing of "
+            "them and rank them by chance or popularity, so this slice is partly a cold-user one; a per-user split "
+            "(evaluation.split: user_recent) keeps every test user's past in training")
 
 
 def format_table(metrics: dict) -> str:

@@ -585,6 +585,16 @@ def _work_in_processes(plan: Plan, jobs: int, control: Control, progress: Progre
 
 
 # ---- the command -------------------------------------------------------------------------------------
+def waiting_note(trials) -> str:
+    """What the opening line says of the study's waiting trials: interrupted ones queued to run again, and (a
+    new study) trial 000, the user's own config; "" when none waits."""
+    waiting = [t for t in trials if t.state.name == "WAITING"]
+    retried = sum("retry_of" in t.user_attrs for t in waiting)
+    own = any(t.user_attrs.get("from_config") for t in waiting)
+    return ((f" ({retried} interrupted one(s) queued to run again)" if retried else "")
+            + ("; the first trial trains your config's own values" if own else ""))
+
+
 def run_tune(config_path: str | Path, out_dir: str | Path, minutes: float, trials: int | None = None,
              jobs: int = 1) -> dict:
     """Run trials for `minutes` (or until the study holds `trials`), then write the tables, plot and best.yaml.
@@ -611,13 +621,13 @@ def run_tune(config_path: str | Path, out_dir: str | Path, minutes: float, trial
             threads = max(1, cores // jobs)
             if base.run.threads:
                 threads = min(threads, base.run.threads)
-            held = len([t for t in study.get_trials(deepcopy=False) if t.state.name != "WAITING"])
-            queued = len(study.get_trials(deepcopy=False)) - held
+            every = study.get_trials(deepcopy=False)
+            held = len([t for t in every if t.state.name != "WAITING"])
             plan = Plan(str(config_path), str(out.resolve()), started + 60.0 * minutes, trials, threads, metric)
             progress = Progress(console, 60.0 * minutes, lower, show_bar("auto"))
             progress.best = prior.value if prior else None
             goal = f", until the study holds {trials}" if trials else ""
-            again = f" ({queued} interrupted one(s) queued to run again)" if queued else ""
+            again = waiting_note(every)
             progress.say(f"tune: {held} earlier trial(s) in {out / STUDY_FILE}{again}; trials for {minutes:g} min{goal}, "
                          f"{jobs} at a time on {threads} thread(s) each; judged by validation {metric}")
             if jobs > cores:
