@@ -60,9 +60,11 @@ def test_resolved_sections_are_frozen_and_changed_by_copy(tmp_path):
 
 
 def test_derived_facts_are_computed_once_in_the_config(tmp_path):
-    logistic = C.resolve(minimal(), tmp_path)
+    default = C.resolve(minimal(), tmp_path)  # events by default: the in-batch softmax
+    assert default.training.loss == "softmax" and default.training.sampled_negatives == 0
+    logistic = C.resolve(minimal(training={"loss": "logistic"}), tmp_path)
     assert logistic.training.sampled_negatives == 4 and not logistic.training.rating_loss
-    assert C.resolve(minimal(training={"negatives": 7}), tmp_path).training.sampled_negatives == 7
+    assert C.resolve(minimal(training={"loss": "logistic", "negatives": 7}), tmp_path).training.sampled_negatives == 7
     for loss in ("softmax", "squared"):
         cfg = C.resolve(minimal(training={"loss": loss}), tmp_path)
         assert cfg.training.sampled_negatives == 0
@@ -80,7 +82,8 @@ def test_softmax_negatives_are_drawn_per_batch_not_per_pair(tmp_path):
     cfg = C.resolve(minimal(training={"loss": "softmax", "negatives": 3}), tmp_path).training
     assert (cfg.batch_negatives, cfg.sampled_negatives) == (3, 0)
     assert C.resolve(minimal(training={"loss": "softmax"}), tmp_path).training.batch_negatives == 0
-    assert C.resolve(minimal(), tmp_path).training.batch_negatives == 0  # logistic draws per pair instead
+    logistic = C.resolve(minimal(training={"loss": "logistic"}), tmp_path).training
+    assert logistic.batch_negatives == 0 and logistic.sampled_negatives == 4  # logistic draws per pair instead
 
 
 def test_empty_sections_mean_all_defaults(tmp_path):

@@ -236,7 +236,7 @@ class ModelSection:
 class TrainingSection:
     """training: the objective, the optimisers and early stopping."""
 
-    loss: str = key('choice', 'logistic',
+    loss: str = key('choice', 'softmax',
                     'squared (ratings), logistic (events with sampled negatives, or 0/1 targets) or softmax '
                     "(events; each pair's item against the other items in its batch)",
                     choices=('squared', 'logistic', 'softmax'))
