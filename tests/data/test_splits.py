@@ -164,40 +164,54 @@ class _Summed:
     """collective.summed for processes played by threads: every caller waits for the others and gets the sum."""
 
     def __init__(self, world: int):
-        self.barrier, self.values = threading.Barrier(world), [0] * world
+        self.barrier, self.values = threading.Barrier(world, timeout=30), [0] * world  # a missed count fails
 
     def of(self, rank: int):
         def summed(value):
             self.values[rank] = value
             self.barrier.wait()
-            total = sum(self.values)
+            if isinstance(value, np.ndarray) and value.dtype == bool:  # which entities any process holds
+                total = np.logical_or.reduce(self.values)
+            else:
+                total = sum(self.values)
             self.barrier.wait()  # every process has read the sum before the next one is put down
             return total
         return summed
 
 
-@pytest.mark.parametrize("groups", [False, True], ids=["rows", "orders"])
-def test_a_time_split_of_a_divided_log_is_the_one_process_split(groups):
+@pytest.mark.parametrize("groups, cold, warm_start", [(False, 0.0, False), (True, 0.0, False), (True, 0.2, False),
+                                                      (True, 0.2, True), (False, 0.2, True)],
+                         ids=["rows", "orders", "interleaved-orders-cold-items", "warm-start-orders",
+                              "warm-start-rows"])
+@pytest.mark.parametrize("seed", range(6))
+def test_a_time_split_of_a_divided_log_is_the_one_process_split(groups, cold, warm_start, seed):
     # three processes (threads) each split their own users' rows by time, the counts summed between them: they
-    # hold between them the one-process split row for row, ties between equal times broken by the log's order
-    # (whole minutes, so the cut-offs fall inside runs of equal times)
-    rng = np.random.default_rng(4)
+    # hold between them the one-process split row for row, ties between equal times broken as one process
+    # breaks them (whole minutes, so the cut-offs fall inside runs of equal times); orders' lines interleaved in
+    # the log, some dropped with cold items; a warm start whose first process has every row trained already
+    rng = np.random.default_rng(4 + seed)
     n_orders = 400
     order = np.repeat(np.arange(n_orders), rng.integers(1, 5, n_orders))
     df = pd.DataFrame({"order": order, "q": rng.integers(0, 50, n_orders)[order], "c": rng.integers(0, 40, len(order)),
                        "t": (rng.integers(0, 120, n_orders) * 60)[order]})
-    ev = EvaluationSection(split="time", test_fraction=0.2, validation_fraction=0.15)
-    grouping = (lambda d: groups_of(d, "order")) if groups else (lambda d: None)  # noqa: E731
-    one = with_sides(df, make_split(as_pairs(df), 40, ev, 0, None, False, groups=grouping(df), n_queries=50)).side
-    assert (one == "test").any() and (one == "valid").any()
+    df = df.iloc[rng.permutation(len(df))].reset_index(drop=True)  # an order's lines apart in the log
+    df["g"] = groups_of(df, "order")  # group codes by first appearance, as the log reader numbers them
+    ev = EvaluationSection(split="time", test_fraction=0.2, validation_fraction=0.15, cold_item_fraction=cold)
     owner = df.q.to_numpy() % 3
+    fixed = (owner == 0) | (rng.random(len(df)) < 0.2) if warm_start else None
+    grouping = (lambda d: d["g"].to_numpy()) if groups else (lambda d: None)  # noqa: E731
+    pool = HoldOut(np.ones(40, dtype=bool)) if cold else None
+    one = with_sides(df, make_split(as_pairs(df), 40, ev, seed, pool, False, groups=grouping(df), n_queries=50,
+                                    trained_before=fixed)).side
+    assert (one == "test").any() and (one == "valid").any()
     summed, got, errors = _Summed(3), pd.Series("none", index=df.index, dtype=object), []
 
     def process(rank: int):
         try:
             mine = df[owner == rank]
-            split = make_split(as_pairs(mine), 40, ev, 0, None, False, groups=grouping(mine), n_queries=50,
-                               everywhere=summed.of(rank), positions=mine.index.to_numpy(np.int64) * 7 + 3)
+            split = make_split(as_pairs(mine), 40, ev, seed, pool, False, groups=grouping(mine), n_queries=50,
+                               everywhere=summed.of(rank), positions=mine.index.to_numpy(np.int64) * 7 + 3,
+                               trained_before=None if fixed is None else fixed[mine.index.to_numpy()])
             got[mine.index] = with_sides(mine.reset_index(drop=True), split).side.to_numpy()
         except BaseException as exc:  # noqa: BLE001 - shown by the assertion below
             errors.append(exc)
@@ -604,3 +618,22 @@ def test_a_warm_start_that_leaves_few_test_pairs_says_so(tmp_path):
     assert any(n.startswith("warm start: only 0.0% of the other pairs are test pairs (test_fraction 0.3)")
                for n in data.notes), data.notes
     assert not any("warm start: only" in n for n in prepare(cfg).notes)  # a fresh start holds out its share
+    # user_last holds out last_n units a user, not test_fraction of them: no share to fall short of
+    last = cfg.with_section("evaluation", split="user_last")
+    assert not any("warm start: only" in n for n in prepare(last, trained_before=before).notes)
+
+
+def test_zero_targets_under_the_softmax_are_warned(tmp_path):
+    # the softmax is the default loss: a 0/1 label column that used to train logistic now teaches nothing on its 0s
+    rng = np.random.default_rng(6)
+    pd.DataFrame({"u": rng.integers(0, 30, 400), "i": rng.integers(0, 20, 400),
+                  "y": (rng.random(400) < 0.3).astype(float)}).to_parquet(tmp_path / "log.parquet")
+    raw = {"interactions": {"path": str(tmp_path / "log.parquet"), "query_column": "u", "candidate_column": "i",
+                            "target_column": "y"}, "evaluation": {"baseline": False}}
+    zeros = int((pd.read_parquet(tmp_path / "log.parquet")["y"] == 0).sum())
+    said = [n for n in prepare(C.resolve(raw, tmp_path)).notes if "target 0" in n]
+    assert said == [f"warning: {zeros:,} rows have target 0: the softmax learns from each row's own item against the "
+                    "others, so a 0 row teaches nothing; where 0 means shown but not chosen, set training.loss: "
+                    "logistic, which learns from it"]
+    raw["training"] = {"loss": "logistic"}
+    assert not [n for n in prepare(C.resolve(raw, tmp_path)).notes if "target 0" in n]

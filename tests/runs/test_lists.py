@@ -382,6 +382,10 @@ def test_new_items_are_listed_beside_the_run_items_with_their_embedded_scores(ba
     assert len(run.embeddings("item")[0]) == len(i_ids)
     with pytest.raises(TowersError, match="duplicate id"):
         run.with_new_items(pd.concat([arrivals, arrivals.head(1)]))
+    # whole numbers given to a text-id run are its text ids: their columns still come from their rows
+    numbered = run.with_new_items(arrivals.head(3).assign(item_id=[900001, 900002, 900003]))
+    listed = numbered.recommend(users[:1], top=every, columns=["name"]).set_index("item_id")
+    assert listed.loc[["900001", "900002", "900003"], "name"].tolist() == arrivals["name"].head(3).tolist()
 
 
 @pytest.mark.slow

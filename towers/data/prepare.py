@@ -207,8 +207,12 @@ def _to_owners(log: Log, group_values: np.ndarray | None, unit: np.ndarray, shar
     columns = {"query": q_codes, "candidate": c_codes, "target": log.target, "weight": log.weight, "time": log.time,
                "group": g_codes, "position": None}
     if with_positions:  # the unit, then the row within it: increasing along the whole log
-        within = np.arange(len(unit), dtype=np.int64) - np.searchsorted(unit, unit, side="left")
-        columns["position"] = (unit.astype(np.int64) << 32) | within
+        position = unit.astype(np.int64)
+        position <<= 32
+        position += np.arange(len(unit), dtype=np.int64)  # the row's number, less its unit's first row's below
+        position -= np.searchsorted(unit, unit, side="left")
+        columns["position"] = position  # 8 bytes a row, built in place
+        del position
     log = q_codes = c_codes = g_codes = None  # each column is freed once it is sent
     exchange = Exchange(spill.lookup(owners(q_ids, shard.world).astype(np.int16), columns["query"]))  # int16: a radix sort
     arrived = exchange(unit)
@@ -377,14 +381,20 @@ def prepare(cfg: Config, previous=None, trained_before: TrainedBefore | None = N
                               item_item=item_item, groups=groups, n_queries=len(q_ids), cold_user_eligible=cold_users,
                               sides=sel(log.side), everywhere=everywhere, trained_before=fixed,
                               positions=sel(log.position))
-    if fixed is not None and cfg.evaluation.test_fraction > 0 and total > kept:
-        held = everywhere(len(split.test)) / (total - kept)
+    warm_free = everywhere(len(split.train) + len(split.valid) + len(split.test)) - kept if fixed is not None else 0
+    if fixed is not None and cfg.evaluation.split != "user_last" and cfg.evaluation.test_fraction > 0 and warm_free:
+        held = everywhere(len(split.test)) / warm_free  # of the warm pairs the split could place (user_last: per user)
         if held < 0.5 * cfg.evaluation.test_fraction:  # units holding a learned pair stayed in training whole
             notes.append(f"warm start: only {held:.1%} of the other pairs are test pairs (test_fraction "
                          f"{cfg.evaluation.test_fraction:g}): a unit (a group, a user's few events) holding a pair "
                          "the earlier run trained on stays in training whole, so the test slice is small and its "
                          "metrics noisy; compare on a later log with `towers evaluate --interactions` instead")
     fixed = log.position = None
+    zeros = _target_zeros(pairs.target, everywhere) if cfg.training.loss == "softmax" else 0
+    if zeros:
+        notes.append(f"warning: {zeros:,} rows have target 0: the softmax "
+                     "learns from each row's own item against the others, so a 0 row teaches nothing; where 0 means "
+                     "shown but not chosen, set training.loss: logistic, which learns from it")
     if everywhere(len(split.train)) == 0:
         raise TowersError(f"{ic.path}: the split leaves no training pairs; lower evaluation fractions or add data")
     context_encoders = None
@@ -478,6 +488,11 @@ def _constant_notes(section: str, side: SideTable) -> list[str]:
 def _check_oracles(cfg: Config, data: Prepared) -> None:
     """Read the oracle files now, so a missing or incomplete one fails before training, not after it."""
     data.oracle = true_vectors(cfg, data.queries.ids, data.candidates.ids, item_item=data.item_item)
+
+
+def _target_zeros(target, everywhere) -> int:
+    """Rows whose target is 0, summed over processes (0 without a target column)."""
+    return 0 if target is None else int(everywhere(int((target.numpy() == 0).sum())))
 
 
 def _warn_small_data(cfg: Config, n_queries: int, n_items: int, notes: list[str]) -> None:

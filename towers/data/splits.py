@@ -136,7 +136,8 @@ def make_split(pairs, n_items: int, ev: EvaluationSection, seed: int, cold_eligi
     unit = split_units(of_rest(q), of_rest(c), None if groups is None else of_rest(groups), item_item) \
         if item_item or groups is not None else len(rest)
     when = None if pairs.time is None else of_rest(pairs.time.numpy())
-    whole = None if positions is None else WholeLog(of_rest(np.asarray(positions)), everywhere)
+    whole = None if positions is None else WholeLog(of_rest(np.asarray(positions)), everywhere,
+                                                     None if groups is None else of_rest(np.asarray(groups)))
     if fixed is not None and fixed.any():
         side = _sides_around(fixed, unit, of_rest(q), when, ev, rng, whole)
     else:
@@ -147,14 +148,24 @@ def make_split(pairs, n_items: int, ev: EvaluationSection, seed: int, cold_eligi
 
 @dataclass
 class WholeLog:
-    """A divided log's rows as parts of the whole (data/shards.py): each row's place in the whole log and
-    `summed`, which adds a count over the processes."""
+    """A divided log's rows as parts of the whole (data/shards.py): each row's place in the whole log, its group
+    code (numbered alike in every process, by first appearance in the whole log), and `summed`, which adds a
+    count over the processes."""
 
     positions: np.ndarray  # int64, one per row, increasing with the row's place in the whole log
     summed: object
+    groups: np.ndarray | None = None
 
     def part(self, rows: np.ndarray) -> "WholeLog":
-        return WholeLog(self.positions[rows], self.summed)
+        return WholeLog(self.positions[rows], self.summed, None if self.groups is None else self.groups[rows])
+
+    def unit_keys(self, unit: np.ndarray | int, n_units: int) -> np.ndarray:
+        """Each unit's place among equal times as one process orders units: a row unit by its place in the log,
+        a group by its code (one process numbers units in the order of their group codes)."""
+        if isinstance(unit, int):
+            return self.positions
+        first = _unit_first_row(unit, n_units)
+        return (self.groups if self.groups is not None else self.positions)[first].astype(np.int64)
 
 
 def _unit_sides(unit: np.ndarray | int, q: np.ndarray, when: np.ndarray | None, ev: EvaluationSection,
@@ -178,7 +189,8 @@ def _sides_around(fixed: np.ndarray, unit: np.ndarray | int, q: np.ndarray, when
         fixed = held[unit]
     free = np.flatnonzero(~fixed)
     side = np.full(len(fixed), TRAIN, dtype=np.int8)
-    if len(free):
+    # a divided time split counts with every process, so one with no free rows still takes part
+    if len(free) or (whole is not None and ev.split == "time"):
         sub = len(free) if isinstance(unit, int) else np.unique(unit[free], return_inverse=True)[1].reshape(-1)
         trained = np.zeros(int(q.max(initial=-1)) + 1, dtype=bool)
         trained[q[fixed]] = True  # these users train on their fixed rows: all their other units may be held out
@@ -301,12 +313,12 @@ def global_sides(unit: np.ndarray | int, when: np.ndarray | None, ev: Evaluation
 def _whole_log_time_sides(unit: np.ndarray | int, when: np.ndarray, ev: EvaluationSection,
                           whole: WholeLog) -> np.ndarray:
     """global_sides' time split of every process's units, made in each process for its own: the counts are of
-    the whole log's units, and a unit is the later of two at one time when its first row comes later in the
-    log, so the processes place between them exactly the units one process would (global_sides' stable sort
-    by time keeps the log's order among equal times)."""
+    the whole log's units, and of two units at one time the later is the one one process numbers later (a
+    row: later in the log; a group: a later first appearance, WholeLog.unit_keys), so the processes place
+    between them exactly the units one process would (global_sides' sort by time is stable)."""
     n_units = _unit_count(unit)
     when_unit = _unit_time(unit, n_units, when)
-    key = whole.positions if isinstance(unit, int) else whole.positions[_unit_first_row(unit, n_units)]
+    key = whole.unit_keys(unit, n_units)
     total = int(whole.summed(n_units))
     n_test = int(round(ev.test_fraction * total))
     n_valid = int(round(ev.validation_fraction * (total - n_test)))

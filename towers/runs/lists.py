@@ -38,7 +38,7 @@ from towers.data.tables import (
     table_rows,
 )
 from towers.errors import TowersError, plain, where
-from towers.search.scorer import Scorer
+from towers.search.scorer import Scorer, excluded_cells
 from towers.training.progress import log, show_bar
 
 LIST_COLUMNS = ("query_id", "rank", "item_id", "score")
@@ -181,6 +181,7 @@ class ItemTable:
         self.present = rows >= 0
         self._frame = table
         self._rows = rows
+        self._seen: dict = {}  # per column, what the filters' checks found once (a service asks many times)
 
     def column(self, name: str) -> pd.Series:
         """The column on the run's items (catalog order), missing where the table lacks the item."""
@@ -209,9 +210,11 @@ class ItemTable:
 
     def _given(self, name: str, values: tuple[str, ...]) -> tuple[str, ...]:
         """The filter's values as the column's are compared: in a boolean column True, TRUE, 1 ... are true."""
-        series = self._frame[name]
-        if not (pd.api.types.is_bool_dtype(series) or (series.dtype == object
-                                                        and series.map(type).isin((bool, np.bool_)).any())):
+        if ("boolean", name) not in self._seen:  # a table serves many requests: looked at once a column
+            series = self._frame[name]
+            self._seen[("boolean", name)] = pd.api.types.is_bool_dtype(series) or (
+                series.dtype == object and series.map(type).isin((bool, np.bool_)).any())
+        if not self._seen[("boolean", name)]:
             return values
         spelled = {"true": "true", "1": "true", "false": "false", "0": "false"}
         return tuple(spelled.get(v.strip().lower(), v) for v in values)
@@ -219,10 +222,13 @@ class ItemTable:
     def _warn_unmatched(self, name: str, text: pd.Series, values: tuple[str, ...], kind: str) -> None:
         """A warning naming each filter value no item of the run has (a spelling, a case, a stray space), with
         the value the column holds in another case where there is one, and what the filter then does."""
-        present = pd.unique(text.dropna())
-        missing = [v for v in values if v not in set(present)]
+        if ("values", name) not in self._seen:
+            self._seen[("values", name)] = frozenset(pd.unique(text.dropna()))
+        held = self._seen[("values", name)]
+        missing = [v for v in values if v not in held]
         if not missing:
             return
+        present = np.asarray(list(held), dtype=object)
         by_case = {str(v).casefold().strip(): v for v in present}
         hints = [f"{v!r} (did you mean {by_case[v.casefold().strip()]!r}?)" if v.casefold().strip() in by_case
                  else repr(v) for v in missing]
@@ -553,10 +559,12 @@ def recommend_rows(run, df: pd.DataFrame, top: int, history_column: str | None, 
         enc = run.bundle.query_encoders
         at = positions_in(run.embeddings(run._query_side())[0], run._embed_ids(df[enc.id_column], enc, source)[1])
         named = np.flatnonzero(at >= 0)
-        if len(named):
-            known_q, known_c = run.known_pairs()
-            offsets, items = known_by_query(known_q, known_c, len(run.embeddings(run._query_side())[0]))
-            rank, item = block_exclusions(torch.from_numpy(at[named].astype(np.int64)), offsets, items)
+        if len(named):  # the known pairs of the distinct users named (recommend's excluded_cells), then per row
+            users, of_row = np.unique(at[named].astype(np.int64), return_inverse=True)
+            user_at, item = excluded_cells(torch.from_numpy(users), *run.known_pairs())
+            offsets = torch.zeros(len(users) + 1, dtype=torch.int64)
+            offsets[1:] = torch.cumsum(torch.bincount(user_at, minlength=len(users)), 0)
+            rank, item = block_exclusions(torch.from_numpy(of_row.reshape(-1).astype(np.int64)), offsets, item)
             cells.append(np.stack([named[rank.numpy()], item.numpy()], 1))
     cells = np.unique(np.concatenate(cells).astype(np.int64), axis=0)  # sorted by row, each cell once
     ex_r, ex_c = (torch.from_numpy(np.ascontiguousarray(cells[:, j])) for j in (0, 1))

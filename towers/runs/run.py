@@ -73,15 +73,16 @@ def _column_label(source, column: str) -> str:
     return str(source) if column == HISTORY else f"{source}, column '{column}'"
 
 
-def _left_out(counts: dict, separator: str = "|") -> str:
-    """Words for the history ids left out: those not in the run (the first named, with a hint when it looks
-    like several ids joined by another separator), and those no training history held."""
+def _left_out(counts: dict, separator: str | None = None) -> str:
+    """Words for the history ids left out: those not in the run (the first named; for text read with
+    `separator`, a hint when it looks like several ids joined by another), and those no training history held."""
     parts = []
     n, m = counts["unknown"], counts["untrained"]
     if n:
         first = counts.get("first_unknown")
         shown_id = "" if first is None else f" (e.g. {plain(first)!r}"
-        joined = [c for c in (";", ",", "|", "/", "\t", " ") if c != separator and c in str(first)] if first else []
+        joined = [c for c in (";", ",", "|", "/", "\t") if c != separator and c in str(first)] \
+            if first is not None and separator is not None else []
         if joined and shown_id:
             shown_id += f": ids joined by {joined[0]!r}? set the history separator to it"
         parts.append(f"{n} item id{'s' if n != 1 else ''} not in this run's items{shown_id}{')' if shown_id else ''}")
@@ -184,8 +185,11 @@ class Run:
         view._emb = dict(self._emb)
         view.item_table_cache = {}
         view._history_cache = None
-        view.new_item_rows = df.iloc[np.flatnonzero(fresh)] if self.new_item_rows is None else \
-            pd.concat([self.new_item_rows, df.iloc[np.flatnonzero(fresh)]], ignore_index=True)
+        rows_added = df.iloc[np.flatnonzero(fresh)].copy()
+        if id_column is not None:  # the ids as the catalog holds them (an int id given to a text run is its text)
+            rows_added[id_column] = pd.Series(new_ids[fresh], index=rows_added.index, dtype=object)
+        view.new_item_rows = rows_added if self.new_item_rows is None else \
+            pd.concat([self.new_item_rows, rows_added], ignore_index=True)
         view._emb[("item", TOWERS)] = (joined, *extended(vectors, bias, added.attrs["vectors"], added.attrs["bias"]),
                                        meta)
         if self.item_item:  # the new items as queries: the query tower on the same rows (a shared tower's is the item)
@@ -296,7 +300,7 @@ class Run:
             warnings.warn(f"{source}: values unseen in training were mapped to the unknown bucket ({listed})", stacklevel=4)
         if history is not None and (left_out["unknown"] or left_out["untrained"]):
             warnings.warn(f"{_column_label(source, history[0])}: left out of the histories "
-                          f"{_left_out(left_out, history[1])}",
+                          f"{_left_out(left_out, None if history[0] == HISTORY else history[1])}",
                           stacklevel=4)
 
     def _bags(self, column: pd.Series, source, history: tuple[str, str]) -> tuple[torch.Tensor, dict[str, int]]:

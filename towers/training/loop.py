@@ -336,8 +336,7 @@ class Trainer:
 
 
 def _leading(t: torch.Tensor | None, n: int) -> torch.Tensor | None:
-    """The first n rows of t (the batch's own pairs before any extra negatives) by split, not a slice: a slice's
-    backward zero-fills a gradient of the whole tensor."""
+    """The first n rows of t: the batch's own pairs, before any extra negatives drawn for the whole batch."""
     if t is None or len(t) == n:
         return t
     return t.split([n, len(t) - n])[0]
