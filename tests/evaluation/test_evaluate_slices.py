@@ -231,3 +231,14 @@ def test_a_warm_slice_of_users_without_training_events_says_so():
     assert metrics["notes"]["warm_new_queries"].startswith("10 of the warm slice's 12 test users (83%) have no "
                                                           "training events")
     assert "warm_new_queries" not in evaluate_slices({}, _split(), _cfg()).get("notes", {})
+
+
+def test_towers_behind_a_reference_on_warm_items_get_a_note():
+    from towers.evaluation.protocol import _towers_behind
+
+    warm = {"popularity": {"recall@20": 0.08}, "ease": {"recall@20": 0.20}, "towers": {"recall@20": 0.17},
+            "oracle": {"recall@20": 0.40}}
+    assert _towers_behind(warm, 20).startswith("towers: warm recall@20 0.1700 is 0.85 of ease's 0.2000")
+    assert _towers_behind(warm | {"towers": {"recall@20": 0.195}}, 20) is None  # within 5%
+    assert _towers_behind({"popularity": {"recall@20": 0.1}}, 20) is None  # no towers row
+    assert _towers_behind(warm | {"oracle": {"recall@20": 0.9}, "ease": {"recall@20": 0.1}}, 20) is None  # not the oracle

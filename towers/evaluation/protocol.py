@@ -560,6 +560,9 @@ def evaluate_slices(scorers: dict, data: SplitPairs, cfg: Config, event_vectors:
     new_users = _untrained_test_queries(data, everywhere)
     if new_users is not None:
         notes["warm_new_queries"] = new_users
+    behind = None if explicit else _towers_behind(out.get("warm", {}), min(ks))
+    if behind is not None:
+        notes["towers_behind"] = behind
     if groups and explicit:
         notes["group_metrics_by"] = ("evaluation.group_metrics_by: the per-group metrics are ranking metrics "
                                      "(recall@K, ndcg@K, ...); a squared-loss run ranks nothing, so it has none")
@@ -573,6 +576,25 @@ def evaluate_slices(scorers: dict, data: SplitPairs, cfg: Config, event_vectors:
     if reference_info:
         out["references"] = reference_info
     return out
+
+
+BEHIND = 0.95  # the towers' warm recall below this share of the best other model's gets a note (common practice)
+
+
+def _towers_behind(warm: dict, k: int) -> str | None:
+    """A note when the towers' warm recall@k is below BEHIND x the best other model's (popularity, the linear
+    factor model, EASE, item-kNN; not the oracle): what closed such gaps elsewhere. None otherwise."""
+    metric = f"recall@{k}"
+    towers = warm.get("towers", {}).get(metric)
+    others = {name: row[metric] for name, row in warm.items() if name not in ("towers", "oracle") and metric in row}
+    if towers is None or not others:
+        return None
+    best = max(others, key=others.get)
+    if not others[best] or towers >= BEHIND * others[best]:
+        return None
+    return (f"towers: warm {metric} {towers:.4f} is {towers / others[best]:.2f} of {best}'s {others[best]:.4f}; on "
+            "other data normalised vectors (model.normalize: true, model.temperature: 0.2), a longer patience or "
+            "`towers tune` closed such gaps (README, Limits)")
 
 
 def _untrained_test_queries(data: SplitPairs, everywhere) -> str | None:
