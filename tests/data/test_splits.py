@@ -210,7 +210,8 @@ def test_a_time_split_of_a_divided_log_is_the_one_process_split(groups, cold, wa
         try:
             mine = df[owner == rank]
             split = make_split(as_pairs(mine), 40, ev, seed, pool, False, groups=grouping(mine), n_queries=50,
-                               everywhere=summed.of(rank), positions=mine.index.to_numpy(np.int64) * 7 + 3,
+                               everywhere=summed.of(rank),  # the keys prepare passes: group codes, else places
+                               order_keys=mine["g"].to_numpy() if groups else mine.index.to_numpy(np.int64) * 7 + 3,
                                trained_before=None if fixed is None else fixed[mine.index.to_numpy()])
             got[mine.index] = with_sides(mine.reset_index(drop=True), split).side.to_numpy()
         except BaseException as exc:  # noqa: BLE001 - shown by the assertion below

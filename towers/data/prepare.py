@@ -182,7 +182,7 @@ def read_interactions(cfg: Config, split: bool = False, spill: Spill | None = No
     if shard is None:
         return log
     return _to_owners(log, group_values, units.finish(), shard, spill,
-                      with_positions=cfg.evaluation.split == "time" and log.time is not None)
+                      with_positions=cfg.evaluation.split == "time" and log.time is not None and not ic.group_column)
 
 
 def _to_owners(log: Log, group_values: np.ndarray | None, unit: np.ndarray, shard: Shard, spill: Spill,
@@ -193,7 +193,8 @@ def _to_owners(log: Log, group_values: np.ndarray | None, unit: np.ndarray, shar
     (collective.Exchange), and the rows arrive grouped by the process that read them; sorting them by
     unit puts them back in the log's order (a unit's rows come from one process, in order).
     with_positions: the rows also carry their place in the whole log (Log.position), which a time split
-    over every process's rows needs to break ties between rows of one time as one process would.
+    over every process's rows needs to break ties between rows of one time as one process would (with a group
+    column the groups' codes break them instead).
     """
     def numbered(codes, uniques):
         ids = merged_ids(codes, uniques, unit)
@@ -380,7 +381,7 @@ def prepare(cfg: Config, previous=None, trained_before: TrainedBefore | None = N
     split: Split = make_split(pairs, len(c_ids), cfg.evaluation, cfg.run.seed, cold_eligible=cold_items,
                               item_item=item_item, groups=groups, n_queries=len(q_ids), cold_user_eligible=cold_users,
                               sides=sel(log.side), everywhere=everywhere, trained_before=fixed,
-                              positions=sel(log.position))
+                              order_keys=groups if shard is not None and groups is not None else sel(log.position))
     warm_free = everywhere(len(split.train) + len(split.valid) + len(split.test)) - kept if fixed is not None else 0
     if fixed is not None and cfg.evaluation.split != "user_last" and cfg.evaluation.test_fraction > 0 and warm_free:
         held = everywhere(len(split.test)) / warm_free  # of the warm pairs the split could place (user_last: per user)

@@ -82,7 +82,7 @@ def make_split(pairs, n_items: int, ev: EvaluationSection, seed: int, cold_eligi
                item_item: bool, groups: np.ndarray | None = None, n_queries: int | None = None,
                cold_user_eligible: HoldOut | None = None, sides: np.ndarray | None = None,
                everywhere=lambda seen: seen, trained_before: np.ndarray | None = None,
-               positions: np.ndarray | None = None) -> Split:
+               order_keys: np.ndarray | None = None) -> Split:
     """Split pairs per the evaluation config; the same seed and data always give the same split.
 
     groups: one code per pair (the log's group column), or None. n_queries: rows of the query catalog
@@ -96,9 +96,10 @@ def make_split(pairs, n_items: int, ev: EvaluationSection, seed: int, cold_eligi
     on (a warm start): they stay in training, with every pair of their units, and the warm split places
     only the other units, its fractions taken of those, so no held-out pair is one the starting weights
     learned. With `sides` given (orders placed whole before pairing), such pairs move to training on their
-    own and the rest of their order keeps its side. positions: each pair's place in the whole log, increasing
-    with it, when the log is divided among processes: a time split then cuts every process's units at one
-    time, with the whole log's order breaking ties, as one process reading the whole log would.
+    own and the rest of their order keeps its side. order_keys: when the log is divided among processes, each
+    pair's key among equal times, alike in every process: its place in the whole log, or with groups its
+    group's code (numbered by first appearance in the whole log); a time split then cuts every process's units
+    at one time, ties broken as one process reading the whole log breaks them.
     """
     rng = np.random.default_rng(seed + 1)
     q = pairs.query.numpy()
@@ -136,8 +137,7 @@ def make_split(pairs, n_items: int, ev: EvaluationSection, seed: int, cold_eligi
     unit = split_units(of_rest(q), of_rest(c), None if groups is None else of_rest(groups), item_item) \
         if item_item or groups is not None else len(rest)
     when = None if pairs.time is None else of_rest(pairs.time.numpy())
-    whole = None if positions is None else WholeLog(of_rest(np.asarray(positions)), everywhere,
-                                                     None if groups is None else of_rest(np.asarray(groups)))
+    whole = None if order_keys is None else WholeLog(of_rest(np.asarray(order_keys)), everywhere)
     if fixed is not None and fixed.any():
         side = _sides_around(fixed, unit, of_rest(q), when, ev, rng, whole)
     else:
@@ -148,24 +148,20 @@ def make_split(pairs, n_items: int, ev: EvaluationSection, seed: int, cold_eligi
 
 @dataclass
 class WholeLog:
-    """A divided log's rows as parts of the whole (data/shards.py): each row's place in the whole log, its group
-    code (numbered alike in every process, by first appearance in the whole log), and `summed`, which adds a
+    """A divided log's rows as parts of the whole (data/shards.py): each row's key among equal times (make_split's
+    order_keys: alike in every process, ordered as one process orders its units) and `summed`, which adds a
     count over the processes."""
 
-    positions: np.ndarray  # int64, one per row, increasing with the row's place in the whole log
+    keys: np.ndarray
     summed: object
-    groups: np.ndarray | None = None
 
     def part(self, rows: np.ndarray) -> "WholeLog":
-        return WholeLog(self.positions[rows], self.summed, None if self.groups is None else self.groups[rows])
+        return WholeLog(self.keys[rows], self.summed)
 
     def unit_keys(self, unit: np.ndarray | int, n_units: int) -> np.ndarray:
-        """Each unit's place among equal times as one process orders units: a row unit by its place in the log,
-        a group by its code (one process numbers units in the order of their group codes)."""
-        if isinstance(unit, int):
-            return self.positions
-        first = _unit_first_row(unit, n_units)
-        return (self.groups if self.groups is not None else self.positions)[first].astype(np.int64)
+        """Each unit's key: its first row's (a group's rows share their group's code)."""
+        keys = self.keys if isinstance(unit, int) else self.keys[_unit_first_row(unit, n_units)]
+        return keys.astype(np.int64, copy=False)
 
 
 def _unit_sides(unit: np.ndarray | int, q: np.ndarray, when: np.ndarray | None, ev: EvaluationSection,
@@ -314,7 +310,7 @@ def _whole_log_time_sides(unit: np.ndarray | int, when: np.ndarray, ev: Evaluati
                           whole: WholeLog) -> np.ndarray:
     """global_sides' time split of every process's units, made in each process for its own: the counts are of
     the whole log's units, and of two units at one time the later is the one one process numbers later (a
-    row: later in the log; a group: a later first appearance, WholeLog.unit_keys), so the processes place
+    row: later in the log; a group: a later first appearance; WholeLog.unit_keys), so the processes place
     between them exactly the units one process would (global_sides' sort by time is stable)."""
     n_units = _unit_count(unit)
     when_unit = _unit_time(unit, n_units, when)

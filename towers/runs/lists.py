@@ -129,6 +129,15 @@ def _text(value) -> str:
     return str(value)
 
 
+TRUTH = {"true": "true", "1": "true", "false": "false", "0": "false"}  # how a boolean may be written, as compared
+
+
+def _holds_booleans(series: pd.Series) -> bool:
+    """A column of booleans, or of text and numbers with booleans among them (a CSV's True/False cells)."""
+    return pd.api.types.is_bool_dtype(series) or (series.dtype == object
+                                                  and series.map(type).isin((bool, np.bool_)).any())
+
+
 def _texts(series: pd.Series) -> pd.Series:
     """A whole column as _text gives each value (missing values stay missing), without a Python call per row."""
     missing = series.isna().to_numpy()
@@ -140,7 +149,7 @@ def _texts(series: pd.Series) -> pd.Series:
         with np.errstate(invalid="ignore"):
             whole = np.isfinite(values) & (values == np.round(values)) & (np.abs(values) < 2.0 ** 63)
         out[whole] = values[whole].astype(np.int64).astype(str)
-    elif series.dtype == object and series.map(type).isin((bool, np.bool_)).any():
+    elif _holds_booleans(series):
         out = series.map(_text, na_action="ignore").to_numpy(dtype=object)  # true/false among other values
     else:
         out = series.astype(str).to_numpy(dtype=object)
@@ -211,13 +220,10 @@ class ItemTable:
     def _given(self, name: str, values: tuple[str, ...]) -> tuple[str, ...]:
         """The filter's values as the column's are compared: in a boolean column True, TRUE, 1 ... are true."""
         if ("boolean", name) not in self._seen:  # a table serves many requests: looked at once a column
-            series = self._frame[name]
-            self._seen[("boolean", name)] = pd.api.types.is_bool_dtype(series) or (
-                series.dtype == object and series.map(type).isin((bool, np.bool_)).any())
+            self._seen[("boolean", name)] = _holds_booleans(self._frame[name])
         if not self._seen[("boolean", name)]:
             return values
-        spelled = {"true": "true", "1": "true", "false": "false", "0": "false"}
-        return tuple(spelled.get(v.strip().lower(), v) for v in values)
+        return tuple(TRUTH.get(v.strip().lower(), v) for v in values)
 
     def _warn_unmatched(self, name: str, text: pd.Series, values: tuple[str, ...], kind: str) -> None:
         """A warning naming each filter value no item of the run has (a spelling, a case, a stray space), with
@@ -228,11 +234,10 @@ class ItemTable:
         missing = [v for v in values if v not in held]
         if not missing:
             return
-        present = np.asarray(list(held), dtype=object)
-        by_case = {str(v).casefold().strip(): v for v in present}
+        by_case = {str(v).casefold().strip(): v for v in held}
         hints = [f"{v!r} (did you mean {by_case[v.casefold().strip()]!r}?)" if v.casefold().strip() in by_case
                  else repr(v) for v in missing]
-        listed = sorted(present.tolist())
+        listed = sorted(held)
         sample = ", ".join(repr(v) for v in listed[:12]) + (", ..." if len(listed) > 12 else "")
         if kind == "only":
             effect = "so nothing passes this filter" if len(missing) == len(values) else "so only the other values pass"
@@ -247,12 +252,12 @@ class ItemTable:
             truth = series.to_numpy(dtype=bool)
         else:
             text = _texts(series).str.lower()
-            known = text.isna() | text.isin(("true", "false", "1", "0"))
+            known = text.isna() | text.isin(tuple(TRUTH))
             if not known.all():
                 row = int(np.flatnonzero(~known.to_numpy())[0])
                 raise TowersError(f"{where(self.path, shown(name), row + 1)}: {series.iloc[row]!r} is not true or "
                                   "false; only-true needs a boolean column (true/false or 1/0, empty for unknown)")
-            truth = text.isin(("true", "1")).to_numpy()
+            truth = (text.map(TRUTH) == "true").to_numpy()
         return truth[np.where(self.present, self._rows, 0)] & self.present
 
     def _text(self, name: str) -> pd.Series:
@@ -532,7 +537,7 @@ def _run_scorer(run, vectors: torch.Tensor, bias: torch.Tensor | None) -> Scorer
     return Scorer(vectors, base.item_vectors, bias, base.item_bias, base.global_bias, base.scale)
 
 
-def row_ids(df: pd.DataFrame, id_column: str | None) -> pd.DataFrame:
+def _row_ids(df: pd.DataFrame, id_column: str | None) -> pd.DataFrame:
     """Feature rows without an id column get the ids "row 1", "row 2", ... (unknown to the run: the unknown row)."""
     if id_column is None or id_column in df.columns:
         return df
@@ -547,7 +552,7 @@ def recommend_rows(run, df: pd.DataFrame, top: int, history_column: str | None, 
         raise TowersError(f"{source}: expected a table of user feature rows (a pandas DataFrame), got "
                           f"{type(df).__name__}")
     lists = lists_for(run, columns, keep, item_table)
-    df = row_ids(df.reset_index(drop=True), run.bundle.query_encoders.id_column)
+    df = _row_ids(df.reset_index(drop=True), run.bundle.query_encoders.id_column)
     embedded = run.embed_users(df, source, history_column=history_column, separator=separator)
     cells = [np.zeros((0, 2), dtype=np.int64)]  # (row of df, item row) left out of that row's list
     if history_column is not None:  # every given item of the run is left out, as recommend_history does
@@ -562,8 +567,7 @@ def recommend_rows(run, df: pd.DataFrame, top: int, history_column: str | None, 
         if len(named):  # the known pairs of the distinct users named (recommend's excluded_cells), then per row
             users, of_row = np.unique(at[named].astype(np.int64), return_inverse=True)
             user_at, item = excluded_cells(torch.from_numpy(users), *run.known_pairs())
-            offsets = torch.zeros(len(users) + 1, dtype=torch.int64)
-            offsets[1:] = torch.cumsum(torch.bincount(user_at, minlength=len(users)), 0)
+            offsets, item = known_by_query(user_at, item, len(users))
             rank, item = block_exclusions(torch.from_numpy(of_row.reshape(-1).astype(np.int64)), offsets, item)
             cells.append(np.stack([named[rank.numpy()], item.numpy()], 1))
     cells = np.unique(np.concatenate(cells).astype(np.int64), axis=0)  # sorted by row, each cell once
@@ -583,11 +587,11 @@ def similar_rows(run, df: pd.DataFrame, top: int, columns, keep, item_table, sou
     m = run.bundle.model
     if run.item_item:  # the trained pair score: the new items through the query side
         enc = run.bundle.query_encoders
-        df = row_ids(df.reset_index(drop=True), enc.id_column)
+        df = _row_ids(df.reset_index(drop=True), enc.id_column)
         embedded = run._embed(df, enc, m.query_tower, m.query_bias if m.use_biases else None, source)
         scorer = _run_scorer(run, embedded.attrs["vectors"], embedded.attrs["bias"])
     else:  # cosine similarity of item vectors
-        df = row_ids(df.reset_index(drop=True), run.bundle.candidate_encoders.id_column)
+        df = _row_ids(df.reset_index(drop=True), run.bundle.candidate_encoders.id_column)
         embedded = run.embed_items(df, source)
         unit = torch.nn.functional.normalize(i_vec, dim=1)
         scorer = Scorer(torch.nn.functional.normalize(embedded.attrs["vectors"], dim=1), unit)

@@ -155,11 +155,10 @@ class Run:
         if not isinstance(rows, pd.DataFrame):
             raise TowersError(f"{source}: expected a table of item feature rows (a pandas DataFrame or a file), got "
                               f"{type(rows).__name__}")
-        df = rows
-        if id_column is not None and id_column not in df.columns:
+        if id_column is not None and id_column not in rows.columns:
             raise TowersError(f"{source}: new items need their ids in a column {id_column!r} (the run's item id "
                               "column), so lists can name them")
-        df = df.reset_index(drop=True)
+        df = rows.reset_index(drop=True)
         added = self.embed_items(df, source)
         new_ids = added["id"].to_numpy()
         if ids.dtype.kind in "iu" and new_ids.dtype.kind not in "iu" and len(new_ids):
@@ -172,12 +171,9 @@ class Run:
             warnings.warn(f"{source}: {int((~fresh).sum())} of the {len(new_ids)} rows are items of this run already "
                           f"(e.g. {first!r}); they keep their trained vectors", stacklevel=2)
         keep = torch.from_numpy(np.flatnonzero(fresh))
-        n_new = len(keep)
-        joined = np.concatenate([ids, new_ids[fresh].astype(ids.dtype)]) if ids.dtype.kind in "iu" else \
-            np.concatenate([ids.astype(object), new_ids[fresh].astype(object)])
+        joined = np.concatenate([ids, new_ids[fresh].astype(ids.dtype)])  # the catalog's id type (checked above)
 
-        def extended(side_vectors, side_bias, more_vectors, more_bias):
-            more_bias = None if side_bias is None else (more_bias if more_bias is not None else torch.zeros(n_new))
+        def extended(side_vectors, side_bias, more_vectors, more_bias):  # biases both or neither: one model
             return (torch.cat([side_vectors, more_vectors.index_select(0, keep)]),
                     None if side_bias is None else torch.cat([side_bias, more_bias.index_select(0, keep)]))
 
@@ -281,10 +277,10 @@ class Run:
                 block = encoders.encode(lookup[start:start + len(frame)], frame.reset_index(drop=True), source)
                 if history is not None:
                     block[HISTORY], counts = self._bags(frame[history[0]], source, history)
-                    left_out = {"unknown": left_out["unknown"] + counts["unknown"],
-                                "untrained": left_out["untrained"] + counts["untrained"],
-                                "first_unknown": left_out["first_unknown"] if left_out["first_unknown"] is not None
-                                else counts.get("first_unknown")}
+                    left_out["unknown"] += counts["unknown"]
+                    left_out["untrained"] += counts["untrained"]
+                    if left_out["first_unknown"] is None:  # the first piece's to show
+                        left_out["first_unknown"] = counts.get("first_unknown")
             except TowersError as exc:
                 raise _rows_in_file(exc, source, start) from None
             for name, count in encoders.unknown_counts().items():
