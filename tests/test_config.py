@@ -43,10 +43,33 @@ def test_every_schema_key_is_filled_with_its_default(tmp_path):
         for name, key in keys.items():
             if section == "interactions" and name in ("path", "query_column", "candidate_column"):
                 continue
+            if section == "model" and name in ("normalize", "temperature"):
+                continue  # settled by the loss (next test)
             assert getattr(getattr(cfg, section), name) == key.default, f"{section}.{name}"
     assert cfg.training.epochs == 20
     assert cfg.model.hidden == (128,)
     assert cfg.users.features == ()
+
+
+@pytest.mark.parametrize("loss, normalize, temperature", [("softmax", True, C.NORMALIZED_TEMPERATURE),
+                                                          ("logistic", False, 1.0), ("squared", False, 1.0)])
+def test_empty_normalize_and_temperature_are_settled_by_the_loss(tmp_path, loss, normalize, temperature):
+    raw = minimal()
+    raw["training"] = {"loss": loss}
+    cfg = C.resolve(raw, tmp_path)
+    assert (cfg.model.normalize, cfg.model.temperature) == (normalize, temperature)
+    assert C.dump(cfg).count("normalize: null") == 0  # a run folder's config holds plain values
+    raw["model"] = {"normalize": not normalize}
+    flipped = C.resolve(raw, tmp_path).model
+    assert (flipped.normalize, flipped.temperature) == (not normalize, 1.0 if normalize else C.NORMALIZED_TEMPERATURE)
+    raw["model"] = {"normalize": True, "temperature": 0.5}
+    assert C.resolve(raw, tmp_path).model.temperature == 0.5
+
+
+def test_a_bundle_written_before_feature_bias_loads_without_the_head():
+    old = {"dim": 4, "hidden": [8], "normalize": False, "temperature": 1.0}  # no feature_bias key
+    assert C.model_section(old).feature_bias is False
+    assert C.model_section(old | {"feature_bias": True}).feature_bias is True
 
 
 def test_resolved_sections_are_frozen_and_changed_by_copy(tmp_path):

@@ -46,6 +46,9 @@ def key(kind: str, default: Any, meaning: str, **constraints) -> Any:
 FEATURE_KINDS = ("numeric", "categorical", "tokens", "vector", "date")
 CONTEXT_KINDS = ("numeric", "categorical", "date")
 DEFAULT_NEGATIVES = 4  # sampled negatives per positive under the logistic loss when none are configured
+# the temperature of normalised vectors when none is configured: measured best on MovieLens latest-small
+# (DEVELOPERS.md, "Defaults"); towers tune searches 0.02 to 1
+NORMALIZED_TEMPERATURE = 0.2
 
 
 @dataclass(frozen=True)
@@ -213,10 +216,19 @@ class ModelSection:
     id_table_combine: str = key('choice', 'product',
                                 'id_table_rows: how the two rows of an id combine, element-wise product or sum',
                                 choices=('product', 'sum'))
-    normalize: bool = key('bool', False, "L2-normalise each tower's output")
-    temperature: float = key('float', 1.0, 'scores are divided by this (useful with normalize)', low=0.0, low_open=True)
+    normalize: bool | None = key('bool', None,
+                                 "L2-normalise each tower's output; empty: on under the softmax loss, off under "
+                                 "logistic and squared", nullable=True)
+    temperature: float | None = key('float', None,
+                                    'scores are divided by this (useful with normalize); empty: '
+                                    f'{NORMALIZED_TEMPERATURE} with normalised vectors, 1 without',
+                                    low=0.0, low_open=True, nullable=True)
     non_negative: bool = key('bool', False, 'softplus on the output so every embedding entry is >= 0')
     biases: bool = key('bool', True, 'per-id biases on both sides plus a global bias')
+    feature_bias: bool = key('bool', True,
+                             "biases on: an item tower with features also predicts each item's bias from them "
+                             "(one more output of its MLP, added to the id bias), so a new item gets a "
+                             "popularity from its features and normalised vectors keep one")
     shared_tower: bool = key('bool', False, 'item_item mode: one tower embeds both sides')
     history_length: int = key('int', 0,
                               "user_item runs: the query tower also averages embeddings of up to this many of "
@@ -230,6 +242,11 @@ class ModelSection:
                                   "history_length > 0: in training, each pair's history holds only the user's items "
                                   "from before the pair's time, as a held-out pair's history precedes it (needs "
                                   "interactions.time_column); false: every training item but the pair's own")
+
+    def __post_init__(self) -> None:
+        # built in code rather than from a config (resolve fills both keys): no loss to settle normalize by
+        if self.temperature is None:
+            object.__setattr__(self, "temperature", NORMALIZED_TEMPERATURE if self.normalize else 1.0)
 
 
 @dataclass(frozen=True)
@@ -481,6 +498,8 @@ def section_of(name: str, values: dict):
 def model_section(values: dict) -> ModelSection:
     """A ModelSection from a bundle's plain model settings (keys it lacks keep their defaults)."""
     keys = SCHEMA["model"]
+    values = {"feature_bias": False} | dict(values)  # bundles written before the key have no bias output
+    _settle_scale(values, None)
     return ModelSection(**{k: _typed_value(keys[k].kind, v) for k, v in values.items() if k in keys})
 
 
@@ -629,7 +648,17 @@ def resolve(raw: dict, base_dir: Path) -> Config:
         out[section] = {k: _check_value(f"{section}.{k}", key, copy.deepcopy(given.get(k, key.default)), base_dir)
                         for k, key in keys.items()}
     _check_consistency(out)
+    _settle_scale(out["model"], out["training"]["loss"])
     return Config(**{name: section_of(name, values) for name, values in out.items()})
+
+
+def _settle_scale(model: dict, loss: str | None) -> None:
+    """Fill an empty model.normalize (on under the softmax loss) and model.temperature (NORMALIZED_TEMPERATURE
+    with normalised vectors, else 1), so a resolved config and every run folder hold plain values."""
+    if model.get("normalize") is None:
+        model["normalize"] = loss == "softmax"
+    if model.get("temperature") is None:
+        model["temperature"] = NORMALIZED_TEMPERATURE if model["normalize"] else 1.0
 
 
 def _check_consistency(cfg: dict) -> None:

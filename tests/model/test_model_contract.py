@@ -138,12 +138,16 @@ def test_exported_files_score_as_the_model_in_memory(files, kind, tmp_path):
         return  # its query vectors are averages over a sample of contexts, checked above through the files
     with torch.no_grad():
         model.eval()
-        qv, cv = model.query_tower(data.queries.block), model.candidate_tower(data.candidates.block)
-        forward = (qv[q] * cv[c]).sum(1) / model.temperature
+        queries, items = model.query_tower.encode(data.queries.block), model.candidate_tower.encode(data.candidates.block)
+        forward = (queries.vectors[q] * items.vectors[c]).sum(1) / model.temperature
         if model.use_biases:
             forward = forward + model.query_bias_of(data.queries.block["id"])[q] \
                 + model.candidate_bias_of(data.candidates.block["id"])[c] + model.global_bias
-    # reference: the towers' own forward pass, score = q.c / temperature + biases (TwoTowerModel's docstring)
+            for side, rows in ((queries, q), (items, c)):  # a shared tower's queries are items: theirs too
+                if side.feature_bias is not None:
+                    forward = forward + side.feature_bias[rows]
+    # reference: the towers' own forward pass, score = q.c / temperature + biases, an item's id bias plus its
+    # feature bias (TwoTowerModel's docstring)
     torch.testing.assert_close(expected, forward, rtol=1e-5, atol=1e-5)
 
 

@@ -39,7 +39,7 @@ def test_tower_output_options():
 
 def test_id_only_tower_is_the_id_table():
     # the linear factor preset: with ids only and no hidden layer the embedding is the table row itself
-    m = TwoTowerModel([], 6, [], 4, _model_cfg(hidden=[], dim=3)).eval()
+    m = TwoTowerModel([], 6, [], 4, _model_cfg(hidden=[], dim=3, normalize=False)).eval()
     ids = torch.tensor([0, 2, 3])
     assert torch.equal(m.query_tower({"id": ids}), m.query_tower.ids.weight[ids])
     assert torch.equal(m.query_tower.ids.weight[0], torch.zeros(3))  # the unknown row starts at zero
@@ -71,7 +71,7 @@ def test_history_decay_pools_the_latest_items_with_geometric_weights():
     bags = torch.tensor([[3, 1, 4, 0, 0], [2, 0, 5, 6, 1], [0, 0, 0, 0, 0]])  # latest first; 0 pads, inner 0 a taken-out target
     spec = [{"name": HISTORY, "kind": "tokens", "size": 7, "dim": 4}]
     for decay in (1.0, 0.5):
-        tower = Tower(spec, 1, _model_cfg(use_ids=False, hidden=[], history_decay=decay)).eval()
+        tower = Tower(spec, 1, _model_cfg(use_ids=False, hidden=[], history_decay=decay, normalize=False)).eval()
         table = tower.tables["f0"].weight.detach().numpy()
         # reference: a numpy weighted average, weights decay**position over each bag's items, summing to 1
         pos = np.arange(bags.shape[1])

@@ -49,7 +49,7 @@ def _reference(trainer: Trainer, idx: torch.Tensor, negatives: torch.Tensor) -> 
     qb = {k: v[q_rows] for k, v in d.queries.block.items()}
     cb = {k: v[torch.cat([c_rows, negatives])] for k, v in d.candidates.block.items()}
     qe, ce = m.query_tower(qb, qb["id"]), m.candidate_tower(cb, cb["id"])
-    bq, bc = m.query_bias(qb["id"]).squeeze(1), m.candidate_bias(cb["id"]).squeeze(1)
+    bq, bc = m.query_bias(qb["id"]).squeeze(1), m.candidate_bias(cb["id"]).squeeze(1) + _feature_bias(m.candidate_tower, cb)
     s = torch.cat([qe, qe.repeat_interleave(n_neg, 0)]) * torch.cat([ce[:b], ce[b:]])
     scores = s.sum(1) + torch.cat([bq, bq.repeat_interleave(n_neg)]) + bc + m.global_bias
     labels = torch.cat([torch.ones(b), torch.zeros(b * n_neg)])
@@ -57,6 +57,18 @@ def _reference(trainer: Trainer, idx: torch.Tensor, negatives: torch.Tensor) -> 
     bce = F.binary_cross_entropy_with_logits(scores, labels, reduction="none")
     per_pair = bce[:b] + bce[b:].view(b, n_neg).sum(1)
     return (per_pair + _penalty(trainer, qb["id"], cb["id"][:b])).mean()
+
+
+def _feature_bias(tower, block: dict) -> torch.Tensor | float:
+    """The item tower's feature bias written out: its bias head applied on its own to what the output layer
+    reads, the last hidden activations caught by a hook (0 for a tower without a head)."""
+    if tower.bias_head is None:
+        return 0.0
+    seen = []
+    handle = tower.mlp[-2].register_forward_hook(lambda module, inputs, output: seen.append(output))
+    tower(block, block["id"])
+    handle.remove()
+    return tower.bias_head(seen[0]).squeeze(1)
 
 
 def _penalty(trainer: Trainer, uq: torch.Tensor, uc: torch.Tensor) -> torch.Tensor:
@@ -108,6 +120,7 @@ def test_batch_loss_and_gradients_match_the_written_out_objective(tmp_path, hidd
     cfg, data = _data(tmp_path, hidden, features, id_table_rows=id_table_rows)
     model, trainer, idx = _trainer(cfg, data, 50)
     assert (type(model.query_tower.ids).__name__ == "QRTable") == bool(id_table_rows)
+    assert (model.candidate_tower.bias_head is not None) == features  # model.feature_bias: on by default
     state = trainer.generator.get_state()
     got = trainer.batch_loss(idx)
     got.backward()
@@ -141,7 +154,8 @@ def test_softmax_batch_loss_and_gradients_match_the_written_out_objective(tmp_pa
     qb = {k: v[q_rows] for k, v in d.queries.block.items()}
     cb = {k: v[columns] for k, v in d.candidates.block.items()}
     logits = model.query_tower(qb, qb["id"]) @ model.candidate_tower(cb, cb["id"]).T
-    logits = logits + model.candidate_bias(cb["id"]).squeeze(1)
+    assert model.candidate_tower.bias_head is not None
+    logits = logits + model.candidate_bias(cb["id"]).squeeze(1) + _feature_bias(model.candidate_tower, cb)
     log_q = torch.log(len(idx) * trainer.log_q[columns].double().exp() + 7 / len(trainer.warm_rows)).float()
     want = (in_batch_softmax_loss(logits, columns, log_q) + _penalty(trainer, qb["id"], cb["id"][:len(idx)])).mean()
     _assert_same(model, got, got_grads, want)

@@ -6,6 +6,8 @@ then the embedding itself (matrix factorisation with biases).
 
 from __future__ import annotations
 
+from typing import NamedTuple
+
 import torch
 import torch.nn as nn
 import torch.nn.functional as F
@@ -18,10 +20,25 @@ ACTIVATIONS = {"relu": nn.ReLU, "gelu": nn.GELU, "tanh": nn.Tanh, "silu": nn.SiL
 ID_INIT_STD = 0.1  # common practice for factor tables (no source)
 
 
-class Tower(nn.Module):
-    """Maps one side's encoded features (a FeatureBlock batch) to k-dim embeddings."""
+class Encoded(NamedTuple):
+    """What a tower makes of a batch: the vectors, the id-table rows read (None without ids), and the bias
+    predicted from features (None without a bias head)."""
 
-    def __init__(self, inputs: list[dict], id_rows: int, model_cfg: ModelSection, side: str = "id"):
+    vectors: torch.Tensor
+    id_rows: torch.Tensor | None
+    feature_bias: torch.Tensor | None
+
+
+class Tower(nn.Module):
+    """Maps one side's encoded features (a FeatureBlock batch) to k-dim embeddings.
+
+    bias_head: also predict each entity's bias from its features (model.feature_bias), a linear map of
+    what the MLP's output layer reads: a new entity gets a popularity of its own instead of the unknown
+    id's, and normalised vectors, which cannot carry popularity in their length, keep one.
+    """
+
+    def __init__(self, inputs: list[dict], id_rows: int, model_cfg: ModelSection, side: str = "id",
+                 bias_head: bool = False):
         super().__init__()
         dim = model_cfg.dim
         self.inputs = inputs
@@ -63,6 +80,8 @@ class Tower(nn.Module):
                 width = h
             layers.append(nn.Linear(width, dim))
         self.mlp = nn.Sequential(*layers)
+        # a head of its own, not a row of the output layer: towers trained without one keep their weights' shapes
+        self.bias_head = nn.Linear(width, 1) if bias_head and inputs and not self.direct else None
 
     def id_rows(self, block: dict) -> torch.Tensor:
         """The id-table rows this batch uses; in training a share is swapped for the unknown row."""
@@ -80,14 +99,15 @@ class Tower(nn.Module):
         return F.embedding_bag(bags, table.weight, mode="sum", per_sample_weights=weights, padding_idx=0)
 
     def forward(self, block: dict, ids: torch.Tensor | None = None) -> torch.Tensor:
-        return self.with_id_rows(block, ids)[0]
+        return self.encode(block, ids).vectors
 
-    def with_id_rows(self, block: dict, ids: torch.Tensor | None = None) -> tuple[torch.Tensor, torch.Tensor | None]:
-        """The embeddings and the id-table rows they were made from (None without ids), so the id penalty in
-        training reads each row once: one sparse gradient entry a lookup, not two to be added together."""
+    def encode(self, block: dict, ids: torch.Tensor | None = None) -> Encoded:
+        """The embeddings, the id-table rows they were made from, so the id penalty in training reads each row
+        once (one sparse gradient entry a lookup, not two to be added together), and the feature bias."""
         if ids is None and self.use_ids:
             ids = self.id_rows(block)
         rows = self.ids(ids) if self.use_ids else None
+        bias = None
         if self.direct:
             out = rows
         else:
@@ -99,25 +119,36 @@ class Tower(nn.Module):
                 elif spec["kind"] in ("categorical", "tokens"):
                     x = self.tables[f"f{pos}"](x)
                 parts.append(x)
-            out = self.mlp(torch.cat(parts, dim=1))
+            x = torch.cat(parts, dim=1)
+            if self.bias_head is None:
+                out = self.mlp(x)
+            else:
+                # one product with the output layer: as chunk-size-independent as the vectors it sits beside
+                last = self.mlp[-1]
+                both = F.linear(self.mlp[:-1](x), torch.cat([last.weight, self.bias_head.weight]),
+                                torch.cat([last.bias, self.bias_head.bias]))
+                out, bias = both[:, :-1], both[:, -1]
         if self.non_negative:
             out = F.softplus(out)
         if self.normalize:
             out = F.normalize(out, dim=1)
-        return out, rows
+        return Encoded(out, rows, bias)
 
 
 class TwoTowerModel(nn.Module):
-    """Query and candidate towers, optional per-id and global biases; score = q.c / temperature + biases."""
+    """Query and candidate towers, optional per-id and global biases; score = q.c / temperature + biases, an
+    item's bias its id bias plus, with model.feature_bias, the bias its tower predicts from its features."""
 
     def __init__(self, query_inputs: list[dict], query_ids: int, cand_inputs: list[dict], cand_ids: int,
                  model_cfg: ModelSection, shared: bool = False):
         super().__init__()
         self.temperature = model_cfg.temperature
-        self.candidate_tower = Tower(cand_inputs, cand_ids, model_cfg, "item id")
+        self.use_biases = model_cfg.biases
+        # the item side only: a query's bias shifts all its scores alike, so it ranks nothing
+        self.candidate_tower = Tower(cand_inputs, cand_ids, model_cfg, "item id",
+                                     bias_head=model_cfg.biases and model_cfg.feature_bias)
         self.shared = shared
         self.query_tower = self.candidate_tower if shared else Tower(query_inputs, query_ids, model_cfg, "query-side id")
-        self.use_biases = model_cfg.biases
         if self.use_biases:
             self.candidate_bias = sparse_table(cand_ids, 1, 0.0)
             self.query_bias = self.candidate_bias if shared else sparse_table(query_ids, 1, 0.0)
@@ -127,6 +158,7 @@ class TwoTowerModel(nn.Module):
         return self.query_bias(ids).squeeze(1) if self.use_biases else torch.zeros(len(ids))
 
     def candidate_bias_of(self, ids: torch.Tensor) -> torch.Tensor:
+        """The items' id biases (zeros without biases); Encoded.feature_bias adds to them (whole_bias)."""
         return self.candidate_bias(ids).squeeze(1) if self.use_biases else torch.zeros(len(ids))
 
     def sparse_parameters(self) -> list[nn.Parameter]:
@@ -141,3 +173,9 @@ class TwoTowerModel(nn.Module):
         sparse = {id(p) for p in self.sparse_parameters()}
         skip = {id(self.global_bias)} if self.use_biases else set()
         return [p for p in self.parameters() if id(p) not in sparse and id(p) not in skip]
+
+
+def whole_bias(id_bias: torch.Tensor, encoded: Encoded) -> torch.Tensor:
+    """An entity's whole bias: its id bias plus what its tower predicts from its features, if it does (item
+    towers, so also the items a shared tower embeds as queries)."""
+    return id_bias if encoded.feature_bias is None else id_bias + encoded.feature_bias

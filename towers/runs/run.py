@@ -49,6 +49,7 @@ from towers.errors import TowersError, plain
 from towers.evaluation.protocol import evaluate_slices, oracle_scorer, popularity_scorer, reference_scorers
 from towers.model.bundle import load_bundle
 from towers.model.embed import EMBED_CHUNK, reads_history
+from towers.model.towers import whole_bias
 from towers.runs import lists as L
 from towers.runs.folder import EMBEDDINGS, SUBFOLDER_MODELS, TOWERS, RunFolder
 from towers.search.scorer import Scorer, excluded_cells
@@ -288,9 +289,9 @@ class Run:
             if history is None and reads_history(tower):  # no history given: features alone
                 block[HISTORY] = empty_history(len(frame))
             with torch.no_grad():
-                vecs = tower(block)
-                bias = bias_table(block["id"]).squeeze(1) if bias_table is not None else None
-            yield start, vecs, bias
+                encoded = tower.encode(block)
+                bias = whole_bias(bias_table(block["id"]).squeeze(1), encoded) if bias_table is not None else None
+            yield start, encoded.vectors, bias
         if unknown:
             listed = ", ".join(f"{k}: {v}" for k, v in unknown.items())
             warnings.warn(f"{source}: values unseen in training were mapped to the unknown bucket ({listed})", stacklevel=4)

@@ -31,7 +31,7 @@ from towers.errors import TowersError
 from towers.memory import reuse_freed_memory
 from towers.model.bundle import load_payload
 from towers.model.losses import blocked_in_batch_softmax_loss, logistic_loss, squared_loss
-from towers.model.towers import Tower, TwoTowerModel
+from towers.model.towers import Tower, TwoTowerModel, whole_bias
 from towers.training.distributed import GradientExchange, mean_over_processes
 from towers.training.negatives import NegativeSampler, log_batch_share
 from towers.training.objectives import (
@@ -109,7 +109,7 @@ class Trainer:
                  bias_rows: torch.Tensor | None = None) -> torch.Tensor:
         """lambda/2 * (||row||^2 + b^2) / n_row for each pair's id row (row 0, the unknown id, is free).
 
-        rows: the id rows the tower read for `ids` (Tower.with_id_rows; None without ids); bias_rows: their
+        rows: the id rows the tower read for `ids` (Tower.encode; None without ids); bias_rows: their
         biases where the loss read them already, else they are read here. So no table is read twice and each
         gets one sparse gradient entry a lookup, not two to be added together.
         """
@@ -132,15 +132,17 @@ class Trainer:
         q_rows, c_rows = train.query.index_select(0, idx), train.candidate.index_select(0, idx)
         qb = self.query_batch(idx, q_rows, c_rows)
         q_ids = m.query_tower.id_rows(qb)
-        qe, q_id_rows = m.query_tower.with_id_rows(qb, q_ids)
+        qe, q_id_rows, _ = m.query_tower.encode(qb, q_ids)
         columns = c_rows
         if self.extra:  # mixed negatives: items drawn uniformly, shared by the batch (Yang et al., WWW 2020)
             pick = torch.randint(len(self.warm_rows), (self.extra,), generator=self.negative_generator)
             columns = torch.cat([c_rows, self.warm_rows.index_select(0, pick)])
         cb = take(d.candidates.block, columns)
         c_ids = m.candidate_tower.id_rows(cb)
-        ce, c_id_rows = m.candidate_tower.with_id_rows(cb, c_ids)
-        cbias = m.candidate_bias_of(c_ids)
+        c_enc = m.candidate_tower.encode(cb, c_ids)
+        ce, c_id_rows = c_enc.vectors, c_enc.id_rows
+        c_id_bias = m.candidate_bias_of(c_ids)
+        cbias = whole_bias(c_id_bias, c_enc)
         log_q = None
         if self.log_q is not None:  # log of each column item's expected count among the columns
             share = self.log_q.index_select(0, columns).double().exp()
@@ -155,7 +157,7 @@ class Trainer:
                                         q_id_rows)
             loss = loss + self._penalty(m.candidate_tower, m.candidate_bias if m.use_biases else None, c_ids[:len(idx)],
                                         self.c_inv, _leading(c_id_rows, len(idx)),
-                                        _leading(cbias, len(idx)) if m.use_biases else None)
+                                        _leading(c_id_bias, len(idx)) if m.use_biases else None)
         return loss.mean()
 
     def query_batch(self, idx: torch.Tensor, q_rows: torch.Tensor, c_rows: torch.Tensor) -> dict:
@@ -196,16 +198,20 @@ class Trainer:
         q_rows, c_rows = train.query.index_select(0, idx), train.candidate.index_select(0, idx)
         qb = self.query_batch(idx, q_rows, c_rows)
         q_ids = m.query_tower.id_rows(qb)
-        qe, q_id_rows = m.query_tower.with_id_rows(qb, q_ids)
+        q_enc = m.query_tower.encode(qb, q_ids)
+        qe, q_id_rows = q_enc.vectors, q_enc.id_rows
         b = len(idx)
         if self.n_neg:
             c_rows = torch.cat([c_rows, self.sampler(b * self.n_neg)])
         cb = take(d.candidates.block, c_rows)
         c_ids = m.candidate_tower.id_rows(cb)
-        ce, c_id_rows = m.candidate_tower.with_id_rows(cb, c_ids)
+        c_enc = m.candidate_tower.encode(cb, c_ids)
+        ce, c_id_rows = c_enc.vectors, c_enc.id_rows
         scale = 1.0 / m.temperature
-        qbias = m.query_bias_of(q_ids)
-        cbias = m.candidate_bias_of(c_ids)
+        q_id_bias = m.query_bias_of(q_ids)
+        qbias = whole_bias(q_id_bias, q_enc)  # a shared tower's queries are items: their feature bias too
+        c_id_bias = m.candidate_bias_of(c_ids)
+        cbias = whole_bias(c_id_bias, c_enc)
         g = m.global_bias if m.use_biases else 0.0
         # split, not slices: a slice's backward zero-fills a gradient of the whole tensor for each part
         ce_pos, ce_neg = ce.split([b, len(ce) - b])
@@ -227,9 +233,9 @@ class Trainer:
             qbias_t = m.query_bias if m.use_biases else None
             cbias_t = m.candidate_bias if m.use_biases else None
             loss = loss + self._penalty(m.query_tower, qbias_t, q_ids, self.q_inv, q_id_rows,
-                                        qbias if m.use_biases else None)
+                                        q_id_bias if m.use_biases else None)
             loss = loss + self._penalty(m.candidate_tower, cbias_t, c_ids[:b], self.c_inv, _leading(c_id_rows, b),
-                                        cbias_pos if m.use_biases else None)
+                                        _leading(c_id_bias, b) if m.use_biases else None)
         return loss.mean()
 
     def id_row_loss(self, idx: torch.Tensor) -> torch.Tensor:
