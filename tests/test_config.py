@@ -64,6 +64,8 @@ def test_empty_normalize_and_temperature_are_settled_by_the_loss(tmp_path, loss,
     assert (flipped.normalize, flipped.temperature) == (not normalize, 1.0 if normalize else C.NORMALIZED_TEMPERATURE)
     raw["model"] = {"normalize": True, "temperature": 0.5}
     assert C.resolve(raw, tmp_path).model.temperature == 0.5
+    raw["model"] = {"dim": C.NORMALIZE_FROM_DIM - 1}  # a small k keeps all its numbers
+    assert (C.resolve(raw, tmp_path).model.normalize, C.resolve(raw, tmp_path).model.temperature) == (False, 1.0)
 
 
 def test_a_bundle_written_before_feature_bias_loads_without_the_head():

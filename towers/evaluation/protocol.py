@@ -593,8 +593,8 @@ def _towers_behind(warm: dict, k: int) -> str | None:
     if not others[best] or towers >= BEHIND * others[best]:
         return None
     return (f"towers: warm {metric} {towers:.4f} is {towers / others[best]:.2f} of {best}'s {others[best]:.4f}; on "
-            "other data normalised vectors (model.normalize: true, model.temperature: 0.2), a longer patience or "
-            "`towers tune` closed such gaps (README, Limits)")
+            "other data a user history (model.history_length), a longer patience, `towers tune`, or normalised "
+            "vectors where they were off (model.normalize: true) closed such gaps (README, Limits)")
 
 
 def _untrained_test_queries(data: SplitPairs, everywhere) -> str | None:
