@@ -14,6 +14,12 @@ from towers.model.build import baseline_model
 from towers.runs.train import apply_threads
 
 
+def score_scale(path: Path) -> tuple[float, float]:
+    """(1 / temperature, global bias) from an embeddings parquet's schema metadata, read with pyarrow alone."""
+    meta = pq.read_schema(path).metadata
+    return 1.0 / float(meta[b"temperature"]), float(meta[b"global_bias"])
+
+
 def read_vectors(path: Path):
     """(ids, vectors, bias) of an embeddings parquet, read with pyarrow alone (not towers' reader)."""
     t = pq.read_table(path)

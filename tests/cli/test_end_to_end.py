@@ -18,6 +18,8 @@ import towers
 from towers.cli import main as cli
 from towers.evaluation.protocol import SLICES
 
+from ..helpers import score_scale
+
 pytestmark = pytest.mark.slow  # every test reads a run trained on the default-size demo store
 
 
@@ -87,7 +89,9 @@ def test_parquet_schema_reads_back_with_pyarrow(basket_run):
     assert table.schema.field("embedding").type == pa.list_(pa.float32(), k)
     assert table.schema.field("bias").type == pa.float32()
     meta = table.schema.metadata
-    assert meta[b"k"] == str(k).encode() and meta[b"normalized"] == b"false" and b"dot" in meta[b"score"]
+    normalized = yaml.safe_load((basket_run / "config.yaml").read_text())["model"]["normalize"]
+    assert normalized is True  # the softmax's default from dim 8, written out as a plain value
+    assert meta[b"k"] == str(k).encode() and meta[b"normalized"] == b"true" and b"dot" in meta[b"score"]
     users = pq.read_table(basket_run / "user_embeddings.parquet")
     assert users.schema.field("id").type == pa.int64()  # customer ids keep their integer type
     assert users.num_rows == 4000 and table.num_rows == 3000
@@ -118,9 +122,15 @@ def test_new_arrivals_embed_from_features_alone(basket_run, demo_store, tmp_path
     assert cli(["embed", str(basket_run), "--items", str(demo_store / "new_items.parquet"), "--out", str(out)]) == 0
     cli_vecs = np.stack(pq.read_table(out).to_pandas()["embedding"])
     np.testing.assert_allclose(cli_vecs, np.stack(api["embedding"]), atol=1e-6)
-    # unseen ids fall back to the shared unknown row, so vectors differ only through the features
+    # unseen ids fall back to the shared unknown row, so vectors differ only through the features; so do
+    # biases: the unknown row's plus the one the item tower predicts from the features (model.feature_bias)
     assert np.linalg.matrix_rank(cli_vecs) > 5
-    assert (api["bias"] == api["bias"].iloc[0]).all()
+    np.testing.assert_allclose(pq.read_table(out).column("bias").to_numpy(), api["bias"].to_numpy(), atol=1e-6)
+    assert api["bias"].nunique() > len(api) // 2
+    model = run.bundle.model
+    assert model.candidate_tower.bias_head is not None
+    unknown = float(model.candidate_bias.weight[0, 0])
+    assert not np.allclose(api["bias"].to_numpy(), unknown)
 
 
 def test_recommend_excludes_training_positives_and_matches_scores(basket_run, demo_store):
@@ -138,9 +148,9 @@ def test_recommend_excludes_training_positives_and_matches_scores(basket_run, de
     # scores equal the dot product of the exported parquet vectors plus biases (brute force, numpy)
     ue = pq.read_table(basket_run / "user_embeddings.parquet").to_pandas().set_index("id")
     ie = pq.read_table(basket_run / "item_embeddings.parquet").to_pandas().set_index("id")
-    gb = float(pq.read_table(basket_run / "item_embeddings.parquet").schema.metadata[b"global_bias"])
+    scale, gb = score_scale(basket_run / "item_embeddings.parquet")
     row = recs.iloc[0]
-    expect = np.dot(ue.loc[row["query_id"], "embedding"], ie.loc[row["item_id"], "embedding"]) \
+    expect = np.dot(ue.loc[row["query_id"], "embedding"], ie.loc[row["item_id"], "embedding"]) * scale \
         + ue.loc[row["query_id"], "bias"] + ie.loc[row["item_id"], "bias"] + gb
     assert row["score"] == pytest.approx(expect, abs=1e-4)
 

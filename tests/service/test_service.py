@@ -29,7 +29,7 @@ from towers.cli import main as cli
 from towers.runs.lists import ItemFilter
 
 from ..conftest import ROOT
-from ..helpers import read_vectors
+from ..helpers import read_vectors, score_scale
 
 pytestmark = pytest.mark.slow  # every test reads a tiny trained run or starts a server
 
@@ -132,14 +132,16 @@ def test_recommend_for_users_equals_the_run_api(server, run, ids, history_run):
     status, answer = server.call("POST", "/recommend", {"users": users, "top": 7})
     assert status == 200 and answer["notes"] == []
     assert _rows(answer["lists"]) == _table(run.recommend(users, 7))  # reference: the Run API the CLI calls
-    # reference: brute-force scores from the exported vectors (pyarrow alone): q . x + user bias + item bias
+    # reference: brute-force scores from the exported vectors (pyarrow alone), README's formula:
+    # q . x / temperature + user bias + item bias + global bias
     u_ids, u_vec, u_bias = read_vectors(history_run / "user_embeddings.parquet")
     i_ids, i_vec, i_bias = read_vectors(history_run / "item_embeddings.parquet")
+    scale, g = score_scale(history_run / "item_embeddings.parquet")
     first = answer["lists"][0]
     q = u_ids.index(first["query_id"])
     for item in first["items"]:
         j = i_ids.index(item["item_id"])
-        assert item["score"] == pytest.approx(u_vec[q] @ i_vec[j] + u_bias[q] + i_bias[j], abs=1e-5)
+        assert item["score"] == pytest.approx(u_vec[q] @ i_vec[j] * scale + u_bias[q] + i_bias[j] + g, abs=1e-5)
     scores = [item["score"] for item in first["items"]]
     assert scores == sorted(scores, reverse=True)
 
