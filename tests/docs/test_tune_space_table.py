@@ -17,8 +17,11 @@ def test_readme_lists_every_range_of_the_search_space():
         if not line.startswith("|"):
             break
         rows.append(line)
-    ranged = [r for r in rows if "switch" not in r and "`model.normalize`" not in r]
+    switched = ("`model.normalize`", "`model.feature_bias`")
+    ranged = [r for r in rows if "switch" not in r and not any(key in r for key in switched)]
     assert ranged == S.readme_rows(), "README.md's tune space table differs from tune_space.RANGES; copy readme_rows()"
-    # the two switches are described beside the ranges
-    assert any(r.startswith("| `model.normalize` |") for r in rows)
-    assert any(r.startswith("| `model.history_length` switch |") for r in rows)
+    # every switch is described beside the ranges
+    for start in ("| `model.normalize` |", "| `model.feature_bias` |", "| `model.history_length` switch |",
+                  "| `model.history_past_only` switch |"):
+        assert any(r.startswith(start) for r in rows), start
+    assert len(S.SWITCHES) == 4

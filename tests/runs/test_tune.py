@@ -56,7 +56,7 @@ def test_space_keeps_its_ranges_and_the_run_mode(sections, negatives, normalize_
     points = _draw(base)
     for values in points:
         for key, value in values.items():
-            if key == "model.normalize":
+            if key in ("model.normalize", "model.feature_bias"):
                 assert isinstance(value, bool)
             elif key == "model.history_length" and value == 0:
                 pass  # the switch off: the config's own 0
@@ -67,6 +67,7 @@ def test_space_keeps_its_ranges_and_the_run_mode(sections, negatives, normalize_
         assert ("model.normalize" in values) == normalize_searched
         assert ("model.temperature" in values) == bool(values.get("model.normalize", base.model.normalize))
         assert ("model.history_length" in values) == history  # item_item runs have no history
+        assert ("model.feature_bias" in values) == bool(base.items.features)  # it acts on item features only
         assert set(values) <= set(S.searched_keys(base))
         changed = yaml.safe_load(C.dump(base))
         for section, keys in S.overrides(values).items():
@@ -357,3 +358,12 @@ def test_the_opening_line_counts_only_interrupted_trials_as_interrupted():
     assert waiting_note([trial("COMPLETE", from_config=True), trial("WAITING", retry_of=3),
                          trial("WAITING", retry_of=5)]) == " (2 interrupted one(s) queued to run again)"
     assert waiting_note([trial("COMPLETE"), trial("PRUNED")]) == ""
+
+
+def test_feature_bias_is_searched_only_where_it_can_act():
+    # it needs item features and biases: without either, the config's own value stands
+    base = _config(training={"loss": "softmax"})
+    assert "model.feature_bias" in S.searched_keys(base)
+    for without in (base.with_section("items", features=()), base.with_section("model", biases=False)):
+        assert "model.feature_bias" not in S.searched_keys(without)
+        assert all("model.feature_bias" not in values for values in _draw(without, 5))

@@ -17,6 +17,8 @@ keys apply depends on the user's config (`base`), never on earlier trials:
   temperature only in trials that turn it on. Under squared loss normalize stays as configured (bounded
   scores cannot reach a rating scale without the biases doing all the work), and the temperature is
   searched only when the config turns normalize on.
+- `model.feature_bias` acts only with item features and biases; measured both ways (it helped most data
+  and cost MovieLens 3% beside normalised vectors, DEVELOPERS.md "Defaults"), so the search tries both.
 - `model.history_length` exists only in user_item runs (config rule: a history is a user's items). It
   is searched behind a switch (`history`: off keeps 0, the config's own default) because 0 cannot sit
   on a log scale.
@@ -76,6 +78,7 @@ RANGES = (
 )
 SWITCHES = {
     "model.normalize": "ranking losses (logistic, softmax): on or off, as the config's own choice",
+    "model.feature_bias": "item features and model.biases on: on or off, as the config's own choice",
     "history": "user_item runs: the history input on (length searched) or off (model.history_length 0)",
     "model.history_past_only": "user_item runs with a time column, in trials that turn the history on: on or off",
 }
@@ -107,6 +110,8 @@ def suggest(trial, base: C.Config) -> dict:
         values["model.normalize"] = normalize
     if normalize:
         values["model.temperature"] = _ask(trial, _range("model.temperature"))
+    if _bias_from_features(base):
+        values["model.feature_bias"] = trial.suggest_categorical("model.feature_bias", [False, True])
     if not base.item_item:
         history = trial.suggest_categorical(HISTORY_SWITCH, [False, True])
         values["model.history_length"] = _ask(trial, _range("model.history_length")) if history else 0
@@ -115,6 +120,11 @@ def suggest(trial, base: C.Config) -> dict:
             if base.interactions.time_column:
                 values["model.history_past_only"] = trial.suggest_categorical("model.history_past_only", [False, True])
     return values
+
+
+def _bias_from_features(base: C.Config) -> bool:
+    """Whether model.feature_bias can act: biases on and an item table with features."""
+    return base.model.biases and bool(base.items.features)
 
 
 class _FromConfig:
@@ -166,6 +176,8 @@ def searched_keys(base: C.Config) -> list[str]:
         keys.append("model.normalize")
     if not base.training.rating_loss or base.model.normalize:
         keys.append("model.temperature")
+    if _bias_from_features(base):
+        keys.append("model.feature_bias")
     if not base.item_item:
         keys += ["model.history_length", "model.history_decay"]
         if base.interactions.time_column:
