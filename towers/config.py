@@ -132,7 +132,8 @@ class InteractionsSection:
     path: str | None = key('path', None, 'interaction log, CSV or parquet, one row per observed pair; or a folder '
                            'of such files (all CSV/TSV or all parquet, read in name order as one log, e.g. one '
                            'export a day; hidden files and names starting with `_` are skipped)')
-    query_column: str | None = key('str', None, 'query-side id (a user, or the first item of a pair)')
+    query_column: str | None = key('str', None, 'query-side id (a user, or the first item of a pair); not needed '
+                                   'when pairs_from counts item pairs from an export')
     candidate_column: str | None = key('str', None, 'candidate-side id (the item)')
     target_column: str | None = key('str', None,
                                     'rating, 0/1 label or count; absent means every row is a positive event',

@@ -20,7 +20,7 @@ from towers import config as C
 from towers.config import EvaluationSection
 from towers.data.pairs import Pairs
 from towers.data.prepare import prepare, read_interactions
-from towers.data.splits import HoldOut, connected_units, latest_units, make_split
+from towers.data.splits import FEW_HELD_OUT, HoldOut, connected_units, latest_units, make_split, thin_slices_note
 from towers.errors import TowersError
 from towers.model.build import build_model
 from towers.model.bundle import load_bundle, save_bundle
@@ -638,3 +638,17 @@ def test_zero_targets_under_the_softmax_are_warned(tmp_path):
                     "logistic, which learns from it"]
     raw["training"] = {"loss": "logistic"}
     assert not [n for n in prepare(C.resolve(raw, tmp_path)).notes if "target 0" in n]
+
+
+def test_a_per_user_split_that_holds_out_almost_nothing_says_so():
+    # a new user's trial: orders as units under user_recent, most customers with fewer than 5 orders, left 16
+    # validation and 51 test pairs; a per-user split holds out a user's units only once round(fraction x k) >= 1
+    ev = EvaluationSection(split="user_recent", test_fraction=0.1, validation_fraction=0.1)
+    k = np.arange(1, 5)  # 1 to 4 units a user
+    assert (np.round(0.1 * k) == 0).all()  # reference: numpy's round, the README's count of held-out units
+    note = thin_slices_note(ev, 16, 51)
+    assert note.startswith("note: evaluation.split user_recent held out only 16 validation and 51 test pairs")
+    assert thin_slices_note(ev, FEW_HELD_OUT, FEW_HELD_OUT) is None
+    assert thin_slices_note(EvaluationSection(split="random"), 16, 51) is None  # a random split holds out its share
+    no_validation = EvaluationSection(split="user_share", validation_fraction=0.0)
+    assert "only 40 test pairs" in thin_slices_note(no_validation, 0, 40)

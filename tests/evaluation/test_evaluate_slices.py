@@ -231,6 +231,16 @@ def test_a_warm_slice_of_users_without_training_events_says_so():
     assert metrics["notes"]["warm_new_queries"].startswith("10 of the warm slice's 12 test users (83%) have no "
                                                           "training events")
     assert "warm_new_queries" not in evaluate_slices({}, _split(), _cfg()).get("notes", {})
+    # the cause it names is the split's: a random split of rows, of orders, or a split by time
+    assert "a user with few events" in metrics["notes"]["warm_new_queries"]
+    grouped = C.resolve({"interactions": {"path": "log.csv", "query_column": "user", "candidate_column": "item",
+                                          "group_column": "order"}, "evaluation": {"top_k": [5]}}, Path("."))
+    by_time = C.resolve(
+        {"interactions": {"path": "log.csv", "query_column": "user", "candidate_column": "item", "time_column": "t"},
+         "evaluation": {"top_k": [5], "split": "time"}}, Path("."))
+    for cfg, cause in ((grouped, "whole order groups"), (by_time, "users who came late")):
+        note = evaluate_slices({"popularity": popularity_scorer(split.train, 40, 40, False)}, split, cfg)["notes"]
+        assert cause in note["warm_new_queries"], note
 
 
 def test_towers_behind_a_reference_on_warm_items_get_a_note():

@@ -214,6 +214,28 @@ def _held_out(seen: np.ndarray, pool: HoldOut, fraction: float, rng, what: str) 
     return out
 
 
+# held-out pairs below which a slice's recall@K is mostly noise: its standard error sqrt(p (1 - p) / n) (a
+# binomial share) reaches 0.05 at n = 100 (common practice, no source)
+FEW_HELD_OUT = 100
+
+
+def thin_slices_note(ev: EvaluationSection, n_valid: int, n_test: int) -> str | None:
+    """A note when a per-user split held out fewer than FEW_HELD_OUT validation or test pairs although its
+    fractions ask for some: a user's units are held out only once round(fraction x units) reaches 1, so logs of
+    users with few orders or sessions leave those slices nearly empty. None otherwise."""
+    if ev.split not in PER_USER_SPLITS:
+        return None
+    thin = [f"{n:,} {name}" for n, name, asked in ((n_valid, "validation", ev.validation_fraction > 0),
+                                                  (n_test, "test", ev.test_fraction > 0 or ev.split == "user_last"))
+            if asked and n < FEW_HELD_OUT]
+    if not thin:
+        return None
+    return (f"note: evaluation.split {ev.split} held out only {' and '.join(thin)} pairs: early stopping and the "
+            f"figures follow noise at that size; a per-user split holds out a user's units (orders, sessions or "
+            f"events) only once the user has enough of them (README, Evaluation protocol); raise "
+            f"evaluation.test_fraction / validation_fraction, or use split: random")
+
+
 def split_units(q: np.ndarray, c: np.ndarray, groups: np.ndarray | None, item_item: bool) -> np.ndarray:
     """One unit code per row (0..n_units-1): rows with one code always land on the same side.
 

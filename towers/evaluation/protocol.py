@@ -557,7 +557,7 @@ def evaluate_slices(scorers: dict, data: SplitPairs, cfg: Config, event_vectors:
                 f"{min(1.0, k / n):.2f} of the held-out items in the top {k}, so recall@{k} says little there; "
                 + ("hold out more items whole (evaluation.cold_item_fraction)" if slice_name == "cold" else
                    "use a smaller evaluation.top_k, or a larger catalog"))
-    new_users = _untrained_test_queries(data, everywhere)
+    new_users = _untrained_test_queries(data, everywhere, cfg)
     if new_users is not None:
         notes["warm_new_queries"] = new_users
     behind = None if explicit else _towers_behind(out.get("warm", {}), min(ks))
@@ -597,10 +597,11 @@ def _towers_behind(warm: dict, k: int) -> str | None:
             "vectors where they were off (model.normalize: true) closed such gaps (README, Limits)")
 
 
-def _untrained_test_queries(data: SplitPairs, everywhere) -> str | None:
+def _untrained_test_queries(data: SplitPairs, everywhere, cfg: Config) -> str | None:
     """A note when a fifth or more of the warm test users have no training events (a split by time holds out the
-    users who arrived late): the history-based and id-based models know nothing of them, so the warm slice is
-    partly a cold-user slice. None otherwise, and in item_item runs (there the queries are items)."""
+    users who arrived late; a random split of groups, the users whose events share one group): the history-based
+    and id-based models know nothing of them, so the warm slice is partly a cold-user slice. None otherwise, and
+    in item_item runs (there the queries are items)."""
     if data.item_item:
         return None
     tq = torch.unique(data.test.query)
@@ -610,10 +611,18 @@ def _untrained_test_queries(data: SplitPairs, everywhere) -> str | None:
     new, total = everywhere(int((~trained[tq]).sum())), everywhere(len(tq))
     if not total or new < 0.2 * total:
         return None
-    return (f"{new:,} of the warm slice's {total:,} test users ({new / total:.0%}) have no training events (a split "
-            "by time holds out the users who came late): EASE, item-kNN and the linear factor model know nothing of "
-            "them and rank them by chance or popularity, so this slice is partly a cold-user one; a per-user split "
-            "(evaluation.split: user_recent) keeps every test user's past in training")
+    group = cfg.interactions.group_column
+    if cfg.evaluation.split == "time":
+        cause = "a split by time holds out the users who came late"
+    elif group is not None:
+        cause = (f"the split holds out whole {group} groups, so a user whose events share one group has all of them "
+                 "in the test slice")
+    else:
+        cause = "the split can hold out every event of a user with few events"
+    return (f"{new:,} of the warm slice's {total:,} test users ({new / total:.0%}) have no training events ({cause}): "
+            "EASE, item-kNN and the linear factor model know nothing of them and rank them by chance or popularity, "
+            "so this slice is partly a cold-user one; a per-user split (evaluation.split: user_recent or user_share) "
+            "keeps every test user's past in training")
 
 
 def format_table(metrics: dict) -> str:

@@ -54,6 +54,9 @@ from towers.runs import lists as L
 from towers.runs.folder import EMBEDDINGS, SUBFOLDER_MODELS, TOWERS, RunFolder
 from towers.search.scorer import Scorer, excluded_cells
 
+# how an id the run never saw can still be asked about (the README's recommend and similar options)
+UNSEEN_USERS = "; a user the run never saw is asked for by a few item ids (--history) or feature rows (--user-rows)"
+UNSEEN_ITEMS = "; items the run never saw join the lists from their feature rows (--new-items, or --item-rows)"
 _NO_MATCH = np.iinfo(np.int64).min  # what align_id_types gives text that is not a whole number
 
 
@@ -478,7 +481,7 @@ class Run:
             plural = "queries" if what == "query" else f"{what}s"
             found = padded_form(np.asarray([bad], dtype=object), ids_all)
             fix = (f"the run's ids keep leading zeros: give it as {found[1]!r}" if found else
-                   "check the id, or retrain with this entity in the feature table")
+                   "check the id" + (UNSEEN_USERS if what == "user" else UNSEEN_ITEMS))
             raise TowersError(f"{self.dir}: unknown {what} id {bad!r}: not in this run's catalog ({len(ids_all):,} {plural}); "
                               f"{fix}")
         return torch.from_numpy(rows.astype(np.int64))

@@ -21,7 +21,7 @@ from towers.data.embeddings_file import write_embeddings
 from towers.data.groups import check_group_columns, group_labels
 from towers.data.pairs import Pairs, SplitPairs
 from towers.data.prepare import Prepared, prepare
-from towers.data.splits import TrainedBefore
+from towers.data.splits import TrainedBefore, thin_slices_note
 from towers.errors import TowersError
 from towers.evaluation.protocol import (
     evaluate_slices,
@@ -217,6 +217,9 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
         f"{len(data.queries.ids):,} queries, {len(data.candidates.ids):,} items"
         + (f"; the users and their events divided among {rank_and_size()[1]} processes"
            if data.divided else ""))
+    thin = thin_slices_note(cfg.evaluation, sizes[1], sizes[2])
+    if thin is not None:
+        log(thin)
 
     model = build_model(data, cfg)
     note = describe_id_tables({("query items" if data.item_item else "users"): model.query_tower.ids,
