@@ -250,7 +250,7 @@ class ModelSection:
     def __post_init__(self) -> None:
         # built in code rather than from a config (resolve fills both keys): no loss to settle normalize by
         if self.temperature is None:
-            object.__setattr__(self, "temperature", NORMALIZED_TEMPERATURE if self.normalize else 1.0)
+            object.__setattr__(self, "temperature", settled_temperature(bool(self.normalize)))
 
 
 @dataclass(frozen=True)
@@ -663,7 +663,13 @@ def _settle_scale(model: dict, loss: str | None) -> None:
     if model.get("normalize") is None:
         model["normalize"] = loss == "softmax" and model.get("dim", NORMALIZE_FROM_DIM) >= NORMALIZE_FROM_DIM
     if model.get("temperature") is None:
-        model["temperature"] = NORMALIZED_TEMPERATURE if model["normalize"] else 1.0
+        model["temperature"] = settled_temperature(model["normalize"])
+
+
+def settled_temperature(normalize: bool) -> float:
+    """The temperature an empty model.temperature means: NORMALIZED_TEMPERATURE for normalised vectors, else 1
+    (raw dot products scale themselves)."""
+    return NORMALIZED_TEMPERATURE if normalize else 1.0
 
 
 def _check_consistency(cfg: dict) -> None:
