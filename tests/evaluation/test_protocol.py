@@ -140,3 +140,29 @@ def test_a_model_tying_every_candidate_scores_chance_exactly():
     # probability 10/90 in every query; every (positive, negative) pair is tied: auc 1/2
     assert got["recall@10"] == pytest.approx(10 / 90, rel=1e-12)
     assert got["auc"] == pytest.approx(0.5, abs=1e-12)
+
+
+@pytest.mark.parametrize("exclude_self", [False, True])
+def test_held_out_excludes_each_known_cell_once(monkeypatch, exclude_self):
+    # outside reference: the cells written out with Python sets, from the definition (a query's known items
+    # that compete, and with exclude_self the query item itself), distinct and sorted by (row, column)
+    from towers.evaluation import protocol
+
+    monkeypatch.setattr(protocol, "KNOWN_CHUNK", 53)  # the known pairs read in small chunks, across parts
+    rng = np.random.default_rng(4)
+    n_items = 40
+    n_queries = n_items if exclude_self else 60  # item-item data: the queries are items
+    train = Pairs(torch.from_numpy(rng.integers(0, n_queries, 700)), torch.from_numpy(rng.integers(0, n_items, 700)))
+    valid = Pairs(train.query[:90].clone(), train.candidate[:90].clone())  # pairs known twice: one cell each
+    test = Pairs(torch.from_numpy(rng.integers(0, n_queries - 5, 200)), torch.from_numpy(rng.integers(0, n_items, 200)))
+    mask = torch.from_numpy(rng.random(n_items) < 0.7)  # some items do not compete
+    h = protocol.held_out(test, [train, valid], mask, exclude_self=exclude_self)
+
+    column = {int(item): j for j, item in enumerate(torch.nonzero(mask).flatten())}
+    row = {int(q): i for i, q in enumerate(h.queries)}
+    want = {(row[q], column[c]) for q, c in zip(train.query.tolist(), train.candidate.tolist())
+            if q in row and c in column}
+    if exclude_self:
+        want |= {(i, column[q]) for q, i in row.items() if q in column}
+    assert list(zip(h.ex_rows.tolist(), h.ex_cols.tolist())) == sorted(want)
+    assert h.ex_rows.dtype == torch.int32  # 4 bytes a number: these are nearly every known pair

@@ -535,3 +535,18 @@ def test_an_id_file_of_several_columns_is_refused_before_its_cells_are_read(tmp_
     one = tmp_path / "ids.csv"
     one.write_text("reader_id\nR-1\nR-2\n")
     assert read_id_file(one, "user").tolist() == ["R-1", "R-2"]
+
+
+def test_an_id_file_may_be_a_pipe(tmp_path):
+    # a trial's `--never-ids <(grep ...)` was refused as "no such file": the shell hands over a pipe, not a file
+    from towers.runs.lists import read_id_file
+
+    read_end, write_end = os.pipe()
+    os.write(write_end, b"SKU-7\n\nSKU-9\n")
+    os.close(write_end)
+    try:
+        assert read_id_file(f"/dev/fd/{read_end}", "item").tolist() == ["SKU-7", "SKU-9"]
+    finally:
+        os.close(read_end)
+    with pytest.raises(TowersError, match="no such file"):
+        read_id_file(tmp_path, "item")  # a folder is no id file

@@ -24,3 +24,16 @@ def test_earlier_best_or_no_validation_is_quiet(capsys):
     for result in (earlier, unvalidated):
         EarlyStopping(result, patience=3, label="towers", rounds=3).restore_best(torch.nn.Linear(1, 1))
     assert "warning" not in capsys.readouterr().err
+
+
+def test_a_finished_checkpoint_holds_the_best_weights_once(tiny_runs):
+    # once finished the model holds the best weights: the file keeps one set of tensors under both keys
+    # (torch.save writes a storage shared by two entries once; torch.load gives it back shared)
+    run = tiny_runs.train()
+    state = torch.load(run / "checkpoints" / "last.pt", weights_only=True)
+    assert state["finished"] and state["model"].keys() == state["best_model"].keys()
+    for name, tensor in state["model"].items():
+        best = state["best_model"][name]
+        assert tensor.untyped_storage().data_ptr() == best.untyped_storage().data_ptr(), name
+    weights = torch.load(run / "model.pt", weights_only=True)["state_dict"]
+    assert all(torch.equal(weights[name], state["best_model"][name]) for name in weights)

@@ -24,10 +24,11 @@ from towers.evaluation import metrics as M
 from towers.evaluation import references as R
 from towers.evaluation.references import ReferenceScorer
 from towers.evaluation.shares import Share
+from towers.memory import index_dtype
 from towers.model.embed import reads_context
 from towers.model.towers import TwoTowerModel
 from towers.search import rank_counts as RC
-from towers.search.scorer import Scorer, excluded_cells
+from towers.search.scorer import Scorer
 
 MODEL_ORDER = ("popularity", "linear_factor", R.ITEM_KNN, R.EASE, "bilinear", "towers", "oracle")
 SLICES = ("warm", "cold", "cold_users")  # the keys of metrics.json that hold a slice's {model: metrics}
@@ -125,10 +126,7 @@ def held_out(test: Pairs, known: Pairs | list[Pairs], candidate_mask: torch.Tens
     cand_rows = torch.nonzero(candidate_mask).flatten()
     col_of = torch.full((n_items,), -1, dtype=torch.int64)
     col_of[cand_rows] = torch.arange(len(cand_rows))
-    # excluded (query row, column) cells: the queries' known pairs and, for item-item data, each query item itself
-    known_keys = _known_of(queries, known, n_items)
-    ex_rows, ex_cols = excluded_cells(queries, torch.from_numpy(known_keys // n_items),
-                                      torch.from_numpy(known_keys % n_items), col_of, exclude_self)
+    ex_rows, ex_cols = _excluded_of(queries, known, col_of, len(cand_rows), exclude_self)
     return HeldOut(queries, q_index, pc, cand_rows, col_of[pc], ex_rows, ex_cols)
 
 
@@ -216,17 +214,52 @@ def _known_among(keys: np.ndarray, known: Pairs | list[Pairs], n_items: int) -> 
     return found
 
 
-def _known_of(queries: torch.Tensor, known: Pairs | list[Pairs], n_items: int) -> np.ndarray:
-    """The distinct known pair keys of `queries` (sorted distinct rows), the known pairs read a chunk at a time."""
-    wanted = queries.numpy().astype(np.int64)
-    kept = []
-    if len(wanted):
-        for q, c in _known_chunks(known):
-            q = q.numpy().astype(np.int64)
-            at = np.minimum(np.searchsorted(wanted, q), len(wanted) - 1)
-            hit = wanted[at] == q
-            kept.append(q[hit] * n_items + c.numpy()[hit].astype(np.int64))
-    return np.unique(np.concatenate(kept)) if kept else np.zeros(0, np.int64)
+def _excluded_of(queries: torch.Tensor, known: Pairs | list[Pairs], col_of: torch.Tensor, n_columns: int,
+                 exclude_self: bool) -> tuple[torch.Tensor, torch.Tensor]:
+    """The excluded (ranking row, column) cells of a ranking of `queries` (sorted distinct catalog rows; row i
+    is queries[i]): the queries' known pairs whose item competes (col_of: catalog item -> column, -1 for
+    none) and, with exclude_self (item-item data), each query item itself. Distinct, sorted by row then
+    column, 4 bytes a number where they fit.
+
+    A warm slice's queries are nearly every user, so these are nearly every known pair: the largest
+    arrays of an evaluation. Two passes over the known pairs (count, then fill) leave one 8-byte key a
+    cell, sorted and made distinct in place, as the only array of that length."""
+    rows = queries.numpy()
+    row_of = np.full(int(rows[-1]) + 1 if len(rows) else 0, -1, np.int64)  # catalog query row -> ranking row
+    row_of[rows] = np.arange(len(rows))
+    columns = col_of.numpy()
+
+    def keys(q: torch.Tensor, c: torch.Tensor) -> np.ndarray:  # row * n_columns + column of a chunk's cells
+        q = q.numpy()
+        r = row_of[np.minimum(q, len(row_of) - 1)]
+        r[q >= len(row_of)] = -1
+        col = columns[c.numpy()]
+        kept = (r >= 0) & (col >= 0)
+        return r[kept] * n_columns + col[kept]
+
+    own = columns[rows] if exclude_self else np.zeros(0, np.int64)
+    own_rows = np.flatnonzero(own >= 0)
+    size = len(own_rows) + (sum(len(keys(q, c)) for q, c in _known_chunks(known)) if len(rows) else 0)
+    cells = np.empty(size, np.int64)
+    cells[:len(own_rows)] = own_rows * n_columns + own[own_rows]
+    at = len(own_rows)
+    for q, c in _known_chunks(known) if len(rows) else ():
+        part = keys(q, c)
+        cells[at:at + len(part)] = part
+        at += len(part)
+    cells.sort()
+    if len(cells) > 1:  # a pair known twice (in training and validation) is one cell
+        first = np.empty(len(cells), bool)
+        first[0] = True
+        np.not_equal(cells[1:], cells[:-1], out=first[1:])
+        cells = cells[first]
+    dtype = index_dtype(max(len(rows), n_columns))
+    ex_rows, ex_cols = np.empty(len(cells), dtype), np.empty(len(cells), dtype)
+    for lo in range(0, len(cells), KNOWN_CHUNK):
+        part = cells[lo:lo + KNOWN_CHUNK]
+        ex_rows[lo:lo + len(part)] = part // n_columns
+        ex_cols[lo:lo + len(part)] = part % n_columns
+    return torch.from_numpy(ex_rows), torch.from_numpy(ex_cols)
 
 
 # Cells of one dense score block of a reference model, and of one comparison block of its positives

@@ -266,9 +266,10 @@ class ItemTable:
 
 
 def read_id_file(path: str | Path, what: str) -> np.ndarray:
-    """Ids from a file: a table (CSV, TSV, parquet) of one column, or plain text with one id per line."""
+    """Ids from a file: a table (CSV, TSV, parquet) of one column, or plain text with one id per line (also
+    from a pipe, such as the shell's `<(...)`)."""
     path = Path(path)
-    if not path.is_file():
+    if not path.exists() or path.is_dir():
         raise TowersError(f"{path}: no such file; give a file of {what} ids, one per line")
     if path.suffix.lower() in READABLE:
         names = table_columns(path)  # the header first: a whole feature table is refused before its cells are read

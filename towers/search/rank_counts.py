@@ -219,8 +219,10 @@ def rank_counts(query_vectors: torch.Tensor, item_vectors: torch.Tensor, rows: t
     above = np.zeros(len(rows), np.int64)  # in the grouped order
     same = np.zeros(len(rows), np.int64)
     if exclude_rows is not None and len(exclude_rows):
-        ex_order = torch.argsort(exclude_rows.long(), stable=True)  # block_exclusions wants them by row
-        ex_rows, ex_cols = exclude_rows.long()[ex_order], exclude_cols.long()[ex_order]
+        ex_rows, ex_cols = exclude_rows, exclude_cols
+        if not bool((exclude_rows[1:] >= exclude_rows[:-1]).all()):  # block_exclusions wants them by row
+            ex_order = torch.argsort(exclude_rows, stable=True)
+            ex_rows, ex_cols = exclude_rows[ex_order], exclude_cols[ex_order]
     else:
         ex_rows = ex_cols = None
     finish = (i_bias, q_bias, np.float32(scale), np.float32(global_bias))

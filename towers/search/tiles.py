@@ -93,7 +93,7 @@ class Exclusions:
 
     def __init__(self, rows: torch.Tensor, cols: torch.Tensor, layout: Layout):
         w = layout.sub_width
-        self.flat = rows * w + cols % w  # chunks start at multiples of w
+        self.flat = rows.long() * w + cols % w  # chunks start at multiples of w; index_fill_ takes int64
         first = sorted(a for step in layout.steps for a in step)
         edges = torch.searchsorted(cols, torch.tensor(first + [layout.ni], dtype=cols.dtype)).tolist()
         self.starts = dict(zip(first, edges[:-1]))

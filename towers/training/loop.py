@@ -50,7 +50,6 @@ from towers.training.stopping import (
     TrainingDiverged,
     TrainingInterrupted,
     TrainResult,
-    clone_state,
 )
 
 
@@ -386,7 +385,10 @@ def fit(model: TwoTowerModel, data: Prepared, cfg: Config, checkpoint_dir: Path 
         state = {"format": "towers-checkpoint", "version": 1, "label": label, "finished": finished,
                  "epoch": ep, "step": step, "loss_so_far": lsf, "stale": stopping.stale,
                  "best_value": result.best_value, "best_epoch": result.best_epoch, "history": result.history,
-                 "model": clone_state(model.state_dict()), "best_model": result.best_state,
+                 # written as they are, not copied first (one copy of the weights less at each save); once
+                 # finished the model holds the best weights, so both keys share one set of tensors in the file
+                 "model": result.best_state if finished and result.best_state is not None else model.state_dict(),
+                 "best_model": result.best_state,
                  "optimizers": [o.state_dict() for o in trainer.optimizers],
                  "generator": trainer.generator.get_state(), "global_rng": torch.get_rng_state()}
         if p is not None:
