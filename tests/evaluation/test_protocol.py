@@ -147,8 +147,9 @@ def test_held_out_excludes_each_known_cell_once(monkeypatch, exclude_self):
     # outside reference: the cells written out with Python sets, from the definition (a query's known items
     # that compete, and with exclude_self the query item itself), distinct and sorted by (row, column)
     from towers.evaluation import protocol
+    from towers.search import scorer
 
-    monkeypatch.setattr(protocol, "KNOWN_CHUNK", 53)  # the known pairs read in small chunks, across parts
+    monkeypatch.setattr(scorer, "CELLS_CHUNK", 53)  # the known pairs read in small chunks, across parts
     rng = np.random.default_rng(4)
     n_items = 40
     n_queries = n_items if exclude_self else 60  # item-item data: the queries are items

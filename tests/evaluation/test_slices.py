@@ -78,13 +78,13 @@ def _warm_split(n_train: int = 3000) -> SplitPairs:
 
 def test_known_pairs_read_in_chunks_exclude_what_the_whole_list_excludes(cfg, monkeypatch):
     """Reference: the same ranking with the known pairs read whole (one chunk), and a numpy brute force."""
-    from towers.evaluation import protocol
+    from towers.search import scorer as scoring
 
     data = _warm_split()
     g = torch.Generator().manual_seed(8)
     scorer = Scorer(torch.randn(N_USERS, 3, generator=g), torch.randn(N_ITEMS, 3, generator=g))
     whole = evaluate_slices({"towers": scorer}, data, cfg)["warm"]["towers"]
-    monkeypatch.setattr(protocol, "KNOWN_CHUNK", 97)  # training pairs read 97 at a time, then validation's
+    monkeypatch.setattr(scoring, "CELLS_CHUNK", 97)  # training pairs read 97 at a time, then validation's
     assert evaluate_slices({"towers": scorer}, data, cfg)["warm"]["towers"] == whole
     s = (scorer.query_vectors @ scorer.item_vectors.T).numpy()
     known = {(int(a), int(b)) for p in (data.train, data.valid) for a, b in zip(p.query, p.candidate)}

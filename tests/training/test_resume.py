@@ -23,9 +23,9 @@ ROOT = Path(__file__).resolve().parents[2]
 
 @pytest.fixture(scope="module")
 def small_config(tiny_runs, tmp_path_factory) -> Path:
-    """The shipped basket config on the small store: four epochs of 128-pair batches, one thread."""
+    """The shipped basket config on the small store: four epochs of 256-pair batches, one thread."""
     return tiny_runs.config(tmp_path_factory.mktemp("resume"), tiny=False, oracle=False, run={"threads": 1},
-                            training={"epochs": 4, "batch_size": 128, "patience": 10})
+                            training={"epochs": 4, "batch_size": 256, "patience": 10})
 
 
 def _train(config: Path, out: Path, *extra: str) -> subprocess.Popen:

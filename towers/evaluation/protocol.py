@@ -24,11 +24,10 @@ from towers.evaluation import metrics as M
 from towers.evaluation import references as R
 from towers.evaluation.references import ReferenceScorer
 from towers.evaluation.shares import Share
-from towers.memory import index_dtype
 from towers.model.embed import reads_context
 from towers.model.towers import TwoTowerModel
 from towers.search import rank_counts as RC
-from towers.search.scorer import Scorer
+from towers.search.scorer import Scorer, excluded_cells, known_chunks
 
 MODEL_ORDER = ("popularity", "linear_factor", R.ITEM_KNN, R.EASE, "bilinear", "towers", "oracle")
 SLICES = ("warm", "cold", "cold_users")  # the keys of metrics.json that hold a slice's {model: metrics}
@@ -126,7 +125,7 @@ def held_out(test: Pairs, known: Pairs | list[Pairs], candidate_mask: torch.Tens
     cand_rows = torch.nonzero(candidate_mask).flatten()
     col_of = torch.full((n_items,), -1, dtype=torch.int64)
     col_of[cand_rows] = torch.arange(len(cand_rows))
-    ex_rows, ex_cols = _excluded_of(queries, known, col_of, len(cand_rows), exclude_self)
+    ex_rows, ex_cols = excluded_cells(queries, _parts(known), col_of, exclude_self)
     return HeldOut(queries, q_index, pc, cand_rows, col_of[pc], ex_rows, ex_cols)
 
 
@@ -192,14 +191,9 @@ def _ranked(scorer, h: HeldOut | None, candidate_mask: torch.Tensor, share: Shar
     return (h, *rank_positives(scorer, h, share), None)
 
 
-KNOWN_CHUNK = 1 << 20  # known pairs looked at a time: the training pairs may be longer than memory (spill.py)
-
-
-def _known_chunks(known: Pairs | list[Pairs]):
-    """(query rows, candidate rows) of the known pairs, KNOWN_CHUNK at a time, part after part."""
-    for part in known if isinstance(known, list) else [known]:
-        for lo in range(0, len(part), KNOWN_CHUNK):
-            yield part.query[lo:lo + KNOWN_CHUNK], part.candidate[lo:lo + KNOWN_CHUNK]
+def _parts(known: Pairs | list[Pairs]) -> list[tuple[torch.Tensor, torch.Tensor]]:
+    """The known pairs as (query rows, candidate rows) parts, as excluded_cells and known_chunks take them."""
+    return [(p.query, p.candidate) for p in (known if isinstance(known, list) else [known])]
 
 
 def _known_among(keys: np.ndarray, known: Pairs | list[Pairs], n_items: int) -> np.ndarray:
@@ -207,59 +201,11 @@ def _known_among(keys: np.ndarray, known: Pairs | list[Pairs], n_items: int) -> 
     found = np.zeros(len(keys), dtype=bool)
     if len(keys) == 0:
         return found
-    for q, c in _known_chunks(known):
-        part = _pair_keys(q, c, n_items)
+    for q, c in known_chunks(_parts(known)):
+        part = q.astype(np.int64) * n_items + c.astype(np.int64)
         at = np.minimum(np.searchsorted(keys, part), len(keys) - 1)
         found[at[keys[at] == part]] = True
     return found
-
-
-def _excluded_of(queries: torch.Tensor, known: Pairs | list[Pairs], col_of: torch.Tensor, n_columns: int,
-                 exclude_self: bool) -> tuple[torch.Tensor, torch.Tensor]:
-    """The excluded (ranking row, column) cells of a ranking of `queries` (sorted distinct catalog rows; row i
-    is queries[i]): the queries' known pairs whose item competes (col_of: catalog item -> column, -1 for
-    none) and, with exclude_self (item-item data), each query item itself. Distinct, sorted by row then
-    column, 4 bytes a number where they fit.
-
-    A warm slice's queries are nearly every user, so these are nearly every known pair: the largest
-    arrays of an evaluation. Two passes over the known pairs (count, then fill) leave one 8-byte key a
-    cell, sorted and made distinct in place, as the only array of that length."""
-    rows = queries.numpy()
-    row_of = np.full(int(rows[-1]) + 1 if len(rows) else 0, -1, np.int64)  # catalog query row -> ranking row
-    row_of[rows] = np.arange(len(rows))
-    columns = col_of.numpy()
-
-    def keys(q: torch.Tensor, c: torch.Tensor) -> np.ndarray:  # row * n_columns + column of a chunk's cells
-        q = q.numpy()
-        r = row_of[np.minimum(q, len(row_of) - 1)]
-        r[q >= len(row_of)] = -1
-        col = columns[c.numpy()]
-        kept = (r >= 0) & (col >= 0)
-        return r[kept] * n_columns + col[kept]
-
-    own = columns[rows] if exclude_self else np.zeros(0, np.int64)
-    own_rows = np.flatnonzero(own >= 0)
-    size = len(own_rows) + (sum(len(keys(q, c)) for q, c in _known_chunks(known)) if len(rows) else 0)
-    cells = np.empty(size, np.int64)
-    cells[:len(own_rows)] = own_rows * n_columns + own[own_rows]
-    at = len(own_rows)
-    for q, c in _known_chunks(known) if len(rows) else ():
-        part = keys(q, c)
-        cells[at:at + len(part)] = part
-        at += len(part)
-    cells.sort()
-    if len(cells) > 1:  # a pair known twice (in training and validation) is one cell
-        first = np.empty(len(cells), bool)
-        first[0] = True
-        np.not_equal(cells[1:], cells[:-1], out=first[1:])
-        cells = cells[first]
-    dtype = index_dtype(max(len(rows), n_columns))
-    ex_rows, ex_cols = np.empty(len(cells), dtype), np.empty(len(cells), dtype)
-    for lo in range(0, len(cells), KNOWN_CHUNK):
-        part = cells[lo:lo + KNOWN_CHUNK]
-        ex_rows[lo:lo + len(part)] = part // n_columns
-        ex_cols[lo:lo + len(part)] = part % n_columns
-    return torch.from_numpy(ex_rows), torch.from_numpy(ex_cols)
 
 
 # Cells of one dense score block of a reference model, and of one comparison block of its positives

@@ -567,7 +567,7 @@ def recommend_rows(run, df: pd.DataFrame, top: int, history_column: str | None, 
         named = np.flatnonzero(at >= 0)
         if len(named):  # the known pairs of the distinct users named (recommend's excluded_cells), then per row
             users, of_row = np.unique(at[named].astype(np.int64), return_inverse=True)
-            user_at, item = excluded_cells(torch.from_numpy(users), *run.known_pairs())
+            user_at, item = excluded_cells(torch.from_numpy(users), [run.known_pairs()])
             offsets, item = known_by_query(user_at, item, len(users))
             rank, item = block_exclusions(torch.from_numpy(of_row.reshape(-1).astype(np.int64)), offsets, item)
             cells.append(np.stack([named[rank.numpy()], item.numpy()], 1))

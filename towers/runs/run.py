@@ -522,7 +522,7 @@ class Run:
         ex_r = ex_c = None
         if exclude_known:
             known_q, known_c = self.known_pairs()
-            ex_r, ex_c = excluded_cells(rows, known_q, known_c, exclude_self=self.item_item)
+            ex_r, ex_c = excluded_cells(rows, [(known_q, known_c)], exclude_self=self.item_item)
         idx, scores = lists.top(self._scorer(TOWERS).for_queries(rows, vectors), top, ex_r, ex_c)
         return lists.frame(q_ids[rows.numpy()], idx, scores)
 

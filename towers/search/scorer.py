@@ -7,6 +7,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import numpy as np
 import torch
 
 from towers.search.retrieval import top_n
@@ -80,27 +81,62 @@ class Scorer:
         return s + self.global_bias
 
 
-def excluded_cells(query_rows: torch.Tensor, known_query: torch.Tensor, known_item: torch.Tensor,
-                   item_column: torch.Tensor | None = None, exclude_self: bool = False):
-    """The (ranking row, column) cells a ranking leaves out, sorted by row.
+CELLS_CHUNK = 1 << 20  # known pairs looked at a time: a log's known pairs may be longer than memory (spill.py)
+_ROW = 31  # a cell's key: ranking row << _ROW | column (columns and rows below 2^31)
 
-    Row i of the ranking is catalog query row query_rows[i] (distinct, any order). A known pair
-    (known_query, known_item) of a ranked query excludes its item; with exclude_self (item-to-item
-    runs) each query item excludes itself. item_column maps catalog items to ranking columns (-1 for
-    items that do not compete); None means every item competes, in catalog order.
+
+def known_chunks(known: list[tuple[torch.Tensor, torch.Tensor]]):
+    """(query rows, item rows) numpy arrays of known pairs given as parts of (query, item) tensors, CELLS_CHUNK
+    at a time, part after part."""
+    for q, c in known:
+        for lo in range(0, len(q), CELLS_CHUNK):
+            yield q[lo:lo + CELLS_CHUNK].numpy(), c[lo:lo + CELLS_CHUNK].numpy()
+
+
+def excluded_cells(query_rows: torch.Tensor, known: list[tuple[torch.Tensor, torch.Tensor]],
+                   item_column: torch.Tensor | None = None, exclude_self: bool = False):
+    """The (ranking row, column) cells a ranking leaves out: distinct, sorted by row then column, as int32.
+
+    Row i of the ranking is catalog query row query_rows[i] (distinct, any order). A known pair of a
+    ranked query (known: parts of (query rows, item rows)) excludes its item; with exclude_self
+    (item-to-item runs) each query item excludes itself. item_column maps catalog items to ranking
+    columns (-1 for items that do not compete); None means every item competes, in catalog order.
+
+    A warm evaluation ranks nearly every user, so its cells are nearly every known pair: two passes
+    over the known pairs (count, then fill) leave one 8-byte key a cell, sorted and made distinct in
+    place, as the only array of that length.
     """
-    order = torch.argsort(query_rows)
-    ranked = query_rows.index_select(0, order)
-    cols = known_item if item_column is None else item_column.index_select(0, known_item)
-    if len(ranked):
-        at = torch.searchsorted(ranked, known_query).clamp_(max=len(ranked) - 1)
-        hit = (ranked.index_select(0, at) == known_query) & (cols >= 0)
-        rows, cols = order.index_select(0, at[hit]), cols[hit]
-    else:
-        rows, cols = known_query[:0], cols[:0]
-    if exclude_self:
-        own = query_rows if item_column is None else item_column.index_select(0, query_rows)
-        has = torch.nonzero(own >= 0).flatten()
-        rows, cols = torch.cat([rows, has]), torch.cat([cols, own.index_select(0, has)])
-    by_row = torch.argsort(rows, stable=True)
-    return rows.index_select(0, by_row), cols.index_select(0, by_row)
+    rows = query_rows.numpy()
+    known = known if len(rows) else []
+    row_of = np.full(int(rows.max()) + 1 if len(rows) else 0, -1, np.int64)  # catalog query row -> ranking row
+    row_of[rows] = np.arange(len(rows))
+    columns = None if item_column is None else item_column.numpy()
+
+    def keys(q: np.ndarray, c: np.ndarray) -> np.ndarray:
+        r = row_of[np.minimum(q, len(row_of) - 1)]
+        r[q >= len(row_of)] = -1
+        col = c.astype(np.int64) if columns is None else columns[c]
+        kept = (r >= 0) & (col >= 0)
+        return (r[kept] << _ROW) | col[kept]
+
+    own = (rows if columns is None else columns[rows]) if exclude_self else np.zeros(0, np.int64)
+    own_rows = np.flatnonzero(own >= 0)
+    cells = np.empty(len(own_rows) + sum(len(keys(q, c)) for q, c in known_chunks(known)), np.int64)
+    cells[:len(own_rows)] = (own_rows << _ROW) | own[own_rows]
+    at = len(own_rows)
+    for q, c in known_chunks(known):
+        part = keys(q, c)
+        cells[at:at + len(part)] = part
+        at += len(part)
+    cells.sort()
+    if len(cells) > 1:  # a pair known twice (in training and validation) is one cell
+        first = np.empty(len(cells), bool)
+        first[0] = True
+        np.not_equal(cells[1:], cells[:-1], out=first[1:])
+        cells = cells[first]
+    ex_rows, ex_cols = np.empty(len(cells), np.int32), np.empty(len(cells), np.int32)  # both below 2^31 (_ROW)
+    for lo in range(0, len(cells), CELLS_CHUNK):
+        part = cells[lo:lo + CELLS_CHUNK]
+        ex_rows[lo:lo + len(part)] = part >> _ROW
+        ex_cols[lo:lo + len(part)] = part & ((1 << _ROW) - 1)
+    return torch.from_numpy(ex_rows), torch.from_numpy(ex_cols)
