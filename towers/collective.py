@@ -125,18 +125,28 @@ class Exchange:
         return out.numpy()
 
 
-def gathered_at_first(part: torch.Tensor) -> torch.Tensor | None:
-    """Every process's 1-D tensor one after another, in rank order, at process 0 only (None elsewhere):
-    what only process 0 writes, without a copy of all of it in every process."""
+def parts_at_first(part: torch.Tensor) -> list[torch.Tensor] | None:
+    """Every process's 1-D tensor at process 0, in rank order, one tensor a process (None elsewhere): what only
+    process 0 writes. Process 0's own is kept as it is and the others' are received into tensors of their
+    exact length, so process 0 holds the whole once (joined, or gathered into padded buffers, it would
+    hold its own part twice and the whole again while joining)."""
     rank, world = rank_and_size()
     if world == 1:
-        return part
+        return [part]
 
     def call():
-        lengths, padded = _padded(part)
-        pieces = [torch.empty_like(padded) for _ in lengths] if rank == 0 else None
-        dist.gather(padded, pieces, dst=0)
-        return None if rank else torch.cat([piece[:n] for piece, n in zip(pieces, lengths)])
+        lengths = [int(n) for n in gather_all(torch.tensor([len(part)], dtype=torch.int64))]
+        if rank:
+            if len(part):
+                dist.send(part.contiguous(), dst=0)
+            return None
+        parts = [part]
+        for source in range(1, world):
+            received = torch.empty(lengths[source], dtype=part.dtype)
+            if len(received):
+                dist.recv(received, src=source)
+            parts.append(received)
+        return parts
     return _collective(call)
 
 

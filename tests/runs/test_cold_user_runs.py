@@ -74,3 +74,29 @@ def test_a_run_with_cold_users_and_last_events_reports_every_slice(tiny_runs):
     warm_ids = np.asarray(pairs["item_ids"])[pairs["warm_items"].numpy()]
     expected = log[log.customer_id.isin(cold_ids) & log.item_id.isin(warm_ids)].customer_id.nunique()
     assert fresh["cold_users"]["towers"]["queries"] == expected
+
+
+def test_a_pairs_file_of_several_processes_reads_as_their_pairs_one_after_another(tmp_path):
+    # a divided log's process 0 writes each column as its parts (the other processes' as they came), never
+    # joined; reading gives what one process writes for the joined pairs (reference: torch.cat of the parts)
+    folder, joined = RunFolder(tmp_path / "parts"), RunFolder(tmp_path / "joined")
+    folder.path.mkdir(), joined.path.mkdir()
+    own, other = small_split(), small_split()
+    other.train = Pairs(other.train.query[:7], other.train.candidate[:7], time=torch.arange(7))
+    own.train = Pairs(own.train.query, own.train.candidate, time=torch.arange(len(own.train)))
+    folder.write_pairs(np.arange(25), np.arange(30), own, [other])
+    raw = torch.load(tmp_path / "parts" / RunFolder.PAIRS, weights_only=True)
+    assert raw["version"] == 2 and [len(t) for t in raw["train"]["query"]] == [50, 7]
+    whole = {name: Pairs(*[None if getattr(getattr(own, name), c) is None else
+                           torch.cat([getattr(getattr(own, name), c), getattr(getattr(other, name), c)])
+                           for c in ("query", "candidate", "target", "weight", "time")])
+             for name in ("train", "valid", "test", "cold_test", "cold_user_test")}
+    joined.write_pairs(np.arange(25), np.arange(30), SplitPairs(
+        whole["train"], whole["valid"], whole["test"], whole["cold_test"], own.warm_items, own.cold_items,
+        own.item_item, whole["cold_user_test"], own.cold_users))
+    a, b = folder.read_pairs().split, joined.read_pairs().split
+    for name in whole:
+        for column in ("query", "candidate", "time"):
+            x, y = getattr(getattr(a, name), column), getattr(getattr(b, name), column)
+            assert (x is None and y is None) or torch.equal(x, y), (name, column)
+    assert folder.read_pairs_payload()["train"]["time"].tolist() == list(range(50)) + list(range(7))

@@ -186,18 +186,35 @@ class RunFolder:
     def load_bundle(self, model: str = TOWERS) -> LoadedBundle:
         return load_bundle(self.model_file(model))
 
-    def write_pairs(self, query_ids: np.ndarray, item_ids: np.ndarray, split: SplitPairs) -> Path:
-        """Catalog ids and split pairs, as tensors and lists only (weights_only-loadable)."""
-        payload = {"format": "towers-pairs", "version": 1,
+    def write_pairs(self, query_ids: np.ndarray, item_ids: np.ndarray, split: SplitPairs,
+                    others: list[SplitPairs] | None = None) -> Path:
+        """Catalog ids and split pairs, as tensors and lists only (weights_only-loadable).
+
+        others: the other processes' pairs of a divided log, in rank order after this process's. Each column
+        is then written as a list of its parts (version 2), so the writer never joins them into a copy of
+        the whole; reading joins them (`read_pairs_payload`), in the same order as one process's file.
+        """
+        splits = [split, *(others or [])]
+
+        def packed(name: str) -> dict:
+            parts = [_pack(getattr(s, name)) for s in splits]
+            # the columns every process has (context columns are each process's own, and not written)
+            return parts[0] if len(parts) == 1 else {key: [part[key] for part in parts] for key in parts[0]
+                                                     if all(key in part for part in parts)}
+        payload = {"format": "towers-pairs", "version": 2 if others else 1,
                    "query_ids": query_ids.tolist(), "item_ids": item_ids.tolist(),
-                   "train": _pack(split.train), "valid": _pack(split.valid), "test": _pack(split.test),
-                   "cold_test": _pack(split.cold_test), "cold_items": split.cold_items,
-                   "warm_items": split.warm_items, "item_item": split.item_item,
-                   "cold_user_test": _pack(split.cold_user_test), "cold_users": split.cold_users}
+                   **{name: packed(name) for name in _SLICES}, "cold_items": split.cold_items,
+                   "warm_items": split.warm_items, "item_item": split.item_item, "cold_users": split.cold_users}
         return write_atomic(self.path / self.PAIRS, lambda p: torch.save(payload, p))
 
     def read_pairs_payload(self) -> dict:
-        return load_payload(self.path / self.PAIRS, "pairs file")
+        """pairs.pt as saved, each column whole (a column written in parts is joined in their order)."""
+        payload = load_payload(self.path / self.PAIRS, "pairs file")
+        for name in _SLICES:
+            for key, column in payload.get(name, {}).items():
+                if isinstance(column, list):
+                    payload[name][key] = torch.cat(column) if column else column
+        return payload
 
     def read_pairs(self) -> SavedPairs:
         """pairs.pt read back; a file written before the cold-user slice existed reads with that slice empty."""
@@ -214,6 +231,9 @@ class RunFolder:
 def _ids(values: list) -> np.ndarray:
     """Catalog ids as saved: whole numbers back to int64, text as objects."""
     return np.asarray(values, dtype=np.int64 if isinstance((values or [""])[0], int) else object)
+
+
+_SLICES = ("train", "valid", "test", "cold_test", "cold_user_test")  # the split's pairs, as pairs.pt names them
 
 
 def _pack(p: Pairs) -> dict:

@@ -15,7 +15,7 @@ from pathlib import Path
 import torch
 
 from towers import config as C
-from towers.collective import across, gathered_at_first, rank_and_size
+from towers.collective import across, parts_at_first, rank_and_size
 from towers.data.context import sample_contexts, vectors_with_context
 from towers.data.embeddings_file import write_embeddings
 from towers.data.groups import check_group_columns, group_labels
@@ -274,7 +274,7 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
     metrics = evaluate_slices(scorers | references, data.split, cfg, event_vectors, reference_info, groups, share)
     references = None
     if not primary:
-        whole_split(data.split)  # process 0 writes every process's pairs
+        other_parts(data.split)  # process 0 writes every process's pairs
         return {"metrics": None, "out": out.path, "table": ""}
     if result.still_improving:
         metrics.setdefault("notes", {})["towers_training"] = ("towers: the best epoch was the last one run; validation "
@@ -282,7 +282,7 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
     _save_model(partial, TOWERS, model, cfg.model, data)
     files = export_run(partial, model, data, cfg, TOWERS, None if data.divided else scorers[TOWERS])
     scorers = None  # every vector is written: what they held is free before the pairs are gathered
-    partial.write_pairs(data.queries.ids, data.candidates.ids, whole_split(data.split) if data.divided else data.split)
+    partial.write_pairs(data.queries.ids, data.candidates.ids, data.split, other_parts(data.split) if data.divided else [])
     partial.write_json(RunFolder.METRICS, metrics)
     if started_from is not None:
         partial.write_json(RunFolder.STARTED_FROM, started_from)
@@ -297,17 +297,18 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
     return {"metrics": metrics, "out": out.path, "table": table}
 
 
-def whole_split(split: SplitPairs) -> SplitPairs | None:
-    """Every process's split pairs joined at process 0, for its pairs file (None in the other processes)."""
-    def whole(p: Pairs) -> Pairs | None:
-        columns = [None if c is None else gathered_at_first(c) for c in (p.query, p.candidate, p.target, p.weight, p.time)]
-        return None if columns[0] is None else Pairs(*columns)
-    parts = [whole(p) for p in (split.train, split.valid, split.test, split.cold_test, split.cold_user_test)]
-    if parts[0] is None:
+def other_parts(split: SplitPairs) -> list[SplitPairs] | None:
+    """The other processes' split pairs at process 0, in rank order, for its pairs file (None in the other
+    processes, which send theirs). The catalog masks are process 0's: they are the same in every process."""
+    def columns(p: Pairs) -> list[list[torch.Tensor] | None]:
+        return [None if c is None else parts_at_first(c) for c in (p.query, p.candidate, p.target, p.weight, p.time)]
+    slices = [columns(p) for p in (split.train, split.valid, split.test, split.cold_test, split.cold_user_test)]
+    if slices[0][0] is None:
         return None
-    train, valid, test, cold_test, cold_user_test = parts
-    return SplitPairs(train, valid, test, cold_test, split.warm_items, split.cold_items, split.item_item,
-                      cold_user_test, split.cold_users)
+    world = len(slices[0][0])
+    pairs = [[Pairs(*[None if c is None else c[r] for c in cols]) for cols in slices] for r in range(1, world)]
+    return [SplitPairs(train, valid, test, cold_test, split.warm_items, split.cold_items, split.item_item,
+                       cold_user_test, split.cold_users) for train, valid, test, cold_test, cold_user_test in pairs]
 
 
 def _event_vectors(tower, data: Prepared):
