@@ -377,6 +377,32 @@ def test_a_header_read_as_one_column_points_at_the_separator(tmp_path, sep, said
         T.read_table(path, columns=["user", "item"])
 
 
+def test_rows_longer_than_a_one_column_header_point_at_the_separator(tmp_path):
+    # a trial's ';'-separated recipe table with commas inside titles: pandas stops at the first such row
+    # ("Expected 1 fields in line 3, saw 2"); the error now names the separator the header shows
+    path = tmp_path / "recipes.csv"
+    path.write_text("recipe_id;title;cuisine\nFF-1;Fig tart;french\nFF-2;Beans, greens;italian\n")
+    with pytest.raises(TowersError, match=r"recipes\.csv: cannot be read as csv \(.*\); the header reads as one "
+                                          r"column, recipe_id;title;cuisine: the file looks ';'-separated"):
+        T.read_table(path)
+
+
+def test_a_group_column_in_a_table_of_another_separator_names_the_separator(tmp_path):
+    # group_metrics_by is checked from the tables' headers before the log is read: the cause is the separator
+    from pathlib import Path
+
+    from towers import config as C
+    from towers.data.groups import check_group_columns
+
+    (tmp_path / "recipes.csv").write_text("recipe_id;cuisine\nFF-1;french\n")
+    cfg = C.resolve({"interactions": {"path": "log.csv", "query_column": "user", "candidate_column": "recipe"},
+                     "items": {"path": "recipes.csv", "id_column": "recipe_id"},
+                     "evaluation": {"group_metrics_by": ["cuisine"]}}, Path(tmp_path))
+    with pytest.raises(TowersError, match=r"column 'cuisine' is not in the items table \(.*recipes\.csv\); the header "
+                                          r"reads as one column, recipe_id;cuisine: the file looks ';'-separated"):
+        check_group_columns(cfg)
+
+
 def test_words_for_missing_warn_in_text_columns_and_stay_quiet_in_numbers(tmp_path):
     # pandas takes NA, null, n/a, ... as missing by default (its STR_NA_VALUES); in a text column such a word may be
     # a value (NA: North America), so it is still taken as missing, with a warning naming the column and first row

@@ -550,3 +550,23 @@ def test_an_id_file_may_be_a_pipe(tmp_path):
         os.close(read_end)
     with pytest.raises(TowersError, match="no such file"):
         read_id_file(tmp_path, "item")  # a folder is no id file
+
+
+def test_an_id_file_without_a_header_row_is_named(tmp_path):
+    # a trial's --never-ids file of two product codes and no header let the first code into the list, silently:
+    # pandas read it as the column name. A header shaped like the ids below it now gets a warning
+    from towers.runs.lists import read_id_file
+
+    codes = tmp_path / "never.csv"
+    codes.write_text("FF-0199\nFF-0475\nFF-0012\n")
+    with pytest.warns(UserWarning, match=r"never.csv: its header 'FF-0199' looks like one of the item ids"):
+        assert read_id_file(codes, "item").tolist() == ["FF-0475", "FF-0012"]
+    numbers = tmp_path / "readers.csv"
+    numbers.write_text("10732\n10001\n")
+    with pytest.warns(UserWarning, match="header row"):
+        read_id_file(numbers, "user")
+    named = tmp_path / "named.csv"
+    named.write_text("recipe_id\nFF-0199\nFF-0475\n")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # a real header: no warning
+        assert read_id_file(named, "item").tolist() == ["FF-0199", "FF-0475"]

@@ -367,3 +367,12 @@ def test_feature_bias_is_searched_only_where_it_can_act():
     for without in (base.with_section("items", features=()), base.with_section("model", biases=False)):
         assert "model.feature_bias" not in S.searched_keys(without)
         assert all("model.feature_bias" not in values for values in _draw(without, 5))
+
+
+@pytest.mark.parametrize("loss,given,meant", [("softmax", None, 0), ("logistic", None, 4), ("softmax", 64, 64)])
+def test_an_empty_negatives_reads_as_the_number_it_means(loss, given, meant):
+    # the "changed:" line and trial 000 read the config alike: an empty negatives is the README's default for
+    # the loss (4 drawn a positive under logistic, none drawn under softmax), not null
+    base = _config(training={"loss": loss, "negatives": given})
+    assert S.configured(base, "training.negatives") == meant
+    assert S.configured(base, "model.dim") == base.model.dim

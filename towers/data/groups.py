@@ -14,7 +14,7 @@ import pandas as pd
 import torch
 
 from towers.config import Config
-from towers.data.tables import normalise_ids, read_table, table_columns, table_rows
+from towers.data.tables import normalise_ids, read_table, separator_hint, table_columns, table_rows
 from towers.errors import TowersError
 
 MOST_GROUPS = 100  # more distinct values than this is not a grouping a table can show
@@ -59,6 +59,11 @@ def _group_side(cfg: Config, column: str):
     found = [(side, sec) for side, sec in sides if column in names.get(side, ())]
     if found:
         return found[0]
+    for side, sec in sides:  # a table whose header read as one column: its separator is the cause
+        hint = separator_hint([str(c) for c in names.get(side, ())], column)
+        if hint is not None:
+            raise TowersError(f"config key 'evaluation.group_metrics_by': column {column!r} is not in the {side}s "
+                              f"table ({sec.path}); {hint}")
     where = " or ".join(f"the {s}s table ({sec.path})" for s, sec in sides if sec.path) or "no feature table"
     present = [str(c) for cols in names.values() for c in cols]
     same = [c for c in present if c.strip().casefold() == column.strip().casefold()]

@@ -112,6 +112,15 @@ def _line_of_byte(path: Path) -> int | None:
     return None
 
 
+def _first_line(path: Path) -> str:
+    """A text table's header line as written ("" when it cannot be read)."""
+    try:
+        with open(path, encoding="utf-8-sig", errors="replace") as fh:
+            return fh.readline().rstrip("\r\n")
+    except OSError:
+        return ""
+
+
 @contextlib.contextmanager
 def _read_errors(path: Path, suffix: str):
     """Reading errors of pandas and pyarrow as one-line TowersErrors naming the file."""
@@ -125,8 +134,10 @@ def _read_errors(path: Path, suffix: str):
         raise _not_utf8(path, exc) from None
     except (pd.errors.ParserError, ValueError, OSError) as exc:
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        # rows longer than a one-column header: most often a file saved with another separator
+        hint = separator_hint([_first_line(path)]) if isinstance(exc, pd.errors.ParserError) else None
         raise TowersError(f"{path}: cannot be read as {suffix[1:]} ({first}); "
-                          f"check the file is a valid {suffix[1:]} table") from None
+                          + (hint or f"check the file is a valid {suffix[1:]} table")) from None
     except Exception as exc:  # pyarrow raises its own ArrowInvalid family
         _raise_if_arrow(exc, path)
         raise
@@ -453,6 +464,19 @@ def shown(name: str) -> str:
     return name if name.isprintable() else repr(name)[1:-1]
 
 
+def separator_hint(header: list[str], column: str | None = None) -> str | None:
+    """Advice when a header reads as one column that another separator would split (';', '|', a tab or a
+    comma), naming that separator; None otherwise. With `column`, only a split that yields it counts."""
+    if len(header) != 1:
+        return None
+    sep = next((s for s in (";", "|", "\t", ",") if (column in header[0].split(s) if column else s in header[0])), None)
+    if sep is None:
+        return None
+    shown_sep = "tab" if sep == "\t" else repr(sep)
+    return (f"the header reads as one column, {shown(header[0])}: the file looks {shown_sep}-separated; "
+            "save it with commas (.csv) or tabs (.tsv), or as parquet")
+
+
 def require_columns(present, wanted, path) -> None:
     """Raise naming the first missing column and the closest existing names."""
     present = [str(c) for c in present]
@@ -461,11 +485,8 @@ def require_columns(present, wanted, path) -> None:
             # names equal but for case or spaces first ('ISBN' for 'isbn'), then the closest by spelling
             same = [c for c in present if c.strip().casefold() == str(col).strip().casefold()]
             close = same or difflib.get_close_matches(col, present, n=3, cutoff=0.5)
-            sep = next((s for s in (";", "|", "\t", ",") if len(present) == 1 and col in present[0].split(s)), None)
-            if sep is not None:  # the whole header read as one column: another separator
-                shown_sep = "tab" if sep == "\t" else repr(sep)
-                hint = (f"the header reads as one column, {shown(present[0])}: the file looks {shown_sep}-separated; "
-                        "save it with commas (.csv) or tabs (.tsv), or as parquet")
+            hint = separator_hint(present, str(col))
+            if hint is not None:  # the whole header read as one column: another separator
                 raise TowersError(f"{where(path, shown(str(col)))}: no such column; {hint}")
             hint = (f"did you mean {', '.join(repr(c) for c in close)}?" if close
                     else f"columns present: {', '.join(shown(c) for c in present[:12])}")

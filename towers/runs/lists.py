@@ -11,6 +11,7 @@ are listed with empty columns.
 
 from __future__ import annotations
 
+import re
 import sys
 import time
 import warnings
@@ -277,13 +278,33 @@ def read_id_file(path: str | Path, what: str) -> np.ndarray:
             raise TowersError(f"{path}: has {len(names)} columns; a file of {what} ids holds one column "
                               "(or give plain text, one id per line)")
         table = read_table(path, ids=names)
-        return normalise_ids(table.iloc[:, 0], path, table.columns[0])
+        ids = normalise_ids(table.iloc[:, 0], path, table.columns[0])
+        if _looks_like_an_id(str(names[0]), ids):
+            warnings.warn(f"{path}: its header {names[0]!r} looks like one of the {what} ids, not a column name: a "
+                          "file of ids without a header row loses its first id to the header; add a header row "
+                          f"(such as {what}_id), or give plain text, one id per line", stacklevel=2)
+        return ids
     try:
         text = path.read_text(encoding="utf-8-sig")
     except UnicodeDecodeError:
         raise TowersError(f"{path}: not UTF-8 text; give {what} ids one per line as UTF-8 text") from None
     ids = [line.strip() for line in text.splitlines()]
     return np.asarray([i for i in ids if i], dtype=object)
+
+
+def _looks_like_an_id(header: str, ids: np.ndarray) -> bool:
+    """Whether a one-column table's header is shaped like its ids (digits as 0: 'FF-0199' like 'FF-0475', or
+    a number above numbers): then the file most likely has no header row, and the header is its first id."""
+    sample = ids[:100]
+    if len(sample) == 0:
+        return False
+    if ids.dtype.kind in "iu":
+        return header.strip().lstrip("-").isdigit()
+    shape = _DIGIT.sub("0", header.strip())
+    return sum(_DIGIT.sub("0", str(i)) == shape for i in sample) * 2 >= len(sample)
+
+
+_DIGIT = re.compile(r"[0-9]")
 
 
 # ---- choosing and ranking ------------------------------------------------------------------------

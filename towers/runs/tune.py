@@ -770,8 +770,7 @@ def write_outputs(out: str | Path, config_path: str | Path, base: C.Config) -> d
     if best is not None:
         values = best.user_attrs["values"]
         for dotted, v in values.items():
-            section, key = dotted.split(".")
-            was = getattr(getattr(base, section), key)
+            was = S.configured(base, dotted)  # an empty negatives as the number it means, as trial 000 took it
             if v != was:
                 changed[dotted] = (was, v)
         raw = config_with(config_path, base, values)

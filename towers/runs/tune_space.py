@@ -127,6 +127,18 @@ def _bias_from_features(base: C.Config) -> bool:
     return base.model.biases and bool(base.items.features)
 
 
+def configured(base: C.Config, name: str):
+    """What the config holds for a searched name, an empty value read as what it means (the trial-000 answer
+    and the "changed:" line's left side)."""
+    if name == HISTORY_SWITCH:
+        return base.model.history_length > 0
+    section, key = name.split(".")
+    value = getattr(getattr(base, section), key)
+    if name == "training.negatives" and value is None:  # empty: 4 under logistic, none drawn under softmax
+        value = base.training.sampled_negatives
+    return value
+
+
 class _FromConfig:
     """A stand-in trial for `suggest` that answers each question with the config's own value, moved into the
     asked range where it lies outside (a log scale holds no 0: that becomes the low end), and records the
@@ -136,13 +148,7 @@ class _FromConfig:
         self.base, self.params = base, {}
 
     def _own(self, name: str):
-        if name == HISTORY_SWITCH:
-            return self.base.model.history_length > 0
-        section, key = name.split(".")
-        value = getattr(getattr(self.base, section), key)
-        if name == "training.negatives" and value is None:  # empty: 4 under logistic, none drawn under softmax
-            value = self.base.training.sampled_negatives
-        return value
+        return configured(self.base, name)
 
     def _answer(self, name: str, value):
         self.params[name] = value
