@@ -570,3 +570,20 @@ def test_an_id_file_without_a_header_row_is_named(tmp_path):
     with warnings.catch_warnings():
         warnings.simplefilter("error")  # a real header: no warning
         assert read_id_file(named, "item").tolist() == ["FF-0199", "FF-0475"]
+
+
+def test_feature_rows_of_a_side_the_run_has_no_table_for_name_that_side(small_store, tmp_path):
+    # a trial's `recommend --user-rows` on a run without a users table was told "no feature table for that side"
+    import yaml
+
+    cfg = {"run": {"threads": 1}, "model": {"dim": 4, "hidden": [8]}, "training": {"epochs": 1, "batch_size": 512},
+           "interactions": {"path": str(small_store / "orders.csv"), "query_column": "customer_id",
+                            "candidate_column": "product_id"},
+           "items": {"path": str(small_store / "items.parquet"), "id_column": "item_id",
+                     "features": [{"name": "department", "kind": "categorical"}]},
+           "evaluation": {"references": False, "baseline": False}, "report": {"enabled": False}}
+    (tmp_path / "c.yaml").write_text(yaml.safe_dump(cfg))
+    run = towers.load(towers.train(tmp_path / "c.yaml", tmp_path / "run")["out"])
+    with pytest.raises(TowersError, match=r"this run was trained without a users table, so new users cannot be "
+                                          r"embedded from feature rows; train with one \(users.path and users.features\)"):
+        run.embed_users(pd.DataFrame({"customer_id": [1]}))

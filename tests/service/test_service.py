@@ -293,6 +293,9 @@ BAD = [
      "/recommend takes it"),
     ("unknown item", "POST", "/similar", {"items": [UNKNOWN_ITEM]}, None, 422, f"unknown item id '{UNKNOWN_ITEM}'"),
     ("unknown user", "POST", "/recommend", {"users": [1]}, None, 422, "unknown user id 1"),
+    # a request's fields, not the command line's options: a trial's 422 said "--history", "--user-rows"
+    ("unknown user's way in", "POST", "/recommend", {"users": [1]}, None, 422,
+     "a few item ids ('history') or feature rows ('user_row')"),
     ("text id for numeric users", "POST", "/recommend", {"users": ["nobody"]}, None, 422, "not a number"),
     ("zero-padded id for numeric users", "POST", "/recommend", {"users": ["0100307"]}, None, 422,
      "user id '0100307' is written with a leading zero or sign, but this run's user ids are whole numbers as they "

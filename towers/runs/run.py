@@ -247,11 +247,11 @@ class Run:
         item_ids, bags, limit = self._run_histories()
         return item_ids, trained_items(bags, len(item_ids)), limit
 
-    @staticmethod
-    def _check_embeddable(encoders: SideEncoders, source) -> None:
+    def _check_embeddable(self, encoders: SideEncoders, source) -> None:
         if encoders.id_column is None:
-            raise TowersError(f"{source}: this run has no feature table for that side, so new entities cannot be "
-                              "embedded from features; train with a feature table")
+            side = "items" if encoders is self.bundle.candidate_encoders else "users"
+            raise TowersError(f"{source}: this run was trained without a {side} table, so new {side} cannot be "
+                              f"embedded from feature rows; train with one ({side}.path and {side}.features)")
 
     @staticmethod
     def _embed_ids(column: pd.Series, encoders: SideEncoders, source) -> tuple[np.ndarray, np.ndarray]:

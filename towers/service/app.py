@@ -22,6 +22,7 @@ from __future__ import annotations
 import difflib
 import json
 import logging
+import re
 import threading
 import warnings
 from pathlib import Path
@@ -258,9 +259,17 @@ def _validation_message(errors: list[dict], path: str = "") -> tuple[int, str]:
     return 422, line + (f" (and {more} more problem{'s' if more != 1 else ''})" if more else "")
 
 
+# the command-line options the library's messages name, as a request names them
+_AS_FIELDS = {"--history": "'history'", "--user-rows": "'user_row'", "--item-rows": "'item_row'"}
+
+
 def _towers_message(exc: TowersError, hidden: dict[str, str]) -> str:
-    """The library's one line, with the server's own paths (hidden: path -> plain words) left out."""
-    return _without_paths(str(exc).splitlines()[0], hidden)
+    """The library's one line, with the server's own paths (hidden: path -> plain words) left out and the
+    command line's options named as the request's fields."""
+    text = _without_paths(str(exc).splitlines()[0], hidden)
+    for option, field in _AS_FIELDS.items():
+        text = re.sub(rf"{option}\b", field, text)
+    return text
 
 
 def _without_paths(text: str, hidden: dict[str, str]) -> str:
