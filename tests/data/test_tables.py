@@ -387,6 +387,15 @@ def test_rows_longer_than_a_one_column_header_point_at_the_separator(tmp_path):
         T.read_table(path)
 
 
+def test_a_row_too_long_under_a_comma_header_gets_no_separator_hint(tmp_path):
+    # the file's own separator is in its header: the cause is the row, not the separator
+    path = tmp_path / "items.csv"
+    path.write_text("item_id,title,price\nA,Fig tart,3\nB,Beans, greens,4\n")
+    with pytest.raises(TowersError, match=r"items\.csv: cannot be read as csv \(.*\); check the file is a valid csv "
+                                          r"table$"):
+        T.read_table(path)
+
+
 def test_a_group_column_in_a_table_of_another_separator_names_the_separator(tmp_path):
     # group_metrics_by is checked from the tables' headers before the log is read: the cause is the separator
     from pathlib import Path

@@ -134,8 +134,9 @@ def _read_errors(path: Path, suffix: str):
         raise _not_utf8(path, exc) from None
     except (pd.errors.ParserError, ValueError, OSError) as exc:
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-        # rows longer than a one-column header: most often a file saved with another separator
-        hint = separator_hint([_first_line(path)]) if isinstance(exc, pd.errors.ParserError) else None
+        # rows longer than a header without the file's own separator: most often a file saved with another one
+        line = _first_line(path) if isinstance(exc, pd.errors.ParserError) else ""
+        hint = None if ("\t" if suffix == ".tsv" else ",") in line else separator_hint([line])
         raise TowersError(f"{path}: cannot be read as {suffix[1:]} ({first}); "
                           + (hint or f"check the file is a valid {suffix[1:]} table")) from None
     except Exception as exc:  # pyarrow raises its own ArrowInvalid family

@@ -67,8 +67,8 @@ def rating_metrics(scorer: Scorer, test: Pairs, share: Share | None = None) -> d
     return {"rmse": M.rmse(pred, target, weight), "mae": M.mae(pred, target, weight)}
 
 
-def _pair_keys(q: torch.Tensor, c: torch.Tensor, n_items: int) -> np.ndarray:
-    return q.numpy().astype(np.int64) * n_items + c.numpy().astype(np.int64)
+def _pair_keys(q: np.ndarray, c: np.ndarray, n_items: int) -> np.ndarray:
+    return q.astype(np.int64) * n_items + c.astype(np.int64)
 
 
 @dataclass
@@ -109,7 +109,7 @@ def held_out(test: Pairs, known: Pairs | list[Pairs], candidate_mask: torch.Tens
     if exclude_self:
         ok = (tq != tc).numpy()
         tq, tc = tq[ok], tc[ok]
-    keys = np.unique(_pair_keys(tq, tc, n_items))
+    keys = np.unique(_pair_keys(tq.numpy(), tc.numpy(), n_items))
     keys = keys[~_known_among(keys, known, n_items)]
     pq = torch.from_numpy(keys // n_items)
     pc = torch.from_numpy(keys % n_items)
@@ -202,7 +202,7 @@ def _known_among(keys: np.ndarray, known: Pairs | list[Pairs], n_items: int) -> 
     if len(keys) == 0:
         return found
     for q, c in known_chunks(_parts(known)):
-        part = q.astype(np.int64) * n_items + c.astype(np.int64)
+        part = _pair_keys(q, c, n_items)
         at = np.minimum(np.searchsorted(keys, part), len(keys) - 1)
         found[at[keys[at] == part]] = True
     return found

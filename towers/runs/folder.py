@@ -213,7 +213,7 @@ class RunFolder:
         for name in _SLICES:
             for key, column in payload.get(name, {}).items():
                 if isinstance(column, list):
-                    payload[name][key] = torch.cat(column) if column else column
+                    payload[name][key] = torch.cat(column)
         return payload
 
     def read_pairs(self) -> SavedPairs:

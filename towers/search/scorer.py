@@ -112,22 +112,23 @@ def excluded_cells(query_rows: torch.Tensor, known: list[tuple[torch.Tensor, tor
     row_of[rows] = np.arange(len(rows))
     columns = None if item_column is None else item_column.numpy()
 
-    def keys(q: np.ndarray, c: np.ndarray) -> np.ndarray:
+    def cells_of(q: np.ndarray, c: np.ndarray):  # (ranking rows, columns, which pairs are cells) of a chunk
         r = row_of[np.minimum(q, len(row_of) - 1)]
         r[q >= len(row_of)] = -1
         col = c.astype(np.int64) if columns is None else columns[c]
-        kept = (r >= 0) & (col >= 0)
-        return (r[kept] << _ROW) | col[kept]
+        return r, col, (r >= 0) & (col >= 0)
 
     own = (rows if columns is None else columns[rows]) if exclude_self else np.zeros(0, np.int64)
     own_rows = np.flatnonzero(own >= 0)
-    cells = np.empty(len(own_rows) + sum(len(keys(q, c)) for q, c in known_chunks(known)), np.int64)
+    count = sum(int(np.count_nonzero(cells_of(q, c)[2])) for q, c in known_chunks(known))
+    cells = np.empty(len(own_rows) + count, np.int64)
     cells[:len(own_rows)] = (own_rows << _ROW) | own[own_rows]
     at = len(own_rows)
     for q, c in known_chunks(known):
-        part = keys(q, c)
-        cells[at:at + len(part)] = part
-        at += len(part)
+        r, col, kept = cells_of(q, c)
+        n = int(np.count_nonzero(kept))
+        cells[at:at + n] = (r[kept] << _ROW) | col[kept]
+        at += n
     cells.sort()
     if len(cells) > 1:  # a pair known twice (in training and validation) is one cell
         first = np.empty(len(cells), bool)
