@@ -43,14 +43,18 @@ class Tiny(nn.Module):
         return self.layer(self.ids(ids)).pow(2).mean()
 
 
-def _model() -> Tiny:
+def _model(kind: type = Tiny) -> Tiny:
     torch.manual_seed(0)
-    return Tiny()
+    return kind()
+
+
+def _join(rank: int, port: int) -> None:
+    os.environ.update(MASTER_ADDR="127.0.0.1", MASTER_PORT=str(port))
+    dist.init_process_group("gloo", rank=rank, world_size=WORLD)
 
 
 def _worker(rank: int, port: int, out: dict) -> None:
-    os.environ.update(MASTER_ADDR="127.0.0.1", MASTER_PORT=str(port))
-    dist.init_process_group("gloo", rank=rank, world_size=WORLD)
+    _join(rank, port)
     model = _model()
     if rank == 1:  # a process that starts from other weights is given process 0's
         with torch.no_grad():
@@ -64,14 +68,19 @@ def _worker(rank: int, port: int, out: dict) -> None:
     dist.destroy_process_group()
 
 
-def test_every_process_holds_the_mean_of_all_gradients():
+def _run(worker) -> dict:
+    """worker(rank, port, out) in WORLD gloo processes; what each put in out[rank]."""
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))
         port = s.getsockname()[1]
     with mp.Manager() as manager:
         out = manager.dict()
-        mp.spawn(_worker, args=(port, out), nprocs=WORLD, join=True)
-        got = dict(out)
+        mp.spawn(worker, args=(port, out), nprocs=WORLD, join=True)
+        return dict(out)
+
+
+def test_every_process_holds_the_mean_of_all_gradients():
+    got = _run(_worker)
     reference = {"ids": 0, "layer": 0, "bias": 0}
     for rank in range(WORLD):
         model = _model()
@@ -87,3 +96,77 @@ def test_every_process_holds_the_mean_of_all_gradients():
         assert torch.equal(got[rank]["start"], start)  # process 0's weights everywhere
     for name in reference:  # and the processes agree to the bit
         assert torch.equal(got[0][name], got[1][name])
+
+
+class Owned(Tiny):
+    """Tiny plus a table of user rows, each user's rows looked up by one process only (a divided log's users):
+    rank r reads the rows of its own parity, and row 0 (the unknown id) now and then, as id dropout does."""
+
+    def __init__(self):
+        super().__init__()
+        self.users = nn.Embedding(20, 4, sparse=True)
+
+    def sparse_parameters(self):
+        return [self.ids.weight, self.users.weight]
+
+    def loss(self, rank: int) -> torch.Tensor:
+        g = torch.Generator().manual_seed(200 + rank)
+        users = 2 * torch.randint(1, 10, (9 + 4 * rank,), generator=g) - rank  # odd rows for rank 1, even for 0
+        users[::4] = 0  # the unknown row, in both processes
+        return super().loss(rank) + (self.users(users) * self.layer.weight[0]).sum().pow(2)
+
+
+def _owned_worker(rank: int, port: int, out: dict) -> None:
+    import towers.collective as collective
+
+    _join(rank, port)
+    model = _model(Owned)
+    exchange = GradientExchange(model, owned=[model.users.weight])
+    model.loss(rank).backward()
+    exchange()
+    grad = {"users": model.users.weight.grad.to_dense(), "ids": model.ids.weight.grad.to_dense(),
+            "layer": model.layer.weight.grad.clone()}
+    # each process writes its own rows (and their optimiser-state rows), then share_rows makes them whole,
+    # three rows a round (more rounds for the process with more rows; the other joins them with none left)
+    collective.SHARE_CHUNK = 3
+    mine = torch.arange(2, 20, 2) if rank == 0 else torch.arange(1, 20, 2)[:4]
+    table, state = model.users.weight.detach().clone(), torch.zeros(20, 4)
+    table[mine] = 100.0 + mine.unsqueeze(1).float()
+    state[mine] = -mine.unsqueeze(1).float()
+    collective.share_rows([table, state], mine)
+    pieces = collective.gather_all(torch.arange(3 * rank, dtype=torch.float64))  # rank 0 sends none
+    out[rank] = {**grad, "table": table, "state": state, "pieces": [p.clone() for p in pieces]}
+    dist.destroy_process_group()
+
+
+def test_owned_rows_stay_with_their_process_and_are_shared_back_whole():
+    """GradientExchange(owned=...): an owned table's rows keep this process's gradient over the processes (the
+    others have none for them), row 0 the mean of every process's, to the bit alike; share_rows then gives
+    every process every owner's rows. Reference: the gradients averaged by hand, as above."""
+    got = _run(_owned_worker)
+    reference = {"users": 0, "ids": 0, "layer": 0}
+    for rank in range(WORLD):
+        model = _model(Owned)
+        model.loss(rank).backward()
+        reference["users"] = reference["users"] + model.users.weight.grad.to_dense() / WORLD
+        reference["ids"] = reference["ids"] + model.ids.weight.grad.to_dense() / WORLD
+        reference["layer"] = reference["layer"] + model.layer.weight.grad / WORLD
+    for rank in range(WORLD):
+        own = torch.arange(20) % 2 == rank
+        own[0] = False
+        torch.testing.assert_close(got[rank]["users"][own], reference["users"][own], rtol=1e-6, atol=1e-7)
+        assert not got[rank]["users"][~own][1:].any()  # the other process's users: no gradient here
+        torch.testing.assert_close(got[rank]["users"][0], reference["users"][0], rtol=1e-6, atol=1e-7)
+        for name in ("ids", "layer"):
+            torch.testing.assert_close(got[rank][name], reference[name], rtol=1e-6, atol=1e-7)
+    assert torch.equal(got[0]["users"][0], got[1]["users"][0])  # row 0 to the bit alike
+    assert reference["users"][0].abs().sum() > 0  # both processes wrote to row 0
+    for name in ("ids", "layer"):
+        assert torch.equal(got[0][name], got[1][name])
+    owners = {0: torch.arange(2, 20, 2), 1: torch.arange(1, 20, 2)[:4]}
+    for rank in range(WORLD):
+        for rows in owners.values():
+            assert torch.equal(got[rank]["table"][rows], 100.0 + rows.unsqueeze(1).float().expand(-1, 4))
+            assert torch.equal(got[rank]["state"][rows], -rows.unsqueeze(1).float().expand(-1, 4))
+        assert [p.tolist() for p in got[rank]["pieces"]] == [[], [0.0, 1.0, 2.0]]
+    assert torch.equal(got[0]["table"], got[1]["table"])  # rows no process owns: the same start everywhere

@@ -22,7 +22,7 @@ import torch
 from tqdm import tqdm
 
 from towers.atomic import write_atomic
-from towers.collective import across, gather_objects, largest, rank_and_size, summed
+from towers.collective import across, gather_objects, largest, rank_and_size, share_rows, summed
 from towers.config import Config
 from towers.data.features import block_len, take
 from towers.data.history import HISTORY, before, without_targets
@@ -102,7 +102,39 @@ class Trainer:
         self.lam = self.tcfg.id_l2
         self.stop = StopRequest(self.world)
         # several processes: their gradients averaged after each backward pass (distributed.py)
-        self.exchange = GradientExchange(model) if self.world > 1 else None
+        self.owned = self.owned_tables()
+        self.owned_rows: torch.Tensor | None = None
+        self.exchange = GradientExchange(model, self.owned) if self.world > 1 else None
+
+    def owned_tables(self) -> list[torch.nn.Parameter]:
+        """The tables whose rows each belong to one process: with the log divided by user, the query side's id
+        table (one row per user, not a bounded one) and bias table, whose rows only their user's process reads
+        and writes in training (row 0, the unknown id, excepted: GradientExchange exchanges it)."""
+        m = self.model
+        if self.world == 1 or not self.divided or m.shared:
+            return []
+        tables = [m.query_tower.ids] if m.query_tower.use_ids else []
+        tables += [m.query_bias] if m.use_biases else []
+        return [t.weight for t in tables if isinstance(t, torch.nn.Embedding)]
+
+    def share_owned_rows(self) -> None:
+        """After an epoch: every process's users' rows of the owned tables, and their rows of the id
+        optimiser's state, written into every process, so each holds the whole model again (for validation's
+        best weights, the checkpoint process 0 writes, and the model it saves), as if every row were exchanged."""
+        if not self.owned:
+            return
+        if self.owned_rows is None:  # this process's users with training pairs: the rows it updates
+            block = self.data.queries.block
+            used = torch.nonzero(torch.bincount(self.data.train.query, minlength=block_len(block))).flatten()
+            rows = torch.unique(block["id"].index_select(0, used))
+            self.owned_rows = rows[rows != 0]
+        tables = []
+        for p in self.owned:
+            tables.append(p.data)
+            for opt in self.optimizers:
+                tables += [t for t in opt.state.get(p, {}).values()
+                           if isinstance(t, torch.Tensor) and t.shape == p.shape]
+        share_rows(tables, self.owned_rows)
 
     def _penalty(self, tower: Tower, bias, ids: torch.Tensor, inv: torch.Tensor, rows: torch.Tensor | None,
                  bias_rows: torch.Tensor | None = None) -> torch.Tensor:
@@ -431,6 +463,7 @@ def fit(model: TwoTowerModel, data: Prepared, cfg: Config, checkpoint_dir: Path 
                 raise TrainingInterrupted(f"{label} training interrupted at epoch {stop.epoch}, step {stop.step}; "
                                           "checkpoint written") from None
             order, start_step, done_loss = None, 0, 0.0
+            trainer.share_owned_rows()
             finished = stopping.after_round(model, data, cfg, epoch, loss, trainer.last_rate, checkpoint_dir)
             epoch += 1
             if finished:
