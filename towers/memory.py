@@ -7,7 +7,8 @@ several times. Raising the mmap threshold to its maximum (32 MiB) and the trim t
 blocks in the heap for the next step (`reuse_freed_memory`, training's run.reuse_memory). Peak
 memory is unchanged (it is the same high-water mark). Reading a long log is the opposite case: its
 freed pieces are not reused by the later arrays of the log's length, so `trim_freed_memory` hands
-them back. Elsewhere than glibc both do nothing.
+them back, with what pyarrow's pool keeps after writing a file. Elsewhere than glibc the malloc settings do
+nothing.
 
 `index_dtype` picks 4-byte positions into a long array where they fit, half the memory of 8.
 """
@@ -19,6 +20,7 @@ import ctypes.util
 import sys
 
 import numpy as np
+import pyarrow as pa
 
 M_TRIM_THRESHOLD, M_MMAP_THRESHOLD = -1, -3  # mallopt parameter numbers in glibc's malloc.h
 MMAP_THRESHOLD = 32 << 20  # glibc's largest allowed value on 64-bit systems
@@ -77,10 +79,12 @@ def hand_back_freed_memory() -> None:
 
 
 def trim_freed_memory() -> None:
-    """Hand the heap's free pages back to the system (malloc_trim)."""
+    """Hand the heap's free pages back to the system (malloc_trim), and those pyarrow's memory pool keeps
+    for its next buffers (writing 1M users' embeddings to parquet left 210 MB there, measured)."""
     trim = _glibc_function("malloc_trim")
     if trim is not None:
         trim(0)
+    pa.default_memory_pool().release_unused()
 
 
 def index_dtype(n: int):

@@ -30,7 +30,7 @@ from towers.evaluation.protocol import (
     popularity_scorer,
     reference_scorers,
 )
-from towers.memory import hand_back_freed_memory
+from towers.memory import hand_back_freed_memory, trim_freed_memory
 from towers.model.build import baseline_model, build_model
 from towers.model.bundle import LoadedBundle, save_bundle
 from towers.model.embed import model_scorer, reads_context
@@ -240,7 +240,8 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
     resume_hint = f"resume with: towers train {config_path} --out {out.path} --resume"
     try:
         result = fit(model, data, cfg, partial.checkpoints(), TOWERS, resume=resuming, on_round=on_round)
-        # a divided log: this process's users only (process 0 embeds everyone for the files after evaluating);
+        hand_back_freed_memory()  # the steps are over: the heap they kept is not the export's or evaluation's
+        # a divided log: this process's users only (process 0 embeds everyone for the files, below);
         # a process other than 0 of a whole log evaluates nothing
         evaluates = primary or data.divided
         scorers: dict[str, Scorer | None] = {
@@ -248,27 +249,35 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
                                             cfg.training.rating_loss, data.item_item, data.divided),
             TOWERS: model_scorer(model, data, data.own_queries) if evaluates else None,
         }
+        files = {}
+        if primary:  # saved and exported now, so the model is let go before the references train and evaluate
+            _save_model(partial, TOWERS, model, cfg.model, data)
+            files = export_run(partial, model, data, cfg, TOWERS, None if data.divided else scorers[TOWERS])
+            trim_freed_memory()  # what writing the files took, not kept through the evaluation
         histories = {TOWERS: result.history}
-        context_models = {TOWERS: model}
+        # the model itself is needed only for context vectors: else its tables (the users' id table the
+        # largest) are free before the references train and the evaluation ranks
+        context_models = {TOWERS: model} if reads_context(model.query_tower, data) else {}
+        model = None
         for name in references:
             ref, scorers[name], histories[name] = _train_reference(name, data, cfg, partial, init_from, resuming,
                                                                    started_from, primary)
-            if name == BILINEAR:
+            if name == BILINEAR and reads_context(ref.query_tower, data):
                 context_models[name] = ref
+            ref = None  # saved and exported by _train_reference: only its scorer is needed now
     except TrainingInterrupted as stop:
         raise TrainingInterrupted(f"{stop}; {resume_hint}") from None
     except TrainingDiverged:
         partial.remove()  # a diverged run leaves nothing behind
         raise
-    hand_back_freed_memory()  # the steps are over: the heap they kept is not the evaluation's
+    hand_back_freed_memory()  # and the references' steps too
     # a divided log (data/shards.py): every process evaluates its own users and all get the whole result
     share = distributed.evaluation_share(divided=True) if data.divided else None
     if not primary and share is None:
         return {"metrics": None, "out": out.path, "table": ""}
     if data.oracle is not None:
         scorers["oracle"] = oracle_scorer(data.oracle)
-    event_vectors = {name: _event_vectors(m.query_tower, data) for name, m in context_models.items()
-                     if reads_context(m.query_tower, data)}
+    event_vectors = {name: _event_vectors(m.query_tower, data) for name, m in context_models.items()}
     references, reference_info = reference_scorers(data.split, len(data.queries.ids), len(data.candidates.ids), cfg, log,
                                                    share)
     metrics = evaluate_slices(scorers | references, data.split, cfg, event_vectors, reference_info, groups, share)
@@ -279,8 +288,6 @@ def _train_into(cfg: C.Config, config_path, out: RunFolder, partial: RunFolder, 
     if result.still_improving:
         metrics.setdefault("notes", {})["towers_training"] = ("towers: the best epoch was the last one run; validation "
                                                                "was still improving (raise training.epochs)")
-    _save_model(partial, TOWERS, model, cfg.model, data)
-    files = export_run(partial, model, data, cfg, TOWERS, None if data.divided else scorers[TOWERS])
     scorers = None  # every vector is written: what they held is free before the pairs are gathered
     partial.write_pairs(data.queries.ids, data.candidates.ids, data.split, other_parts(data.split) if data.divided else [])
     partial.write_json(RunFolder.METRICS, metrics)
