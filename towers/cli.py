@@ -199,11 +199,12 @@ def _id_rows(path: str, id_column: str | None):
 
 def _aligned(frame) -> str:
     """The list as a text table whose columns line up on a terminal also when names hold wide (East Asian)
-    characters, which take two columns each."""
+    characters, which take two columns each. A value an item's row does not have is left blank (as the
+    CSV output leaves it), not shown as NaN."""
     import pandas as pd
 
     with pd.option_context("display.unicode.east_asian_width", True):
-        return frame.to_string(index=False)
+        return frame.to_string(index=False, na_rep="")
 
 
 def _write_frame(df, out: str) -> None:

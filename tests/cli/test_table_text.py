@@ -20,3 +20,13 @@ def test_names_with_wide_characters_keep_the_columns_in_line():
     lines = cli._aligned(frame).splitlines()
     # each column ends at the same terminal column on every line (the numbers are right-aligned last)
     assert len({_display_width(line) for line in lines}) == 1, lines
+
+
+def test_a_value_an_item_lacks_is_blank_not_nan():
+    frame = pd.DataFrame({"item": ["TR-1", "TR-22"], "tag": ["garden", None], "price": [4.5, float("nan")],
+                          "score": [1.25, 0.5]})
+    text = cli._aligned(frame)
+    assert "NaN" not in text and "None" not in text
+    lines = text.splitlines()
+    assert lines[2].split() == ["TR-22", "0.50"]  # the row's own values, blanks between them
+    assert len({_display_width(line) for line in lines}) == 1, lines
