@@ -161,6 +161,18 @@ def parts_at_first(part: torch.Tensor) -> list[torch.Tensor] | None:
     return _collective(call)
 
 
+def as_words(ints: torch.Tensor) -> torch.Tensor:
+    """Whole numbers as float32 words, two a number, bit for bit: how row numbers and counts travel in one
+    float32 buffer beside the values (from_words reads them back)."""
+    return ints.to(torch.int64).contiguous().view(torch.float32)
+
+
+def from_words(words: torch.Tensor) -> torch.Tensor:
+    """as_words' numbers back from a slice of a buffer (copied first: a slice at an odd word cannot be viewed
+    as int64)."""
+    return words.clone().view(torch.int64)
+
+
 SHARE_CHUNK = 1 << 16  # rows a process sends in one share_rows exchange: bounds what it holds at once
 
 
@@ -179,12 +191,12 @@ def share_rows(tensors: list[torch.Tensor], rows: torch.Tensor) -> None:
     for r in range(rounds):
         part = rows[r * SHARE_CHUNK:(r + 1) * SHARE_CHUNK].to(torch.int64)
         # row numbers carried bit for bit as pairs of float32 words, then each tensor's rows
-        payload = torch.cat([part.view(torch.float32), *(t.index_select(0, part).reshape(-1) for t in tensors)])
+        payload = torch.cat([as_words(part), *(t.index_select(0, part).reshape(-1) for t in tensors)])
         for source, b in enumerate(gather_all(payload)):
             if source == rank:
                 continue
             n = len(b) // (2 + sum(widths))
-            at, got = 2 * n, b[:2 * n].clone().view(torch.int64)  # clone: an odd offset cannot be viewed as int64
+            at, got = 2 * n, from_words(b[:2 * n])
             for t, w in zip(tensors, widths):
                 t.index_copy_(0, got, b[at:at + n * w].view(n, *t.shape[1:]))
                 at += n * w

@@ -377,22 +377,18 @@ def test_a_header_read_as_one_column_points_at_the_separator(tmp_path, sep, said
         T.read_table(path, columns=["user", "item"])
 
 
-def test_rows_longer_than_a_one_column_header_point_at_the_separator(tmp_path):
+@pytest.mark.parametrize("name, text, tail", [
     # a trial's ';'-separated recipe table with commas inside titles: pandas stops at the first such row
     # ("Expected 1 fields in line 3, saw 2"); the error now names the separator the header shows
-    path = tmp_path / "recipes.csv"
-    path.write_text("recipe_id;title;cuisine\nFF-1;Fig tart;french\nFF-2;Beans, greens;italian\n")
-    with pytest.raises(TowersError, match=r"recipes\.csv: cannot be read as csv \(.*\); the header reads as one "
-                                          r"column, recipe_id;title;cuisine: the file looks ';'-separated"):
-        T.read_table(path)
-
-
-def test_a_row_too_long_under_a_comma_header_gets_no_separator_hint(tmp_path):
+    ("recipes.csv", "recipe_id;title;cuisine\nFF-1;Fig tart;french\nFF-2;Beans, greens;italian\n",
+     r"the header reads as one column, recipe_id;title;cuisine: the file looks ';'-separated"),
     # the file's own separator is in its header: the cause is the row, not the separator
-    path = tmp_path / "items.csv"
-    path.write_text("item_id,title,price\nA,Fig tart,3\nB,Beans, greens,4\n")
-    with pytest.raises(TowersError, match=r"items\.csv: cannot be read as csv \(.*\); check the file is a valid csv "
-                                          r"table$"):
+    ("items.csv", "item_id,title,price\nA,Fig tart,3\nB,Beans, greens,4\n", r"check the file is a valid csv table$"),
+])
+def test_a_row_too_long_names_the_separator_only_when_the_header_lacks_the_files_own(tmp_path, name, text, tail):
+    path = tmp_path / name
+    path.write_text(text)
+    with pytest.raises(TowersError, match=rf"{re.escape(name)}: cannot be read as csv \(.*\); {tail}"):
         T.read_table(path)
 
 

@@ -22,7 +22,7 @@ import torch
 import torch.distributed as dist
 import torch.nn as nn
 
-from towers.collective import from_first, gather_all, rank_and_size, summed
+from towers.collective import as_words, from_first, from_words, gather_all, rank_and_size, summed
 from towers.errors import TowersError
 from towers.evaluation.shares import Share
 
@@ -130,12 +130,12 @@ class GradientExchange:
                 else:
                     idx, val = idx[:0], val[:0]
             header.append(len(idx))
-            parts += [idx.contiguous().view(torch.float32), val.reshape(-1)]
+            parts += [as_words(idx), val.reshape(-1)]
         # the header (each parameter's entry count, -1 for none) leads the buffer, as int64 bits in float32 words
-        head = torch.tensor(header, dtype=torch.int64).view(torch.float32)
+        head = as_words(torch.tensor(header))
         start = len(head) + self.dense_size
         buffers = gather_all(torch.cat([head, *dense, *parts]))
-        counts = [b[:len(head)].clone().view(torch.int64).tolist() for b in buffers]
+        counts = [from_words(b[:len(head)]).tolist() for b in buffers]
         total = buffers[0][len(head):start].clone()
         for b in buffers[1:]:
             total += b[len(head):start]
@@ -147,7 +147,7 @@ class GradientExchange:
                 if n < 0 or not self.sparse[k]:
                     continue
                 width = q[0].numel()
-                idx = b[at:at + 2 * n].clone().view(torch.int64)  # clone: an odd offset cannot be viewed as int64
+                idx = from_words(b[at:at + 2 * n])
                 at += 2 * n
                 pieces[k].append((idx, b[at:at + n * width].view(n, *q.shape[1:])))
                 at += n * width
