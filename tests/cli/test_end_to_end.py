@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import importlib.util
 import json
 import shutil
 from pathlib import Path
@@ -16,6 +17,7 @@ import yaml
 
 import towers
 from towers.cli import main as cli
+from towers.data.embeddings_file import true_vectors
 from towers.evaluation.protocol import SLICES
 
 from ..helpers import score_scale
@@ -27,6 +29,15 @@ pytestmark = pytest.mark.slow  # every test reads a run trained on the default-s
 def folder(tmp_path_factory) -> Path:
     """This file's own folder for configs and runs."""
     return tmp_path_factory.mktemp("end_to_end")
+
+
+def _script(name: str):
+    """A module of scripts/ (not a package), imported from its file."""
+    path = Path(__file__).resolve().parents[2] / "scripts" / f"{name}.py"
+    spec = importlib.util.spec_from_file_location(f"{name}_script", path)
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
 
 
 def _config(tiny_runs, folder: Path, name: str, **changes) -> Path:
@@ -224,4 +235,15 @@ def test_ratings_and_copurchase_modes(tiny_runs, demo_store, tmp_path):
     run = towers.load(pairs_run)
     sim = run.similar(["TR-00001"], top=5)
     assert len(sim) == 5 and "TR-00001" not in set(sim["item_id"])
+
+    # scripts/feature_ceiling.py: given the planted rows themselves as the "feature part", the features oracle
+    # is the oracle to the last bit; given the generator's feature part, it prints its row and the share
+    ceiling = _script("feature_ceiling")
+    planted, same = ceiling.feature_truth(run, str(demo_store / "truth" / "item_vectors.parquet"))
+    assert torch.equal(planted.item_vectors, same.item_vectors)
+    planted, features = ceiling.feature_truth(run, str(demo_store / "truth" / "item_feature_vectors.parquet"))
+    saved = run.folder.read_pairs()
+    assert torch.equal(planted.item_vectors, true_vectors(run.config, saved.query_ids, saved.item_ids, True).item_vectors)
+    assert not torch.equal(planted.item_vectors, features.item_vectors)
+    assert ceiling.main([str(pairs_run)]) == 0
     shutil.rmtree(pairs_run)

@@ -28,6 +28,7 @@ FILES = {
     "truth_item_vectors": "truth/item_vectors.parquet",
     "truth_rating_customer_vectors": "truth/rating_customer_vectors.parquet",
     "truth_rating_item_vectors": "truth/rating_item_vectors.parquet",
+    "truth_item_feature_vectors": "truth/item_feature_vectors.parquet",
 }
 ITEM_SCHEMA = pa.schema([
     ("item_id", pa.string()), ("name", pa.string()), ("department", pa.string()),
@@ -234,7 +235,8 @@ def test_truth_files_layout_and_coverage(tables):
             ("truth_customer_vectors", pa.int64(), cust_ids),
             ("truth_rating_customer_vectors", pa.int64(), cust_ids),
             ("truth_item_vectors", pa.string(), item_ids),
-            ("truth_rating_item_vectors", pa.string(), item_ids)):
+            ("truth_rating_item_vectors", pa.string(), item_ids),
+            ("truth_item_feature_vectors", pa.string(), item_ids)):
         t = tables[name]
         assert t.schema.remove_metadata() == pa.schema([
             ("id", id_type), ("embedding", pa.list_(pa.float32(), RANK)),
@@ -339,6 +341,25 @@ def test_attributes_predict_true_item_vectors_of_new_items(tables):
     r2 = fitted_r2(v_cat)
     assert r2 > 0.35, r2
     assert fitted_r2(np.random.default_rng(1).permutation(v_cat)) < 0.1
+
+
+def test_feature_part_is_the_truth_less_its_noise(tables):
+    # Reference: the planted model in towers/synthetic/demo_store.py's module docstring: v_i = f(x_i) + noise
+    # of scale _ITEM_NOISE, b_i = (department, brand and price terms) + N(0, 0.7); the feature-part file holds
+    # f(x_i) and the bias without its noise, so the truth less the feature part is the noise alone.
+    from towers.synthetic.demo_store import _ITEM_NOISE
+
+    iid, v, b = _vectors(tables["truth_item_vectors"])
+    fid, vf, bf = _vectors(tables["truth_item_feature_vectors"])
+    assert fid == iid
+    noise, bias_noise = v - vf, b - bf
+    assert abs(noise.std() / _ITEM_NOISE - 1) < 0.05, noise.std()  # 360 x 8 draws: 2.6% is two standard errors
+    assert abs(noise.mean()) < 0.03
+    assert abs(bias_noise.std() / 0.7 - 1) < 0.12, bias_noise.std()  # 360 draws: 7.5% is two standard errors
+    # the noise is drawn per item, apart from the features: it is not shared by the items of a department
+    dept = pd.concat([tables["items"].to_pandas(), tables["new_items"].to_pandas()]).set_index("item_id").loc[iid, "department"]
+    by_dept = pd.Series(bias_noise).groupby(dept.to_numpy()).mean()
+    assert (by_dept.abs() < 0.35).all(), by_dept
 
 
 def test_same_seed_same_bytes_other_seed_differs(store, tmp_path):

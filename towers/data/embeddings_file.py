@@ -107,7 +107,7 @@ def _catalog_rows(path: str, file_ids: np.ndarray, ids: np.ndarray) -> torch.Ten
     return torch.from_numpy(rows)
 
 
-def _rows_of(path: str, ids: np.ndarray) -> tuple[torch.Tensor, torch.Tensor | None]:
+def rows_of(path: str, ids: np.ndarray) -> tuple[torch.Tensor, torch.Tensor | None]:
     """One embeddings file's vectors and biases, reordered to the catalog ids."""
     o_ids, vec, bias, _ = read_embeddings(path)
     r = _catalog_rows(path, o_ids, ids)
@@ -123,7 +123,13 @@ def co_occurrence_truth(users_path: str, items_path: str, item_ids: np.ndarray) 
     column, one entry per user of the oracle file; no biases.
     """
     _, users, _, _ = read_embeddings(users_path)
-    items, bias = _rows_of(items_path, item_ids)
+    items, bias = rows_of(items_path, item_ids)
+    return co_occurrence_vectors(users, items, bias, users_path, items_path)
+
+
+def co_occurrence_vectors(users: torch.Tensor, items: torch.Tensor, bias: torch.Tensor | None,
+                          users_path: str, items_path: str) -> TrueVectors:
+    """co_occurrence_truth from vectors already read (the paths name them in errors)."""
     if len(users) * len(items) > CO_OCCURRENCE_CELLS:
         raise TowersError(f"{users_path}: {len(users):,} users x {len(items):,} items is more than the item_item "
                           f"oracle holds ({CO_OCCURRENCE_CELLS:,} cells); give it a sample of the users")
@@ -147,6 +153,6 @@ def true_vectors(cfg: Config, query_ids: np.ndarray, item_ids: np.ndarray, item_
         return None
     if item_item:
         return co_occurrence_truth(ev.oracle_users, ev.oracle_items, item_ids)
-    qv, qb = _rows_of(ev.oracle_users, query_ids)
-    cv, cb = _rows_of(ev.oracle_items, item_ids)
+    qv, qb = rows_of(ev.oracle_users, query_ids)
+    cv, cb = rows_of(ev.oracle_items, item_ids)
     return TrueVectors(qv, cv, qb, cb)

@@ -16,7 +16,8 @@ Planted model (all weights drawn once from ``numpy.random.default_rng(seed)``):
 * customer vector ``u_c = g(attributes_c) + larger personal noise``, ``g`` also nonlinear;
 * each basket line is one draw from ``softmax_i(u_c . v_i + b_i + season_t * outdoor_i)``.
 
-The truth files hold ``u_c``, ``v_i`` and ``b_i``. They omit the season term: it only
+The truth files hold ``u_c``, ``v_i`` and ``b_i``, and (``item_feature_vectors.parquet``) the parts
+of ``v_i`` and ``b_i`` the attributes determine, ``f(x_i)`` and the bias without its noise. They omit the season term: it only
 touches Garden and Outdoor Living items, peaks in late spring and averages to zero over the
 365-day year, so ``u_c . v_i + b_i`` is the year-average purchase logit. Star ratings are
 ``clip(round(a + s * (u_c . v_i + b_i) + noise), 1, 5)`` and the rating truth files hold
@@ -319,7 +320,9 @@ def _customers_frame(c: dict) -> pd.DataFrame:
 # ---------------------------------------------------------------- the planted model
 
 def _plant_vectors(rng, items: dict, cust: dict, n_catalog: int, rank: int) -> tuple:
-    """Return (u, v, b) as float32, scaled so logits u.v + b have a sensible spread."""
+    """Return (u, v, b, v_features, b_features) as float32, scaled so logits u.v + b have a sensible
+    spread. v_features and b_features are the parts of v and b the item's attributes determine (the
+    noise of each left out): the most a model that sees only an item's features can know of it."""
     ref = np.arange(n_catalog)
     f = _random_tanh_map(rng, items["x"], ref, hidden=48, out=rank, gain=_ITEM_GAIN)
     v = f + _ITEM_NOISE * rng.normal(size=f.shape)
@@ -332,7 +335,9 @@ def _plant_vectors(rng, items: dict, cust: dict, n_catalog: int, rank: int) -> t
     axis = rng.normal(size=rank)
     axis /= np.linalg.norm(axis)
     outdoor = _OUTDOOR[items["department"]].astype(float)
-    v += 0.8 * np.outer(outdoor - outdoor[ref].mean(), axis)
+    lean = 0.8 * np.outer(outdoor - outdoor[ref].mean(), axis)
+    v += lean
+    f += lean
     u += 0.6 * np.outer(cust["garden"] - cust["garden"].mean(), axis)
 
     spread = np.std(u @ v[ref].T)
@@ -342,10 +347,12 @@ def _plant_vectors(rng, items: dict, cust: dict, n_catalog: int, rank: int) -> t
     dept_pop = rng.normal(0.0, 0.35, size=n_dept)
     brand_pop = rng.normal(0.0, 0.5, size=len(BRANDS)) + 0.3 * np.log(items["brand_size"])
     zprice = items["x"][:, n_dept + len(BRANDS)]
-    b = (dept_pop[items["department"]] + brand_pop[items["brand"]] - 0.3 * zprice
-         + rng.normal(0.0, 0.7, size=len(zprice)))
-    b -= b[ref].mean()
-    return u.astype(np.float32), v.astype(np.float32), b.astype(np.float32)
+    b_features = dept_pop[items["department"]] + brand_pop[items["brand"]] - 0.3 * zprice
+    b = b_features + rng.normal(0.0, 0.7, size=len(zprice))
+    shift = b[ref].mean()
+    b -= shift
+    b_features = b_features - shift
+    return tuple(a.astype(np.float32) for a in (u, v, b, f, b_features))
 
 
 def _season(day_of_year: np.ndarray) -> np.ndarray:
@@ -464,7 +471,7 @@ def generate_store(out_dir, seed: int = 7, n_items: int = 3000, n_customers: int
     export_rng = np.random.default_rng([seed, 1])
     items["in_stock"] = export_rng.random(n_all) >= _OUT_OF_STOCK
     cust = _make_customers(rng, n_customers)
-    u, v, b = _plant_vectors(rng, items, cust, n_items, true_rank)
+    u, v, b, v_features, b_features = _plant_vectors(rng, items, cust, n_items, true_rank)
     u64, v64, b64 = u.astype(np.float64), v.astype(np.float64), b.astype(np.float64)
 
     # Baskets: heavy-tailed activity per customer (log-normal Poisson rate), busier weekends
@@ -582,6 +589,8 @@ def generate_store(out_dir, seed: int = 7, n_items: int = 3000, n_customers: int
     paths["truth_rating_customer_vectors"] = write_truth(
         truth / "rating_customer_vectors.parquet", cust, ru, zeros, "user")
     paths["truth_rating_item_vectors"] = write_truth(truth / "rating_item_vectors.parquet", item_text, v, rb, "item")
+    paths["truth_item_feature_vectors"] = write_truth(
+        truth / "item_feature_vectors.parquet", item_text, v_features, b_features, "item")
     return paths
 
 
