@@ -22,7 +22,7 @@ import torch
 import torch.distributed as dist
 import torch.nn as nn
 
-from towers.collective import as_words, from_first, from_words, gather_all, rank_and_size, summed
+from towers.collective import as_words, from_first, from_words, gather_all, rank_and_size, reset_capacity, summed
 from towers.errors import TowersError
 from towers.evaluation.shares import Share
 
@@ -35,6 +35,7 @@ def start() -> bool:
         return False
     if not dist.is_initialized():
         dist.init_process_group("gloo", timeout=TIMEOUT)
+        reset_capacity()
     return True
 
 
@@ -77,7 +78,7 @@ class GradientExchange:
     Every parameter's gradient goes into one flat float32 buffer per process: dense ones whole, sparse
     ones as their raw entries (indices carried bit for bit as pairs of float32 words, then values),
     uncoalesced: the optimiser coalesces them once, as it does in one process. One gather_all of the
-    buffers (an all_gather of their lengths, then of the buffers) replaces DDP's per-bucket all-reduces and its sparse
+    buffers (point to point, each with its length in front) replaces DDP's per-bucket all-reduces and its sparse
     all-reduce, which coalesces before and after sending; on 2 cores that took an epoch from 2.97 s
     to 2.07-2.33 s (scripts/bench two_nodes's config, 1M events; with no exchange at all the two took 1.50 s).
     A parameter no process gave a gradient (the query biases under the softmax, which cancel) keeps
