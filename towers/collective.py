@@ -55,8 +55,11 @@ def capacity_after(capacity: int, sizes: list[int]) -> int:
     return max(capacity, longest + longest // 8)
 
 
-def gather_all(part: torch.Tensor) -> list[torch.Tensor]:
+def gather_all(part: torch.Tensor | list[torch.Tensor]) -> list[torch.Tensor]:
     """Every process's 1-D tensor (lengths may differ), in rank order; this process's is `part` itself.
+
+    A list of tensors (of one dtype) is sent joined, copied once, straight into the message: this process's
+    piece is then the joined tensor.
 
     Sent point to point, each process to each other one at once, as bytes with the length in front: a
     message of up to the agreed capacity arrives in one round, a longer one's rest in a second. Between two
@@ -67,7 +70,7 @@ def gather_all(part: torch.Tensor) -> list[torch.Tensor]:
     """
     rank, world = rank_and_size()
     if world == 1:
-        return [part]
+        return [torch.cat(part) if isinstance(part, list) else part]
     others = [k for k in range(world) if k != rank]
 
     def swap(send: torch.Tensor | None, receive: list[torch.Tensor | None]) -> None:
@@ -80,12 +83,18 @@ def gather_all(part: torch.Tensor) -> list[torch.Tensor]:
         for request in waiting:
             request.wait()
 
-    mine = part.reshape(-1).contiguous()
-    size = mine.numel() * mine.element_size()
-    message = torch.empty(HEAD + size, dtype=torch.uint8)
+    if isinstance(part, list):
+        dtype = part[0].dtype
+        size = sum(p.numel() for p in part) * part[0].element_size()
+        message = torch.empty(HEAD + size, dtype=torch.uint8)
+        part = torch.cat([p.reshape(-1) for p in part], out=message[HEAD:].view(dtype))
+    else:
+        mine = part.reshape(-1).contiguous()
+        dtype, size = mine.dtype, mine.numel() * mine.element_size()
+        message = torch.empty(HEAD + size, dtype=torch.uint8)
+        if size:  # an empty tensor may have strides no byte view accepts
+            message[HEAD:] = mine.view(torch.uint8)
     message[:HEAD].view(torch.int64)[0] = size
-    if size:  # an empty tensor may have strides no byte view accepts
-        message[HEAD:] = mine.view(torch.uint8)
 
     def call():
         capacity = _capacity[0]
@@ -99,7 +108,7 @@ def gather_all(part: torch.Tensor) -> list[torch.Tensor]:
             swap(message[HEAD + capacity:] if size > capacity else None, rest)
             received = [b if r is None else torch.cat([b, r]) for b, r in zip(received, rest)]
         _capacity[0] = capacity_after(capacity, sizes)
-        return [part if k == rank else received[k][:sizes[k]].view(mine.dtype) for k in range(world)]
+        return [part if k == rank else received[k][:sizes[k]].view(dtype) for k in range(world)]
     return _collective(call)
 
 

@@ -174,9 +174,9 @@ def test_owned_rows_stay_with_their_process_and_are_shared_back_whole():
 
 def _sent(rank: int, call: int) -> torch.Tensor:
     """What process `rank` sends in gather_all call number `call` of _gather_worker."""
-    lengths = [(3, 5), (2, 40), (50, 60), (0, 7), (9, 0), (4, 4)][call]
+    lengths = [(3, 5), (2, 40), (50, 60), (0, 7), (9, 0), (4, 4), (30, 3)][call]
     n = lengths[rank]
-    dtype = [torch.int64, torch.float32, torch.float64, torch.int64, torch.bool, torch.float32][call]
+    dtype = [torch.int64, torch.float32, torch.float64, torch.int64, torch.bool, torch.float32, torch.float32][call]
     values = torch.arange(1000 * call + 100 * rank, 1000 * call + 100 * rank + n)
     if dtype == torch.bool:
         return values % 3 == 0
@@ -189,12 +189,16 @@ def _gather_worker(rank: int, port: int, out: dict) -> None:
     _join(rank, port)
     collective._capacity[0] = 64  # bytes: most of these messages need the second round, and it grows
     got, capacities = [], []
-    for call in range(6):
+    for call in range(7):
         part = _sent(rank, call)
         if call == 5:  # a strided view, not a tensor of its own
             part = torch.stack([part, -part], 1)[:, 0]
-        pieces = collective.gather_all(part)
-        assert pieces[rank] is part
+        if call == 6:  # a list, sent joined
+            pieces = collective.gather_all([part[:2], part[2:].view(-1, 1)])
+            assert torch.equal(pieces[rank], part)
+        else:
+            pieces = collective.gather_all(part)
+            assert pieces[rank] is part
         got.append([p.clone() for p in pieces])
         capacities.append(collective._capacity[0])
     out[rank] = {"got": got, "capacities": capacities}
@@ -203,7 +207,7 @@ def _gather_worker(rank: int, port: int, out: dict) -> None:
 
 def test_gather_all_gives_every_process_every_part_whatever_its_length():
     """collective.gather_all with a small capacity: parts shorter and longer than it, on one process or both,
-    empty ones, int64, float32, float64 and bool, a strided view. Reference: the definition of an all-gather
+    empty ones, int64, float32, float64 and bool, a strided view, a list sent joined. Reference: the definition of an all-gather
     (every process ends with every process's part, in rank order); the capacity grows alike everywhere."""
     got = _run(_gather_worker)
     for rank in range(WORLD):

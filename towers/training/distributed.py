@@ -135,7 +135,7 @@ class GradientExchange:
         # the header (each parameter's entry count, -1 for none) leads the buffer, as int64 bits in float32 words
         head = as_words(torch.tensor(header))
         start = len(head) + self.dense_size
-        buffers = gather_all(torch.cat([head, *dense, *parts]))
+        buffers = gather_all([head, *dense, *parts])
         counts = [from_words(b[:len(head)]).tolist() for b in buffers]
         total = buffers[0][len(head):start].clone()
         for b in buffers[1:]:
