@@ -108,8 +108,15 @@ def gather_all(part: torch.Tensor | list[torch.Tensor]) -> list[torch.Tensor]:
             swap(message[HEAD + capacity:] if size > capacity else None, rest)
             received = [b if r is None else torch.cat([b, r]) for b, r in zip(received, rest)]
         _capacity[0] = capacity_after(capacity, sizes)
-        return [part if k == rank else received[k][:sizes[k]].view(dtype) for k in range(world)]
+        # a piece far shorter than its buffer is copied out, so a caller who keeps it does not keep the buffer
+        return [part if k == rank else _own_storage(received[k][:sizes[k]], len(received[k])).view(dtype)
+                for k in range(world)]
     return _collective(call)
+
+
+def _own_storage(piece: torch.Tensor, buffer_bytes: int) -> torch.Tensor:
+    """The piece itself, or a copy when it fills less than half of the buffer it was received into."""
+    return piece.clone() if 2 * len(piece) < buffer_bytes else piece
 
 
 def joined(part: torch.Tensor) -> torch.Tensor:

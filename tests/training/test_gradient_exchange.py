@@ -201,6 +201,11 @@ def _gather_worker(rank: int, port: int, out: dict) -> None:
             assert pieces[rank] is part
         got.append([p.clone() for p in pieces])
         capacities.append(collective._capacity[0])
+        # a received piece holds no more than twice its own bytes (and the length in front): a short one is a
+        # copy, not a view of a buffer of the whole capacity
+        for k, p in enumerate(pieces):
+            if k != rank:
+                assert p.untyped_storage().nbytes() <= 2 * p.numel() * p.element_size() + collective.HEAD, (call, k)
     out[rank] = {"got": got, "capacities": capacities}
     dist.destroy_process_group()
 
