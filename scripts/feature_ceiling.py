@@ -29,9 +29,10 @@ from towers.runs.run import Run
 METRICS = ("recall@20", "ndcg@20")
 
 
-def feature_truth(run: Run, features: str) -> tuple[TrueVectors, TrueVectors]:
-    """(planted oracle, oracle with the held-out items' rows from the feature-part file)."""
-    saved = run.folder.read_pairs()
+def feature_truth(run: Run, features: str, saved=None) -> tuple[TrueVectors, TrueVectors]:
+    """(planted oracle, oracle with the held-out items' rows from the feature-part file); saved: the run's
+    pairs file as read (read here when not given)."""
+    saved = saved or run.folder.read_pairs()
     ev = run.config.evaluation
     if not ev.oracle_users or not ev.oracle_items:
         raise TowersError(f"{run.dir}: the config names no evaluation.oracle_users / oracle_items")
@@ -58,8 +59,9 @@ def main(argv=None) -> int:
     try:
         run = Run(args.run_dir)
         features = args.features or str(Path(run.config.evaluation.oracle_items).parent / "item_feature_vectors.parquet")
-        planted, from_features = feature_truth(run, features)
-        split = run.folder.read_pairs().split
+        saved_pairs = run.folder.read_pairs()
+        planted, from_features = feature_truth(run, features, saved_pairs)
+        split = saved_pairs.split
         rows = {}
         for name, truth in (("oracle", planted), ("features_oracle", from_features)):
             rows[name] = evaluate_slices({"oracle": oracle_scorer(truth)}, split, run.config)["cold"]["oracle"]

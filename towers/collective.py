@@ -83,18 +83,14 @@ def gather_all(part: torch.Tensor | list[torch.Tensor]) -> list[torch.Tensor]:
         for request in waiting:
             request.wait()
 
-    if isinstance(part, list):
-        dtype = part[0].dtype
-        size = sum(p.numel() for p in part) * part[0].element_size()
-        message = torch.empty(HEAD + size, dtype=torch.uint8)
-        part = torch.cat([p.reshape(-1) for p in part], out=message[HEAD:].view(dtype))
-    else:
-        mine = part.reshape(-1).contiguous()
-        dtype, size = mine.dtype, mine.numel() * mine.element_size()
-        message = torch.empty(HEAD + size, dtype=torch.uint8)
-        if size:  # an empty tensor may have strides no byte view accepts
-            message[HEAD:] = mine.view(torch.uint8)
+    given = part if isinstance(part, list) else [part]
+    dtype = given[0].dtype
+    size = sum(p.numel() for p in given) * given[0].element_size()
+    message = torch.empty(HEAD + size, dtype=torch.uint8)
     message[:HEAD].view(torch.int64)[0] = size
+    joined_here = torch.cat([p.reshape(-1) for p in given], out=message[HEAD:].view(dtype))
+    if isinstance(part, list):
+        part = joined_here
 
     def call():
         capacity = _capacity[0]
